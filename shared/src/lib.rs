@@ -1,0 +1,14 @@
+//! Meterveil's shared library: validated domain types, the JSON wire types, the
+//! privacy mechanism (used identically by gateway and service) and the numerical
+//! core. Pure computation: no async runtime, no database, no HTTP.
+
+pub mod domain;
+pub mod error;
+pub mod mechanism;
+pub mod profile;
+pub mod special;
+pub mod wire;
+
+pub use domain::{FeederId, GatewayId, IntervalLength, IntervalStart, MeterId, ProfileVersion};
+pub use error::FieldError;
+pub use profile::{DitherProfile, DitherProfileSpec, NoiseFamily};

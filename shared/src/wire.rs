@@ -1,0 +1,87 @@
+//! JSON wire types between gateway and service. These are the unchecked forms:
+//! the service converts them once into validated domain values.
+
+use serde::{Deserialize, Serialize};
+
+use crate::profile::DitherProfileSpec;
+
+/// One quantized interval reading as uploaded. No raw value travels.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ReadingWire {
+    pub meter_id: String,
+    /// Interval start, UTC epoch seconds.
+    pub interval_start: i64,
+    pub level: u8,
+    pub profile_version: u32,
+}
+
+/// An exact cumulative register read (Wh) at a UTC instant, usually midnight.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RegisterWire {
+    pub meter_id: String,
+    /// UTC epoch seconds.
+    pub read_at: i64,
+    pub wh_total: u64,
+}
+
+/// One upload from a gateway. `batch_id` is stable across retries of the same rows.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct BatchWire {
+    pub batch_id: String,
+    pub gateway_id: String,
+    pub feeder_id: String,
+    #[serde(default)]
+    pub readings: Vec<ReadingWire>,
+    #[serde(default)]
+    pub registers: Vec<RegisterWire>,
+}
+
+/// The service's acknowledgement. Re-sending an acknowledged batch returns the same one.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct AckWire {
+    pub batch_id: String,
+    /// Readings newly stored by this batch.
+    pub stored_readings: u64,
+    /// Readings already stored for the same (meter, interval start); not stored twice.
+    pub duplicate_readings: u64,
+    pub stored_registers: u64,
+    pub duplicate_registers: u64,
+}
+
+/// A published profile version of a feeder, as the service serves it.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ProfileRecordWire {
+    pub feeder_id: String,
+    pub version: u32,
+    /// UTC epoch seconds at which the service published this version.
+    pub created_at: i64,
+    pub profile: DitherProfileSpec,
+}
+
+/// Error body of every 4xx/5xx answer: the field (path into the request) and reason.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct ErrorWire {
+    pub field: String,
+    pub reason: String,
+    /// `field: reason`, for people reading logs.
+    pub message: String,
+}
+
+/// Operator request: register a feeder.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct NewFeederWire {
+    pub feeder_id: String,
+    #[serde(default)]
+    pub name: String,
+}
+
+/// Operator request: register meters on a feeder.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct NewMetersWire {
+    pub meter_ids: Vec<String>,
+}
