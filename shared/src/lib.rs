@@ -9,6 +9,8 @@ pub mod profile;
 pub mod special;
 pub mod wire;
 
-pub use domain::{FeederId, GatewayId, IntervalLength, IntervalStart, MeterId, ProfileVersion};
+pub use domain::{
+    BatchId, FeederId, GatewayId, IntervalLength, IntervalStart, MeterId, ProfileVersion,
+};
 pub use error::FieldError;
 pub use profile::{DitherProfile, DitherProfileSpec, NoiseFamily};

@@ -1,0 +1,93 @@
+//! Starting and stopping the HTTP service.
+
+use std::net::SocketAddr;
+use std::sync::Arc;
+
+use anyhow::Context;
+use tokio::sync::oneshot;
+use tokio::task::JoinHandle;
+use tower_http::trace::TraceLayer;
+
+use crate::config::ServiceConfig;
+use crate::metrics::Metrics;
+use crate::routes::{self, AppState};
+use crate::store::Store;
+
+/// A service listening on `addr` until [`RunningService::stop`] or the handle is dropped.
+pub struct RunningService {
+    pub addr: SocketAddr,
+    pub store: Store,
+    pub metrics: Arc<Metrics>,
+    shutdown: Option<oneshot::Sender<()>>,
+    handle: JoinHandle<std::io::Result<()>>,
+}
+
+impl RunningService {
+    /// Base URL, e.g. `http://127.0.0.1:41234`.
+    pub fn url(&self) -> String {
+        format!("http://{}", self.addr)
+    }
+
+    /// Stops accepting connections, finishes in-flight requests and returns.
+    pub async fn stop(mut self) -> anyhow::Result<()> {
+        if let Some(tx) = self.shutdown.take() {
+            let _ = tx.send(());
+        }
+        (&mut self.handle).await.context("server task panicked")??;
+        Ok(())
+    }
+
+    /// Waits until the server ends (Ctrl-C for the `serve` command).
+    pub async fn wait(mut self) -> anyhow::Result<()> {
+        (&mut self.handle).await.context("server task panicked")??;
+        Ok(())
+    }
+}
+
+/// Opens the store (applying migrations), binds and serves in a background task.
+pub async fn start(config: ServiceConfig) -> anyhow::Result<RunningService> {
+    let store = Store::open(&config.database_url).await?;
+    start_with_store(config, store, None).await
+}
+
+/// As [`start`], on an opened store; `until` ends the server when it resolves.
+pub async fn start_with_store(
+    config: ServiceConfig,
+    store: Store,
+    until: Option<std::pin::Pin<Box<dyn std::future::Future<Output = ()> + Send>>>,
+) -> anyhow::Result<RunningService> {
+    let metrics = Arc::new(Metrics::default());
+    let listener = tokio::net::TcpListener::bind(config.bind)
+        .await
+        .with_context(|| format!("binding {}", config.bind))?;
+    let addr = listener.local_addr()?;
+    let state = AppState {
+        store: store.clone(),
+        config: Arc::new(config),
+        metrics: metrics.clone(),
+    };
+    let app = routes::router(state).layer(TraceLayer::new_for_http());
+    let (tx, rx) = oneshot::channel::<()>();
+    let handle = tokio::spawn(async move {
+        axum::serve(listener, app)
+            .with_graceful_shutdown(async move {
+                match until {
+                    Some(f) => {
+                        tokio::select! { _ = f => {}, _ = rx => {} }
+                    }
+                    None => {
+                        let _ = rx.await;
+                    }
+                }
+            })
+            .await
+    });
+    tracing::info!(%addr, "utility service listening");
+    Ok(RunningService {
+        addr,
+        store,
+        metrics,
+        shutdown: Some(tx),
+        handle,
+    })
+}

@@ -1,0 +1,85 @@
+//! The service's error type, mapped to HTTP in one place.
+
+use axum::http::StatusCode;
+use axum::response::{IntoResponse, Response};
+use axum::Json;
+use meterveil_shared::wire::ErrorWire;
+use meterveil_shared::FieldError;
+
+#[derive(Debug, thiserror::Error)]
+pub enum ApiError {
+    /// The body is not the JSON we expect (400).
+    #[error("{0}")]
+    Malformed(FieldError),
+    /// Well-formed but refused (422): unknown meter, level out of range, ...
+    #[error("{0}")]
+    Invalid(FieldError),
+    /// Conflicts with stored state (409): batch id reused, used profile changed.
+    #[error("{0}")]
+    Conflict(FieldError),
+    /// Not found (404).
+    #[error("{0}")]
+    NotFound(FieldError),
+    /// Body over the limit (413).
+    #[error("{0}")]
+    TooLarge(FieldError),
+    /// Missing or wrong operator token (401).
+    #[error("{0}")]
+    Unauthorized(FieldError),
+    /// Anything else: logged, answered with an opaque 500.
+    #[error(transparent)]
+    Internal(#[from] anyhow::Error),
+}
+
+impl ApiError {
+    pub fn status(&self) -> StatusCode {
+        match self {
+            ApiError::Malformed(_) => StatusCode::BAD_REQUEST,
+            ApiError::Invalid(_) => StatusCode::UNPROCESSABLE_ENTITY,
+            ApiError::Conflict(_) => StatusCode::CONFLICT,
+            ApiError::NotFound(_) => StatusCode::NOT_FOUND,
+            ApiError::TooLarge(_) => StatusCode::PAYLOAD_TOO_LARGE,
+            ApiError::Unauthorized(_) => StatusCode::UNAUTHORIZED,
+            ApiError::Internal(_) => StatusCode::INTERNAL_SERVER_ERROR,
+        }
+    }
+
+    pub fn invalid(field: impl Into<String>, reason: impl Into<String>) -> Self {
+        ApiError::Invalid(FieldError::new(field, reason))
+    }
+}
+
+impl From<sqlx::Error> for ApiError {
+    fn from(e: sqlx::Error) -> Self {
+        ApiError::Internal(e.into())
+    }
+}
+
+impl IntoResponse for ApiError {
+    fn into_response(self) -> Response {
+        let status = self.status();
+        let fe = match self {
+            ApiError::Malformed(f)
+            | ApiError::Invalid(f)
+            | ApiError::Conflict(f)
+            | ApiError::NotFound(f)
+            | ApiError::TooLarge(f)
+            | ApiError::Unauthorized(f) => f,
+            ApiError::Internal(e) => {
+                tracing::error!(error = ?e, "internal error");
+                FieldError::new("", "internal error; see the service log")
+            }
+        };
+        let message = if fe.field.is_empty() {
+            fe.reason.clone()
+        } else {
+            fe.to_string()
+        };
+        let body = ErrorWire {
+            field: fe.field,
+            reason: fe.reason,
+            message,
+        };
+        (status, Json(body)).into_response()
+    }
+}

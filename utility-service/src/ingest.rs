@@ -1,0 +1,240 @@
+//! Ingest validation: turns an unchecked batch into one that can be stored whole.
+//! Pure functions over a snapshot of the feeder's state, so every rule is unit-testable.
+
+use std::collections::{HashMap, HashSet};
+
+use meterveil_shared::wire::BatchWire;
+use meterveil_shared::{BatchId, FeederId, FieldError, GatewayId, IntervalStart, MeterId};
+use sha2::{Digest, Sha256};
+
+use crate::error::ApiError;
+use crate::store::ProfileRecord;
+
+#[derive(Debug, Clone)]
+pub struct ValidReading {
+    pub meter_id: MeterId,
+    pub interval_start: i64,
+    pub level: u8,
+    pub profile_version: u32,
+}
+
+#[derive(Debug, Clone)]
+pub struct ValidRegister {
+    pub meter_id: MeterId,
+    pub read_at: i64,
+    pub wh_total: u64,
+}
+
+#[derive(Debug, Clone)]
+pub struct ValidatedBatch {
+    pub batch_id: String,
+    pub gateway_id: GatewayId,
+    pub feeder_id: FeederId,
+    pub body_sha256: String,
+    pub readings: Vec<ValidReading>,
+    pub registers: Vec<ValidRegister>,
+    /// Profile versions the readings were made with.
+    pub versions_used: Vec<u32>,
+}
+
+/// The identifying header of a batch, checked before anything is looked up.
+#[derive(Debug, Clone)]
+pub struct BatchHeader {
+    pub batch_id: BatchId,
+    pub gateway_id: GatewayId,
+    pub feeder_id: FeederId,
+}
+
+pub fn body_sha256(body: &[u8]) -> String {
+    hex::encode(Sha256::digest(body))
+}
+
+/// Parses the JSON body, naming the path of the first bad field.
+pub fn parse_batch(body: &[u8]) -> Result<BatchWire, ApiError> {
+    let de = &mut serde_json::Deserializer::from_slice(body);
+    serde_path_to_error::deserialize(de).map_err(|e| {
+        let path = e.path().to_string();
+        let field = if path == "." { "body".to_owned() } else { path };
+        ApiError::Malformed(FieldError::new(field, e.into_inner().to_string()))
+    })
+}
+
+pub fn check_header(b: &BatchWire) -> Result<BatchHeader, ApiError> {
+    Ok(BatchHeader {
+        batch_id: BatchId::parse(&b.batch_id).map_err(ApiError::Invalid)?,
+        gateway_id: GatewayId::parse(&b.gateway_id).map_err(ApiError::Invalid)?,
+        feeder_id: FeederId::parse(&b.feeder_id).map_err(ApiError::Invalid)?,
+    })
+}
+
+/// What validation needs to know about stored state and the clock.
+pub struct IngestContext<'a> {
+    /// The feeder's profile versions, oldest first.
+    pub profiles: &'a [ProfileRecord],
+    /// Which of the batch's meter ids are registered on the feeder.
+    pub known_meters: &'a HashSet<String>,
+    /// Server time, UTC epoch seconds.
+    pub now: i64,
+    pub clock_tolerance_s: i64,
+    pub stale_grace_s: i64,
+}
+
+/// Checks every row; the first problem rejects the whole batch (nothing is stored).
+pub fn validate(
+    header: BatchHeader,
+    batch: BatchWire,
+    body_sha256: String,
+    ctx: &IngestContext<'_>,
+) -> Result<ValidatedBatch, ApiError> {
+    if batch.readings.is_empty() && batch.registers.is_empty() {
+        return Err(ApiError::invalid(
+            "readings",
+            "batch is empty: it has no readings and no register reads",
+        ));
+    }
+    let by_version: HashMap<u32, (usize, &ProfileRecord)> = ctx
+        .profiles
+        .iter()
+        .enumerate()
+        .map(|(i, p)| (p.version.0, (i, p)))
+        .collect();
+    let feeder = &header.feeder_id;
+    let mut seen: HashMap<(&str, i64), usize> = HashMap::with_capacity(batch.readings.len());
+    let mut versions_used: Vec<u32> = Vec::new();
+    let mut readings = Vec::with_capacity(batch.readings.len());
+
+    for (i, r) in batch.readings.iter().enumerate() {
+        let at = |f: &str| format!("readings[{i}].{f}");
+        let meter_id =
+            MeterId::parse_field(&at("meter_id"), &r.meter_id).map_err(ApiError::Invalid)?;
+        if !ctx.known_meters.contains(&r.meter_id) {
+            return Err(ApiError::invalid(
+                at("meter_id"),
+                format!("meter {meter_id} is not registered on feeder {feeder}"),
+            ));
+        }
+        let Some(&(idx, rec)) = by_version.get(&r.profile_version) else {
+            return Err(ApiError::invalid(
+                at("profile_version"),
+                format!(
+                    "feeder {feeder} has no profile version {}",
+                    r.profile_version
+                ),
+            ));
+        };
+        let len = rec.profile.interval();
+        IntervalStart::new_field(&at("interval_start"), r.interval_start, len)
+            .map_err(ApiError::Invalid)?;
+        let interval_end = r.interval_start + i64::from(len.seconds());
+        if interval_end > ctx.now + ctx.clock_tolerance_s {
+            return Err(ApiError::invalid(
+                at("interval_start"),
+                format!(
+                    "interval {} ends {} s in the future (server time {}); check the meter clock",
+                    r.interval_start,
+                    interval_end - ctx.now,
+                    ctx.now
+                ),
+            ));
+        }
+        if let Some(next) = ctx.profiles.get(idx + 1) {
+            let cutoff = next.created_at + ctx.stale_grace_s;
+            if r.interval_start >= cutoff {
+                return Err(ApiError::invalid(
+                    at("profile_version"),
+                    format!(
+                        "version {} is stale: it was superseded by version {} at {}, and readings from {} on must use the newer version",
+                        r.profile_version, next.version.0, next.created_at, cutoff
+                    ),
+                ));
+            }
+        }
+        let k = rec.profile.levels();
+        if usize::from(r.level) >= k {
+            return Err(ApiError::invalid(
+                at("level"),
+                format!(
+                    "{} is out of range for profile version {} ({k} levels: 0 to {})",
+                    r.level,
+                    r.profile_version,
+                    k - 1
+                ),
+            ));
+        }
+        if let Some(first) = seen.insert((r.meter_id.as_str(), r.interval_start), i) {
+            return Err(ApiError::invalid(
+                format!("readings[{i}]"),
+                format!("repeats readings[{first}] (same meter_id and interval_start)"),
+            ));
+        }
+        if !versions_used.contains(&r.profile_version) {
+            versions_used.push(r.profile_version);
+        }
+        readings.push(ValidReading {
+            meter_id,
+            interval_start: r.interval_start,
+            level: r.level,
+            profile_version: r.profile_version,
+        });
+    }
+
+    let registers_allowed = ctx.profiles.iter().any(|p| p.profile.send_registers());
+    let mut registers = Vec::with_capacity(batch.registers.len());
+    let mut seen_reg: HashSet<(&str, i64)> = HashSet::new();
+    for (i, g) in batch.registers.iter().enumerate() {
+        let at = |f: &str| format!("registers[{i}].{f}");
+        if !registers_allowed {
+            return Err(ApiError::invalid(
+                format!("registers[{i}]"),
+                format!("no profile of feeder {feeder} allows register reads"),
+            ));
+        }
+        let meter_id =
+            MeterId::parse_field(&at("meter_id"), &g.meter_id).map_err(ApiError::Invalid)?;
+        if !ctx.known_meters.contains(&g.meter_id) {
+            return Err(ApiError::invalid(
+                at("meter_id"),
+                format!("meter {meter_id} is not registered on feeder {feeder}"),
+            ));
+        }
+        if g.read_at < meterveil_shared::domain::EARLIEST_EPOCH_S {
+            return Err(ApiError::invalid(
+                at("read_at"),
+                format!("{} is before 2000-01-01T00:00:00Z", g.read_at),
+            ));
+        }
+        if g.read_at > ctx.now + ctx.clock_tolerance_s {
+            return Err(ApiError::invalid(
+                at("read_at"),
+                format!("{} is in the future (server time {})", g.read_at, ctx.now),
+            ));
+        }
+        if g.wh_total > i64::MAX as u64 {
+            return Err(ApiError::invalid(
+                at("wh_total"),
+                "is larger than any register can hold",
+            ));
+        }
+        if !seen_reg.insert((g.meter_id.as_str(), g.read_at)) {
+            return Err(ApiError::invalid(
+                format!("registers[{i}]"),
+                "repeats an earlier register read (same meter_id and read_at)",
+            ));
+        }
+        registers.push(ValidRegister {
+            meter_id,
+            read_at: g.read_at,
+            wh_total: g.wh_total,
+        });
+    }
+
+    Ok(ValidatedBatch {
+        batch_id: header.batch_id.to_string(),
+        gateway_id: header.gateway_id,
+        feeder_id: header.feeder_id,
+        body_sha256,
+        readings,
+        registers,
+        versions_used,
+    })
+}

@@ -1,0 +1,15 @@
+//! Meterveil utility service: ingests quantized readings from gateways, validates
+//! and stores them, and runs the operator commands.
+//!
+//! `routes/` is the HTTP surface, `store/` the database, `ingest` the validation
+//! rules, `demo` the one-command demonstration.
+
+pub mod app;
+pub mod cli;
+pub mod config;
+pub mod demo;
+pub mod error;
+pub mod ingest;
+pub mod metrics;
+pub mod routes;
+pub mod store;

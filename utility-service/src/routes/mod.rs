@@ -1,0 +1,88 @@
+//! HTTP routes. Each module exports `router()`; handlers are short scripts over
+//! the store and the domain functions.
+
+pub mod feeders;
+pub mod health;
+pub mod ingest;
+
+use std::sync::Arc;
+
+use axum::extract::FromRequestParts;
+use axum::http::request::Parts;
+use axum::Router;
+use meterveil_shared::FieldError;
+use serde::de::DeserializeOwned;
+
+use crate::config::ServiceConfig;
+use crate::error::ApiError;
+use crate::metrics::Metrics;
+use crate::store::Store;
+
+#[derive(Clone)]
+pub struct AppState {
+    pub store: Store,
+    pub config: Arc<ServiceConfig>,
+    pub metrics: Arc<Metrics>,
+}
+
+pub fn router(state: AppState) -> Router {
+    Router::new()
+        .merge(health::router())
+        .merge(ingest::router())
+        .merge(feeders::router())
+        .with_state(state)
+}
+
+/// Proof that the request carried the operator token (`Authorization: Bearer …`).
+pub struct Operator;
+
+impl FromRequestParts<AppState> for Operator {
+    type Rejection = ApiError;
+
+    async fn from_request_parts(parts: &mut Parts, state: &AppState) -> Result<Self, ApiError> {
+        let header = parts
+            .headers
+            .get(axum::http::header::AUTHORIZATION)
+            .and_then(|v| v.to_str().ok())
+            .unwrap_or("");
+        let token = header.strip_prefix("Bearer ").unwrap_or("");
+        if token.is_empty() {
+            return Err(ApiError::Unauthorized(FieldError::new(
+                "authorization",
+                "operator endpoint: send the operator token as 'Authorization: Bearer <token>'",
+            )));
+        }
+        if !constant_time_eq(
+            token.as_bytes(),
+            state.config.operator_token.expose().as_bytes(),
+        ) {
+            return Err(ApiError::Unauthorized(FieldError::new(
+                "authorization",
+                "operator token is wrong",
+            )));
+        }
+        Ok(Operator)
+    }
+}
+
+fn constant_time_eq(a: &[u8], b: &[u8]) -> bool {
+    a.len() == b.len() && a.iter().zip(b).fold(0u8, |acc, (x, y)| acc | (x ^ y)) == 0
+}
+
+/// Parses a JSON body, naming the path of the first bad field (400).
+pub fn parse_json<T: DeserializeOwned>(body: &[u8]) -> Result<T, ApiError> {
+    let de = &mut serde_json::Deserializer::from_slice(body);
+    serde_path_to_error::deserialize(de).map_err(|e| {
+        let path = e.path().to_string();
+        let field = if path == "." { "body".to_owned() } else { path };
+        ApiError::Malformed(FieldError::new(field, e.into_inner().to_string()))
+    })
+}
+
+/// Server time as UTC epoch seconds.
+pub fn now_s() -> i64 {
+    std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map(|d| d.as_secs() as i64)
+        .unwrap_or(0)
+}
