@@ -1,1 +1,798 @@
-// end-to-end tests: see below
+//! End-to-end tests: a real service on a free port with a fresh SQLite file, real
+//! gateways with real outbox files, HTTP in between.
+
+use std::collections::HashSet;
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::Arc;
+
+use axum::body::Bytes;
+use axum::extract::State;
+use axum::http::{HeaderMap, Method, StatusCode, Uri};
+use axum::response::IntoResponse;
+use meterveil_gateway::client::ServiceClient;
+use meterveil_gateway::gateway::{Gateway, GatewayIdentity};
+use meterveil_gateway::simulate::{self, SimulateOptions};
+use meterveil_gateway::source::RawReading;
+use meterveil_gateway::uploader::UploadConfig;
+use meterveil_service::app::{self, RunningService};
+use meterveil_service::config::{Secret, ServiceConfig};
+use meterveil_shared::{FeederId, GatewayId, MeterId};
+use serde_json::{json, Value};
+
+const TOKEN: &str = "test-operator-token-0123456789";
+
+struct TestService {
+    svc: RunningService,
+    _dir: tempfile::TempDir,
+    http: reqwest::Client,
+}
+
+impl TestService {
+    fn url(&self) -> String {
+        self.svc.url()
+    }
+
+    async fn count(&self, sql: &str) -> i64 {
+        sqlx::query_scalar(sql)
+            .fetch_one(self.svc.store.pool())
+            .await
+            .expect("count query")
+    }
+
+    async fn post_json(&self, path: &str, body: &Value, operator: bool) -> (StatusCode, Value) {
+        let mut req = self.http.post(format!("{}{path}", self.url())).json(body);
+        if operator {
+            req = req.bearer_auth(TOKEN);
+        }
+        let resp = req.send().await.expect("request");
+        let status = StatusCode::from_u16(resp.status().as_u16()).expect("status");
+        let body = resp.json::<Value>().await.unwrap_or(Value::Null);
+        (status, body)
+    }
+}
+
+async fn spawn_service_with(tweak: impl FnOnce(&mut ServiceConfig)) -> TestService {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let mut config = ServiceConfig::local(
+        format!("sqlite:{}", dir.path().join("svc.sqlite").display()),
+        Secret::new(TOKEN),
+    );
+    tweak(&mut config);
+    let svc = app::start(config).await.expect("service starts");
+    TestService {
+        svc,
+        _dir: dir,
+        http: reqwest::Client::new(),
+    }
+}
+
+async fn spawn_service() -> TestService {
+    spawn_service_with(|_| {}).await
+}
+
+fn now_s() -> i64 {
+    std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .expect("clock")
+        .as_secs() as i64
+}
+
+/// A feeder `F1` with meters `m1`, `m2` and one profile (3 levels, registers allowed).
+async fn small_feeder(t: &TestService) {
+    assert_eq!(
+        t.post_json(
+            "/v1/feeders",
+            &json!({"feeder_id": "F1", "name": "test"}),
+            true
+        )
+        .await
+        .0,
+        StatusCode::CREATED
+    );
+    let (s, _) = t
+        .post_json(
+            "/v1/feeders/F1/meters",
+            &json!({"meter_ids": ["m1", "m2"]}),
+            true,
+        )
+        .await;
+    assert_eq!(s, StatusCode::OK);
+    let profile = json!({"noise": "gaussian", "scale_kw": 0.3, "boundaries_kw": [1.0, 2.0], "interval_s": 900, "send_registers": true});
+    let (s, body) = t.post_json("/v1/feeders/F1/profiles", &profile, true).await;
+    assert_eq!(s, StatusCode::CREATED, "{body}");
+}
+
+/// A reverse proxy that fails some uploads: every `before`-th request is answered
+/// 503 without reaching the service; every `after`-th is forwarded (so the service
+/// commits it) and its acknowledgement is then lost (502).
+struct FlakyProxy {
+    target: String,
+    before: u64,
+    after: u64,
+    seen: AtomicU64,
+    lost_acks: AtomicU64,
+    http: reqwest::Client,
+}
+
+async fn proxy_handler(
+    State(p): State<Arc<FlakyProxy>>,
+    method: Method,
+    uri: Uri,
+    headers: HeaderMap,
+    body: Bytes,
+) -> axum::response::Response {
+    let n = p.seen.fetch_add(1, Ordering::SeqCst) + 1;
+    let is_upload = uri.path() == "/v1/ingest/batches";
+    if is_upload && n % p.before == 0 {
+        return (StatusCode::SERVICE_UNAVAILABLE, "proxy: injected failure").into_response();
+    }
+    let mut req = p.http.request(
+        reqwest::Method::from_bytes(method.as_str().as_bytes()).expect("method"),
+        format!("{}{}", p.target, uri),
+    );
+    for (k, v) in &headers {
+        if k != "host" && k != "content-length" {
+            req = req.header(k.as_str(), v.as_bytes());
+        }
+    }
+    let resp = match req.body(body).send().await {
+        Ok(r) => r,
+        Err(e) => return (StatusCode::BAD_GATEWAY, e.to_string()).into_response(),
+    };
+    let status = StatusCode::from_u16(resp.status().as_u16()).expect("status");
+    let bytes = resp.bytes().await.unwrap_or_default();
+    if is_upload && n % p.after == 0 && status.is_success() {
+        p.lost_acks.fetch_add(1, Ordering::SeqCst);
+        return (StatusCode::BAD_GATEWAY, "proxy: acknowledgement lost").into_response();
+    }
+    (status, [("content-type", "application/json")], bytes).into_response()
+}
+
+async fn spawn_proxy(target: String, before: u64, after: u64) -> (String, Arc<FlakyProxy>) {
+    let p = Arc::new(FlakyProxy {
+        target,
+        before,
+        after,
+        seen: AtomicU64::new(0),
+        lost_acks: AtomicU64::new(0),
+        http: reqwest::Client::new(),
+    });
+    let app = axum::Router::new()
+        .fallback(proxy_handler)
+        .with_state(p.clone());
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
+        .await
+        .expect("bind");
+    let addr = listener.local_addr().expect("addr");
+    tokio::spawn(async move { axum::serve(listener, app).await });
+    (format!("http://{addr}"), p)
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn every_generated_reading_is_stored_exactly_once_through_a_failing_link() {
+    let t = spawn_service().await;
+    let (proxy_url, proxy) = spawn_proxy(t.url(), 5, 7).await;
+    let work = tempfile::tempdir().expect("tempdir");
+    let mut opts = SimulateOptions::new(proxy_url, work.path().join("outboxes"));
+    opts.operator_token = Some(TOKEN.into());
+    opts.meters = 40;
+    opts.days = 3;
+    opts.meters_per_gateway = 10;
+    opts.upload = UploadConfig {
+        batch_max: 96,
+        backoff: meterveil_gateway::backoff::BackoffPolicy {
+            initial_ms: 5,
+            max_ms: 40,
+        },
+        idle_poll_ms: 20,
+    };
+    let truth = work.path().join("truth.csv");
+    opts.truth = Some(truth.clone());
+    let report = simulate::run(&opts).await.expect("simulation runs");
+
+    assert_eq!(report.readings_generated, 40 * 3 * 96);
+    assert!(
+        report.transient_failures > 0,
+        "the proxy must have caused retries"
+    );
+    assert!(
+        proxy.lost_acks.load(Ordering::SeqCst) > 0,
+        "some acknowledgements must have been lost"
+    );
+    assert_eq!(report.refused_batches, 0);
+    let stored = t.count("SELECT COUNT(*) FROM readings").await;
+    assert_eq!(stored as u64, report.readings_generated, "count equality");
+    // Exactly the generated keys: compare with the ground truth's (meter, interval) set.
+    let text = std::fs::read_to_string(&truth).expect("truth");
+    let want: HashSet<(String, i64)> = text
+        .lines()
+        .skip(1)
+        .map(|l| {
+            let c: Vec<&str> = l.split(',').collect();
+            (c[0].to_owned(), c[3].parse().expect("interval"))
+        })
+        .collect();
+    let got: Vec<(String, i64)> = sqlx::query_as("SELECT meter_id, interval_start FROM readings")
+        .fetch_all(t.svc.store.pool())
+        .await
+        .expect("keys");
+    let got: HashSet<(String, i64)> = got.into_iter().collect();
+    assert_eq!(got, want);
+    // Lost acknowledgements were answered by replay, not by storing again.
+    assert_eq!(t.svc.metrics.readings_duplicate.get(), 0);
+    let metrics = t
+        .http
+        .get(format!("{}/metrics", t.url()))
+        .send()
+        .await
+        .expect("metrics")
+        .text()
+        .await
+        .expect("text");
+    assert!(
+        metrics.contains("meterveil_ingest_batches_total{outcome=\"replayed\"}"),
+        "{metrics}"
+    );
+    // Register reads: 4 midnights per meter on the three feeders that send them.
+    let reg = t.count("SELECT COUNT(*) FROM register_reads").await;
+    let with_registers = t
+        .count("SELECT COUNT(*) FROM meters m JOIN dither_profiles p ON p.feeder_id = m.feeder_id WHERE p.send_registers = 1")
+        .await;
+    assert_eq!(reg, with_registers * 4);
+    // Outboxes are empty once everything is acknowledged.
+    for entry in std::fs::read_dir(work.path().join("outboxes")).expect("outboxes") {
+        let p = entry.expect("entry").path();
+        if p.extension().and_then(|e| e.to_str()) == Some("sqlite") {
+            let ob = meterveil_gateway::outbox::Outbox::open(&p)
+                .await
+                .expect("outbox");
+            let c = ob.counts().await.expect("counts");
+            assert_eq!(
+                (c.pending_levels, c.pending_registers, c.open_batches),
+                (0, 0, 0),
+                "{}",
+                p.display()
+            );
+        }
+    }
+}
+
+/// Daily energy from consecutive register reads matches the true loads to 1 Wh.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn register_reads_bracket_each_day_exactly() {
+    let t = spawn_service().await;
+    let work = tempfile::tempdir().expect("tempdir");
+    let mut opts = SimulateOptions::new(t.url(), work.path().join("outboxes"));
+    opts.operator_token = Some(TOKEN.into());
+    opts.meters = 8;
+    opts.days = 2;
+    let truth = work.path().join("truth.csv");
+    opts.truth = Some(truth.clone());
+    simulate::run(&opts).await.expect("simulation runs");
+    let reads: Vec<(String, i64, i64)> = sqlx::query_as(
+        "SELECT meter_id, read_at, wh_total FROM register_reads ORDER BY meter_id, read_at",
+    )
+    .fetch_all(t.svc.store.pool())
+    .await
+    .expect("reads");
+    assert!(!reads.is_empty());
+    let mut day_wh: std::collections::HashMap<(String, i64), f64> = Default::default();
+    for l in std::fs::read_to_string(&truth)
+        .expect("truth")
+        .lines()
+        .skip(1)
+    {
+        let c: Vec<&str> = l.split(',').collect();
+        let at: i64 = c[3].parse().expect("t");
+        let kw: f64 = c[4].parse().expect("kw");
+        *day_wh
+            .entry((c[0].to_owned(), at - at.rem_euclid(86_400)))
+            .or_default() += kw * 250.0;
+    }
+    let mut checked = 0;
+    for w in reads.windows(2) {
+        if w[0].0 == w[1].0 {
+            let want = day_wh[&(w[0].0.clone(), w[0].1)];
+            let got = (w[1].2 - w[0].2) as f64;
+            // The truth file rounds kW to 6 decimals: 96 · 250 · 5e-7 Wh of slack.
+            assert!(
+                (got - want).abs() <= 1.0 + 0.02,
+                "{} day {}: {got} Wh vs {want}",
+                w[0].0,
+                w[0].1
+            );
+            checked += 1;
+        }
+    }
+    assert!(checked >= 6, "{checked}");
+}
+
+fn good_reading(at: i64) -> Value {
+    json!({"meter_id": "m1", "interval_start": at, "level": 1, "profile_version": 1})
+}
+
+fn aligned_past(intervals_back: i64) -> i64 {
+    let now = now_s();
+    now - now.rem_euclid(900) - 900 * intervals_back
+}
+
+fn batch(id: &str, readings: Vec<Value>) -> Value {
+    json!({"batch_id": id, "gateway_id": "gw-1", "feeder_id": "F1", "readings": readings})
+}
+
+async fn assert_rejected(
+    t: &TestService,
+    body: &Value,
+    status: StatusCode,
+    field: &str,
+    reason_part: &str,
+) {
+    let (s, resp) = t.post_json("/v1/ingest/batches", body, false).await;
+    assert_eq!(s, status, "{resp}");
+    assert_eq!(resp["field"], field, "{resp}");
+    assert!(
+        resp["reason"].as_str().unwrap_or("").contains(reason_part),
+        "{resp}"
+    );
+    assert!(
+        resp["message"].as_str().unwrap_or("").contains(field),
+        "{resp}"
+    );
+    assert_eq!(
+        t.count("SELECT COUNT(*) FROM readings").await,
+        0,
+        "nothing stored"
+    );
+    assert_eq!(
+        t.count("SELECT COUNT(*) FROM ingest_batches").await,
+        0,
+        "no batch recorded"
+    );
+}
+
+#[tokio::test]
+async fn bad_batches_are_refused_with_the_field_and_reason_and_store_nothing() {
+    let t = spawn_service_with(|c| c.body_limit_bytes = 64 * 1024).await;
+    small_feeder(&t).await;
+    let ok = aligned_past(4);
+    let cases: Vec<(Value, StatusCode, &str, &str)> = vec![
+        (
+            json!({"batch_id": "b", "gateway_id": "gw-1", "feeder_id": "F1", "readings": [{"meter_id": "m1", "interval_start": "soon", "level": 1, "profile_version": 1}]}),
+            StatusCode::BAD_REQUEST,
+            "readings[0].interval_start",
+            "invalid type",
+        ),
+        (
+            json!({"batch_id": "b", "gateway_id": "gw-1", "feeder_id": "F1", "readings": [], "extra": 1}),
+            StatusCode::BAD_REQUEST,
+            "extra",
+            "unknown field",
+        ),
+        (
+            json!({"batch_id": "b", "gateway_id": "gw-1", "feeder_id": "F9", "readings": [good_reading(ok)]}),
+            StatusCode::UNPROCESSABLE_ENTITY,
+            "feeder_id",
+            "not registered",
+        ),
+        (
+            batch(
+                "b",
+                vec![
+                    good_reading(ok),
+                    json!({"meter_id": "m7", "interval_start": ok, "level": 0, "profile_version": 1}),
+                ],
+            ),
+            StatusCode::UNPROCESSABLE_ENTITY,
+            "readings[1].meter_id",
+            "not registered on feeder F1",
+        ),
+        (
+            batch(
+                "b",
+                vec![
+                    good_reading(ok),
+                    json!({"meter_id": "m2", "interval_start": ok, "level": 3, "profile_version": 1}),
+                ],
+            ),
+            StatusCode::UNPROCESSABLE_ENTITY,
+            "readings[1].level",
+            "out of range",
+        ),
+        (
+            batch(
+                "b",
+                vec![
+                    good_reading(ok),
+                    json!({"meter_id": "m2", "interval_start": ok, "level": 0, "profile_version": 4}),
+                ],
+            ),
+            StatusCode::UNPROCESSABLE_ENTITY,
+            "readings[1].profile_version",
+            "no profile version 4",
+        ),
+        (
+            batch(
+                "b",
+                vec![
+                    good_reading(ok),
+                    json!({"meter_id": "m2", "interval_start": ok + 60, "level": 0, "profile_version": 1}),
+                ],
+            ),
+            StatusCode::UNPROCESSABLE_ENTITY,
+            "readings[1].interval_start",
+            "not aligned",
+        ),
+        (
+            batch("b", vec![good_reading(ok), good_reading(ok + 86_400)]),
+            StatusCode::UNPROCESSABLE_ENTITY,
+            "readings[1].interval_start",
+            "in the future",
+        ),
+        (
+            batch("b", vec![good_reading(ok), good_reading(ok)]),
+            StatusCode::UNPROCESSABLE_ENTITY,
+            "readings[1]",
+            "repeats readings[0]",
+        ),
+        (
+            batch("b", vec![]),
+            StatusCode::UNPROCESSABLE_ENTITY,
+            "readings",
+            "empty",
+        ),
+        (
+            json!({"batch_id": "b", "gateway_id": "gw 1", "feeder_id": "F1", "readings": [good_reading(ok)]}),
+            StatusCode::UNPROCESSABLE_ENTITY,
+            "gateway_id",
+            "only ASCII",
+        ),
+        (
+            batch("b", (0..2000).map(|i| good_reading(ok - 900 * i)).collect()),
+            StatusCode::PAYLOAD_TOO_LARGE,
+            "body",
+            "limit",
+        ),
+    ];
+    for (body, status, field, reason) in &cases {
+        assert_rejected(&t, body, *status, field, reason).await;
+    }
+    let (s, _) = t
+        .post_json(
+            "/v1/ingest/batches",
+            &batch("b", vec![good_reading(ok)]),
+            false,
+        )
+        .await;
+    assert_eq!(
+        s,
+        StatusCode::OK,
+        "a good batch is still accepted afterwards"
+    );
+    let m = t
+        .http
+        .get(format!("{}/metrics", t.url()))
+        .send()
+        .await
+        .expect("metrics")
+        .text()
+        .await
+        .expect("text");
+    assert!(
+        m.contains(&format!(
+            "meterveil_ingest_batches_total{{outcome=\"rejected\"}} {}",
+            cases.len()
+        )),
+        "{m}"
+    );
+}
+
+#[tokio::test]
+async fn stale_profile_versions_are_refused() {
+    // No grace after a new version, and a clock tolerance wide enough to send a
+    // reading that starts after the new version was published.
+    let t = spawn_service_with(|c| {
+        c.stale_grace_s = 0;
+        c.clock_tolerance_s = 3600;
+    })
+    .await;
+    small_feeder(&t).await;
+    let v2 = json!({"noise": "logistic", "scale_kw": 0.4, "boundaries_kw": [1.0, 2.0, 3.0]});
+    assert_eq!(
+        t.post_json("/v1/feeders/F1/profiles", &v2, true).await.0,
+        StatusCode::CREATED
+    );
+    let next = now_s() - now_s().rem_euclid(900) + 900;
+    let body = batch(
+        "b",
+        vec![json!({"meter_id": "m1", "interval_start": next, "level": 1, "profile_version": 1})],
+    );
+    assert_rejected(
+        &t,
+        &body,
+        StatusCode::UNPROCESSABLE_ENTITY,
+        "readings[0].profile_version",
+        "stale",
+    )
+    .await;
+    // Before the new version was published, version 1 is still fine; level 3 exists only in v2.
+    let body = batch(
+        "b2",
+        vec![
+            good_reading(aligned_past(2)),
+            json!({"meter_id": "m2", "interval_start": next, "level": 3, "profile_version": 2}),
+        ],
+    );
+    assert_eq!(
+        t.post_json("/v1/ingest/batches", &body, false).await.0,
+        StatusCode::OK
+    );
+}
+
+#[tokio::test]
+async fn batches_are_idempotent_and_used_profiles_immutable() {
+    let t = spawn_service().await;
+    small_feeder(&t).await;
+    let b = batch(
+        "batch-1",
+        vec![good_reading(aligned_past(3)), good_reading(aligned_past(2))],
+    );
+    let (s, first) = t.post_json("/v1/ingest/batches", &b, false).await;
+    assert_eq!(s, StatusCode::OK);
+    assert_eq!(first["stored_readings"], 2);
+    let (s, again) = t.post_json("/v1/ingest/batches", &b, false).await;
+    assert_eq!(
+        (s, &again),
+        (StatusCode::OK, &first),
+        "a replay gets the same acknowledgement"
+    );
+    assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 2);
+    // Same batch id, different body.
+    let other = batch("batch-1", vec![good_reading(aligned_past(5))]);
+    let (s, body) = t.post_json("/v1/ingest/batches", &other, false).await;
+    assert_eq!(s, StatusCode::CONFLICT, "{body}");
+    assert_eq!(body["field"], "batch_id");
+    // A new batch repeating a stored (meter, interval) stores it once.
+    let (s, ack) = t
+        .post_json(
+            "/v1/ingest/batches",
+            &batch("batch-2", vec![good_reading(aligned_past(2))]),
+            false,
+        )
+        .await;
+    assert_eq!(s, StatusCode::OK);
+    assert_eq!(
+        (
+            ack["stored_readings"].as_u64(),
+            ack["duplicate_readings"].as_u64()
+        ),
+        (Some(0), Some(1))
+    );
+    assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 2);
+
+    let profile = json!({"noise": "gaussian", "scale_kw": 0.5, "boundaries_kw": [1.0, 2.0]});
+    let put = |v: &str| {
+        t.http
+            .put(format!("{}/v1/feeders/F1/profiles/{v}", t.url()))
+            .bearer_auth(TOKEN)
+            .json(&profile)
+            .send()
+    };
+    let r = put("1").await.expect("put");
+    assert_eq!(r.status().as_u16(), 409, "version 1 has been used");
+    assert!(r.text().await.expect("text").contains("immutable"));
+    assert_eq!(
+        t.post_json("/v1/feeders/F1/profiles", &profile, true)
+            .await
+            .0,
+        StatusCode::CREATED
+    );
+    assert_eq!(
+        put("2").await.expect("put").status().as_u16(),
+        200,
+        "unused version 2 may be replaced"
+    );
+    // Operator endpoints need the token.
+    let (s, body) = t
+        .post_json("/v1/feeders/F1/profiles", &profile, false)
+        .await;
+    assert_eq!(s, StatusCode::UNAUTHORIZED);
+    assert_eq!(body["field"], "authorization");
+    let bad = json!({"noise": "gaussian", "scale_kw": -1.0, "boundaries_kw": [1.0]});
+    let (s, body) = t.post_json("/v1/feeders/F1/profiles", &bad, true).await;
+    assert_eq!(
+        (s, body["field"].as_str()),
+        (StatusCode::UNPROCESSABLE_ENTITY, Some("scale_kw"))
+    );
+    let current: Value = t
+        .http
+        .get(format!("{}/v1/feeders/F1/profile", t.url()))
+        .send()
+        .await
+        .expect("get")
+        .json()
+        .await
+        .expect("json");
+    assert_eq!(current["version"], 2);
+    assert_eq!(current["profile"]["scale_kw"], 0.5);
+}
+
+/// Allowed columns of each schema whose names mention a unit. Anything else with
+/// a unit name, and any REAL column but the profile's own scale, fails.
+const UNIT_COLUMNS: [&str; 5] = [
+    "scale_kw",
+    "boundaries_kw",
+    "wh_total",
+    "register_mwh",
+    "alpha_kw",
+];
+
+fn check_columns(cols: &[(String, String, String)]) {
+    for (table, name, ty) in cols {
+        let unitish = [
+            "kw",
+            "wh",
+            "watt",
+            "power",
+            "energy",
+            "reading_value",
+            "raw",
+        ]
+        .iter()
+        .any(|u| name.to_lowercase().contains(u));
+        if unitish {
+            assert!(
+                UNIT_COLUMNS.contains(&name.as_str()),
+                "{table}.{name} could hold a raw reading"
+            );
+        }
+        if ty.to_uppercase().contains("REAL")
+            || ty.to_uppercase().contains("FLOA")
+            || ty.to_uppercase().contains("DOUB")
+        {
+            assert_eq!(
+                (table.as_str(), name.as_str()),
+                ("dither_profiles", "scale_kw"),
+                "{table}.{name} is a {ty} column"
+            );
+        }
+    }
+}
+
+async fn columns(pool: &sqlx::SqlitePool) -> Vec<(String, String, String)> {
+    let tables: Vec<String> = sqlx::query_scalar("SELECT name FROM sqlite_master WHERE type = 'table' AND name NOT LIKE 'sqlite_%' AND name NOT LIKE '_sqlx%'")
+        .fetch_all(pool)
+        .await
+        .expect("tables");
+    let mut out = Vec::new();
+    for t in tables {
+        let rows: Vec<(String, String)> =
+            sqlx::query_as(&format!("SELECT name, type FROM pragma_table_info('{t}')"))
+                .fetch_all(pool)
+                .await
+                .expect("cols");
+        out.extend(rows.into_iter().map(|(n, ty)| (t.clone(), n, ty)));
+    }
+    out
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn no_raw_reading_is_stored_in_the_outbox_or_the_service() {
+    let t = spawn_service().await;
+    small_feeder(&t).await;
+    let dir = tempfile::tempdir().expect("tempdir");
+    let outbox_path = dir.path().join("gw.sqlite");
+    let identity = GatewayIdentity {
+        gateway_id: GatewayId::parse("gw-1").expect("id"),
+        feeder_id: FeederId::parse("F1").expect("id"),
+    };
+    let client = ServiceClient::new(&t.url(), std::time::Duration::from_secs(5)).expect("client");
+    let mut gw = Gateway::open(identity, &outbox_path, client)
+        .await
+        .expect("gateway");
+    gw.pull_profile().await.expect("profile");
+    // Distinctive raw values, so their bytes could be found if they were written.
+    let start = aligned_past(200);
+    let raw: Vec<RawReading> = (0..192)
+        .map(|i| RawReading {
+            meter_id: MeterId::parse(if i % 2 == 0 { "m1" } else { "m2" }).expect("id"),
+            interval_start: start + 900 * (i / 2),
+            kw: 1.234_567_891_2 + i as f64 * 0.010_203_04,
+        })
+        .collect();
+    gw.accept(&raw, None).await.expect("accept");
+
+    // Before upload: the outbox holds levels 0..=2 only, and none of the raw values.
+    let levels: Vec<i64> = sqlx::query_scalar("SELECT level FROM pending_levels")
+        .fetch_all(gw.outbox().pool())
+        .await
+        .expect("levels");
+    assert_eq!(levels.len(), 192);
+    assert!(levels.iter().all(|l| (0..=2).contains(l)));
+    check_columns(&columns(gw.outbox().pool()).await);
+    let mut bytes = Vec::new();
+    for suffix in ["", "-wal"] {
+        if let Ok(b) = std::fs::read(format!("{}{suffix}", outbox_path.display())) {
+            bytes.extend(b);
+        }
+    }
+    for r in &raw {
+        let be = r.kw.to_be_bytes();
+        assert!(
+            !bytes.windows(8).any(|w| w == be),
+            "raw value {} found in the outbox file",
+            r.kw
+        );
+        let text = format!("{:.6}", r.kw);
+        assert!(
+            !bytes.windows(text.len()).any(|w| w == text.as_bytes()),
+            "raw value {text} found as text"
+        );
+    }
+
+    let (_tx, stop) = tokio::sync::watch::channel(false);
+    let (_done_tx, done) = tokio::sync::watch::channel(true);
+    gw.uploader(UploadConfig::default())
+        .run(done, stop)
+        .await
+        .expect("upload");
+    assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 192);
+    assert_eq!(
+        t.count("SELECT COUNT(*) FROM readings WHERE level NOT BETWEEN 0 AND 2")
+            .await,
+        0
+    );
+    check_columns(&t.svc.store.schema_columns().await.expect("schema"));
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn gateway_run_reads_a_file_once_and_reports_bad_lines() {
+    let t = spawn_service().await;
+    small_feeder(&t).await;
+    let dir = tempfile::tempdir().expect("tempdir");
+    let day = aligned_past(300) - (aligned_past(300)).rem_euclid(86_400);
+    let mut csv = String::from("meter_id,interval_start,wh\n");
+    for i in 0..96 {
+        csv.push_str(&format!("m1,{},{}\n", day + 900 * i, 100 + i));
+        csv.push_str(&format!("m2,{},{}\n", day + 900 * i, 300));
+    }
+    csv.push_str("m1,notanumber,5\nm3 bad,1700000000,1\nm2,1700000000,-4\n");
+    let input = dir.path().join("export.csv");
+    std::fs::write(&input, &csv).expect("write");
+    let config_text = format!(
+        "gateway_id = \"gw-1\"\nfeeder_id = \"F1\"\nservice_url = \"{}\"\noutbox = \"{}\"\n[source]\nkind = \"file\"\npath = \"{}\"\n[upload]\nbatch_max = 96\n",
+        t.url(),
+        dir.path().join("outbox.sqlite").display(),
+        input.display()
+    );
+    let config = meterveil_gateway::config::GatewayConfig::parse(&config_text).expect("config");
+    let (_tx, rx) = tokio::sync::watch::channel(false);
+    let report = meterveil_gateway::run::run(config.clone(), rx.clone())
+        .await
+        .expect("run");
+    assert_eq!(report.lines_rejected, 3);
+    assert_eq!(report.levels_queued, 192);
+    assert_eq!(report.upload.readings_acknowledged, 192);
+    assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 192);
+    // Register reads at both midnights of the day: m1's day is 96·100 + Σi = 14160 Wh.
+    let reads: Vec<(String, i64, i64)> = sqlx::query_as(
+        "SELECT meter_id, read_at, wh_total FROM register_reads ORDER BY meter_id, read_at",
+    )
+    .fetch_all(t.svc.store.pool())
+    .await
+    .expect("reads");
+    assert_eq!(reads.len(), 4);
+    assert_eq!(reads[1].2 - reads[0].2, 14_160);
+    assert_eq!(reads[3].2 - reads[2].2, 96 * 300);
+    // A second run resumes at the saved position: nothing is dithered or sent again.
+    let again = meterveil_gateway::run::run(config, rx)
+        .await
+        .expect("second run");
+    assert_eq!(
+        (
+            again.levels_queued,
+            again.lines_rejected,
+            again.upload.batches
+        ),
+        (0, 0, 0)
+    );
+}

@@ -3,6 +3,7 @@
 use std::time::Duration;
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Deserialize)]
+#[serde(default)]
 pub struct BackoffPolicy {
     /// Delay after the first failure, milliseconds.
     pub initial_ms: u64,

@@ -260,8 +260,8 @@ mod tests {
             p.next_line("meter_id,interval_start,wh,extra", Q).unwrap(),
             None
         );
-        let r = p.next_line("m1,1700000100,500,x", Q);
-        // 1700000100 is not a quarter-hour boundary.
+        let r = p.next_line("m1,1700000050,500,x", Q);
+        // 1700000050 is not a quarter-hour boundary.
         assert!(r.is_err());
         let r = p.next_line("m1,1699999200,500,x", Q).unwrap().unwrap();
         assert!((r.kw - 2.0).abs() < 1e-12, "500 Wh in 15 min is 2 kW");
