@@ -6,6 +6,7 @@ pub mod domain;
 pub mod error;
 pub mod mechanism;
 pub mod profile;
+pub mod recovery;
 pub mod special;
 pub mod wire;
 

@@ -87,6 +87,20 @@ pub fn log_likelihood(profile: &DitherProfile, level: u8, x_kw: f64) -> (f64, f6
     (log_p, dlog_p)
 }
 
+/// Upper bound on -d²/dx² log P(y | x) over all levels and x, in 1/kW².
+///
+/// For a location family with density e^-φ, -d² log P(interval)/dθ² ≤ sup φ''
+/// (the interval probability of a log-concave density is log-concave with no more
+/// curvature than the density): 1 for the standard normal, 1/2 for the standard
+/// logistic (φ'' = 2f ≤ 1/2). Divided by s² for scale s. The gradient step is its inverse.
+pub fn max_curvature(profile: &DitherProfile) -> f64 {
+    let s2 = profile.scale_kw() * profile.scale_kw();
+    match profile.noise() {
+        NoiseFamily::Gaussian => 1.0 / s2,
+        NoiseFamily::Logistic => 0.5 / s2,
+    }
+}
+
 /// P(y = level | x), the mechanism's probability (not in log space; for tests and
 /// Monte Carlo where the values are moderate).
 pub fn level_probability(profile: &DitherProfile, level: u8, x_kw: f64) -> f64 {

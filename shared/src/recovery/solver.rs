@@ -1,0 +1,637 @@
+//! The recovery iteration.
+
+use std::time::Instant;
+
+use nalgebra::{DMatrix, DVector};
+use rand::{Rng, SeedableRng};
+use serde::Serialize;
+
+use super::linalg::{truncate, LowRank};
+use super::table::LikelihoodTable;
+use super::{outage, LevelMatrix, RankChoice, SumConstraint, ValidRecoveryParams, MISSING};
+use crate::error::FieldError;
+use crate::mechanism::max_curvature;
+use crate::profile::DitherProfile;
+
+/// Quality of one recovered entry.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Flag {
+    /// From its own quantized reading plus the population.
+    Derived,
+    /// No reading arrived; from the population (and, in outages, the meter's own days).
+    Estimated,
+    /// A reading arrived but was judged corrupt; replaced by the population's estimate.
+    Corrected,
+}
+
+impl Flag {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Flag::Derived => "derived",
+            Flag::Estimated => "estimated",
+            Flag::Corrected => "corrected",
+        }
+    }
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Stop {
+    Converged,
+    MaxIterations,
+    /// The objective stopped improving before the tolerance was met.
+    Stalled,
+    /// Nothing to fit (no rows, no columns or no readings).
+    Empty,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct Diagnostics {
+    pub iterations: usize,
+    pub stop: Stop,
+    /// Mean log-likelihood per reading used in the final fit.
+    pub log_likelihood_per_reading: f64,
+    pub rank: usize,
+    /// Held-out mean log-likelihood per rank tried (automatic rank only).
+    pub rank_scores: Vec<(usize, f64)>,
+    pub readings: usize,
+    pub corrected: usize,
+    /// Intervals in which no meter reported, filled from the meters' own days.
+    pub outage_intervals: usize,
+    /// Register constraints that could not be met inside [0, alpha] (met as closely as possible).
+    pub infeasible_constraints: usize,
+    pub wall_s: f64,
+}
+
+/// The answer: estimates (kW), flags, and a standard deviation per entry (kW).
+#[derive(Debug, Clone)]
+pub struct Recovery {
+    /// (m, n) estimates in kW.
+    pub x: DMatrix<f64>,
+    /// (m, n) column-major.
+    pub flags: Vec<Flag>,
+    /// (m, n) first-order standard deviation, kW (infinite where nothing informs the entry).
+    pub std_kw: DMatrix<f64>,
+    pub diagnostics: Diagnostics,
+}
+
+impl Recovery {
+    pub fn flag(&self, i: usize, j: usize) -> Flag {
+        self.flags[i + j * self.x.nrows()]
+    }
+}
+
+/// Progress reports: (stage, fraction done of that stage).
+pub type ProgressFn<'a> = &'a mut dyn FnMut(&str, f64);
+
+/// Per-level conditional mean E[x | level] under a flat prior on [0, alpha], kW.
+pub fn conditional_means(table: &LikelihoodTable, alpha: f64) -> Vec<f64> {
+    let k = table.profile().levels();
+    let steps = 4000;
+    (0..k as u8)
+        .map(|level| {
+            let (mut num, mut den) = (0.0, 0.0);
+            for i in 0..=steps {
+                let x = alpha * i as f64 / steps as f64;
+                let w = if i == 0 || i == steps { 0.5 } else { 1.0 };
+                let p = table.eval(level, x).0.exp() * w;
+                num += p * x;
+                den += p;
+            }
+            if den > 0.0 {
+                num / den
+            } else {
+                alpha * 0.5
+            }
+        })
+        .collect()
+}
+
+/// Which observed entries the fit uses.
+#[derive(Clone)]
+struct Mask {
+    /// Column-major: true where the entry's level is used by the gradient.
+    active: Vec<bool>,
+}
+
+struct Fit {
+    x: DMatrix<f64>,
+    lr: LowRank,
+    iterations: usize,
+    stop: Stop,
+    objective: f64,
+    corrupt: Vec<bool>,
+}
+
+struct Ctx<'a> {
+    levels: &'a LevelMatrix,
+    table: &'a LikelihoodTable,
+    constraints: &'a [SumConstraint],
+    alpha: f64,
+    step: f64,
+    p: &'a super::RecoveryParams,
+}
+
+impl Ctx<'_> {
+    /// Negative mean log-likelihood over active entries.
+    fn objective(&self, x: &DMatrix<f64>, mask: &Mask) -> f64 {
+        let (mut s, mut n) = (0.0, 0usize);
+        for (idx, (&lv, &xv)) in self.levels.as_slice().iter().zip(x.as_slice()).enumerate() {
+            if mask.active[idx] {
+                s -= self.table.eval(lv, xv).0;
+                n += 1;
+            }
+        }
+        if n == 0 {
+            0.0
+        } else {
+            s / n as f64
+        }
+    }
+
+    /// w = z + step · ∇ log-likelihood(z), over active entries.
+    fn ascent(&self, z: &DMatrix<f64>, mask: &Mask, w: &mut DMatrix<f64>) {
+        let lv = self.levels.as_slice();
+        for (idx, (wv, &zv)) in w.as_mut_slice().iter_mut().zip(z.as_slice()).enumerate() {
+            *wv = if mask.active[idx] {
+                zv + self.step * self.table.eval(lv[idx], zv).1
+            } else {
+                zv
+            };
+        }
+    }
+
+    fn project(&self, x: &mut DMatrix<f64>) -> usize {
+        project_box_and_sums(x, self.constraints, self.alpha)
+    }
+
+    /// Marks as corrupt the observed entries least probable under `x` (below the
+    /// probability threshold), at most `max_corrupt_fraction` of them.
+    fn corrupt_entries(&self, x: &DMatrix<f64>, base: &Mask) -> Vec<bool> {
+        let lv = self.levels.as_slice();
+        let thresh = self.p.corrupt_probability.ln();
+        let mut cand: Vec<(f64, usize)> = Vec::new();
+        let mut n = 0usize;
+        for (idx, &xv) in x.as_slice().iter().enumerate() {
+            if base.active[idx] {
+                n += 1;
+                let l = self.table.eval(lv[idx], xv).0;
+                if l < thresh {
+                    cand.push((l, idx));
+                }
+            }
+        }
+        let cap = (self.p.max_corrupt_fraction * n as f64).floor() as usize;
+        if cand.len() > cap {
+            cand.select_nth_unstable_by(cap, |a, b| a.0.total_cmp(&b.0));
+            cand.truncate(cap);
+        }
+        let mut out = vec![false; lv.len()];
+        for (_, idx) in cand {
+            out[idx] = true;
+        }
+        out
+    }
+
+    fn fit(
+        &self,
+        base: &Mask,
+        rank: usize,
+        init: &DMatrix<f64>,
+        warm: Option<&DMatrix<f64>>,
+        rng: &mut impl Rng,
+    ) -> Fit {
+        let (m, n) = init.shape();
+        let p = self.p;
+        let mut lr = truncate(init, rank, p.oversample, p.power_iterations, warm, rng);
+        let mut x = DMatrix::zeros(m, n);
+        lr.reconstruct_into(&mut x);
+        self.project(&mut x);
+        let mut corrupt = vec![false; base.active.len()];
+        let mut mask = base.clone();
+        let mut obj = self.objective(&x, &mask);
+        let mut x_prev = x.clone();
+        let mut z = DMatrix::zeros(m, n);
+        let mut w = DMatrix::zeros(m, n);
+        let mut x_new = DMatrix::zeros(m, n);
+        let mut t = 1.0f64;
+        let mut calm = 0;
+        let mut stop = Stop::MaxIterations;
+        let mut it = 0;
+        let mut stalls = 0;
+        while it < p.max_iterations {
+            it += 1;
+            let t_next = 0.5 * (1.0 + (1.0 + 4.0 * t * t).sqrt());
+            let beta = (t - 1.0) / t_next;
+            for ((zv, &xv), &pv) in z
+                .as_mut_slice()
+                .iter_mut()
+                .zip(x.as_slice())
+                .zip(x_prev.as_slice())
+            {
+                *zv = xv + beta * (xv - pv);
+            }
+            self.ascent(&z, &mask, &mut w);
+            let lr_new = truncate(&w, rank, p.oversample, p.power_iterations, Some(&lr.v), rng);
+            lr_new.reconstruct_into(&mut x_new);
+            self.project(&mut x_new);
+            let obj_new = self.objective(&x_new, &mask);
+            if obj_new > obj && beta > 0.0 {
+                // Momentum overshot: restart from x with a plain gradient step.
+                t = 1.0;
+                x_prev.copy_from(&x);
+                stalls += 1;
+                if stalls > 20 {
+                    stop = Stop::Stalled;
+                    break;
+                }
+                continue;
+            }
+            t = t_next;
+            x_prev.copy_from(&x);
+            x.copy_from(&x_new);
+            lr = lr_new;
+            let rel = (obj - obj_new).abs() / obj.abs().max(1e-12);
+            obj = obj_new;
+            // Re-judge corrupt readings every 10 iterations after a warm-up.
+            if p.max_corrupt_fraction > 0.0 && it >= 10 && it % 10 == 0 {
+                let c = self.corrupt_entries(&x, base);
+                if c != corrupt {
+                    corrupt = c;
+                    for (a, (&b, &cc)) in
+                        mask.active.iter_mut().zip(base.active.iter().zip(&corrupt))
+                    {
+                        *a = b && !cc;
+                    }
+                    obj = self.objective(&x, &mask);
+                    calm = 0;
+                    continue;
+                }
+            }
+            if rel < p.tolerance {
+                calm += 1;
+                if calm >= 5 {
+                    stop = Stop::Converged;
+                    break;
+                }
+            } else {
+                calm = 0;
+            }
+        }
+        Fit {
+            x,
+            lr,
+            iterations: it,
+            stop,
+            objective: obj,
+            corrupt,
+        }
+    }
+}
+
+/// Exact Euclidean projection of each constrained run onto
+/// {0 ≤ x ≤ alpha, Σ x = target}, and plain clipping elsewhere. Returns how many
+/// constraints were infeasible (target outside [0, alpha · len]).
+pub fn project_box_and_sums(
+    x: &mut DMatrix<f64>,
+    constraints: &[SumConstraint],
+    alpha: f64,
+) -> usize {
+    for v in x.as_mut_slice() {
+        *v = v.clamp(0.0, alpha);
+    }
+    let mut infeasible = 0;
+    let mut buf = Vec::new();
+    for c in constraints {
+        buf.clear();
+        buf.extend(c.cols.clone().map(|j| x[(c.row, j)]));
+        if !shift_to_sum(&mut buf, c.sum_kw, alpha) {
+            infeasible += 1;
+        }
+        for (k, j) in c.cols.clone().enumerate() {
+            x[(c.row, j)] = buf[k];
+        }
+    }
+    infeasible
+}
+
+/// Replaces v by clip(v + τ, 0, alpha) with τ such that the sum equals `target`
+/// (the projection onto box ∩ hyperplane). False if the target is unreachable.
+fn shift_to_sum(v: &mut [f64], target: f64, alpha: f64) -> bool {
+    if v.is_empty() {
+        return target.abs() < 1e-9;
+    }
+    let n = v.len() as f64;
+    let feasible = (0.0..=alpha * n).contains(&target);
+    let target = target.clamp(0.0, alpha * n);
+    let sum_at = |tau: f64, v: &[f64]| v.iter().map(|x| (x + tau).clamp(0.0, alpha)).sum::<f64>();
+    let (mut lo, mut hi) = (-alpha, alpha);
+    // Bisection to machine precision on a monotone function of τ.
+    for _ in 0..100 {
+        let mid = 0.5 * (lo + hi);
+        if sum_at(mid, v) < target {
+            lo = mid;
+        } else {
+            hi = mid;
+        }
+        if hi - lo < 1e-15 * alpha {
+            break;
+        }
+    }
+    let tau = 0.5 * (lo + hi);
+    for x in v.iter_mut() {
+        *x = (*x + tau).clamp(0.0, alpha);
+    }
+    // Spread the last rounding residue over the entries not at a bound.
+    let resid = target - v.iter().sum::<f64>();
+    let free: Vec<usize> = (0..v.len())
+        .filter(|&i| v[i] > 0.0 && v[i] < alpha)
+        .collect();
+    if !free.is_empty() {
+        let d = resid / free.len() as f64;
+        for i in free {
+            v[i] = (v[i] + d).clamp(0.0, alpha);
+        }
+    }
+    feasible
+}
+
+/// Recovers every meter's profile. `levels` is meters × intervals; `constraints`
+/// fix sums of runs of a meter's intervals (from register reads); `cols_per_day`
+/// and `day_phase` (intervals from the window start to the first UTC midnight)
+/// let outages be filled from the meters' own days.
+pub fn recover(
+    levels: &LevelMatrix,
+    profile: &DitherProfile,
+    constraints: &[SumConstraint],
+    layout: outage::DayLayout,
+    params: &ValidRecoveryParams,
+    progress: ProgressFn<'_>,
+) -> Result<Recovery, FieldError> {
+    let t0 = Instant::now();
+    let p = params.get();
+    let (m, n) = (levels.rows(), levels.cols());
+    let k = profile.levels();
+    if let Some(bad) = levels
+        .as_slice()
+        .iter()
+        .find(|&&v| v != MISSING && usize::from(v) >= k)
+    {
+        return Err(FieldError::new(
+            "level",
+            format!("{bad} is out of range for a profile with {k} levels"),
+        ));
+    }
+    for (ci, c) in constraints.iter().enumerate() {
+        if c.row >= m || c.cols.end > n || c.cols.start >= c.cols.end || !c.sum_kw.is_finite() {
+            return Err(FieldError::new(
+                format!("constraints[{ci}]"),
+                "refers to intervals outside the window or has no finite sum",
+            ));
+        }
+    }
+    let alpha = p.alpha_kw;
+    let table = LikelihoodTable::new(
+        profile,
+        -0.5 * alpha - 5.0 * profile.scale_kw(),
+        1.5 * alpha + 5.0 * profile.scale_kw(),
+    );
+    let observed: Vec<bool> = levels.as_slice().iter().map(|&v| v != MISSING).collect();
+    let n_obs = observed.iter().filter(|b| **b).count();
+    let mut diagnostics = Diagnostics {
+        iterations: 0,
+        stop: Stop::Empty,
+        log_likelihood_per_reading: 0.0,
+        rank: 0,
+        rank_scores: Vec::new(),
+        readings: n_obs,
+        corrected: 0,
+        outage_intervals: 0,
+        infeasible_constraints: 0,
+        wall_s: 0.0,
+    };
+    if m == 0 || n == 0 || n_obs == 0 {
+        let mut x = DMatrix::zeros(m, n);
+        diagnostics.infeasible_constraints = project_box_and_sums(&mut x, constraints, alpha);
+        diagnostics.wall_s = t0.elapsed().as_secs_f64();
+        return Ok(Recovery {
+            std_kw: DMatrix::from_element(m, n, f64::INFINITY),
+            flags: vec![Flag::Estimated; m * n],
+            x,
+            diagnostics,
+        });
+    }
+
+    let ctx = Ctx {
+        levels,
+        table: &table,
+        constraints,
+        alpha,
+        step: 1.0 / max_curvature(profile),
+        p,
+    };
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(p.seed);
+    let init = initial_estimate(levels, &table, alpha);
+    let full = Mask {
+        active: observed.clone(),
+    };
+    let max_rank = m.min(n);
+
+    let (rank, warm_x) = match &p.rank {
+        RankChoice::Fixed(r) => ((*r).min(max_rank), None),
+        RankChoice::Auto(grid) => {
+            let mut grid: Vec<usize> = grid.iter().copied().filter(|r| *r <= max_rank).collect();
+            if grid.is_empty() {
+                grid.push(max_rank);
+            }
+            let held: Vec<bool> = observed
+                .iter()
+                .map(|&o| o && rng.random_bool(p.holdout_fraction.max(1e-9)))
+                .collect();
+            let train = Mask {
+                active: observed.iter().zip(&held).map(|(&o, &h)| o && !h).collect(),
+            };
+            let floor = p.corrupt_probability.ln();
+            let mut best: Option<(f64, usize, DMatrix<f64>)> = None;
+            for (gi, &r) in grid.iter().enumerate() {
+                progress("choosing rank", gi as f64 / grid.len() as f64);
+                let f = ctx.fit(&train, r, &init, None, &mut rng);
+                let (mut s, mut c) = (0.0, 0usize);
+                for (idx, &h) in held.iter().enumerate() {
+                    if h {
+                        // Clipped at the corruption threshold so a few bad readings do not decide.
+                        s += table
+                            .eval(levels.as_slice()[idx], f.x.as_slice()[idx])
+                            .0
+                            .max(floor);
+                        c += 1;
+                    }
+                }
+                let score = if c > 0 { s / c as f64 } else { -f.objective };
+                diagnostics.rank_scores.push((r, score));
+                if best.as_ref().is_none_or(|b| score > b.0) {
+                    best = Some((score, r, f.x));
+                }
+            }
+            let (_, r, x) = best.expect("grid is non-empty");
+            (r, Some(x))
+        }
+    };
+    progress("fitting", 0.0);
+    let start = warm_x.as_ref().unwrap_or(&init);
+    let fit = ctx.fit(&full, rank, start, None, &mut rng);
+    progress("fitting", 1.0);
+
+    let mut x = fit.x;
+    let mut flags: Vec<Flag> = observed
+        .iter()
+        .map(|&o| if o { Flag::Derived } else { Flag::Estimated })
+        .collect();
+    for (f, &c) in flags.iter_mut().zip(&fit.corrupt) {
+        if c {
+            *f = Flag::Corrected;
+        }
+    }
+    let outage_cols = outage::fill_outages(&mut x, levels, layout);
+    diagnostics.outage_intervals = outage_cols;
+    diagnostics.infeasible_constraints = ctx.project(&mut x);
+    let used = Mask {
+        active: observed
+            .iter()
+            .zip(&fit.corrupt)
+            .map(|(&o, &c)| o && !c)
+            .collect(),
+    };
+    let std_kw = uncertainty(&fit.lr, &used, &table, &x, alpha);
+    diagnostics.iterations = fit.iterations;
+    diagnostics.stop = fit.stop;
+    diagnostics.log_likelihood_per_reading = -ctx.objective(&x, &used);
+    diagnostics.rank = fit.lr.rank();
+    diagnostics.corrected = fit.corrupt.iter().filter(|c| **c).count();
+    diagnostics.wall_s = t0.elapsed().as_secs_f64();
+    Ok(Recovery {
+        x,
+        flags,
+        std_kw,
+        diagnostics,
+    })
+}
+
+/// Per-entry conditional means, missing entries filled by their interval's mean
+/// over the meters that reported (or the overall mean).
+fn initial_estimate(levels: &LevelMatrix, table: &LikelihoodTable, alpha: f64) -> DMatrix<f64> {
+    let cm = conditional_means(table, alpha);
+    let (m, n) = (levels.rows(), levels.cols());
+    let mut x = DMatrix::zeros(m, n);
+    let mut total = (0.0, 0usize);
+    let mut col_means = vec![None; n];
+    for j in 0..n {
+        let (mut s, mut c) = (0.0, 0usize);
+        for i in 0..m {
+            if let Some(l) = levels.get(i, j) {
+                x[(i, j)] = cm[usize::from(l)];
+                s += x[(i, j)];
+                c += 1;
+            }
+        }
+        if c > 0 {
+            col_means[j] = Some(s / c as f64);
+            total.0 += s;
+            total.1 += c;
+        }
+    }
+    let overall = if total.1 > 0 {
+        total.0 / total.1 as f64
+    } else {
+        0.0
+    };
+    for j in 0..n {
+        for i in 0..m {
+            if levels.get(i, j).is_none() {
+                x[(i, j)] = col_means[j].unwrap_or(overall);
+            }
+        }
+    }
+    x
+}
+
+/// First-order standard deviation of each estimate under the rank-r model.
+///
+/// With X = L Rᵀ (L = U√S, R = V√S) and Fisher information I_ij of each reading
+/// at its estimate, the row factor L_i has information A_i = Σ_j I_ij R_j R_jᵀ
+/// and the column factor R_j has B_j = Σ_i I_ij L_i L_iᵀ. The variance of X_ij
+/// is taken as R_jᵀ A_i⁻¹ R_j + L_iᵀ B_j⁻¹ L_i (the two factor uncertainties,
+/// their covariance ignored). This ignores rank selection and bias, so it is a
+/// floor on the true error, not a guarantee.
+fn uncertainty(
+    lr: &LowRank,
+    used: &Mask,
+    table: &LikelihoodTable,
+    x: &DMatrix<f64>,
+    alpha: f64,
+) -> DMatrix<f64> {
+    let (m, n) = x.shape();
+    let r = lr.rank();
+    if r == 0 {
+        return DMatrix::from_element(m, n, alpha);
+    }
+    let k = table.profile().levels();
+    let info = DMatrix::<f64>::from_fn(m, n, |i, j| {
+        let idx = i + j * m;
+        if !used.active[idx] {
+            return 0.0;
+        }
+        let xv = x[(i, j)];
+        (0..k as u8)
+            .map(|lv| {
+                let (l, d) = table.eval(lv, xv);
+                l.exp() * d * d
+            })
+            .sum()
+    });
+    let sq: Vec<f64> = lr.s.iter().map(|s| s.sqrt()).collect();
+    let mut lf = lr.u.clone();
+    let mut rf = lr.v.clone();
+    for c in 0..r {
+        lf.column_mut(c).scale_mut(sq[c]);
+        rf.column_mut(c).scale_mut(sq[c]);
+    }
+    let ridge = 1e-9;
+    let inv_blocks =
+        |fac: &DMatrix<f64>, count: usize, along_rows: bool| -> Vec<Option<DMatrix<f64>>> {
+            (0..count)
+                .map(|a| {
+                    let mut g = DMatrix::<f64>::identity(r, r) * ridge;
+                    let len = if along_rows { n } else { m };
+                    for b in 0..len {
+                        let w = if along_rows {
+                            info[(a, b)]
+                        } else {
+                            info[(b, a)]
+                        };
+                        if w > 0.0 {
+                            let f = fac.row(b);
+                            g.ger(w, &f.transpose(), &f.transpose(), 1.0);
+                        }
+                    }
+                    g.try_inverse()
+                })
+                .collect()
+        };
+    let a_inv = inv_blocks(&rf, m, true);
+    let b_inv = inv_blocks(&lf, n, false);
+    DMatrix::from_fn(m, n, |i, j| {
+        let (Some(ai), Some(bj)) = (&a_inv[i], &b_inv[j]) else {
+            return f64::INFINITY;
+        };
+        let rj: DVector<f64> = rf.row(j).transpose();
+        let li: DVector<f64> = lf.row(i).transpose();
+        let var = (rj.transpose() * ai * &rj)[(0, 0)] + (li.transpose() * bj * &li)[(0, 0)];
+        if var.is_finite() && var >= 0.0 {
+            var.sqrt().min(alpha)
+        } else {
+            f64::INFINITY
+        }
+    })
+}
