@@ -33,10 +33,7 @@ impl TestService {
     }
 
     async fn count(&self, sql: &str) -> i64 {
-        sqlx::query_scalar(sql)
-            .fetch_one(self.svc.store.pool())
-            .await
-            .expect("count query")
+        sqlx::query_scalar(sql).fetch_one(self.svc.store.pool()).await.expect("count query")
     }
 
     async fn post_json(&self, path: &str, body: &Value, operator: bool) -> (StatusCode, Value) {
@@ -53,17 +50,11 @@ impl TestService {
 
 async fn spawn_service_with(tweak: impl FnOnce(&mut ServiceConfig)) -> TestService {
     let dir = tempfile::tempdir().expect("tempdir");
-    let mut config = ServiceConfig::local(
-        format!("sqlite:{}", dir.path().join("svc.sqlite").display()),
-        Secret::new(TOKEN),
-    );
+    let mut config =
+        ServiceConfig::local(format!("sqlite:{}", dir.path().join("svc.sqlite").display()), Secret::new(TOKEN));
     tweak(&mut config);
     let svc = app::start(config).await.expect("service starts");
-    TestService {
-        svc,
-        _dir: dir,
-        http: reqwest::Client::new(),
-    }
+    TestService { svc, _dir: dir, http: reqwest::Client::new() }
 }
 
 async fn spawn_service() -> TestService {
@@ -71,31 +62,16 @@ async fn spawn_service() -> TestService {
 }
 
 fn now_s() -> i64 {
-    std::time::SystemTime::now()
-        .duration_since(std::time::UNIX_EPOCH)
-        .expect("clock")
-        .as_secs() as i64
+    std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).expect("clock").as_secs() as i64
 }
 
 /// A feeder `F1` with meters `m1`, `m2` and one profile (3 levels, registers allowed).
 async fn small_feeder(t: &TestService) {
     assert_eq!(
-        t.post_json(
-            "/v1/feeders",
-            &json!({"feeder_id": "F1", "name": "test"}),
-            true
-        )
-        .await
-        .0,
+        t.post_json("/v1/feeders", &json!({"feeder_id": "F1", "name": "test"}), true).await.0,
         StatusCode::CREATED
     );
-    let (s, _) = t
-        .post_json(
-            "/v1/feeders/F1/meters",
-            &json!({"meter_ids": ["m1", "m2"]}),
-            true,
-        )
-        .await;
+    let (s, _) = t.post_json("/v1/feeders/F1/meters", &json!({"meter_ids": ["m1", "m2"]}), true).await;
     assert_eq!(s, StatusCode::OK);
     let profile = json!({"noise": "gaussian", "scale_kw": 0.3, "boundaries_kw": [1.0, 2.0], "interval_s": 900, "send_registers": true});
     let (s, body) = t.post_json("/v1/feeders/F1/profiles", &profile, true).await;
@@ -157,12 +133,8 @@ async fn spawn_proxy(target: String, before: u64, after: u64) -> (String, Arc<Fl
         lost_acks: AtomicU64::new(0),
         http: reqwest::Client::new(),
     });
-    let app = axum::Router::new()
-        .fallback(proxy_handler)
-        .with_state(p.clone());
-    let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
-        .await
-        .expect("bind");
+    let app = axum::Router::new().fallback(proxy_handler).with_state(p.clone());
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.expect("bind");
     let addr = listener.local_addr().expect("addr");
     tokio::spawn(async move { axum::serve(listener, app).await });
     (format!("http://{addr}"), p)
@@ -180,10 +152,7 @@ async fn every_generated_reading_is_stored_exactly_once_through_a_failing_link()
     opts.meters_per_gateway = 10;
     opts.upload = UploadConfig {
         batch_max: 96,
-        backoff: meterveil_gateway::backoff::BackoffPolicy {
-            initial_ms: 5,
-            max_ms: 40,
-        },
+        backoff: meterveil_gateway::backoff::BackoffPolicy { initial_ms: 5, max_ms: 40 },
         idle_poll_ms: 20,
     };
     let truth = work.path().join("truth.csv");
@@ -191,14 +160,8 @@ async fn every_generated_reading_is_stored_exactly_once_through_a_failing_link()
     let report = simulate::run(&opts).await.expect("simulation runs");
 
     assert_eq!(report.readings_generated, 40 * 3 * 96);
-    assert!(
-        report.transient_failures > 0,
-        "the proxy must have caused retries"
-    );
-    assert!(
-        proxy.lost_acks.load(Ordering::SeqCst) > 0,
-        "some acknowledgements must have been lost"
-    );
+    assert!(report.transient_failures > 0, "the proxy must have caused retries");
+    assert!(proxy.lost_acks.load(Ordering::SeqCst) > 0, "some acknowledgements must have been lost");
     assert_eq!(report.refused_batches, 0);
     let stored = t.count("SELECT COUNT(*) FROM readings").await;
     assert_eq!(stored as u64, report.readings_generated, "count equality");
@@ -220,19 +183,8 @@ async fn every_generated_reading_is_stored_exactly_once_through_a_failing_link()
     assert_eq!(got, want);
     // Lost acknowledgements were answered by replay, not by storing again.
     assert_eq!(t.svc.metrics.readings_duplicate.get(), 0);
-    let metrics = t
-        .http
-        .get(format!("{}/metrics", t.url()))
-        .send()
-        .await
-        .expect("metrics")
-        .text()
-        .await
-        .expect("text");
-    assert!(
-        metrics.contains("meterveil_ingest_batches_total{outcome=\"replayed\"}"),
-        "{metrics}"
-    );
+    let metrics = t.http.get(format!("{}/metrics", t.url())).send().await.expect("metrics").text().await.expect("text");
+    assert!(metrics.contains("meterveil_ingest_batches_total{outcome=\"replayed\"}"), "{metrics}");
     // Register reads: 4 midnights per meter on the three feeders that send them.
     let reg = t.count("SELECT COUNT(*) FROM register_reads").await;
     let with_registers = t
@@ -243,16 +195,9 @@ async fn every_generated_reading_is_stored_exactly_once_through_a_failing_link()
     for entry in std::fs::read_dir(work.path().join("outboxes")).expect("outboxes") {
         let p = entry.expect("entry").path();
         if p.extension().and_then(|e| e.to_str()) == Some("sqlite") {
-            let ob = meterveil_gateway::outbox::Outbox::open(&p)
-                .await
-                .expect("outbox");
+            let ob = meterveil_gateway::outbox::Outbox::open(&p).await.expect("outbox");
             let c = ob.counts().await.expect("counts");
-            assert_eq!(
-                (c.pending_levels, c.pending_registers, c.open_batches),
-                (0, 0, 0),
-                "{}",
-                p.display()
-            );
+            assert_eq!((c.pending_levels, c.pending_registers, c.open_batches), (0, 0, 0), "{}", p.display());
         }
     }
 }
@@ -269,25 +214,18 @@ async fn register_reads_bracket_each_day_exactly() {
     let truth = work.path().join("truth.csv");
     opts.truth = Some(truth.clone());
     simulate::run(&opts).await.expect("simulation runs");
-    let reads: Vec<(String, i64, i64)> = sqlx::query_as(
-        "SELECT meter_id, read_at, wh_total FROM register_reads ORDER BY meter_id, read_at",
-    )
-    .fetch_all(t.svc.store.pool())
-    .await
-    .expect("reads");
+    let reads: Vec<(String, i64, i64)> =
+        sqlx::query_as("SELECT meter_id, read_at, wh_total FROM register_reads ORDER BY meter_id, read_at")
+            .fetch_all(t.svc.store.pool())
+            .await
+            .expect("reads");
     assert!(!reads.is_empty());
     let mut day_wh: std::collections::HashMap<(String, i64), f64> = Default::default();
-    for l in std::fs::read_to_string(&truth)
-        .expect("truth")
-        .lines()
-        .skip(1)
-    {
+    for l in std::fs::read_to_string(&truth).expect("truth").lines().skip(1) {
         let c: Vec<&str> = l.split(',').collect();
         let at: i64 = c[3].parse().expect("t");
         let kw: f64 = c[4].parse().expect("kw");
-        *day_wh
-            .entry((c[0].to_owned(), at - at.rem_euclid(86_400)))
-            .or_default() += kw * 250.0;
+        *day_wh.entry((c[0].to_owned(), at - at.rem_euclid(86_400))).or_default() += kw * 250.0;
     }
     let mut checked = 0;
     for w in reads.windows(2) {
@@ -295,12 +233,7 @@ async fn register_reads_bracket_each_day_exactly() {
             let want = day_wh[&(w[0].0.clone(), w[0].1)];
             let got = (w[1].2 - w[0].2) as f64;
             // The truth file rounds kW to 6 decimals: 96 · 250 · 5e-7 Wh of slack.
-            assert!(
-                (got - want).abs() <= 1.0 + 0.02,
-                "{} day {}: {got} Wh vs {want}",
-                w[0].0,
-                w[0].1
-            );
+            assert!((got - want).abs() <= 1.0 + 0.02, "{} day {}: {got} Wh vs {want}", w[0].0, w[0].1);
             checked += 1;
         }
     }
@@ -320,34 +253,14 @@ fn batch(id: &str, readings: Vec<Value>) -> Value {
     json!({"batch_id": id, "gateway_id": "gw-1", "feeder_id": "F1", "readings": readings})
 }
 
-async fn assert_rejected(
-    t: &TestService,
-    body: &Value,
-    status: StatusCode,
-    field: &str,
-    reason_part: &str,
-) {
+async fn assert_rejected(t: &TestService, body: &Value, status: StatusCode, field: &str, reason_part: &str) {
     let (s, resp) = t.post_json("/v1/ingest/batches", body, false).await;
     assert_eq!(s, status, "{resp}");
     assert_eq!(resp["field"], field, "{resp}");
-    assert!(
-        resp["reason"].as_str().unwrap_or("").contains(reason_part),
-        "{resp}"
-    );
-    assert!(
-        resp["message"].as_str().unwrap_or("").contains(field),
-        "{resp}"
-    );
-    assert_eq!(
-        t.count("SELECT COUNT(*) FROM readings").await,
-        0,
-        "nothing stored"
-    );
-    assert_eq!(
-        t.count("SELECT COUNT(*) FROM ingest_batches").await,
-        0,
-        "no batch recorded"
-    );
+    assert!(resp["reason"].as_str().unwrap_or("").contains(reason_part), "{resp}");
+    assert!(resp["message"].as_str().unwrap_or("").contains(field), "{resp}");
+    assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 0, "nothing stored");
+    assert_eq!(t.count("SELECT COUNT(*) FROM ingest_batches").await, 0, "no batch recorded");
 }
 
 #[tokio::test]
@@ -434,12 +347,7 @@ async fn bad_batches_are_refused_with_the_field_and_reason_and_store_nothing() {
             "readings[1]",
             "repeats readings[0]",
         ),
-        (
-            batch("b", vec![]),
-            StatusCode::UNPROCESSABLE_ENTITY,
-            "readings",
-            "empty",
-        ),
+        (batch("b", vec![]), StatusCode::UNPROCESSABLE_ENTITY, "readings", "empty"),
         (
             json!({"batch_id": "b", "gateway_id": "gw 1", "feeder_id": "F1", "readings": [good_reading(ok)]}),
             StatusCode::UNPROCESSABLE_ENTITY,
@@ -456,34 +364,10 @@ async fn bad_batches_are_refused_with_the_field_and_reason_and_store_nothing() {
     for (body, status, field, reason) in &cases {
         assert_rejected(&t, body, *status, field, reason).await;
     }
-    let (s, _) = t
-        .post_json(
-            "/v1/ingest/batches",
-            &batch("b", vec![good_reading(ok)]),
-            false,
-        )
-        .await;
-    assert_eq!(
-        s,
-        StatusCode::OK,
-        "a good batch is still accepted afterwards"
-    );
-    let m = t
-        .http
-        .get(format!("{}/metrics", t.url()))
-        .send()
-        .await
-        .expect("metrics")
-        .text()
-        .await
-        .expect("text");
-    assert!(
-        m.contains(&format!(
-            "meterveil_ingest_batches_total{{outcome=\"rejected\"}} {}",
-            cases.len()
-        )),
-        "{m}"
-    );
+    let (s, _) = t.post_json("/v1/ingest/batches", &batch("b", vec![good_reading(ok)]), false).await;
+    assert_eq!(s, StatusCode::OK, "a good batch is still accepted afterwards");
+    let m = t.http.get(format!("{}/metrics", t.url())).send().await.expect("metrics").text().await.expect("text");
+    assert!(m.contains(&format!("meterveil_ingest_batches_total{{outcome=\"rejected\"}} {}", cases.len())), "{m}");
 }
 
 #[tokio::test]
@@ -497,23 +381,10 @@ async fn stale_profile_versions_are_refused() {
     .await;
     small_feeder(&t).await;
     let v2 = json!({"noise": "logistic", "scale_kw": 0.4, "boundaries_kw": [1.0, 2.0, 3.0]});
-    assert_eq!(
-        t.post_json("/v1/feeders/F1/profiles", &v2, true).await.0,
-        StatusCode::CREATED
-    );
+    assert_eq!(t.post_json("/v1/feeders/F1/profiles", &v2, true).await.0, StatusCode::CREATED);
     let next = now_s() - now_s().rem_euclid(900) + 900;
-    let body = batch(
-        "b",
-        vec![json!({"meter_id": "m1", "interval_start": next, "level": 1, "profile_version": 1})],
-    );
-    assert_rejected(
-        &t,
-        &body,
-        StatusCode::UNPROCESSABLE_ENTITY,
-        "readings[0].profile_version",
-        "stale",
-    )
-    .await;
+    let body = batch("b", vec![json!({"meter_id": "m1", "interval_start": next, "level": 1, "profile_version": 1})]);
+    assert_rejected(&t, &body, StatusCode::UNPROCESSABLE_ENTITY, "readings[0].profile_version", "stale").await;
     // Before the new version was published, version 1 is still fine; level 3 exists only in v2.
     let body = batch(
         "b2",
@@ -522,29 +393,19 @@ async fn stale_profile_versions_are_refused() {
             json!({"meter_id": "m2", "interval_start": next, "level": 3, "profile_version": 2}),
         ],
     );
-    assert_eq!(
-        t.post_json("/v1/ingest/batches", &body, false).await.0,
-        StatusCode::OK
-    );
+    assert_eq!(t.post_json("/v1/ingest/batches", &body, false).await.0, StatusCode::OK);
 }
 
 #[tokio::test]
 async fn batches_are_idempotent_and_used_profiles_immutable() {
     let t = spawn_service().await;
     small_feeder(&t).await;
-    let b = batch(
-        "batch-1",
-        vec![good_reading(aligned_past(3)), good_reading(aligned_past(2))],
-    );
+    let b = batch("batch-1", vec![good_reading(aligned_past(3)), good_reading(aligned_past(2))]);
     let (s, first) = t.post_json("/v1/ingest/batches", &b, false).await;
     assert_eq!(s, StatusCode::OK);
     assert_eq!(first["stored_readings"], 2);
     let (s, again) = t.post_json("/v1/ingest/batches", &b, false).await;
-    assert_eq!(
-        (s, &again),
-        (StatusCode::OK, &first),
-        "a replay gets the same acknowledgement"
-    );
+    assert_eq!((s, &again), (StatusCode::OK, &first), "a replay gets the same acknowledgement");
     assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 2);
     // Same batch id, different body.
     let other = batch("batch-1", vec![good_reading(aligned_past(5))]);
@@ -552,98 +413,45 @@ async fn batches_are_idempotent_and_used_profiles_immutable() {
     assert_eq!(s, StatusCode::CONFLICT, "{body}");
     assert_eq!(body["field"], "batch_id");
     // A new batch repeating a stored (meter, interval) stores it once.
-    let (s, ack) = t
-        .post_json(
-            "/v1/ingest/batches",
-            &batch("batch-2", vec![good_reading(aligned_past(2))]),
-            false,
-        )
-        .await;
+    let (s, ack) =
+        t.post_json("/v1/ingest/batches", &batch("batch-2", vec![good_reading(aligned_past(2))]), false).await;
     assert_eq!(s, StatusCode::OK);
-    assert_eq!(
-        (
-            ack["stored_readings"].as_u64(),
-            ack["duplicate_readings"].as_u64()
-        ),
-        (Some(0), Some(1))
-    );
+    assert_eq!((ack["stored_readings"].as_u64(), ack["duplicate_readings"].as_u64()), (Some(0), Some(1)));
     assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 2);
 
     let profile = json!({"noise": "gaussian", "scale_kw": 0.5, "boundaries_kw": [1.0, 2.0]});
     let put = |v: &str| {
-        t.http
-            .put(format!("{}/v1/feeders/F1/profiles/{v}", t.url()))
-            .bearer_auth(TOKEN)
-            .json(&profile)
-            .send()
+        t.http.put(format!("{}/v1/feeders/F1/profiles/{v}", t.url())).bearer_auth(TOKEN).json(&profile).send()
     };
     let r = put("1").await.expect("put");
     assert_eq!(r.status().as_u16(), 409, "version 1 has been used");
     assert!(r.text().await.expect("text").contains("immutable"));
-    assert_eq!(
-        t.post_json("/v1/feeders/F1/profiles", &profile, true)
-            .await
-            .0,
-        StatusCode::CREATED
-    );
-    assert_eq!(
-        put("2").await.expect("put").status().as_u16(),
-        200,
-        "unused version 2 may be replaced"
-    );
+    assert_eq!(t.post_json("/v1/feeders/F1/profiles", &profile, true).await.0, StatusCode::CREATED);
+    assert_eq!(put("2").await.expect("put").status().as_u16(), 200, "unused version 2 may be replaced");
     // Operator endpoints need the token.
-    let (s, body) = t
-        .post_json("/v1/feeders/F1/profiles", &profile, false)
-        .await;
+    let (s, body) = t.post_json("/v1/feeders/F1/profiles", &profile, false).await;
     assert_eq!(s, StatusCode::UNAUTHORIZED);
     assert_eq!(body["field"], "authorization");
     let bad = json!({"noise": "gaussian", "scale_kw": -1.0, "boundaries_kw": [1.0]});
     let (s, body) = t.post_json("/v1/feeders/F1/profiles", &bad, true).await;
-    assert_eq!(
-        (s, body["field"].as_str()),
-        (StatusCode::UNPROCESSABLE_ENTITY, Some("scale_kw"))
-    );
-    let current: Value = t
-        .http
-        .get(format!("{}/v1/feeders/F1/profile", t.url()))
-        .send()
-        .await
-        .expect("get")
-        .json()
-        .await
-        .expect("json");
+    assert_eq!((s, body["field"].as_str()), (StatusCode::UNPROCESSABLE_ENTITY, Some("scale_kw")));
+    let current: Value =
+        t.http.get(format!("{}/v1/feeders/F1/profile", t.url())).send().await.expect("get").json().await.expect("json");
     assert_eq!(current["version"], 2);
     assert_eq!(current["profile"]["scale_kw"], 0.5);
 }
 
 /// Allowed columns of each schema whose names mention a unit. Anything else with
 /// a unit name, and any REAL column but the profile's own scale, fails.
-const UNIT_COLUMNS: [&str; 5] = [
-    "scale_kw",
-    "boundaries_kw",
-    "wh_total",
-    "register_mwh",
-    "alpha_kw",
-];
+const UNIT_COLUMNS: [&str; 5] = ["scale_kw", "boundaries_kw", "wh_total", "register_mwh", "alpha_kw"];
 
 fn check_columns(cols: &[(String, String, String)]) {
     for (table, name, ty) in cols {
-        let unitish = [
-            "kw",
-            "wh",
-            "watt",
-            "power",
-            "energy",
-            "reading_value",
-            "raw",
-        ]
-        .iter()
-        .any(|u| name.to_lowercase().contains(u));
+        let unitish = ["kw", "wh", "watt", "power", "energy", "reading_value", "raw"]
+            .iter()
+            .any(|u| name.to_lowercase().contains(u));
         if unitish {
-            assert!(
-                UNIT_COLUMNS.contains(&name.as_str()),
-                "{table}.{name} could hold a raw reading"
-            );
+            assert!(UNIT_COLUMNS.contains(&name.as_str()), "{table}.{name} could hold a raw reading");
         }
         if ty.to_uppercase().contains("REAL")
             || ty.to_uppercase().contains("FLOA")
@@ -659,17 +467,18 @@ fn check_columns(cols: &[(String, String, String)]) {
 }
 
 async fn columns(pool: &sqlx::SqlitePool) -> Vec<(String, String, String)> {
-    let tables: Vec<String> = sqlx::query_scalar("SELECT name FROM sqlite_master WHERE type = 'table' AND name NOT LIKE 'sqlite_%' AND name NOT LIKE '_sqlx%'")
-        .fetch_all(pool)
-        .await
-        .expect("tables");
+    let tables: Vec<String> = sqlx::query_scalar(
+        "SELECT name FROM sqlite_master WHERE type = 'table' AND name NOT LIKE 'sqlite_%' AND name NOT LIKE '_sqlx%'",
+    )
+    .fetch_all(pool)
+    .await
+    .expect("tables");
     let mut out = Vec::new();
     for t in tables {
-        let rows: Vec<(String, String)> =
-            sqlx::query_as(&format!("SELECT name, type FROM pragma_table_info('{t}')"))
-                .fetch_all(pool)
-                .await
-                .expect("cols");
+        let rows: Vec<(String, String)> = sqlx::query_as(&format!("SELECT name, type FROM pragma_table_info('{t}')"))
+            .fetch_all(pool)
+            .await
+            .expect("cols");
         out.extend(rows.into_iter().map(|(n, ty)| (t.clone(), n, ty)));
     }
     out
@@ -686,9 +495,7 @@ async fn no_raw_reading_is_stored_in_the_outbox_or_the_service() {
         feeder_id: FeederId::parse("F1").expect("id"),
     };
     let client = ServiceClient::new(&t.url(), std::time::Duration::from_secs(5)).expect("client");
-    let mut gw = Gateway::open(identity, &outbox_path, client)
-        .await
-        .expect("gateway");
+    let mut gw = Gateway::open(identity, &outbox_path, client).await.expect("gateway");
     gw.pull_profile().await.expect("profile");
     // Distinctive raw values, so their bytes could be found if they were written.
     let start = aligned_past(200);
@@ -702,10 +509,8 @@ async fn no_raw_reading_is_stored_in_the_outbox_or_the_service() {
     gw.accept(&raw, None).await.expect("accept");
 
     // Before upload: the outbox holds levels 0..=2 only, and none of the raw values.
-    let levels: Vec<i64> = sqlx::query_scalar("SELECT level FROM pending_levels")
-        .fetch_all(gw.outbox().pool())
-        .await
-        .expect("levels");
+    let levels: Vec<i64> =
+        sqlx::query_scalar("SELECT level FROM pending_levels").fetch_all(gw.outbox().pool()).await.expect("levels");
     assert_eq!(levels.len(), 192);
     assert!(levels.iter().all(|l| (0..=2).contains(l)));
     check_columns(&columns(gw.outbox().pool()).await);
@@ -717,30 +522,16 @@ async fn no_raw_reading_is_stored_in_the_outbox_or_the_service() {
     }
     for r in &raw {
         let be = r.kw.to_be_bytes();
-        assert!(
-            !bytes.windows(8).any(|w| w == be),
-            "raw value {} found in the outbox file",
-            r.kw
-        );
+        assert!(!bytes.windows(8).any(|w| w == be), "raw value {} found in the outbox file", r.kw);
         let text = format!("{:.6}", r.kw);
-        assert!(
-            !bytes.windows(text.len()).any(|w| w == text.as_bytes()),
-            "raw value {text} found as text"
-        );
+        assert!(!bytes.windows(text.len()).any(|w| w == text.as_bytes()), "raw value {text} found as text");
     }
 
     let (_tx, stop) = tokio::sync::watch::channel(false);
     let (_done_tx, done) = tokio::sync::watch::channel(true);
-    gw.uploader(UploadConfig::default())
-        .run(done, stop)
-        .await
-        .expect("upload");
+    gw.uploader(UploadConfig::default()).run(done, stop).await.expect("upload");
     assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 192);
-    assert_eq!(
-        t.count("SELECT COUNT(*) FROM readings WHERE level NOT BETWEEN 0 AND 2")
-            .await,
-        0
-    );
+    assert_eq!(t.count("SELECT COUNT(*) FROM readings WHERE level NOT BETWEEN 0 AND 2").await, 0);
     check_columns(&t.svc.store.schema_columns().await.expect("schema"));
 }
 
@@ -766,33 +557,21 @@ async fn gateway_run_reads_a_file_once_and_reports_bad_lines() {
     );
     let config = meterveil_gateway::config::GatewayConfig::parse(&config_text).expect("config");
     let (_tx, rx) = tokio::sync::watch::channel(false);
-    let report = meterveil_gateway::run::run(config.clone(), rx.clone())
-        .await
-        .expect("run");
+    let report = meterveil_gateway::run::run(config.clone(), rx.clone()).await.expect("run");
     assert_eq!(report.lines_rejected, 3);
     assert_eq!(report.levels_queued, 192);
     assert_eq!(report.upload.readings_acknowledged, 192);
     assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 192);
     // Register reads at both midnights of the day: m1's day is 96·100 + Σi = 14160 Wh.
-    let reads: Vec<(String, i64, i64)> = sqlx::query_as(
-        "SELECT meter_id, read_at, wh_total FROM register_reads ORDER BY meter_id, read_at",
-    )
-    .fetch_all(t.svc.store.pool())
-    .await
-    .expect("reads");
+    let reads: Vec<(String, i64, i64)> =
+        sqlx::query_as("SELECT meter_id, read_at, wh_total FROM register_reads ORDER BY meter_id, read_at")
+            .fetch_all(t.svc.store.pool())
+            .await
+            .expect("reads");
     assert_eq!(reads.len(), 4);
     assert_eq!(reads[1].2 - reads[0].2, 14_160);
     assert_eq!(reads[3].2 - reads[2].2, 96 * 300);
     // A second run resumes at the saved position: nothing is dithered or sent again.
-    let again = meterveil_gateway::run::run(config, rx)
-        .await
-        .expect("second run");
-    assert_eq!(
-        (
-            again.levels_queued,
-            again.lines_rejected,
-            again.upload.batches
-        ),
-        (0, 0, 0)
-    );
+    let again = meterveil_gateway::run::run(config, rx).await.expect("second run");
+    assert_eq!((again.levels_queued, again.lines_rejected, again.upload.batches), (0, 0, 0));
 }

@@ -13,10 +13,7 @@ pub struct BackoffPolicy {
 
 impl Default for BackoffPolicy {
     fn default() -> Self {
-        Self {
-            initial_ms: 500,
-            max_ms: 60_000,
-        }
+        Self { initial_ms: 500, max_ms: 60_000 }
     }
 }
 
@@ -42,10 +39,7 @@ mod tests {
 
     #[test]
     fn doubles_then_caps() {
-        let p = BackoffPolicy {
-            initial_ms: 100,
-            max_ms: 1000,
-        };
+        let p = BackoffPolicy { initial_ms: 100, max_ms: 1000 };
         let ms: Vec<u128> = (1..=6).map(|n| p.delay(n).as_millis()).collect();
         assert_eq!(ms, vec![100, 200, 400, 800, 1000, 1000]);
         assert_eq!(p.delay(u32::MAX).as_millis(), 1000);

@@ -103,10 +103,7 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
             opts.days = days;
             opts.seed = seed;
             opts.meters_per_gateway = meters_per_gateway;
-            opts.upload = UploadConfig {
-                batch_max,
-                ..UploadConfig::default()
-            };
+            opts.upload = UploadConfig { batch_max, ..UploadConfig::default() };
             opts.truth = truth;
             let report = simulate::run(&opts).await?;
             println!("{}", serde_json::to_string_pretty(&report)?);

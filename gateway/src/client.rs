@@ -23,10 +23,7 @@ pub struct ServiceClient {
 impl ServiceClient {
     pub fn new(base_url: &str, timeout: Duration) -> anyhow::Result<Self> {
         let http = reqwest::Client::builder().timeout(timeout).build()?;
-        Ok(Self {
-            http,
-            base: base_url.trim_end_matches('/').to_owned(),
-        })
+        Ok(Self { http, base: base_url.trim_end_matches('/').to_owned() })
     }
 
     pub fn base_url(&self) -> &str {
@@ -36,9 +33,7 @@ impl ServiceClient {
     async fn classify(resp: reqwest::Response) -> UploadError {
         let status = resp.status().as_u16();
         let text = resp.text().await.unwrap_or_default();
-        let reason = serde_json::from_str::<ErrorWire>(&text)
-            .map(|e| e.message)
-            .unwrap_or(text);
+        let reason = serde_json::from_str::<ErrorWire>(&text).map(|e| e.message).unwrap_or(text);
         if status >= 500 || status == 408 || status == 429 {
             UploadError::Transient(format!("{status}: {reason}"))
         } else {
@@ -49,36 +44,20 @@ impl ServiceClient {
     /// The feeder's current dither profile.
     pub async fn current_profile(&self, feeder_id: &str) -> Result<ProfileRecordWire, UploadError> {
         let url = format!("{}/v1/feeders/{feeder_id}/profile", self.base);
-        let resp = self
-            .http
-            .get(url)
-            .send()
-            .await
-            .map_err(|e| UploadError::Transient(e.to_string()))?;
+        let resp = self.http.get(url).send().await.map_err(|e| UploadError::Transient(e.to_string()))?;
         if !resp.status().is_success() {
             return Err(Self::classify(resp).await);
         }
-        resp.json()
-            .await
-            .map_err(|e| UploadError::Transient(format!("profile body: {e}")))
+        resp.json().await.map_err(|e| UploadError::Transient(format!("profile body: {e}")))
     }
 
     pub async fn post_batch(&self, batch: &BatchWire) -> Result<AckWire, UploadError> {
         let url = format!("{}/v1/ingest/batches", self.base);
-        let resp = self
-            .http
-            .post(url)
-            .json(batch)
-            .send()
-            .await
-            .map_err(|e| UploadError::Transient(e.to_string()))?;
+        let resp = self.http.post(url).json(batch).send().await.map_err(|e| UploadError::Transient(e.to_string()))?;
         if !resp.status().is_success() {
             return Err(Self::classify(resp).await);
         }
-        let ack: AckWire = resp
-            .json()
-            .await
-            .map_err(|e| UploadError::Transient(format!("ack body: {e}")))?;
+        let ack: AckWire = resp.json().await.map_err(|e| UploadError::Transient(format!("ack body: {e}")))?;
         if ack.batch_id != batch.batch_id {
             return Err(UploadError::Transient(format!(
                 "ack names batch {} instead of {}",

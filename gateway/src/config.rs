@@ -82,8 +82,7 @@ pub struct GatewayConfig {
 
 impl GatewayConfig {
     pub fn load(path: &Path) -> anyhow::Result<Self> {
-        let text = std::fs::read_to_string(path)
-            .with_context(|| format!("reading config {}", path.display()))?;
+        let text = std::fs::read_to_string(path).with_context(|| format!("reading config {}", path.display()))?;
         Self::parse(&text).with_context(|| format!("config {}", path.display()))
     }
 
@@ -94,19 +93,13 @@ impl GatewayConfig {
             feeder_id: FeederId::parse(&raw.feeder_id)?,
         };
         if !(raw.service_url.starts_with("http://") || raw.service_url.starts_with("https://")) {
-            anyhow::bail!(
-                "service_url: {:?} must start with http:// or https://",
-                raw.service_url
-            );
+            anyhow::bail!("service_url: {:?} must start with http:// or https://", raw.service_url);
         }
         if raw.source.kind != SourceKind::Stdin && raw.source.path.is_none() {
             anyhow::bail!("source.path: required for a {:?} source", raw.source.kind);
         }
         if raw.upload.batch_max == 0 || raw.upload.batch_max > 50_000 {
-            anyhow::bail!(
-                "upload.batch_max: {} must be between 1 and 50000",
-                raw.upload.batch_max
-            );
+            anyhow::bail!("upload.batch_max: {} must be between 1 and 50000", raw.upload.batch_max);
         }
         if raw.source.poll_s == 0 {
             anyhow::bail!("source.poll_s: must be at least 1 second");
@@ -146,16 +139,10 @@ max_ms = 100
         assert_eq!(c.upload.batch_max, 96);
         assert_eq!(c.upload.backoff.max_ms, 100);
         let bad = OK.replace("kind = \"file\"\npath = \"/tmp/in.csv\"", "kind = \"file\"");
-        assert!(GatewayConfig::parse(&bad)
-            .unwrap_err()
-            .to_string()
-            .contains("source.path"));
+        assert!(GatewayConfig::parse(&bad).unwrap_err().to_string().contains("source.path"));
         let bad = OK.replace("gw-1", "gw 1");
         assert!(format!("{:#}", GatewayConfig::parse(&bad).unwrap_err()).contains("gateway_id"));
         let bad = OK.replace("http://127", "ftp://127");
-        assert!(GatewayConfig::parse(&bad)
-            .unwrap_err()
-            .to_string()
-            .contains("service_url"));
+        assert!(GatewayConfig::parse(&bad).unwrap_err().to_string().contains("service_url"));
     }
 }

@@ -32,10 +32,7 @@ impl TryFrom<&ProfileRecordWire> for ActiveProfile {
     fn try_from(rec: &ProfileRecordWire) -> anyhow::Result<Self> {
         let profile = DitherProfile::try_from(rec.profile.clone())
             .map_err(|e| anyhow::anyhow!("service sent an invalid profile: {e}"))?;
-        Ok(Self {
-            version: rec.version,
-            profile,
-        })
+        Ok(Self { version: rec.version, profile })
     }
 }
 
@@ -57,11 +54,7 @@ pub struct Gateway {
 }
 
 impl Gateway {
-    pub async fn open(
-        identity: GatewayIdentity,
-        outbox_path: &Path,
-        client: ServiceClient,
-    ) -> anyhow::Result<Self> {
+    pub async fn open(identity: GatewayIdentity, outbox_path: &Path, client: ServiceClient) -> anyhow::Result<Self> {
         let outbox = Outbox::open(outbox_path).await?;
         Ok(Self {
             identity,
@@ -96,16 +89,12 @@ impl Gateway {
                 rec
             }
             Err(e @ UploadError::Refused { .. }) => {
-                return Err(anyhow::anyhow!(
-                    "service refused the profile request for feeder {feeder}: {e}"
-                ))
+                return Err(anyhow::anyhow!("service refused the profile request for feeder {feeder}: {e}"))
             }
             Err(e) => {
                 tracing::warn!(error = %e, "profile pull failed; using the cached profile");
                 self.outbox.cached_profile(feeder).await?.with_context(|| {
-                    format!(
-                        "no cached profile for feeder {feeder} and the service is unreachable: {e}"
-                    )
+                    format!("no cached profile for feeder {feeder} and the service is unreachable: {e}")
                 })?
             }
         };
@@ -123,16 +112,10 @@ impl Gateway {
         readings: &[RawReading],
         position: Option<(&str, i64)>,
     ) -> anyhow::Result<AcceptStats> {
-        let active = self
-            .profile
-            .clone()
-            .context("no dither profile yet: pull one first")?;
+        let active = self.profile.clone().context("no dither profile yet: pull one first")?;
         let missing: Vec<&MeterId> = {
-            let mut m: Vec<&MeterId> = readings
-                .iter()
-                .map(|r| &r.meter_id)
-                .filter(|id| !self.states.contains_key(*id))
-                .collect();
+            let mut m: Vec<&MeterId> =
+                readings.iter().map(|r| &r.meter_id).filter(|id| !self.states.contains_key(*id)).collect();
             m.sort_unstable();
             m.dedup();
             m
@@ -140,8 +123,7 @@ impl Gateway {
         if !missing.is_empty() {
             let loaded = self.outbox.meter_states(&missing).await?;
             for id in missing {
-                self.states
-                    .insert(id.clone(), loaded.get(id).cloned().unwrap_or_default());
+                self.states.insert(id.clone(), loaded.get(id).cloned().unwrap_or_default());
             }
         }
         let mut levels = Vec::with_capacity(readings.len());
@@ -162,18 +144,11 @@ impl Gateway {
             registers.extend(out.registers);
             touched.insert(r.meter_id.clone(), state.clone());
         }
-        self.outbox
-            .enqueue(&levels, &registers, &touched, position)
-            .await?;
+        self.outbox.enqueue(&levels, &registers, &touched, position).await?;
         Ok(stats)
     }
 
     pub fn uploader(&self, config: UploadConfig) -> Uploader {
-        Uploader::new(
-            self.identity.clone(),
-            self.outbox.clone(),
-            self.client.clone(),
-            config,
-        )
+        Uploader::new(self.identity.clone(), self.outbox.clone(), self.client.clone(), config)
     }
 }

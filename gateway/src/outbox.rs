@@ -55,10 +55,7 @@ pub struct OutboxCounts {
 }
 
 fn now_s() -> i64 {
-    std::time::SystemTime::now()
-        .duration_since(std::time::UNIX_EPOCH)
-        .map(|d| d.as_secs() as i64)
-        .unwrap_or(0)
+    std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).map(|d| d.as_secs() as i64).unwrap_or(0)
 }
 
 impl Outbox {
@@ -77,10 +74,7 @@ impl Outbox {
             .connect_with(opts)
             .await
             .with_context(|| format!("opening outbox {}", path.display()))?;
-        sqlx::migrate!("../migrations/outbox")
-            .run(&pool)
-            .await
-            .context("outbox migrations")?;
+        sqlx::migrate!("../migrations/outbox").run(&pool).await.context("outbox migrations")?;
         Ok(Self { pool })
     }
 
@@ -89,10 +83,7 @@ impl Outbox {
     }
 
     /// Loads the persisted state of these meters (absent meters get a fresh state).
-    pub async fn meter_states(
-        &self,
-        ids: &[&MeterId],
-    ) -> anyhow::Result<HashMap<MeterId, MeterState>> {
+    pub async fn meter_states(&self, ids: &[&MeterId]) -> anyhow::Result<HashMap<MeterId, MeterState>> {
         let mut out = HashMap::new();
         for chunk in ids.chunks(CHUNK) {
             let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
@@ -108,10 +99,8 @@ impl Outbox {
                 let mwh: Option<i64> = r.try_get(2)?;
                 let state = MeterState {
                     last_interval_start: Some(r.try_get(1)?),
-                    register: mwh.map(|m| RegisterState {
-                        total_mwh: m as u64,
-                        last_read_at: r.try_get(3).ok().flatten(),
-                    }),
+                    register: mwh
+                        .map(|m| RegisterState { total_mwh: m as u64, last_read_at: r.try_get(3).ok().flatten() }),
                 };
                 out.insert(MeterId::parse(&id).context("stored meter id")?, state);
             }
@@ -130,8 +119,9 @@ impl Outbox {
     ) -> anyhow::Result<()> {
         let mut tx = self.pool.begin().await?;
         for chunk in levels.chunks(CHUNK) {
-            let mut qb: QueryBuilder<Sqlite> =
-                QueryBuilder::new("INSERT OR IGNORE INTO pending_levels (meter_id, interval_start, level, profile_version) ");
+            let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
+                "INSERT OR IGNORE INTO pending_levels (meter_id, interval_start, level, profile_version) ",
+            );
             qb.push_values(chunk, |mut b, l| {
                 b.push_bind(l.meter_id.as_str())
                     .push_bind(l.interval_start)
@@ -141,23 +131,19 @@ impl Outbox {
             qb.build().execute(&mut *tx).await?;
         }
         for chunk in registers.chunks(CHUNK) {
-            let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
-                "INSERT OR IGNORE INTO pending_registers (meter_id, read_at, wh_total) ",
-            );
+            let mut qb: QueryBuilder<Sqlite> =
+                QueryBuilder::new("INSERT OR IGNORE INTO pending_registers (meter_id, read_at, wh_total) ");
             qb.push_values(chunk, |mut b, g| {
-                b.push_bind(g.meter_id.as_str())
-                    .push_bind(g.read_at)
-                    .push_bind(g.wh_total as i64);
+                b.push_bind(g.meter_id.as_str()).push_bind(g.read_at).push_bind(g.wh_total as i64);
             });
             qb.build().execute(&mut *tx).await?;
         }
-        let rows: Vec<(&MeterId, &MeterState)> = states
-            .iter()
-            .filter(|(_, s)| s.last_interval_start.is_some())
-            .collect();
+        let rows: Vec<(&MeterId, &MeterState)> =
+            states.iter().filter(|(_, s)| s.last_interval_start.is_some()).collect();
         for chunk in rows.chunks(CHUNK) {
-            let mut qb: QueryBuilder<Sqlite> =
-                QueryBuilder::new("INSERT OR REPLACE INTO meter_state (meter_id, last_interval_start, register_mwh, last_read_at) ");
+            let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
+                "INSERT OR REPLACE INTO meter_state (meter_id, last_interval_start, register_mwh, last_read_at) ",
+            );
             qb.push_values(chunk, |mut b, (id, s)| {
                 b.push_bind(id.as_str())
                     .push_bind(s.last_interval_start)
@@ -178,11 +164,10 @@ impl Outbox {
     }
 
     pub async fn source_position(&self, source: &str) -> anyhow::Result<i64> {
-        let pos: Option<i64> =
-            sqlx::query_scalar("SELECT position FROM source_progress WHERE source = ?")
-                .bind(source)
-                .fetch_optional(&self.pool)
-                .await?;
+        let pos: Option<i64> = sqlx::query_scalar("SELECT position FROM source_progress WHERE source = ?")
+            .bind(source)
+            .fetch_optional(&self.pool)
+            .await?;
         Ok(pos.unwrap_or(0))
     }
 
@@ -190,11 +175,10 @@ impl Outbox {
     /// readings (and up to `max_rows` register reads). `None` when nothing waits.
     pub async fn claim(&self, max_rows: usize) -> anyhow::Result<Option<ClaimedBatch>> {
         let mut tx = self.pool.begin().await?;
-        let open: Option<(String, i64)> = sqlx::query_as(
-            "SELECT batch_id, attempts FROM open_batches ORDER BY created_at, rowid LIMIT 1",
-        )
-        .fetch_optional(&mut *tx)
-        .await?;
+        let open: Option<(String, i64)> =
+            sqlx::query_as("SELECT batch_id, attempts FROM open_batches ORDER BY created_at, rowid LIMIT 1")
+                .fetch_optional(&mut *tx)
+                .await?;
         let (batch_id, attempts) = match open {
             Some(b) => b,
             None => {
@@ -262,39 +246,26 @@ impl Outbox {
         })
         .collect::<Result<Vec<_>, sqlx::Error>>()?;
         tx.commit().await?;
-        Ok(Some(ClaimedBatch {
-            batch_id,
-            attempts,
-            readings,
-            registers,
-        }))
+        Ok(Some(ClaimedBatch { batch_id, attempts, readings, registers }))
     }
 
     /// The service acknowledged the batch: its rows may go.
     pub async fn acknowledge(&self, batch_id: &str) -> anyhow::Result<()> {
         let mut tx = self.pool.begin().await?;
         for table in ["pending_levels", "pending_registers"] {
-            sqlx::query(&format!("DELETE FROM {table} WHERE batch_id = ?"))
-                .bind(batch_id)
-                .execute(&mut *tx)
-                .await?;
+            sqlx::query(&format!("DELETE FROM {table} WHERE batch_id = ?")).bind(batch_id).execute(&mut *tx).await?;
         }
-        sqlx::query("DELETE FROM open_batches WHERE batch_id = ?")
-            .bind(batch_id)
-            .execute(&mut *tx)
-            .await?;
+        sqlx::query("DELETE FROM open_batches WHERE batch_id = ?").bind(batch_id).execute(&mut *tx).await?;
         tx.commit().await?;
         Ok(())
     }
 
     pub async fn record_failure(&self, batch_id: &str, error: &str) -> anyhow::Result<()> {
-        sqlx::query(
-            "UPDATE open_batches SET attempts = attempts + 1, last_error = ? WHERE batch_id = ?",
-        )
-        .bind(error)
-        .bind(batch_id)
-        .execute(&self.pool)
-        .await?;
+        sqlx::query("UPDATE open_batches SET attempts = attempts + 1, last_error = ? WHERE batch_id = ?")
+            .bind(error)
+            .bind(batch_id)
+            .execute(&self.pool)
+            .await?;
         Ok(())
     }
 
@@ -317,20 +288,13 @@ impl Outbox {
                 .execute(&mut *tx)
                 .await?;
         }
-        sqlx::query("DELETE FROM open_batches WHERE batch_id = ?")
-            .bind(&batch.batch_id)
-            .execute(&mut *tx)
-            .await?;
+        sqlx::query("DELETE FROM open_batches WHERE batch_id = ?").bind(&batch.batch_id).execute(&mut *tx).await?;
         tx.commit().await?;
         Ok(())
     }
 
     pub async fn counts(&self) -> anyhow::Result<OutboxCounts> {
-        let one = |sql: &'static str| async move {
-            sqlx::query_scalar::<_, i64>(sql)
-                .fetch_one(&self.pool)
-                .await
-        };
+        let one = |sql: &'static str| async move { sqlx::query_scalar::<_, i64>(sql).fetch_one(&self.pool).await };
         Ok(OutboxCounts {
             pending_levels: one("SELECT COUNT(*) FROM pending_levels").await?,
             pending_registers: one("SELECT COUNT(*) FROM pending_registers").await?,
@@ -348,16 +312,11 @@ impl Outbox {
         Ok(())
     }
 
-    pub async fn cached_profile(
-        &self,
-        feeder_id: &str,
-    ) -> anyhow::Result<Option<ProfileRecordWire>> {
-        let rec: Option<String> =
-            sqlx::query_scalar("SELECT record FROM profile_cache WHERE feeder_id = ?")
-                .bind(feeder_id)
-                .fetch_optional(&self.pool)
-                .await?;
-        rec.map(|r| serde_json::from_str(&r).context("cached profile"))
-            .transpose()
+    pub async fn cached_profile(&self, feeder_id: &str) -> anyhow::Result<Option<ProfileRecordWire>> {
+        let rec: Option<String> = sqlx::query_scalar("SELECT record FROM profile_cache WHERE feeder_id = ?")
+            .bind(feeder_id)
+            .fetch_optional(&self.pool)
+            .await?;
+        rec.map(|r| serde_json::from_str(&r).context("cached profile")).transpose()
     }
 }

@@ -60,10 +60,7 @@ pub fn step(
     version: u32,
     rng: &mut impl Rng,
 ) -> Step {
-    if state
-        .last_interval_start
-        .is_some_and(|last| reading.interval_start <= last)
-    {
+    if state.last_interval_start.is_some_and(|last| reading.interval_start <= last) {
         return Step::default();
     }
     state.last_interval_start = Some(reading.interval_start);
@@ -122,11 +119,7 @@ mod tests {
     }
 
     fn reading(t: i64, kw: f64) -> RawReading {
-        RawReading {
-            meter_id: MeterId::parse("m").unwrap(),
-            interval_start: t,
-            kw,
-        }
+        RawReading { meter_id: MeterId::parse("m").unwrap(), interval_start: t, kw }
     }
 
     const DAY0: i64 = 1_700_006_400; // a UTC midnight
@@ -136,15 +129,9 @@ mod tests {
         let p = profile(false);
         let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(1);
         let mut st = MeterState::default();
-        assert!(step(&mut st, &reading(DAY0, 1.0), &p, 1, &mut rng)
-            .level
-            .is_some());
-        assert!(step(&mut st, &reading(DAY0, 1.0), &p, 1, &mut rng)
-            .level
-            .is_none());
-        assert!(step(&mut st, &reading(DAY0 - 900, 1.0), &p, 1, &mut rng)
-            .level
-            .is_none());
+        assert!(step(&mut st, &reading(DAY0, 1.0), &p, 1, &mut rng).level.is_some());
+        assert!(step(&mut st, &reading(DAY0, 1.0), &p, 1, &mut rng).level.is_none());
+        assert!(step(&mut st, &reading(DAY0 - 900, 1.0), &p, 1, &mut rng).level.is_none());
         assert!(st.register.is_none());
     }
 
@@ -163,38 +150,18 @@ mod tests {
                 }
                 let kw = 0.2 + 0.013 * ((i * 7 + d) % 17) as f64;
                 day_wh[d as usize] += kw * 250.0;
-                reads.extend(
-                    step(
-                        &mut st,
-                        &reading(DAY0 + d * 86_400 + i * 900, kw),
-                        &p,
-                        1,
-                        &mut rng,
-                    )
-                    .registers,
-                );
+                reads.extend(step(&mut st, &reading(DAY0 + d * 86_400 + i * 900, kw), &p, 1, &mut rng).registers);
             }
         }
         let at: Vec<i64> = reads.iter().map(|r| (r.read_at - DAY0) / 86_400).collect();
         assert_eq!(at, vec![0, 1, 2, 3, 4], "one read per midnight, none twice");
         for d in 0..4 {
             let got = (reads[d + 1].wh_total - reads[d].wh_total) as f64;
-            assert!(
-                (got - day_wh[d]).abs() < 1.0,
-                "day {d}: {got} vs {}",
-                day_wh[d]
-            );
+            assert!((got - day_wh[d]).abs() < 1.0, "day {d}: {got} vs {}", day_wh[d]);
         }
         // A meter first seen mid-day starts its register at that day's midnight.
         let mut st = MeterState::default();
         let r = step(&mut st, &reading(DAY0 + 40 * 900, 1.0), &p, 1, &mut rng).registers;
-        assert_eq!(
-            r,
-            vec![RegisterOut {
-                meter_id: MeterId::parse("m").unwrap(),
-                read_at: DAY0,
-                wh_total: 0
-            }]
-        );
+        assert_eq!(r, vec![RegisterOut { meter_id: MeterId::parse("m").unwrap(), read_at: DAY0, wh_total: 0 }]);
     }
 }

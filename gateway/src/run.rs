@@ -41,11 +41,7 @@ impl Feeder<'_> {
         Ok(())
     }
 
-    async fn push(
-        &mut self,
-        batch: &mut Vec<RawReading>,
-        position: Option<(&str, i64)>,
-    ) -> anyhow::Result<()> {
+    async fn push(&mut self, batch: &mut Vec<RawReading>, position: Option<(&str, i64)>) -> anyhow::Result<()> {
         self.refresh_if_due().await?;
         let s = self.gateway.accept(batch, position).await?;
         self.report.levels_queued += s.levels;
@@ -58,26 +54,14 @@ impl Feeder<'_> {
     /// Reads one file from its saved byte position to its end. A watched file may
     /// still be being written, so there an unterminated last line is left for the
     /// next pass (`whole_lines_only`).
-    async fn read_file(
-        &mut self,
-        path: &Path,
-        format: Format,
-        whole_lines_only: bool,
-    ) -> anyhow::Result<()> {
+    async fn read_file(&mut self, path: &Path, format: Format, whole_lines_only: bool) -> anyhow::Result<()> {
         let key = path.display().to_string();
         let start = self.gateway.outbox().source_position(&key).await?;
-        let text = tokio::fs::read_to_string(path)
-            .await
-            .with_context(|| format!("reading {key}"))?;
+        let text = tokio::fs::read_to_string(path).await.with_context(|| format!("reading {key}"))?;
         if (text.len() as i64) <= start {
             return Ok(());
         }
-        let len = self
-            .gateway
-            .profile()
-            .context("no profile")?
-            .profile
-            .interval();
+        let len = self.gateway.profile().context("no profile")?.profile.interval();
         let mut parser = LineParser::new(format);
         let mut batch = Vec::with_capacity(CHUNK_LINES);
         let mut offset = 0i64;
@@ -108,12 +92,7 @@ impl Feeder<'_> {
     }
 
     async fn read_stdin(&mut self, format: Format) -> anyhow::Result<()> {
-        let len = self
-            .gateway
-            .profile()
-            .context("no profile")?
-            .profile
-            .interval();
+        let len = self.gateway.profile().context("no profile")?.profile.interval();
         let mut parser = LineParser::new(format);
         let mut lines = tokio::io::BufReader::new(tokio::io::stdin()).lines();
         let mut batch = Vec::with_capacity(CHUNK_LINES);
@@ -140,11 +119,7 @@ fn listed_files(dir: &Path) -> anyhow::Result<Vec<PathBuf>> {
         .filter_map(Result::ok)
         .map(|e| e.path())
         .filter(|p| {
-            p.is_file()
-                && matches!(
-                    p.extension().and_then(|e| e.to_str()),
-                    Some("csv" | "jsonl" | "ndjson" | "json")
-                )
+            p.is_file() && matches!(p.extension().and_then(|e| e.to_str()), Some("csv" | "jsonl" | "ndjson" | "json"))
         })
         .collect();
     files.sort();
@@ -153,10 +128,7 @@ fn listed_files(dir: &Path) -> anyhow::Result<Vec<PathBuf>> {
 
 /// Runs a gateway until its source is exhausted and uploaded (file, stdin) or
 /// until `shutdown` turns true (directory).
-pub async fn run(
-    config: GatewayConfig,
-    shutdown: watch::Receiver<bool>,
-) -> anyhow::Result<RunReport> {
+pub async fn run(config: GatewayConfig, shutdown: watch::Receiver<bool>) -> anyhow::Result<RunReport> {
     let client = ServiceClient::new(&config.service_url, Duration::from_secs(30))?;
     let mut gateway = Gateway::open(config.identity.clone(), &config.outbox, client).await?;
     let mut failures = 0;
@@ -177,23 +149,13 @@ pub async fn run(
     let up_shutdown = shutdown.clone();
     let upload = tokio::spawn(async move { uploader.run(done_rx, up_shutdown).await });
 
-    let mut f = Feeder {
-        gateway,
-        config: &config,
-        last_pull: Instant::now(),
-        report: RunReport::default(),
-    };
+    let mut f = Feeder { gateway, config: &config, last_pull: Instant::now(), report: RunReport::default() };
     let src = &config.source;
     let read = async {
         match src.kind {
             SourceKind::File => {
                 let path = src.path.as_deref().context("source.path")?;
-                f.read_file(
-                    path,
-                    src.format.unwrap_or_else(|| Format::from_path(path)),
-                    false,
-                )
-                .await
+                f.read_file(path, src.format.unwrap_or_else(|| Format::from_path(path)), false).await
             }
             SourceKind::Stdin => f.read_stdin(src.format.unwrap_or(Format::Csv)).await,
             SourceKind::Directory => {

@@ -56,15 +56,10 @@ pub struct CsvLayout {
 
 impl CsvLayout {
     pub fn from_header(header: &str) -> Result<Self, FieldError> {
-        let cols: Vec<String> = header
-            .split(',')
-            .map(|c| c.trim().to_ascii_lowercase())
-            .collect();
+        let cols: Vec<String> = header.split(',').map(|c| c.trim().to_ascii_lowercase()).collect();
         let find = |name: &str| cols.iter().position(|c| c == name);
-        let meter =
-            find("meter_id").ok_or_else(|| FieldError::new("header", "has no meter_id column"))?;
-        let start = find("interval_start")
-            .ok_or_else(|| FieldError::new("header", "has no interval_start column"))?;
+        let meter = find("meter_id").ok_or_else(|| FieldError::new("header", "has no meter_id column"))?;
+        let start = find("interval_start").ok_or_else(|| FieldError::new("header", "has no interval_start column"))?;
         let (value, unit) = match (find("kw"), find("wh")) {
             (Some(k), None) => (k, Unit::Kw),
             (None, Some(w)) => (w, Unit::Wh),
@@ -74,20 +69,9 @@ impl CsvLayout {
                     "has both kw and wh columns; keep one so the unit is unambiguous",
                 ))
             }
-            (None, None) => {
-                return Err(FieldError::new(
-                    "header",
-                    "has neither a kw nor a wh column",
-                ))
-            }
+            (None, None) => return Err(FieldError::new("header", "has neither a kw nor a wh column")),
         };
-        Ok(Self {
-            meter,
-            start,
-            value,
-            unit,
-            columns: cols.len(),
-        })
+        Ok(Self { meter, start, value, unit, columns: cols.len() })
     }
 }
 
@@ -111,27 +95,15 @@ fn check_value(field: &str, kw: f64) -> Result<f64, FieldError> {
         return Err(FieldError::new(field, "is not a finite number"));
     }
     if kw < 0.0 {
-        return Err(FieldError::new(
-            field,
-            format!("{kw} is negative; exported energy is not supported"),
-        ));
+        return Err(FieldError::new(field, format!("{kw} is negative; exported energy is not supported")));
     }
     if kw > MAX_READING_KW {
-        return Err(FieldError::new(
-            field,
-            format!("{kw} kW is above the {MAX_READING_KW} kW plausibility limit"),
-        ));
+        return Err(FieldError::new(field, format!("{kw} kW is above the {MAX_READING_KW} kW plausibility limit")));
     }
     Ok(kw)
 }
 
-fn finish(
-    meter: &str,
-    start: i64,
-    kw: f64,
-    unit: Unit,
-    len: IntervalLength,
-) -> Result<RawReading, FieldError> {
+fn finish(meter: &str, start: i64, kw: f64, unit: Unit, len: IntervalLength) -> Result<RawReading, FieldError> {
     let meter_id = MeterId::parse(meter.trim())?;
     IntervalStart::new(start, len)?;
     let field = match unit {
@@ -139,43 +111,22 @@ fn finish(
         Unit::Wh => "wh",
     };
     let kw = check_value(field, to_kw(unit, kw, len))?;
-    Ok(RawReading {
-        meter_id,
-        interval_start: start,
-        kw,
-    })
+    Ok(RawReading { meter_id, interval_start: start, kw })
 }
 
 /// Parses one CSV data line.
-pub fn parse_csv_line(
-    layout: &CsvLayout,
-    line: &str,
-    len: IntervalLength,
-) -> Result<RawReading, FieldError> {
+pub fn parse_csv_line(layout: &CsvLayout, line: &str, len: IntervalLength) -> Result<RawReading, FieldError> {
     let cells: Vec<&str> = line.split(',').map(str::trim).collect();
     if cells.len() != layout.columns {
-        return Err(FieldError::new(
-            "line",
-            format!(
-                "has {} columns; the header has {}",
-                cells.len(),
-                layout.columns
-            ),
-        ));
+        return Err(FieldError::new("line", format!("has {} columns; the header has {}", cells.len(), layout.columns)));
     }
     let start: i64 = cells[layout.start].parse().map_err(|_| {
-        FieldError::new(
-            "interval_start",
-            format!("{:?} is not an integer epoch second", cells[layout.start]),
-        )
+        FieldError::new("interval_start", format!("{:?} is not an integer epoch second", cells[layout.start]))
     })?;
     let value_name = if layout.unit == Unit::Kw { "kw" } else { "wh" };
-    let value: f64 = cells[layout.value].parse().map_err(|_| {
-        FieldError::new(
-            value_name,
-            format!("{:?} is not a number", cells[layout.value]),
-        )
-    })?;
+    let value: f64 = cells[layout.value]
+        .parse()
+        .map_err(|_| FieldError::new(value_name, format!("{:?} is not a number", cells[layout.value])))?;
     finish(cells[layout.meter], start, value, layout.unit, len)
 }
 
@@ -190,14 +141,11 @@ struct JsonReading {
 
 /// Parses one JSON-lines object.
 pub fn parse_json_line(line: &str, len: IntervalLength) -> Result<RawReading, FieldError> {
-    let r: JsonReading =
-        serde_json::from_str(line).map_err(|e| FieldError::new("json", e.to_string()))?;
+    let r: JsonReading = serde_json::from_str(line).map_err(|e| FieldError::new("json", e.to_string()))?;
     let (value, unit) = match (r.kw, r.wh) {
         (Some(k), None) => (k, Unit::Kw),
         (None, Some(w)) => (w, Unit::Wh),
-        (Some(_), Some(_)) => {
-            return Err(FieldError::new("kw", "both kw and wh are given; send one"))
-        }
+        (Some(_), Some(_)) => return Err(FieldError::new("kw", "both kw and wh are given; send one")),
         (None, None) => return Err(FieldError::new("kw", "neither kw nor wh is given")),
     };
     finish(&r.meter_id, r.interval_start, value, unit, len)
@@ -214,19 +162,11 @@ pub struct LineParser {
 
 impl LineParser {
     pub fn new(format: Format) -> Self {
-        Self {
-            format,
-            layout: None,
-            line: 0,
-        }
+        Self { format, layout: None, line: 0 }
     }
 
     /// Parses the next line. `Ok(None)` for blank lines, comments (`#`) and the CSV header.
-    pub fn next_line(
-        &mut self,
-        text: &str,
-        len: IntervalLength,
-    ) -> Result<Option<RawReading>, LineError> {
+    pub fn next_line(&mut self, text: &str, len: IntervalLength) -> Result<Option<RawReading>, LineError> {
         self.line += 1;
         let line = self.line;
         let t = text.trim();
@@ -256,10 +196,7 @@ mod tests {
     #[test]
     fn csv_in_kw_and_wh() {
         let mut p = LineParser::new(Format::Csv);
-        assert_eq!(
-            p.next_line("meter_id,interval_start,wh,extra", Q).unwrap(),
-            None
-        );
+        assert_eq!(p.next_line("meter_id,interval_start,wh,extra", Q).unwrap(), None);
         let r = p.next_line("m1,1700000050,500,x", Q);
         // 1700000050 is not a quarter-hour boundary.
         assert!(r.is_err());
@@ -270,17 +207,9 @@ mod tests {
     #[test]
     fn json_lines() {
         let mut p = LineParser::new(Format::Jsonl);
-        let r = p
-            .next_line(
-                r#"{"meter_id":"m2","interval_start":1699999200,"kw":1.25}"#,
-                Q,
-            )
-            .unwrap()
-            .unwrap();
+        let r = p.next_line(r#"{"meter_id":"m2","interval_start":1699999200,"kw":1.25}"#, Q).unwrap().unwrap();
         assert_eq!(r.kw, 1.25);
-        let e = p
-            .next_line(r#"{"meter_id":"m2","interval_start":1699999200}"#, Q)
-            .unwrap_err();
+        let e = p.next_line(r#"{"meter_id":"m2","interval_start":1699999200}"#, Q).unwrap_err();
         assert_eq!(e.line, 2);
         assert_eq!(e.error.field, "kw");
     }

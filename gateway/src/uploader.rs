@@ -22,11 +22,7 @@ pub struct UploadConfig {
 
 impl Default for UploadConfig {
     fn default() -> Self {
-        Self {
-            batch_max: 1000,
-            backoff: BackoffPolicy::default(),
-            idle_poll_ms: 250,
-        }
+        Self { batch_max: 1000, backoff: BackoffPolicy::default(), idle_poll_ms: 250 }
     }
 }
 
@@ -56,18 +52,8 @@ pub enum UploadEnd {
 }
 
 impl Uploader {
-    pub fn new(
-        identity: GatewayIdentity,
-        outbox: Outbox,
-        client: ServiceClient,
-        config: UploadConfig,
-    ) -> Self {
-        Self {
-            identity,
-            outbox,
-            client,
-            config,
-        }
+    pub fn new(identity: GatewayIdentity, outbox: Outbox, client: ServiceClient, config: UploadConfig) -> Self {
+        Self { identity, outbox, client, config }
     }
 
     /// Uploads until `source_done` is true and the outbox is empty, or until `shutdown` is true.
@@ -94,10 +80,7 @@ impl Uploader {
                 }
                 continue;
             };
-            let wire = batch.to_wire(
-                self.identity.gateway_id.as_str(),
-                self.identity.feeder_id.as_str(),
-            );
+            let wire = batch.to_wire(self.identity.gateway_id.as_str(), self.identity.feeder_id.as_str());
             match self.client.post_batch(&wire).await {
                 Ok(ack) => {
                     self.outbox.acknowledge(&batch.batch_id).await?;
@@ -115,10 +98,7 @@ impl Uploader {
                     failures = failures.saturating_add(1);
                     stats.transient_failures += 1;
                     self.outbox.record_failure(&batch.batch_id, &e).await?;
-                    let delay = self
-                        .config
-                        .backoff
-                        .jittered(failures, rand::rng().random_range(0.5..=1.0));
+                    let delay = self.config.backoff.jittered(failures, rand::rng().random_range(0.5..=1.0));
                     tracing::warn!(batch = %batch.batch_id, error = %e, ?delay, "upload failed; will retry the same batch");
                     tokio::select! {
                         _ = tokio::time::sleep(delay) => {}

@@ -15,18 +15,9 @@ fn check_id(field: &str, raw: &str) -> Result<(), FieldError> {
         return Err(FieldError::new(field, "must not be empty"));
     }
     if raw.len() > MAX_ID_LEN {
-        return Err(FieldError::new(
-            field,
-            format!(
-                "is {} bytes long; at most {MAX_ID_LEN} are allowed",
-                raw.len()
-            ),
-        ));
+        return Err(FieldError::new(field, format!("is {} bytes long; at most {MAX_ID_LEN} are allowed", raw.len())));
     }
-    if let Some(bad) = raw
-        .chars()
-        .find(|c| !(c.is_ascii_alphanumeric() || matches!(c, '-' | '_' | '.' | ':')))
-    {
+    if let Some(bad) = raw.chars().find(|c| !(c.is_ascii_alphanumeric() || matches!(c, '-' | '_' | '.' | ':'))) {
         return Err(FieldError::new(
             field,
             format!("contains {bad:?}; only ASCII letters, digits and - _ . : are allowed"),
@@ -205,14 +196,8 @@ mod tests {
         assert!(MeterId::parse("a:b.c_d").is_ok());
         let e = MeterId::parse("").unwrap_err();
         assert_eq!(e.field, "meter_id");
-        assert!(MeterId::parse("has space")
-            .unwrap_err()
-            .reason
-            .contains("' '"));
-        assert!(FeederId::parse(&"x".repeat(65))
-            .unwrap_err()
-            .reason
-            .contains("65 bytes"));
+        assert!(MeterId::parse("has space").unwrap_err().reason.contains("' '"));
+        assert!(FeederId::parse(&"x".repeat(65)).unwrap_err().reason.contains("65 bytes"));
         assert!(GatewayId::parse("ü").is_err());
     }
 
@@ -221,10 +206,7 @@ mod tests {
         let q = IntervalLength::QUARTER_HOUR;
         assert!(IntervalStart::new(1_700_000_050, q).is_err());
         assert!(IntervalStart::new(1_699_999_200, q).is_ok());
-        assert!(IntervalStart::new(900, q)
-            .unwrap_err()
-            .reason
-            .contains("2000"));
+        assert!(IntervalStart::new(900, q).unwrap_err().reason.contains("2000"));
         let s = IntervalStart::new(1_699_999_200, q).unwrap();
         assert_eq!(s.day_start() % 86_400, 0);
         assert!(s.epoch_s() - s.day_start() < 86_400);

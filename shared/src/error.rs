@@ -13,19 +13,12 @@ pub struct FieldError {
 
 impl FieldError {
     pub fn new(field: impl Into<String>, reason: impl Into<String>) -> Self {
-        Self {
-            field: field.into(),
-            reason: reason.into(),
-        }
+        Self { field: field.into(), reason: reason.into() }
     }
 
     /// Prefixes the field path, e.g. `level` inside `readings[3]` becomes `readings[3].level`.
     pub fn within(mut self, parent: &str) -> Self {
-        self.field = if self.field.is_empty() {
-            parent.to_owned()
-        } else {
-            format!("{parent}.{}", self.field)
-        };
+        self.field = if self.field.is_empty() { parent.to_owned() } else { format!("{parent}.{}", self.field) };
         self
     }
 }

@@ -10,8 +10,6 @@ pub mod recovery;
 pub mod special;
 pub mod wire;
 
-pub use domain::{
-    BatchId, FeederId, GatewayId, IntervalLength, IntervalStart, MeterId, ProfileVersion,
-};
+pub use domain::{BatchId, FeederId, GatewayId, IntervalLength, IntervalStart, MeterId, ProfileVersion};
 pub use error::FieldError;
 pub use profile::{DitherProfile, DitherProfileSpec, NoiseFamily};

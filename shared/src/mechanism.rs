@@ -38,9 +38,7 @@ pub fn draw_dither_kw(profile: &DitherProfile, rng: &mut impl Rng) -> f64 {
 /// Level for a dithered value: the number of boundaries at or below it.
 pub fn level_of(profile: &DitherProfile, dithered_kw: f64) -> u8 {
     // boundaries are strictly increasing: partition_point counts b <= v.
-    let k = profile
-        .boundaries_kw()
-        .partition_point(|b| *b <= dithered_kw);
+    let k = profile.boundaries_kw().partition_point(|b| *b <= dithered_kw);
     // At most 63 boundaries (validated), so k fits a u8.
     k as u8
 }
@@ -69,16 +67,8 @@ pub fn log_likelihood(profile: &DitherProfile, level: u8, x_kw: f64) -> (f64, f6
         return (f64::NEG_INFINITY, 0.0);
     }
     let s = profile.scale_kw();
-    let lower = if k == 0 {
-        None
-    } else {
-        Some((b[k - 1] - x_kw) / s)
-    };
-    let upper = if k == b.len() {
-        None
-    } else {
-        Some((b[k] - x_kw) / s)
-    };
+    let lower = if k == 0 { None } else { Some((b[k - 1] - x_kw) / s) };
+    let upper = if k == b.len() { None } else { Some((b[k] - x_kw) / s) };
     let fam = Family(profile.noise());
     let log_p = fam.log_interval(lower, upper);
     // d/dx [F(zb) - F(za)] = (f(za) - f(zb)) / s, since dz/dx = -1/s.
@@ -177,9 +167,7 @@ mod tests {
         for noise in ["gaussian", "logistic"] {
             let p = profile(noise, 0.3, &[1.0, 2.0, 3.5]);
             for &x in &[-1.0, 0.0, 0.7, 1.5, 2.0, 4.0, 12.0] {
-                let total: f64 = (0..p.levels() as u8)
-                    .map(|k| level_probability(&p, k, x))
-                    .sum();
+                let total: f64 = (0..p.levels() as u8).map(|k| level_probability(&p, k, x)).sum();
                 assert!((total - 1.0).abs() < 1e-12, "{noise} x={x}: {total}");
             }
         }
@@ -193,10 +181,7 @@ mod tests {
             for &x in &[-3.0, 1.5, 7.0] {
                 for k in 0..3u8 {
                     let (l, d) = log_likelihood(&p, k, x);
-                    assert!(
-                        l.is_finite() && d.is_finite(),
-                        "{noise} k={k} x={x}: {l} {d}"
-                    );
+                    assert!(l.is_finite() && d.is_finite(), "{noise} k={k} x={x}: {l} {d}");
                     assert!(l <= 0.0);
                 }
             }
@@ -220,10 +205,7 @@ mod tests {
     #[test]
     fn dither_is_zero_mean_with_the_stated_spread() {
         let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(7);
-        for (noise, sd_factor) in [
-            ("gaussian", 1.0),
-            ("logistic", std::f64::consts::PI / 3f64.sqrt()),
-        ] {
+        for (noise, sd_factor) in [("gaussian", 1.0), ("logistic", std::f64::consts::PI / 3f64.sqrt())] {
             let p = profile(noise, 0.5, &[1.0]);
             let n = 200_000;
             let draws: Vec<f64> = (0..n).map(|_| draw_dither_kw(&p, &mut rng)).collect();
@@ -231,15 +213,8 @@ mod tests {
             let var = draws.iter().map(|d| (d - mean).powi(2)).sum::<f64>() / n as f64;
             let sd = 0.5 * sd_factor;
             // Standard error of the mean is sd/sqrt(n) ≈ 0.002: allow 5 of them.
-            assert!(
-                mean.abs() < 5.0 * sd / (n as f64).sqrt(),
-                "{noise} mean {mean}"
-            );
-            assert!(
-                (var.sqrt() / sd - 1.0).abs() < 0.01,
-                "{noise} sd {}",
-                var.sqrt()
-            );
+            assert!(mean.abs() < 5.0 * sd / (n as f64).sqrt(), "{noise} mean {mean}");
+            assert!((var.sqrt() / sd - 1.0).abs() < 0.01, "{noise} sd {}", var.sqrt());
         }
     }
 
@@ -263,12 +238,7 @@ mod tests {
             ("gaussian", 0.3, vec![1.0, 2.0], 1.3),
             ("logistic", 0.3, vec![1.0, 2.0], 1.3),
             ("gaussian", 0.6, vec![0.5, 1.0, 2.0], 0.8),
-            (
-                "logistic",
-                0.1,
-                (1..=7).map(|i| f64::from(i) * 0.5).collect(),
-                2.2,
-            ),
+            ("logistic", 0.1, (1..=7).map(|i| f64::from(i) * 0.5).collect(), 2.2),
         ];
         for (noise, s, b, x) in cases {
             let p = profile(noise, s, &b);
@@ -287,10 +257,7 @@ mod tests {
                 }
             }
             let crit = chi2_critical_001(k - 1);
-            assert!(
-                chi2 < crit,
-                "{noise} s={s} x={x}: chi2 {chi2:.2} >= {crit} ({counts:?})"
-            );
+            assert!(chi2 < crit, "{noise} s={s} x={x}: chi2 {chi2:.2} >= {crit} ({counts:?})");
         }
     }
 

@@ -81,43 +81,27 @@ impl TryFrom<DitherProfileSpec> for DitherProfile {
         if !spec.scale_kw.is_finite() || !(MIN_SCALE_KW..=MAX_SCALE_KW).contains(&spec.scale_kw) {
             return Err(FieldError::new(
                 "scale_kw",
-                format!(
-                    "is {}; it must be a number of kW between {MIN_SCALE_KW} and {MAX_SCALE_KW}",
-                    spec.scale_kw
-                ),
+                format!("is {}; it must be a number of kW between {MIN_SCALE_KW} and {MAX_SCALE_KW}", spec.scale_kw),
             ));
         }
         let b = &spec.boundaries_kw;
         if b.is_empty() {
-            return Err(FieldError::new(
-                "boundaries_kw",
-                "is empty; at least one boundary (two levels) is needed",
-            ));
+            return Err(FieldError::new("boundaries_kw", "is empty; at least one boundary (two levels) is needed"));
         }
         if b.len() >= MAX_LEVELS {
             return Err(FieldError::new(
                 "boundaries_kw",
-                format!(
-                    "has {} boundaries; at most {} are allowed",
-                    b.len(),
-                    MAX_LEVELS - 1
-                ),
+                format!("has {} boundaries; at most {} are allowed", b.len(), MAX_LEVELS - 1),
             ));
         }
         for (i, v) in b.iter().enumerate() {
             if !v.is_finite() {
-                return Err(FieldError::new(
-                    format!("boundaries_kw[{i}]"),
-                    "is not a finite number",
-                ));
+                return Err(FieldError::new(format!("boundaries_kw[{i}]"), "is not a finite number"));
             }
             if i > 0 && *v - b[i - 1] < MIN_BOUNDARY_GAP_KW * (1.0 - 1e-9) {
                 return Err(FieldError::new(
                     format!("boundaries_kw[{i}]"),
-                    format!(
-                        "is {v} after {}; boundaries must increase by at least {MIN_BOUNDARY_GAP_KW} kW",
-                        b[i - 1]
-                    ),
+                    format!("is {v} after {}; boundaries must increase by at least {MIN_BOUNDARY_GAP_KW} kW", b[i - 1]),
                 ));
             }
         }
@@ -184,11 +168,7 @@ impl DitherProfile {
             self.levels(),
             b.join(", "),
             self.interval.seconds(),
-            if self.send_registers {
-                ", daily register reads"
-            } else {
-                ""
-            }
+            if self.send_registers { ", daily register reads" } else { "" }
         )
     }
 }
@@ -221,62 +201,14 @@ mod tests {
     #[test]
     fn each_bad_field_is_named() {
         let cases: Vec<(DitherProfileSpec, &str)> = vec![
-            (
-                DitherProfileSpec {
-                    noise: "laplace".into(),
-                    ..spec()
-                },
-                "noise",
-            ),
-            (
-                DitherProfileSpec {
-                    scale_kw: 0.0,
-                    ..spec()
-                },
-                "scale_kw",
-            ),
-            (
-                DitherProfileSpec {
-                    scale_kw: f64::NAN,
-                    ..spec()
-                },
-                "scale_kw",
-            ),
-            (
-                DitherProfileSpec {
-                    boundaries_kw: vec![],
-                    ..spec()
-                },
-                "boundaries_kw",
-            ),
-            (
-                DitherProfileSpec {
-                    boundaries_kw: vec![2.0, 1.0],
-                    ..spec()
-                },
-                "boundaries_kw[1]",
-            ),
-            (
-                DitherProfileSpec {
-                    boundaries_kw: vec![1.0, f64::INFINITY],
-                    ..spec()
-                },
-                "boundaries_kw[1]",
-            ),
-            (
-                DitherProfileSpec {
-                    boundaries_kw: (0..64).map(f64::from).collect(),
-                    ..spec()
-                },
-                "boundaries_kw",
-            ),
-            (
-                DitherProfileSpec {
-                    interval_s: 60,
-                    ..spec()
-                },
-                "interval_s",
-            ),
+            (DitherProfileSpec { noise: "laplace".into(), ..spec() }, "noise"),
+            (DitherProfileSpec { scale_kw: 0.0, ..spec() }, "scale_kw"),
+            (DitherProfileSpec { scale_kw: f64::NAN, ..spec() }, "scale_kw"),
+            (DitherProfileSpec { boundaries_kw: vec![], ..spec() }, "boundaries_kw"),
+            (DitherProfileSpec { boundaries_kw: vec![2.0, 1.0], ..spec() }, "boundaries_kw[1]"),
+            (DitherProfileSpec { boundaries_kw: vec![1.0, f64::INFINITY], ..spec() }, "boundaries_kw[1]"),
+            (DitherProfileSpec { boundaries_kw: (0..64).map(f64::from).collect(), ..spec() }, "boundaries_kw"),
+            (DitherProfileSpec { interval_s: 60, ..spec() }, "interval_s"),
         ];
         for (s, field) in cases {
             let e = DitherProfile::try_from(s).unwrap_err();

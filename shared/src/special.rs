@@ -86,10 +86,7 @@ mod tests {
         for &z in &[-20.0f64, 0.0] {
             let lo = log_ndtr(z - 1e-12);
             let hi = log_ndtr(z + 1e-12);
-            assert!(
-                ((lo - hi) / lo.abs().max(1e-300)).abs() < 1e-9,
-                "z={z}: {lo} vs {hi}"
-            );
+            assert!(((lo - hi) / lo.abs().max(1e-300)).abs() < 1e-9, "z={z}: {lo} vs {hi}");
         }
     }
 

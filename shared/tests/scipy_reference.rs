@@ -14,14 +14,10 @@ use serde_json::Value;
 
 fn reference() -> Value {
     let python = std::env::var("METERVEIL_PYTHON").unwrap_or_else(|_| "python3".into());
-    let script = concat!(
-        env!("CARGO_MANIFEST_DIR"),
-        "/../tests/reference/likelihood_reference.py"
-    );
-    let out = Command::new(&python)
-        .arg(script)
-        .output()
-        .unwrap_or_else(|e| panic!("cannot run {python}: {e}; run the README test command, which installs the reference packages"));
+    let script = concat!(env!("CARGO_MANIFEST_DIR"), "/../tests/reference/likelihood_reference.py");
+    let out = Command::new(&python).arg(script).output().unwrap_or_else(|e| {
+        panic!("cannot run {python}: {e}; run the README test command, which installs the reference packages")
+    });
     assert!(
         out.status.success(),
         "reference script failed (is scipy installed? see tests/reference/requirements.txt):\n{}",
@@ -42,24 +38,13 @@ fn log_likelihood_matches_scipy_and_mpmath() {
     for c in r["one_sided"].as_array().expect("one_sided") {
         let z = c["z"].as_f64().expect("z");
         let want = c["log_ndtr"].as_f64().expect("log_ndtr");
-        assert!(
-            close(log_ndtr(z), want, 1e-12),
-            "log_ndtr({z}) = {} vs scipy {want}",
-            log_ndtr(z)
-        );
+        assert!(close(log_ndtr(z), want, 1e-12), "log_ndtr({z}) = {} vs scipy {want}", log_ndtr(z));
         let want = c["log_logistic_cdf"].as_f64().expect("logistic");
-        assert!(
-            close(log_logistic_cdf(z), want, 1e-12),
-            "logistic logcdf({z})"
-        );
+        assert!(close(log_logistic_cdf(z), want, 1e-12), "logistic logcdf({z})");
     }
 
     let cases = r["cases"].as_array().expect("cases");
-    assert!(
-        cases.len() > 200,
-        "reference grid is too small: {}",
-        cases.len()
-    );
+    assert!(cases.len() > 200, "reference grid is too small: {}", cases.len());
     let mut worst_z = 0.0f64;
     for c in cases {
         let spec: DitherProfileSpec = serde_json::from_value(serde_json::json!({
@@ -70,19 +55,10 @@ fn log_likelihood_matches_scipy_and_mpmath() {
         let level = c["level"].as_u64().expect("level") as u8;
         let x = c["x_kw"].as_f64().expect("x");
         let (lp, dlp) = log_likelihood(&p, level, x);
-        let (want_lp, want_dlp) = (
-            c["log_p"].as_f64().expect("lp"),
-            c["dlog_p"].as_f64().expect("dlp"),
-        );
-        assert!(
-            lp.is_finite() && dlp.is_finite(),
-            "{c}: non-finite {lp} {dlp}"
-        );
+        let (want_lp, want_dlp) = (c["log_p"].as_f64().expect("lp"), c["dlog_p"].as_f64().expect("dlp"));
+        assert!(lp.is_finite() && dlp.is_finite(), "{c}: non-finite {lp} {dlp}");
         assert!(close(lp, want_lp, 1e-9), "{c}: log_p {lp} vs {want_lp}");
-        assert!(
-            close(dlp, want_dlp, 1e-7),
-            "{c}: dlog_p {dlp} vs {want_dlp}"
-        );
+        assert!(close(dlp, want_dlp, 1e-7), "{c}: dlog_p {dlp} vs {want_dlp}");
         for b in p.boundaries_kw() {
             worst_z = worst_z.max(((b - x) / p.scale_kw()).abs());
         }

@@ -57,15 +57,10 @@ pub async fn start_with_store(
     until: Option<std::pin::Pin<Box<dyn std::future::Future<Output = ()> + Send>>>,
 ) -> anyhow::Result<RunningService> {
     let metrics = Arc::new(Metrics::default());
-    let listener = tokio::net::TcpListener::bind(config.bind)
-        .await
-        .with_context(|| format!("binding {}", config.bind))?;
+    let listener =
+        tokio::net::TcpListener::bind(config.bind).await.with_context(|| format!("binding {}", config.bind))?;
     let addr = listener.local_addr()?;
-    let state = AppState {
-        store: store.clone(),
-        config: Arc::new(config),
-        metrics: metrics.clone(),
-    };
+    let state = AppState { store: store.clone(), config: Arc::new(config), metrics: metrics.clone() };
     let app = routes::router(state).layer(TraceLayer::new_for_http());
     let (tx, rx) = oneshot::channel::<()>();
     let handle = tokio::spawn(async move {
@@ -83,11 +78,5 @@ pub async fn start_with_store(
             .await
     });
     tracing::info!(%addr, "utility service listening");
-    Ok(RunningService {
-        addr,
-        store,
-        metrics,
-        shutdown: Some(tx),
-        handle,
-    })
+    Ok(RunningService { addr, store, metrics, shutdown: Some(tx), handle })
 }

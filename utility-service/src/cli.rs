@@ -53,12 +53,7 @@ pub enum Command {
 
 pub async fn execute(cli: Cli) -> anyhow::Result<()> {
     match cli.command {
-        Command::Serve {
-            bind,
-            database_url,
-            operator_token,
-            body_limit_bytes,
-        } => {
+        Command::Serve { bind, database_url, operator_token, body_limit_bytes } => {
             if operator_token.len() < 16 {
                 anyhow::bail!("--operator-token: use at least 16 characters");
             }
@@ -74,18 +69,8 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
             println!("listening on {}", svc.url());
             svc.wait().await
         }
-        Command::Demo {
-            meters,
-            days,
-            dir,
-            truth,
-        } => {
-            let opts = DemoOptions {
-                meters,
-                days,
-                dir,
-                truth,
-            };
+        Command::Demo { meters, days, dir, truth } => {
+            let opts = DemoOptions { meters, days, dir, truth };
             let summary = demo::run(&opts).await?;
             print!("{}", demo::render(&summary));
             Ok(())

@@ -36,9 +36,7 @@ pub struct DemoSummary {
 fn demo_token() -> String {
     use rand::Rng;
     let mut rng = rand::rng();
-    (0..32)
-        .map(|_| char::from(b"abcdefghijklmnopqrstuvwxyz0123456789"[rng.random_range(0..36)]))
-        .collect()
+    (0..32).map(|_| char::from(b"abcdefghijklmnopqrstuvwxyz0123456789"[rng.random_range(0..36)])).collect()
 }
 
 pub async fn run(opts: &DemoOptions) -> anyhow::Result<DemoSummary> {
@@ -48,9 +46,7 @@ pub async fn run(opts: &DemoOptions) -> anyhow::Result<DemoSummary> {
             (d.clone(), None)
         }
         None => {
-            let t = tempfile::Builder::new()
-                .prefix("meterveil-demo-")
-                .tempdir()?;
+            let t = tempfile::Builder::new().prefix("meterveil-demo-").tempdir()?;
             (t.path().to_path_buf(), Some(t))
         }
     };
@@ -61,20 +57,10 @@ pub async fn run(opts: &DemoOptions) -> anyhow::Result<DemoSummary> {
     let outboxes = dir.join("outboxes");
     let _ = std::fs::remove_dir_all(&outboxes);
     let token = demo_token();
-    let config = ServiceConfig::local(
-        format!("sqlite:{}", db.display()),
-        Secret::new(token.clone()),
-    );
+    let config = ServiceConfig::local(format!("sqlite:{}", db.display()), Secret::new(token.clone()));
     let svc = app::start(config).await?;
-    eprintln!(
-        "demo: service at {} with database {}",
-        svc.url(),
-        db.display()
-    );
-    eprintln!(
-        "demo: simulating {} meters of Quillmarsh for {} days ...",
-        opts.meters, opts.days
-    );
+    eprintln!("demo: service at {} with database {}", svc.url(), db.display());
+    eprintln!("demo: simulating {} meters of Quillmarsh for {} days ...", opts.meters, opts.days);
 
     let mut sim = SimulateOptions::new(svc.url(), &outboxes);
     sim.operator_token = Some(token);
@@ -102,35 +88,19 @@ pub async fn run(opts: &DemoOptions) -> anyhow::Result<DemoSummary> {
 pub fn render(s: &DemoSummary) -> String {
     let sim = &s.simulation;
     let mut o = String::new();
-    let _ = writeln!(
-        o,
-        "\nMeterveil demo: the town of {} ({} days of 15-minute data)",
-        sim.town, sim.days
-    );
-    let _ = writeln!(
-        o,
-        "  meters {}  feeders {}  gateways {}",
-        sim.meters, sim.feeders, sim.gateways
-    );
+    let _ = writeln!(o, "\nMeterveil demo: the town of {} ({} days of 15-minute data)", sim.town, sim.days);
+    let _ = writeln!(o, "  meters {}  feeders {}  gateways {}", sim.meters, sim.feeders, sim.gateways);
     let _ = writeln!(
         o,
         "  readings generated {}  levels uploaded {}  stored {}  rejected {}  duplicates {}",
-        sim.readings_generated,
-        sim.readings_acknowledged,
-        s.readings_stored,
-        s.readings_rejected,
-        s.duplicates
+        sim.readings_generated, sim.readings_acknowledged, s.readings_stored, s.readings_rejected, s.duplicates
     );
     let _ = writeln!(
         o,
         "  register reads queued {}  upload retries {}  refused batches {}  wall time {:.1} s",
         sim.registers_queued, sim.transient_failures, sim.refused_batches, sim.elapsed_s
     );
-    let _ = writeln!(
-        o,
-        "\n  {:<16} {:>6} {:>9} {:>9}  dither profile",
-        "feeder", "meters", "readings", "registers"
-    );
+    let _ = writeln!(o, "\n  {:<16} {:>6} {:>9} {:>9}  dither profile", "feeder", "meters", "readings", "registers");
     for f in &s.feeders {
         let profile = f
             .current_profile
@@ -140,11 +110,8 @@ pub fn render(s: &DemoSummary) -> String {
                 Err(e) => format!("v{}: invalid ({e})", p.version),
             })
             .unwrap_or_else(|| "none".into());
-        let _ = writeln!(
-            o,
-            "  {:<16} {:>6} {:>9} {:>9}  {}",
-            f.feeder_id, f.meters, f.readings, f.register_reads, profile
-        );
+        let _ =
+            writeln!(o, "  {:<16} {:>6} {:>9} {:>9}  {}", f.feeder_id, f.meters, f.readings, f.register_reads, profile);
     }
     let _ = writeln!(o, "\n  database: {}", s.database.display());
     let _ = writeln!(

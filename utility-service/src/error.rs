@@ -70,16 +70,8 @@ impl IntoResponse for ApiError {
                 FieldError::new("", "internal error; see the service log")
             }
         };
-        let message = if fe.field.is_empty() {
-            fe.reason.clone()
-        } else {
-            fe.to_string()
-        };
-        let body = ErrorWire {
-            field: fe.field,
-            reason: fe.reason,
-            message,
-        };
+        let message = if fe.field.is_empty() { fe.reason.clone() } else { fe.to_string() };
+        let body = ErrorWire { field: fe.field, reason: fe.reason, message };
         (status, Json(body)).into_response()
     }
 }

@@ -87,17 +87,10 @@ pub fn validate(
     ctx: &IngestContext<'_>,
 ) -> Result<ValidatedBatch, ApiError> {
     if batch.readings.is_empty() && batch.registers.is_empty() {
-        return Err(ApiError::invalid(
-            "readings",
-            "batch is empty: it has no readings and no register reads",
-        ));
+        return Err(ApiError::invalid("readings", "batch is empty: it has no readings and no register reads"));
     }
-    let by_version: HashMap<u32, (usize, &ProfileRecord)> = ctx
-        .profiles
-        .iter()
-        .enumerate()
-        .map(|(i, p)| (p.version.0, (i, p)))
-        .collect();
+    let by_version: HashMap<u32, (usize, &ProfileRecord)> =
+        ctx.profiles.iter().enumerate().map(|(i, p)| (p.version.0, (i, p))).collect();
     let feeder = &header.feeder_id;
     let mut seen: HashMap<(&str, i64), usize> = HashMap::with_capacity(batch.readings.len());
     let mut versions_used: Vec<u32> = Vec::new();
@@ -105,8 +98,7 @@ pub fn validate(
 
     for (i, r) in batch.readings.iter().enumerate() {
         let at = |f: &str| format!("readings[{i}].{f}");
-        let meter_id =
-            MeterId::parse_field(&at("meter_id"), &r.meter_id).map_err(ApiError::Invalid)?;
+        let meter_id = MeterId::parse_field(&at("meter_id"), &r.meter_id).map_err(ApiError::Invalid)?;
         if !ctx.known_meters.contains(&r.meter_id) {
             return Err(ApiError::invalid(
                 at("meter_id"),
@@ -116,15 +108,11 @@ pub fn validate(
         let Some(&(idx, rec)) = by_version.get(&r.profile_version) else {
             return Err(ApiError::invalid(
                 at("profile_version"),
-                format!(
-                    "feeder {feeder} has no profile version {}",
-                    r.profile_version
-                ),
+                format!("feeder {feeder} has no profile version {}", r.profile_version),
             ));
         };
         let len = rec.profile.interval();
-        IntervalStart::new_field(&at("interval_start"), r.interval_start, len)
-            .map_err(ApiError::Invalid)?;
+        IntervalStart::new_field(&at("interval_start"), r.interval_start, len).map_err(ApiError::Invalid)?;
         let interval_end = r.interval_start + i64::from(len.seconds());
         if interval_end > ctx.now + ctx.clock_tolerance_s {
             return Err(ApiError::invalid(
@@ -189,8 +177,7 @@ pub fn validate(
                 format!("no profile of feeder {feeder} allows register reads"),
             ));
         }
-        let meter_id =
-            MeterId::parse_field(&at("meter_id"), &g.meter_id).map_err(ApiError::Invalid)?;
+        let meter_id = MeterId::parse_field(&at("meter_id"), &g.meter_id).map_err(ApiError::Invalid)?;
         if !ctx.known_meters.contains(&g.meter_id) {
             return Err(ApiError::invalid(
                 at("meter_id"),
@@ -198,10 +185,7 @@ pub fn validate(
             ));
         }
         if g.read_at < meterveil_shared::domain::EARLIEST_EPOCH_S {
-            return Err(ApiError::invalid(
-                at("read_at"),
-                format!("{} is before 2000-01-01T00:00:00Z", g.read_at),
-            ));
+            return Err(ApiError::invalid(at("read_at"), format!("{} is before 2000-01-01T00:00:00Z", g.read_at)));
         }
         if g.read_at > ctx.now + ctx.clock_tolerance_s {
             return Err(ApiError::invalid(
@@ -210,10 +194,7 @@ pub fn validate(
             ));
         }
         if g.wh_total > i64::MAX as u64 {
-            return Err(ApiError::invalid(
-                at("wh_total"),
-                "is larger than any register can hold",
-            ));
+            return Err(ApiError::invalid(at("wh_total"), "is larger than any register can hold"));
         }
         if !seen_reg.insert((g.meter_id.as_str(), g.read_at)) {
             return Err(ApiError::invalid(
@@ -221,11 +202,7 @@ pub fn validate(
                 "repeats an earlier register read (same meter_id and read_at)",
             ));
         }
-        registers.push(ValidRegister {
-            meter_id,
-            read_at: g.read_at,
-            wh_total: g.wh_total,
-        });
+        registers.push(ValidRegister { meter_id, read_at: g.read_at, wh_total: g.wh_total });
     }
 
     Ok(ValidatedBatch {

@@ -10,10 +10,7 @@ async fn main() -> anyhow::Result<()> {
         _ => "info,sqlx=warn,tower_http=warn",
     };
     tracing_subscriber::fmt()
-        .with_env_filter(
-            tracing_subscriber::EnvFilter::try_from_default_env()
-                .unwrap_or_else(|_| default.into()),
-        )
+        .with_env_filter(tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| default.into()))
         .with_writer(std::io::stderr)
         .init();
     meterveil_service::cli::execute(cli).await

@@ -29,49 +29,22 @@ impl Default for Metrics {
         let readings_duplicate = Counter::default();
         let readings_rejected = Counter::default();
         let registers_stored = Counter::default();
-        registry.register(
-            "ingest_batches",
-            "Upload batches by outcome",
-            batches.clone(),
-        );
-        registry.register(
-            "readings_stored",
-            "Quantized readings newly stored",
-            readings_stored.clone(),
-        );
+        registry.register("ingest_batches", "Upload batches by outcome", batches.clone());
+        registry.register("readings_stored", "Quantized readings newly stored", readings_stored.clone());
         registry.register(
             "readings_duplicate",
             "Readings received again for an already stored (meter, interval start)",
             readings_duplicate.clone(),
         );
-        registry.register(
-            "readings_rejected",
-            "Readings in rejected batches",
-            readings_rejected.clone(),
-        );
-        registry.register(
-            "register_reads_stored",
-            "Register reads newly stored",
-            registers_stored.clone(),
-        );
-        Self {
-            registry,
-            batches,
-            readings_stored,
-            readings_duplicate,
-            readings_rejected,
-            registers_stored,
-        }
+        registry.register("readings_rejected", "Readings in rejected batches", readings_rejected.clone());
+        registry.register("register_reads_stored", "Register reads newly stored", registers_stored.clone());
+        Self { registry, batches, readings_stored, readings_duplicate, readings_rejected, registers_stored }
     }
 }
 
 impl Metrics {
     pub fn batch(&self, outcome: &str) {
-        self.batches
-            .get_or_create(&OutcomeLabel {
-                outcome: outcome.to_owned(),
-            })
-            .inc();
+        self.batches.get_or_create(&OutcomeLabel { outcome: outcome.to_owned() }).inc();
     }
 
     pub fn render(&self) -> String {

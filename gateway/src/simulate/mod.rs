@@ -87,22 +87,14 @@ pub fn starting_profiles() -> HashMap<&'static str, DitherProfileSpec> {
     HashMap::from([
         ("QM-CHAPEL-ROW", spec("gaussian", 0.3, &[1.0, 2.0], true)),
         ("QM-MILLPOND", spec("gaussian", 0.3, &[0.5, 1.5, 3.0], true)),
-        (
-            "QM-FERRY-LANE",
-            spec("logistic", 0.25, &[1.0, 2.0, 4.0], false),
-        ),
-        (
-            "QM-UPPER-FIELDS",
-            spec("gaussian", 0.6, &[1.0, 3.0, 6.0], true),
-        ),
+        ("QM-FERRY-LANE", spec("logistic", 0.25, &[1.0, 2.0, 4.0], false)),
+        ("QM-UPPER-FIELDS", spec("gaussian", 0.6, &[1.0, 3.0, 6.0], true)),
     ])
 }
 
 fn latest_midnight() -> i64 {
-    let now = std::time::SystemTime::now()
-        .duration_since(std::time::UNIX_EPOCH)
-        .map(|d| d.as_secs() as i64)
-        .unwrap_or(0);
+    let now =
+        std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).map(|d| d.as_secs() as i64).unwrap_or(0);
     now - now.rem_euclid(86_400)
 }
 
@@ -121,42 +113,23 @@ pub async fn provision(service_url: &str, token: &str, town: &Town) -> anyhow::R
     };
     let profiles = starting_profiles();
     for f in &town.feeders {
-        let body = NewFeederWire {
-            feeder_id: f.feeder_id.clone(),
-            name: f.name.clone(),
-        };
-        let r = http
-            .post(format!("{base}/v1/feeders"))
-            .bearer_auth(token)
-            .json(&body)
-            .send()
-            .await?;
+        let body = NewFeederWire { feeder_id: f.feeder_id.clone(), name: f.name.clone() };
+        let r = http.post(format!("{base}/v1/feeders")).bearer_auth(token).json(&body).send().await?;
         check(r, format!("registering feeder {}", f.feeder_id)).await?;
-        let ids: Vec<String> = town
-            .households
-            .iter()
-            .filter(|h| h.feeder_id == f.feeder_id)
-            .map(|h| h.meter_id.clone())
-            .collect();
+        let ids: Vec<String> =
+            town.households.iter().filter(|h| h.feeder_id == f.feeder_id).map(|h| h.meter_id.clone()).collect();
         for chunk in ids.chunks(500) {
             let r = http
                 .post(format!("{base}/v1/feeders/{}/meters", f.feeder_id))
                 .bearer_auth(token)
-                .json(&NewMetersWire {
-                    meter_ids: chunk.to_vec(),
-                })
+                .json(&NewMetersWire { meter_ids: chunk.to_vec() })
                 .send()
                 .await?;
             check(r, format!("registering meters on {}", f.feeder_id)).await?;
         }
-        let current = http
-            .get(format!("{base}/v1/feeders/{}/profile", f.feeder_id))
-            .send()
-            .await?;
+        let current = http.get(format!("{base}/v1/feeders/{}/profile", f.feeder_id)).send().await?;
         if current.status() == reqwest::StatusCode::NOT_FOUND {
-            let spec = profiles
-                .get(f.feeder_id.as_str())
-                .context("starting profile")?;
+            let spec = profiles.get(f.feeder_id.as_str()).context("starting profile")?;
             let r = http
                 .post(format!("{base}/v1/feeders/{}/profiles", f.feeder_id))
                 .bearer_auth(token)
@@ -171,23 +144,14 @@ pub async fn provision(service_url: &str, token: &str, town: &Town) -> anyhow::R
 
 /// Writes the town's true loads (for evaluation only; never sent anywhere).
 pub fn write_truth(town: &Town, path: &Path) -> anyhow::Result<()> {
-    let file =
-        std::fs::File::create(path).with_context(|| format!("creating {}", path.display()))?;
+    let file = std::fs::File::create(path).with_context(|| format!("creating {}", path.display()))?;
     let mut w = std::io::BufWriter::new(file);
     writeln!(w, "meter_id,feeder_id,kind,interval_start,kw")?;
     for h in &town.households {
         for d in 0..town.days {
             let day = town.start_day + i64::from(d) * 86_400;
             for (i, kw) in town.day_load(h, d).iter().enumerate() {
-                writeln!(
-                    w,
-                    "{},{},{},{},{:.6}",
-                    h.meter_id,
-                    h.feeder_id,
-                    h.kind.as_str(),
-                    day + i as i64 * 900,
-                    kw
-                )?;
+                writeln!(w, "{},{},{},{},{:.6}", h.meter_id, h.feeder_id, h.kind.as_str(), day + i as i64 * 900, kw)?;
             }
         }
     }
@@ -208,17 +172,12 @@ pub async fn run(opts: &SimulateOptions) -> anyhow::Result<SimulationReport> {
     if let Some(path) = &opts.truth {
         write_truth(&town, path)?;
     }
-    std::fs::create_dir_all(&opts.work_dir)
-        .with_context(|| format!("creating {}", opts.work_dir.display()))?;
+    std::fs::create_dir_all(&opts.work_dir).with_context(|| format!("creating {}", opts.work_dir.display()))?;
 
     let mut tasks = Vec::new();
     let mut gateways = 0;
     for f in &town.feeders {
-        let members: Vec<&town::Household> = town
-            .households
-            .iter()
-            .filter(|h| h.feeder_id == f.feeder_id)
-            .collect();
+        let members: Vec<&town::Household> = town.households.iter().filter(|h| h.feeder_id == f.feeder_id).collect();
         for (g, group) in members.chunks(opts.meters_per_gateway.max(1)).enumerate() {
             gateways += 1;
             let gateway_id = format!("{}-GW{:02}", f.feeder_id, g + 1);
@@ -231,9 +190,7 @@ pub async fn run(opts: &SimulateOptions) -> anyhow::Result<SimulationReport> {
             let town = town.clone();
             let url = opts.service_url.clone();
             let upload = opts.upload;
-            tasks.push(tokio::spawn(async move {
-                run_gateway(identity, outbox, url, upload, town, group).await
-            }));
+            tasks.push(tokio::spawn(async move { run_gateway(identity, outbox, url, upload, town, group).await }));
         }
     }
     let mut report = SimulationReport {
@@ -274,21 +231,14 @@ async fn run_gateway(
     let (_stop_tx, stop_rx) = watch::channel(false);
     let uploader = gw.uploader(upload);
     let up = tokio::spawn(async move { uploader.run(done_rx, stop_rx).await });
-    let ids: Vec<MeterId> = group
-        .iter()
-        .map(|h| MeterId::parse(&h.meter_id))
-        .collect::<Result<_, _>>()?;
+    let ids: Vec<MeterId> = group.iter().map(|h| MeterId::parse(&h.meter_id)).collect::<Result<_, _>>()?;
     let (mut generated, mut levels, mut registers) = (0, 0, 0);
     for d in 0..town.days {
         let day = town.start_day + i64::from(d) * 86_400;
         let mut readings = Vec::with_capacity(group.len() * 96);
         for (h, id) in group.iter().zip(&ids) {
             for (i, kw) in town.day_load(h, d).iter().enumerate() {
-                readings.push(RawReading {
-                    meter_id: id.clone(),
-                    interval_start: day + i as i64 * 900,
-                    kw: *kw,
-                });
+                readings.push(RawReading { meter_id: id.clone(), interval_start: day + i as i64 * 900, kw: *kw });
             }
         }
         generated += readings.len() as u64;

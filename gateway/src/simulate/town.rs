@@ -85,26 +85,14 @@ struct FeederPlan {
 }
 
 const FEEDERS: [FeederPlan; 4] = [
-    FeederPlan {
-        id: "QM-CHAPEL-ROW",
-        name: "Chapel Row terraces",
-        mix: [0.45, 0.2, 0.1, 0.15, 0.1, 0.0, 0.0, 0.0],
-    },
-    FeederPlan {
-        id: "QM-MILLPOND",
-        name: "Millpond estate",
-        mix: [0.3, 0.25, 0.05, 0.1, 0.3, 0.0, 0.0, 0.0],
-    },
+    FeederPlan { id: "QM-CHAPEL-ROW", name: "Chapel Row terraces", mix: [0.45, 0.2, 0.1, 0.15, 0.1, 0.0, 0.0, 0.0] },
+    FeederPlan { id: "QM-MILLPOND", name: "Millpond estate", mix: [0.3, 0.25, 0.05, 0.1, 0.3, 0.0, 0.0, 0.0] },
     FeederPlan {
         id: "QM-FERRY-LANE",
         name: "Ferry Lane high street",
         mix: [0.25, 0.1, 0.15, 0.1, 0.05, 0.25, 0.1, 0.0],
     },
-    FeederPlan {
-        id: "QM-UPPER-FIELDS",
-        name: "Upper Fields rural",
-        mix: [0.2, 0.15, 0.0, 0.35, 0.05, 0.0, 0.0, 0.25],
-    },
+    FeederPlan { id: "QM-UPPER-FIELDS", name: "Upper Fields rural", mix: [0.2, 0.15, 0.0, 0.35, 0.05, 0.0, 0.0, 0.25] },
 ];
 
 #[derive(Debug, Clone)]
@@ -136,11 +124,8 @@ impl Town {
         'outer: for plan in &FEEDERS {
             let total: f64 = plan.mix.iter().sum();
             // Deterministic apportionment of kinds, so every kind on a feeder appears.
-            let mut counts: Vec<usize> = plan
-                .mix
-                .iter()
-                .map(|w| (w / total * per_feeder as f64).floor() as usize)
-                .collect();
+            let mut counts: Vec<usize> =
+                plan.mix.iter().map(|w| (w / total * per_feeder as f64).floor() as usize).collect();
             let mut short = per_feeder - counts.iter().sum::<usize>();
             for (i, w) in plan.mix.iter().enumerate().cycle() {
                 if short == 0 {
@@ -159,31 +144,17 @@ impl Town {
                         break 'outer;
                     }
                     n += 1;
-                    households.push(Household::new(
-                        format!("QM-{short_id}-{n:04}"),
-                        plan.id,
-                        *k,
-                        &mut rng,
-                    ));
+                    households.push(Household::new(format!("QM-{short_id}-{n:04}"), plan.id, *k, &mut rng));
                 }
             }
         }
         let temp_noise = Normal::new(0.0, 2.0).expect("valid normal");
         let temperature_c = (0..days)
-            .map(|d| {
-                4.0 + 3.0 * (2.0 * std::f64::consts::PI * f64::from(d) / 28.0).sin()
-                    + temp_noise.sample(&mut rng)
-            })
+            .map(|d| 4.0 + 3.0 * (2.0 * std::f64::consts::PI * f64::from(d) / 28.0).sin() + temp_noise.sample(&mut rng))
             .collect();
         Self {
             name: "Quillmarsh",
-            feeders: FEEDERS
-                .iter()
-                .map(|p| Feeder {
-                    feeder_id: p.id.into(),
-                    name: p.name.into(),
-                })
-                .collect(),
+            feeders: FEEDERS.iter().map(|p| Feeder { feeder_id: p.id.into(), name: p.name.into() }).collect(),
             households,
             start_day,
             days,
@@ -234,16 +205,9 @@ impl Household {
         let mut rng = ChaCha8Rng::seed_from_u64(self.seed ^ (u64::from(d) << 32) ^ 0x9e37_79b9);
         let weekend = weekday >= 5;
         let jitter = Normal::new(0.0, 0.35).expect("valid normal");
-        let wake = if weekend {
-            self.wake_h + 1.5
-        } else {
-            self.wake_h
-        } + jitter.sample(&mut rng);
+        let wake = if weekend { self.wake_h + 1.5 } else { self.wake_h } + jitter.sample(&mut rng);
         let dinner = self.dinner_h + jitter.sample(&mut rng);
-        let amp = self.scale
-            * LogNormal::new(0.0, 0.15)
-                .expect("valid lognormal")
-                .sample(&mut rng);
+        let amp = self.scale * LogNormal::new(0.0, 0.15).expect("valid lognormal").sample(&mut rng);
         let away_all_day = self.kind.is_household() && rng.random_bool(0.04);
         let cold = ((16.0 - temp_c) / 10.0).max(0.0);
         let ev_charge = match self.kind {
@@ -255,11 +219,7 @@ impl Household {
         let mut out = [0.0; 96];
         for (i, v) in out.iter_mut().enumerate() {
             let t = (i as f64 + 0.5) / 4.0;
-            let routine = if away_all_day {
-                0.0
-            } else {
-                self.routine(t, wake, dinner, weekday, weekend, cold)
-            };
+            let routine = if away_all_day { 0.0 } else { self.routine(t, wake, dinner, weekday, weekend, cold) };
             let mut kw = self.base_kw + amp * routine;
             if let Some((start, hours)) = ev_charge {
                 // Charging wraps past midnight into the next morning's first hours only
@@ -279,46 +239,27 @@ impl Household {
     }
 
     /// Routine load in kW (before scaling) at hour `t`.
-    fn routine(
-        &self,
-        t: f64,
-        wake: f64,
-        dinner: f64,
-        weekday: u32,
-        weekend: bool,
-        cold: f64,
-    ) -> f64 {
+    fn routine(&self, t: f64, wake: f64, dinner: f64, weekday: u32, weekend: bool, cold: f64) -> f64 {
         let home_evening = bump(t, dinner, 0.6, 1.4) + block(t, dinner + 0.5, 23.0, 0.35);
         let morning = bump(t, wake + 0.4, 0.35, 1.1);
         match self.kind {
             Kind::Commuter | Kind::EvCharging => {
-                let day = if weekend {
-                    block(t, wake, 22.0, 0.35) + bump(t, 12.5, 0.6, 0.8)
-                } else {
-                    0.0
-                };
+                let day = if weekend { block(t, wake, 22.0, 0.35) + bump(t, 12.5, 0.6, 0.8) } else { 0.0 };
                 morning + home_evening + day
             }
-            Kind::HomeWorker => {
-                morning + home_evening + block(t, wake + 1.0, 17.5, 0.45) + bump(t, 12.7, 0.4, 0.9)
-            }
+            Kind::HomeWorker => morning + home_evening + block(t, wake + 1.0, 17.5, 0.45) + bump(t, 12.7, 0.4, 0.9),
             Kind::NightShift => {
                 // Back from the night shift at dawn, asleep until mid-afternoon, out at night.
                 bump(t, 6.8, 0.4, 0.9) + block(t, 14.5, 21.0, 0.4) + bump(t, 17.0, 0.6, 1.3)
             }
             Kind::ElectricHeating => {
                 let storage = block(t, 0.0, 7.0, 2.2 * cold);
-                let direct =
-                    (bump(t, wake + 0.5, 0.8, 1.2) + bump(t, dinner + 1.0, 1.5, 1.0)) * cold;
+                let direct = (bump(t, wake + 0.5, 0.8, 1.2) + bump(t, dinner + 1.0, 1.5, 1.0)) * cold;
                 morning + home_evening + storage + direct
             }
             Kind::SmallShop => {
                 let open = weekday < 6 && (8.0..18.0).contains(&t);
-                0.9 + if open {
-                    2.2 + bump(t, 13.0, 2.0, 0.6)
-                } else {
-                    0.0
-                }
+                0.9 + if open { 2.2 + bump(t, 13.0, 2.0, 0.6) } else { 0.0 }
             }
             Kind::Bakery => {
                 if weekday == 0 {
@@ -382,18 +323,10 @@ mod tests {
         // Daily energy of a household is typically 5-15 kWh (from memory of
         // published national averages, e.g. about 2,700 kWh a year); the bakery far more.
         let mean = |k: Kind| {
-            let v: Vec<f64> = daily
-                .iter()
-                .filter(|(kk, _)| *kk == k)
-                .map(|(_, e)| *e)
-                .collect();
+            let v: Vec<f64> = daily.iter().filter(|(kk, _)| *kk == k).map(|(_, e)| *e).collect();
             v.iter().sum::<f64>() / v.len() as f64
         };
-        assert!(
-            (3.0..20.0).contains(&mean(Kind::Commuter)),
-            "commuter {}",
-            mean(Kind::Commuter)
-        );
+        assert!((3.0..20.0).contains(&mean(Kind::Commuter)), "commuter {}", mean(Kind::Commuter));
         assert!(mean(Kind::Bakery) > 3.0 * mean(Kind::Commuter));
         assert!(mean(Kind::EvCharging) > mean(Kind::Commuter));
     }

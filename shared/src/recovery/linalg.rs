@@ -28,28 +28,11 @@ impl LowRank {
     }
 }
 
-/// Orthonormal basis of the columns of `y` (m, k) by modified Gram-Schmidt twice,
-/// dropping columns that are numerically dependent.
-fn orthonormalize(y: &mut DMatrix<f64>) -> usize {
-    let k = y.ncols();
-    let mut kept = 0;
-    for j in 0..k {
-        let mut col = y.column(j).clone_owned();
-        let norm0 = col.norm();
-        for _ in 0..2 {
-            for i in 0..kept {
-                let qi = y.column(i);
-                let d = qi.dot(&col);
-                col.axpy(-d, &qi, 1.0);
-            }
-        }
-        let norm = col.norm();
-        if norm > 1e-10 * norm0.max(1e-300) && norm > 0.0 {
-            y.column_mut(kept).copy_from(&(col / norm));
-            kept += 1;
-        }
-    }
-    kept
+/// Orthonormal basis (m, k) of the columns of `y` (m, k), by Householder QR.
+/// Dependent columns get arbitrary orthonormal completions; the small SVD later
+/// gives them zero weight.
+fn orthonormal(y: DMatrix<f64>) -> DMatrix<f64> {
+    y.qr().q()
 }
 
 /// Best rank-`r` approximation of `a` (m, n), approximately, by `power` rounds of
@@ -66,11 +49,7 @@ pub fn truncate(
     let (m, n) = a.shape();
     let r = r.min(m).min(n);
     if r == 0 {
-        return LowRank {
-            u: DMatrix::zeros(m, 0),
-            s: Vec::new(),
-            v: DMatrix::zeros(n, 0),
-        };
+        return LowRank { u: DMatrix::zeros(m, 0), s: Vec::new(), v: DMatrix::zeros(n, 0) };
     }
     let k = (r + oversample).min(m).min(n);
     // Ω (n, k)
@@ -79,16 +58,13 @@ pub fn truncate(
         let c = w.ncols().min(k);
         omega.columns_mut(0, c).copy_from(&w.columns(0, c));
     }
-    let at = a.transpose(); // (n, m): one copy, so both products are plain GEMMs.
-    let mut y = a * &omega; // (m, k)
-    let mut kk = orthonormalize(&mut y);
+    // Aᵀ·Q is formed as (Qᵀ·A)ᵀ: nalgebra's transpose of the big A is slow.
+    let mut q = orthonormal(a * &omega); // (m, k)
     for _ in 0..power {
-        let mut z = &at * y.columns(0, kk); // (n, kk)
-        let kz = orthonormalize(&mut z);
-        y = a * z.columns(0, kz);
-        kk = orthonormalize(&mut y);
+        let z = orthonormal((q.transpose() * a).transpose()); // (n, k)
+        q = orthonormal(a * z);
     }
-    let q = y.columns(0, kk).clone_owned(); // (m, kk)
+    let kk = q.ncols();
     let b = q.transpose() * a; // (kk, n)
                                // SVD of the small B through the eigen-decomposition of B Bᵀ (kk, kk).
     let bbt = &b * b.transpose();
@@ -102,22 +78,17 @@ pub fn truncate(
         ub.column_mut(c).copy_from(&eig.eigenvectors.column(i));
         s.push(eig.eigenvalues[i].max(0.0).sqrt());
     }
-    let u = &q * &ub; // (m, keep)
-                      // V = Bᵀ U_b diag(1/s); columns with s≈0 are re-orthonormalized below.
+    let mut u = &q * &ub; // (m, keep)
+    // V = Bᵀ U_b diag(1/s); components with s ≈ 0 are dropped below.
     let mut v = b.transpose() * &ub; // (n, keep)
     for (c, sc) in s.iter().enumerate() {
         if *sc > 1e-12 {
             v.column_mut(c).scale_mut(1.0 / sc);
         }
     }
-    let mut s = s;
-    let mut u = u;
     // Drop numerically null components (rank-deficient input).
     let smax = s.first().copied().unwrap_or(0.0);
-    let nz = s
-        .iter()
-        .take_while(|x| **x > 1e-12 * smax.max(1e-300))
-        .count();
+    let nz = s.iter().take_while(|x| **x > 1e-12 * smax.max(1e-300)).count();
     if nz < s.len() {
         s.truncate(nz);
         u = u.columns(0, nz).clone_owned();
@@ -140,13 +111,7 @@ mod tests {
     #[test]
     fn recovers_planted_low_rank_over_shapes() {
         let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(3);
-        for &(m, n, r) in &[
-            (1, 1, 1),
-            (60, 8, 3),
-            (8, 60, 3),
-            (100, 80, 5),
-            (30, 30, 30),
-        ] {
+        for &(m, n, r) in &[(1, 1, 1), (60, 8, 3), (8, 60, 3), (100, 80, 5), (30, 30, 30)] {
             let a = planted(m, n, r, &mut rng);
             let lr = truncate(&a, r, 5, 1, None, &mut rng);
             let mut x = DMatrix::zeros(m, n);
@@ -180,12 +145,7 @@ mod tests {
         let mut sv: Vec<f64> = svd.singular_values.iter().copied().collect();
         sv.sort_by(|x, y| y.total_cmp(x));
         for i in 0..4 {
-            assert!(
-                (lr.s[i] - sv[i]).abs() < 1e-6 * sv[0],
-                "{i}: {} vs {}",
-                lr.s[i],
-                sv[i]
-            );
+            assert!((lr.s[i] - sv[i]).abs() < 1e-6 * sv[0], "{i}: {} vs {}", lr.s[i], sv[i]);
         }
     }
 }

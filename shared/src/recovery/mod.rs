@@ -29,11 +29,7 @@ pub struct LevelMatrix {
 impl LevelMatrix {
     /// An all-missing matrix.
     pub fn missing(rows: usize, cols: usize) -> Self {
-        Self {
-            rows,
-            cols,
-            data: vec![MISSING; rows * cols],
-        }
+        Self { rows, cols, data: vec![MISSING; rows * cols] }
     }
 
     pub fn rows(&self) -> usize {

@@ -34,6 +34,15 @@ impl DayLayout {
     }
 }
 
+/// Day types as in the BDEW standard load profiles: 0 working day, 1 Saturday, 2 Sunday.
+fn day_kind(weekday: u32) -> usize {
+    match weekday {
+        5 => 1,
+        6 => 2,
+        _ => 0,
+    }
+}
+
 /// Runs of consecutive columns with no reading at all, as (start, end) half-open.
 pub fn outage_runs(levels: &LevelMatrix) -> Vec<(usize, usize)> {
     let (m, n) = (levels.rows(), levels.cols());
@@ -56,13 +65,21 @@ pub fn outage_runs(levels: &LevelMatrix) -> Vec<(usize, usize)> {
     runs
 }
 
-/// Rank of the folded (meter, day) × interval-of-day model.
-const DAY_RANK: usize = 8;
-const EM_ROUNDS: usize = 60;
+/// Rank of the folded residual model.
+const DAY_RANK: usize = 4;
+const EM_ROUNDS: usize = 40;
 
-/// Fills outage columns of `x` from the day-folded low-rank model. Returns the
-/// number of outage columns. Columns are filled only when at least one other day
-/// of the window exists to learn from.
+/// Fills outage columns of `x` from the meters' own days. Returns the number of
+/// outage columns.
+///
+/// Model: a meter's day is its like-day mean L (the mean over the window's days of
+/// the same type, working day, Saturday or Sunday as in the BDEW profiles, at that
+/// interval of day) plus a residual.
+/// Folded into (meter, day) × interval-of-day, the residuals of the population are
+/// close to low rank (a cold day, a late day), so the residual inside a gap is
+/// completed by low-rank EM from the rest of that day, then anchored to the
+/// estimates either side of the gap by a linear correction, so the fill meets its
+/// neighbours without a step.
 pub fn fill_outages(x: &mut DMatrix<f64>, levels: &LevelMatrix, layout: DayLayout) -> usize {
     let runs = outage_runs(levels);
     let gap_cols: usize = runs.iter().map(|(a, b)| b - a).sum();
@@ -77,9 +94,31 @@ pub fn fill_outages(x: &mut DMatrix<f64>, levels: &LevelMatrix, layout: DayLayou
     for (a, b) in &runs {
         is_gap[*a..*b].iter_mut().for_each(|g| *g = true);
     }
-    // Folded matrix: row = meter * days + day, column = interval of day.
-    let rows = m * days;
     let col_of = |d: usize, t: usize| (d * per_day + t).checked_sub(phase).filter(|j| *j < n);
+    let day_type = |d: usize| day_kind(layout.weekday((d * per_day).saturating_sub(phase).min(n - 1)));
+    // Like-day means per meter, day class and interval of day.
+    let mut like = vec![[0.0f64; 3]; m * per_day];
+    for i in 0..m {
+        for t in 0..per_day {
+            let mut acc = [(0.0, 0usize); 3];
+            for d in 0..days {
+                if let Some(j) = col_of(d, t) {
+                    if !is_gap[j] {
+                        let c = day_type(d);
+                        acc[c].0 += x[(i, j)];
+                        acc[c].1 += 1;
+                    }
+                }
+            }
+            let all = acc.iter().map(|a| a.0).sum::<f64>() / acc.iter().map(|a| a.1).sum::<usize>().max(1) as f64;
+            for c in 0..3 {
+                like[i * per_day + t][c] = if acc[c].1 > 0 { acc[c].0 / acc[c].1 as f64 } else { all };
+            }
+        }
+    }
+    let base = |i: usize, d: usize, t: usize| like[i * per_day + t][day_type(d)];
+    // Folded residuals; unknowns start at zero.
+    let rows = m * days;
     let mut f = DMatrix::<f64>::zeros(rows, per_day);
     let mut known = vec![false; rows * per_day];
     for i in 0..m {
@@ -87,29 +126,9 @@ pub fn fill_outages(x: &mut DMatrix<f64>, levels: &LevelMatrix, layout: DayLayou
             for t in 0..per_day {
                 if let Some(j) = col_of(d, t) {
                     if !is_gap[j] {
-                        f[(i * days + d, t)] = x[(i, j)];
+                        f[(i * days + d, t)] = x[(i, j)] - base(i, d, t);
                         known[(i * days + d) + t * rows] = true;
                     }
-                }
-            }
-        }
-    }
-    // Start unknowns at the meter's mean for that interval of day over its known days.
-    for i in 0..m {
-        for t in 0..per_day {
-            let (mut s, mut c) = (0.0, 0usize);
-            for d in 0..days {
-                let r = i * days + d;
-                if known[r + t * rows] {
-                    s += f[(r, t)];
-                    c += 1;
-                }
-            }
-            let mean = if c > 0 { s / c as f64 } else { 0.0 };
-            for d in 0..days {
-                let r = i * days + d;
-                if !known[r + t * rows] {
-                    f[(r, t)] = mean;
                 }
             }
         }
@@ -127,14 +146,20 @@ pub fn fill_outages(x: &mut DMatrix<f64>, levels: &LevelMatrix, layout: DayLayou
         }
         warm = Some(lr.v);
     }
-    for i in 0..m {
-        for d in 0..days {
-            for t in 0..per_day {
-                if let Some(j) = col_of(d, t) {
-                    if is_gap[j] {
-                        x[(i, j)] = f[(i * days + d, t)];
-                    }
-                }
+    let value = |i: usize, j: usize, f: &DMatrix<f64>| {
+        let (d, t) = ((j + phase) / per_day, (j + phase) % per_day);
+        base(i, d, t) + f[(i * days + d, t)]
+    };
+    for &(a, b) in &runs {
+        for i in 0..m {
+            // Mismatch of the model at the estimates just outside the gap.
+            let left = if a > 0 { x[(i, a - 1)] - value(i, a - 1, &fit) } else { 0.0 };
+            let right = if b < n { x[(i, b)] - value(i, b, &fit) } else { left };
+            let left = if a > 0 { left } else { right };
+            let len = (b - a + 1) as f64;
+            for j in a..b {
+                let w = (j + 1 - a) as f64 / len;
+                x[(i, j)] = value(i, j, &f) + left + w * (right - left);
             }
         }
     }
@@ -143,16 +168,11 @@ pub fn fill_outages(x: &mut DMatrix<f64>, levels: &LevelMatrix, layout: DayLayou
 
 /// The usual estimation rule of VEE practice, for comparison: gaps of up to
 /// `short_max` intervals are filled by linear interpolation between the readings
-/// either side; longer gaps by the average of like days (same weekday class,
-/// weekday or weekend) at the same interval of day. This is common practice in
+/// either side; longer gaps by the average of like days (same day type: working
+/// day, Saturday, Sunday) at the same interval of day. This is common practice in
 /// utility VEE (validation, estimation and editing), stated here from memory of
 /// utility VEE guidelines, not from one published source.
-pub fn vee_rule_fill(
-    x: &mut DMatrix<f64>,
-    runs: &[(usize, usize)],
-    layout: DayLayout,
-    short_max: usize,
-) {
+pub fn vee_rule_fill(x: &mut DMatrix<f64>, runs: &[(usize, usize)], layout: DayLayout, short_max: usize) {
     let (m, n) = x.shape();
     let per_day = layout.per_day();
     let mut is_gap = vec![false; n];
@@ -171,11 +191,11 @@ pub fn vee_rule_fill(
                 continue;
             }
             for j in a..b {
-                let weekend = layout.weekday(j) >= 5;
+                let kind = day_kind(layout.weekday(j));
                 let (mut s, mut c) = (0.0, 0usize);
                 let mut k = j % per_day;
                 while k < n {
-                    if !is_gap[k] && (layout.weekday(k) >= 5) == weekend {
+                    if !is_gap[k] && day_kind(layout.weekday(k)) == kind {
                         s += x[(i, k)];
                         c += 1;
                     }

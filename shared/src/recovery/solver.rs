@@ -4,6 +4,7 @@ use std::time::Instant;
 
 use nalgebra::{DMatrix, DVector};
 use rand::{Rng, SeedableRng};
+use rayon::prelude::*;
 use serde::Serialize;
 
 use super::linalg::{truncate, LowRank};
@@ -12,6 +13,9 @@ use super::{outage, LevelMatrix, RankChoice, SumConstraint, ValidRecoveryParams,
 use crate::error::FieldError;
 use crate::mechanism::max_curvature;
 use crate::profile::DitherProfile;
+
+/// Entries per parallel work item of the elementwise passes.
+const CHUNK: usize = 1 << 15;
 
 /// Quality of one recovered entry.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize)]
@@ -85,27 +89,54 @@ impl Recovery {
 /// Progress reports: (stage, fraction done of that stage).
 pub type ProgressFn<'a> = &'a mut dyn FnMut(&str, f64);
 
-/// Per-level conditional mean E[x | level] under a flat prior on [0, alpha], kW.
-pub fn conditional_means(table: &LikelihoodTable, alpha: f64) -> Vec<f64> {
+/// Per-level conditional mean E[x | level] under a flat prior on [0, c], kW, for
+/// each c of a grid up to alpha: returns (level means, P(level)) per c.
+fn flat_prior_moments(table: &LikelihoodTable, c: f64) -> (Vec<f64>, Vec<f64>) {
     let k = table.profile().levels();
-    let steps = 4000;
-    (0..k as u8)
-        .map(|level| {
-            let (mut num, mut den) = (0.0, 0.0);
-            for i in 0..=steps {
-                let x = alpha * i as f64 / steps as f64;
-                let w = if i == 0 || i == steps { 0.5 } else { 1.0 };
-                let p = table.eval(level, x).0.exp() * w;
-                num += p * x;
-                den += p;
-            }
-            if den > 0.0 {
-                num / den
-            } else {
-                alpha * 0.5
-            }
-        })
-        .collect()
+    let steps = 2000;
+    let mut num = vec![0.0; k];
+    let mut den = vec![0.0; k];
+    for i in 0..=steps {
+        let x = c * i as f64 / steps as f64;
+        let w = if i == 0 || i == steps { 0.5 } else { 1.0 };
+        for (level, (nu, de)) in num.iter_mut().zip(den.iter_mut()).enumerate() {
+            let p = table.eval(level as u8, x).0.exp() * w;
+            *nu += p * x;
+            *de += p;
+        }
+    }
+    let total: f64 = den.iter().sum();
+    let means = num.iter().zip(&den).map(|(n, d)| if *d > 0.0 { n / d } else { 0.5 * c }).collect();
+    (means, den.iter().map(|d| d / total).collect())
+}
+
+/// Per-level conditional means E[x | level] under a flat prior on [0, c], with
+/// c ∈ (0, alpha] chosen by maximum marginal likelihood of the observed level
+/// counts. A flat prior over the whole service range would put the top level's
+/// mean near alpha/2, far above any household; fitting c keeps it honest.
+pub fn conditional_means(table: &LikelihoodTable, alpha: f64, level_counts: &[u64]) -> Vec<f64> {
+    let grid = 60;
+    let mut best: Option<(f64, Vec<f64>)> = None;
+    for g in 1..=grid {
+        let c = alpha * g as f64 / grid as f64;
+        let (means, probs) = flat_prior_moments(table, c);
+        let ll: f64 = level_counts.iter().zip(&probs).map(|(&n, &p)| n as f64 * p.max(1e-300).ln()).sum();
+        if best.as_ref().is_none_or(|b| ll > b.0) {
+            best = Some((ll, means));
+        }
+    }
+    best.map(|b| b.1).unwrap_or_else(|| vec![0.5 * alpha; table.profile().levels()])
+}
+
+/// How many readings have each level.
+pub fn level_counts(levels: &LevelMatrix, k: usize) -> Vec<u64> {
+    let mut c = vec![0u64; k];
+    for &v in levels.as_slice() {
+        if v != MISSING && usize::from(v) < k {
+            c[usize::from(v)] += 1;
+        }
+    }
+    c
 }
 
 /// Which observed entries the fit uses.
@@ -136,13 +167,23 @@ struct Ctx<'a> {
 impl Ctx<'_> {
     /// Negative mean log-likelihood over active entries.
     fn objective(&self, x: &DMatrix<f64>, mask: &Mask) -> f64 {
-        let (mut s, mut n) = (0.0, 0usize);
-        for (idx, (&lv, &xv)) in self.levels.as_slice().iter().zip(x.as_slice()).enumerate() {
-            if mask.active[idx] {
-                s -= self.table.eval(lv, xv).0;
-                n += 1;
-            }
-        }
+        let lv = self.levels.as_slice();
+        let (s, n) = x
+            .as_slice()
+            .par_chunks(CHUNK)
+            .enumerate()
+            .map(|(c, xs)| {
+                let off = c * CHUNK;
+                let (mut s, mut n) = (0.0, 0usize);
+                for (k, &xv) in xs.iter().enumerate() {
+                    if mask.active[off + k] {
+                        s -= self.table.eval(lv[off + k], xv).0;
+                        n += 1;
+                    }
+                }
+                (s, n)
+            })
+            .reduce(|| (0.0, 0), |a, b| (a.0 + b.0, a.1 + b.1));
         if n == 0 {
             0.0
         } else {
@@ -153,13 +194,15 @@ impl Ctx<'_> {
     /// w = z + step · ∇ log-likelihood(z), over active entries.
     fn ascent(&self, z: &DMatrix<f64>, mask: &Mask, w: &mut DMatrix<f64>) {
         let lv = self.levels.as_slice();
-        for (idx, (wv, &zv)) in w.as_mut_slice().iter_mut().zip(z.as_slice()).enumerate() {
-            *wv = if mask.active[idx] {
-                zv + self.step * self.table.eval(lv[idx], zv).1
-            } else {
-                zv
-            };
-        }
+        let step = self.step;
+        w.as_mut_slice().par_chunks_mut(CHUNK).zip(z.as_slice().par_chunks(CHUNK)).enumerate().for_each(
+            |(c, (ws, zs))| {
+                let off = c * CHUNK;
+                for (k, (wv, &zv)) in ws.iter_mut().zip(zs).enumerate() {
+                    *wv = if mask.active[off + k] { zv + step * self.table.eval(lv[off + k], zv).1 } else { zv };
+                }
+            },
+        );
     }
 
     fn project(&self, x: &mut DMatrix<f64>) -> usize {
@@ -170,7 +213,7 @@ impl Ctx<'_> {
     /// probability threshold), at most `max_corrupt_fraction` of them.
     fn corrupt_entries(&self, x: &DMatrix<f64>, base: &Mask) -> Vec<bool> {
         let lv = self.levels.as_slice();
-        let thresh = self.p.corrupt_probability.ln();
+        let thresh = self.corrupt_log_threshold();
         let mut cand: Vec<(f64, usize)> = Vec::new();
         let mut n = 0usize;
         for (idx, &xv) in x.as_slice().iter().enumerate() {
@@ -194,17 +237,19 @@ impl Ctx<'_> {
         out
     }
 
-    fn fit(
-        &self,
-        base: &Mask,
-        rank: usize,
-        init: &DMatrix<f64>,
-        warm: Option<&DMatrix<f64>>,
-        rng: &mut impl Rng,
-    ) -> Fit {
+    /// ln of the probability below which corruption is the likelier explanation.
+    fn corrupt_log_threshold(&self) -> f64 {
+        let e = self.p.corrupt_prior;
+        let k = self.table.profile().levels() as f64;
+        (e / (k * (1.0 - e))).ln()
+    }
+
+    fn fit(&self, base: &Mask, rank: usize, init: &DMatrix<f64>, max_iterations: usize, rng: &mut impl Rng) -> Fit {
         let (m, n) = init.shape();
         let p = self.p;
-        let mut lr = truncate(init, rank, p.oversample, p.power_iterations, warm, rng);
+        // The first truncation starts cold with extra subspace rounds; later ones are
+        // warm-started from the previous right subspace.
+        let mut lr = truncate(init, rank, p.oversample, p.power_iterations + 1, None, rng);
         let mut x = DMatrix::zeros(m, n);
         lr.reconstruct_into(&mut x);
         self.project(&mut x);
@@ -220,16 +265,11 @@ impl Ctx<'_> {
         let mut stop = Stop::MaxIterations;
         let mut it = 0;
         let mut stalls = 0;
-        while it < p.max_iterations {
+        while it < max_iterations {
             it += 1;
             let t_next = 0.5 * (1.0 + (1.0 + 4.0 * t * t).sqrt());
             let beta = (t - 1.0) / t_next;
-            for ((zv, &xv), &pv) in z
-                .as_mut_slice()
-                .iter_mut()
-                .zip(x.as_slice())
-                .zip(x_prev.as_slice())
-            {
+            for ((zv, &xv), &pv) in z.as_mut_slice().iter_mut().zip(x.as_slice()).zip(x_prev.as_slice()) {
                 *zv = xv + beta * (xv - pv);
             }
             self.ascent(&z, &mask, &mut w);
@@ -259,9 +299,7 @@ impl Ctx<'_> {
                 let c = self.corrupt_entries(&x, base);
                 if c != corrupt {
                     corrupt = c;
-                    for (a, (&b, &cc)) in
-                        mask.active.iter_mut().zip(base.active.iter().zip(&corrupt))
-                    {
+                    for (a, (&b, &cc)) in mask.active.iter_mut().zip(base.active.iter().zip(&corrupt)) {
                         *a = b && !cc;
                     }
                     obj = self.objective(&x, &mask);
@@ -279,25 +317,14 @@ impl Ctx<'_> {
                 calm = 0;
             }
         }
-        Fit {
-            x,
-            lr,
-            iterations: it,
-            stop,
-            objective: obj,
-            corrupt,
-        }
+        Fit { x, lr, iterations: it, stop, objective: obj, corrupt }
     }
 }
 
 /// Exact Euclidean projection of each constrained run onto
 /// {0 ≤ x ≤ alpha, Σ x = target}, and plain clipping elsewhere. Returns how many
 /// constraints were infeasible (target outside [0, alpha · len]).
-pub fn project_box_and_sums(
-    x: &mut DMatrix<f64>,
-    constraints: &[SumConstraint],
-    alpha: f64,
-) -> usize {
+pub fn project_box_and_sums(x: &mut DMatrix<f64>, constraints: &[SumConstraint], alpha: f64) -> usize {
     for v in x.as_mut_slice() {
         *v = v.clamp(0.0, alpha);
     }
@@ -345,9 +372,7 @@ fn shift_to_sum(v: &mut [f64], target: f64, alpha: f64) -> bool {
     }
     // Spread the last rounding residue over the entries not at a bound.
     let resid = target - v.iter().sum::<f64>();
-    let free: Vec<usize> = (0..v.len())
-        .filter(|&i| v[i] > 0.0 && v[i] < alpha)
-        .collect();
+    let free: Vec<usize> = (0..v.len()).filter(|&i| v[i] > 0.0 && v[i] < alpha).collect();
     if !free.is_empty() {
         let d = resid / free.len() as f64;
         for i in free {
@@ -373,15 +398,8 @@ pub fn recover(
     let p = params.get();
     let (m, n) = (levels.rows(), levels.cols());
     let k = profile.levels();
-    if let Some(bad) = levels
-        .as_slice()
-        .iter()
-        .find(|&&v| v != MISSING && usize::from(v) >= k)
-    {
-        return Err(FieldError::new(
-            "level",
-            format!("{bad} is out of range for a profile with {k} levels"),
-        ));
+    if let Some(bad) = levels.as_slice().iter().find(|&&v| v != MISSING && usize::from(v) >= k) {
+        return Err(FieldError::new("level", format!("{bad} is out of range for a profile with {k} levels")));
     }
     for (ci, c) in constraints.iter().enumerate() {
         if c.row >= m || c.cols.end > n || c.cols.start >= c.cols.end || !c.sum_kw.is_finite() {
@@ -392,11 +410,8 @@ pub fn recover(
         }
     }
     let alpha = p.alpha_kw;
-    let table = LikelihoodTable::new(
-        profile,
-        -0.5 * alpha - 5.0 * profile.scale_kw(),
-        1.5 * alpha + 5.0 * profile.scale_kw(),
-    );
+    let table =
+        LikelihoodTable::new(profile, -0.5 * alpha - 5.0 * profile.scale_kw(), 1.5 * alpha + 5.0 * profile.scale_kw());
     let observed: Vec<bool> = levels.as_slice().iter().map(|&v| v != MISSING).collect();
     let n_obs = observed.iter().filter(|b| **b).count();
     let mut diagnostics = Diagnostics {
@@ -423,19 +438,10 @@ pub fn recover(
         });
     }
 
-    let ctx = Ctx {
-        levels,
-        table: &table,
-        constraints,
-        alpha,
-        step: 1.0 / max_curvature(profile),
-        p,
-    };
+    let ctx = Ctx { levels, table: &table, constraints, alpha, step: 1.0 / max_curvature(profile), p };
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(p.seed);
     let init = initial_estimate(levels, &table, alpha);
-    let full = Mask {
-        active: observed.clone(),
-    };
+    let full = Mask { active: observed.clone() };
     let max_rank = m.min(n);
 
     let (rank, warm_x) = match &p.rank {
@@ -445,26 +451,19 @@ pub fn recover(
             if grid.is_empty() {
                 grid.push(max_rank);
             }
-            let held: Vec<bool> = observed
-                .iter()
-                .map(|&o| o && rng.random_bool(p.holdout_fraction.max(1e-9)))
-                .collect();
-            let train = Mask {
-                active: observed.iter().zip(&held).map(|(&o, &h)| o && !h).collect(),
-            };
-            let floor = p.corrupt_probability.ln();
+            let held: Vec<bool> =
+                observed.iter().map(|&o| o && rng.random_bool(p.holdout_fraction.max(1e-9))).collect();
+            let train = Mask { active: observed.iter().zip(&held).map(|(&o, &h)| o && !h).collect() };
+            let floor = ctx.corrupt_log_threshold();
             let mut best: Option<(f64, usize, DMatrix<f64>)> = None;
             for (gi, &r) in grid.iter().enumerate() {
                 progress("choosing rank", gi as f64 / grid.len() as f64);
-                let f = ctx.fit(&train, r, &init, None, &mut rng);
+                let f = ctx.fit(&train, r, &init, p.search_iterations, &mut rng);
                 let (mut s, mut c) = (0.0, 0usize);
                 for (idx, &h) in held.iter().enumerate() {
                     if h {
                         // Clipped at the corruption threshold so a few bad readings do not decide.
-                        s += table
-                            .eval(levels.as_slice()[idx], f.x.as_slice()[idx])
-                            .0
-                            .max(floor);
+                        s += table.eval(levels.as_slice()[idx], f.x.as_slice()[idx]).0.max(floor);
                         c += 1;
                     }
                 }
@@ -480,14 +479,11 @@ pub fn recover(
     };
     progress("fitting", 0.0);
     let start = warm_x.as_ref().unwrap_or(&init);
-    let fit = ctx.fit(&full, rank, start, None, &mut rng);
+    let fit = ctx.fit(&full, rank, start, p.max_iterations, &mut rng);
     progress("fitting", 1.0);
 
     let mut x = fit.x;
-    let mut flags: Vec<Flag> = observed
-        .iter()
-        .map(|&o| if o { Flag::Derived } else { Flag::Estimated })
-        .collect();
+    let mut flags: Vec<Flag> = observed.iter().map(|&o| if o { Flag::Derived } else { Flag::Estimated }).collect();
     for (f, &c) in flags.iter_mut().zip(&fit.corrupt) {
         if c {
             *f = Flag::Corrected;
@@ -496,13 +492,7 @@ pub fn recover(
     let outage_cols = outage::fill_outages(&mut x, levels, layout);
     diagnostics.outage_intervals = outage_cols;
     diagnostics.infeasible_constraints = ctx.project(&mut x);
-    let used = Mask {
-        active: observed
-            .iter()
-            .zip(&fit.corrupt)
-            .map(|(&o, &c)| o && !c)
-            .collect(),
-    };
+    let used = Mask { active: observed.iter().zip(&fit.corrupt).map(|(&o, &c)| o && !c).collect() };
     let std_kw = uncertainty(&fit.lr, &used, &table, &x, alpha);
     diagnostics.iterations = fit.iterations;
     diagnostics.stop = fit.stop;
@@ -510,18 +500,13 @@ pub fn recover(
     diagnostics.rank = fit.lr.rank();
     diagnostics.corrected = fit.corrupt.iter().filter(|c| **c).count();
     diagnostics.wall_s = t0.elapsed().as_secs_f64();
-    Ok(Recovery {
-        x,
-        flags,
-        std_kw,
-        diagnostics,
-    })
+    Ok(Recovery { x, flags, std_kw, diagnostics })
 }
 
 /// Per-entry conditional means, missing entries filled by their interval's mean
 /// over the meters that reported (or the overall mean).
 fn initial_estimate(levels: &LevelMatrix, table: &LikelihoodTable, alpha: f64) -> DMatrix<f64> {
-    let cm = conditional_means(table, alpha);
+    let cm = conditional_means(table, alpha, &level_counts(levels, table.profile().levels()));
     let (m, n) = (levels.rows(), levels.cols());
     let mut x = DMatrix::zeros(m, n);
     let mut total = (0.0, 0usize);
@@ -541,11 +526,7 @@ fn initial_estimate(levels: &LevelMatrix, table: &LikelihoodTable, alpha: f64) -
             total.1 += c;
         }
     }
-    let overall = if total.1 > 0 {
-        total.0 / total.1 as f64
-    } else {
-        0.0
-    };
+    let overall = if total.1 > 0 { total.0 / total.1 as f64 } else { 0.0 };
     for j in 0..n {
         for i in 0..m {
             if levels.get(i, j).is_none() {
@@ -564,13 +545,7 @@ fn initial_estimate(levels: &LevelMatrix, table: &LikelihoodTable, alpha: f64) -
 /// is taken as R_jᵀ A_i⁻¹ R_j + L_iᵀ B_j⁻¹ L_i (the two factor uncertainties,
 /// their covariance ignored). This ignores rank selection and bias, so it is a
 /// floor on the true error, not a guarantee.
-fn uncertainty(
-    lr: &LowRank,
-    used: &Mask,
-    table: &LikelihoodTable,
-    x: &DMatrix<f64>,
-    alpha: f64,
-) -> DMatrix<f64> {
+fn uncertainty(lr: &LowRank, used: &Mask, table: &LikelihoodTable, x: &DMatrix<f64>, alpha: f64) -> DMatrix<f64> {
     let (m, n) = x.shape();
     let r = lr.rank();
     if r == 0 {
@@ -593,32 +568,27 @@ fn uncertainty(
     let sq: Vec<f64> = lr.s.iter().map(|s| s.sqrt()).collect();
     let mut lf = lr.u.clone();
     let mut rf = lr.v.clone();
-    for c in 0..r {
-        lf.column_mut(c).scale_mut(sq[c]);
-        rf.column_mut(c).scale_mut(sq[c]);
+    for (c, q) in sq.iter().enumerate() {
+        lf.column_mut(c).scale_mut(*q);
+        rf.column_mut(c).scale_mut(*q);
     }
     let ridge = 1e-9;
-    let inv_blocks =
-        |fac: &DMatrix<f64>, count: usize, along_rows: bool| -> Vec<Option<DMatrix<f64>>> {
-            (0..count)
-                .map(|a| {
-                    let mut g = DMatrix::<f64>::identity(r, r) * ridge;
-                    let len = if along_rows { n } else { m };
-                    for b in 0..len {
-                        let w = if along_rows {
-                            info[(a, b)]
-                        } else {
-                            info[(b, a)]
-                        };
-                        if w > 0.0 {
-                            let f = fac.row(b);
-                            g.ger(w, &f.transpose(), &f.transpose(), 1.0);
-                        }
+    let inv_blocks = |fac: &DMatrix<f64>, count: usize, along_rows: bool| -> Vec<Option<DMatrix<f64>>> {
+        (0..count)
+            .map(|a| {
+                let mut g = DMatrix::<f64>::identity(r, r) * ridge;
+                let len = if along_rows { n } else { m };
+                for b in 0..len {
+                    let w = if along_rows { info[(a, b)] } else { info[(b, a)] };
+                    if w > 0.0 {
+                        let f = fac.row(b);
+                        g.ger(w, &f.transpose(), &f.transpose(), 1.0);
                     }
-                    g.try_inverse()
-                })
-                .collect()
-        };
+                }
+                g.try_inverse()
+            })
+            .collect()
+    };
     let a_inv = inv_blocks(&rf, m, true);
     let b_inv = inv_blocks(&lf, n, false);
     DMatrix::from_fn(m, n, |i, j| {

@@ -42,15 +42,7 @@ impl LikelihoodTable {
                 data.push([f, d, (dp - dm) / (2.0 * eps)]);
             }
         }
-        Self {
-            profile: profile.clone(),
-            lo,
-            hi: lo + (nodes - 1) as f64 * h,
-            h,
-            inv_h: 1.0 / h,
-            nodes,
-            data,
-        }
+        Self { profile: profile.clone(), lo, hi: lo + (nodes - 1) as f64 * h, h, inv_h: 1.0 / h, nodes, data }
     }
 
     pub fn profile(&self) -> &DitherProfile {
@@ -112,10 +104,7 @@ mod tests {
                     worst.1 = worst.1.max((d - de).abs() / de.abs().max(1.0 / s));
                 }
             }
-            assert!(
-                worst.0 < 1e-9 && worst.1 < 1e-7,
-                "{noise} s={s}: worst rel error {worst:?}"
-            );
+            assert!(worst.0 < 1e-9 && worst.1 < 1e-7, "{noise} s={s}: worst rel error {worst:?}");
         }
     }
 }

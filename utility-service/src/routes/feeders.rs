@@ -6,9 +6,7 @@ use axum::http::StatusCode;
 use axum::routing::{get, post, put};
 use axum::{Json, Router};
 use meterveil_shared::wire::{NewFeederWire, NewMetersWire, ProfileRecordWire};
-use meterveil_shared::{
-    DitherProfile, DitherProfileSpec, FeederId, FieldError, MeterId, ProfileVersion,
-};
+use meterveil_shared::{DitherProfile, DitherProfileSpec, FeederId, FieldError, MeterId, ProfileVersion};
 use serde_json::{json, Value};
 
 use super::{now_s, parse_json, AppState, Operator};
@@ -20,14 +18,8 @@ pub fn router() -> Router<AppState> {
         .route("/v1/feeders", post(create_feeder).get(list_feeders))
         .route("/v1/feeders/{feeder_id}/meters", post(add_meters))
         .route("/v1/feeders/{feeder_id}/profile", get(current_profile))
-        .route(
-            "/v1/feeders/{feeder_id}/profiles",
-            get(list_profiles).post(publish_profile),
-        )
-        .route(
-            "/v1/feeders/{feeder_id}/profiles/{version}",
-            put(replace_profile),
-        )
+        .route("/v1/feeders/{feeder_id}/profiles", get(list_profiles).post(publish_profile))
+        .route("/v1/feeders/{feeder_id}/profiles/{version}", put(replace_profile))
 }
 
 fn feeder_path(raw: &str) -> Result<FeederId, ApiError> {
@@ -37,10 +29,7 @@ fn feeder_path(raw: &str) -> Result<FeederId, ApiError> {
 async fn known_feeder(s: &AppState, raw: &str) -> Result<FeederId, ApiError> {
     let id = feeder_path(raw)?;
     if !s.store.feeder_exists(&id).await? {
-        return Err(ApiError::NotFound(FieldError::new(
-            "feeder_id",
-            format!("feeder {id} is not registered"),
-        )));
+        return Err(ApiError::NotFound(FieldError::new("feeder_id", format!("feeder {id} is not registered"))));
     }
     Ok(id)
 }
@@ -58,18 +47,11 @@ async fn create_feeder(
     let req: NewFeederWire = parse_json(&body)?;
     let id = feeder_path(&req.feeder_id)?;
     let created = s.store.create_feeder(&id, &req.name, now_s()).await?;
-    let status = if created {
-        StatusCode::CREATED
-    } else {
-        StatusCode::OK
-    };
+    let status = if created { StatusCode::CREATED } else { StatusCode::OK };
     Ok((status, Json(json!({ "feeder_id": id, "created": created }))))
 }
 
-async fn list_feeders(
-    _: Operator,
-    State(s): State<AppState>,
-) -> Result<Json<Vec<FeederSummary>>, ApiError> {
+async fn list_feeders(_: Operator, State(s): State<AppState>) -> Result<Json<Vec<FeederSummary>>, ApiError> {
     Ok(Json(s.store.feeder_summaries().await?))
 }
 
@@ -92,9 +74,7 @@ async fn add_meters(
         .collect::<Result<Vec<_>, _>>()
         .map_err(ApiError::Invalid)?;
     let (added, already) = s.store.add_meters(&feeder, &ids, now_s()).await?;
-    Ok(Json(
-        json!({ "feeder_id": feeder, "added": added, "already_registered": already }),
-    ))
+    Ok(Json(json!({ "feeder_id": feeder, "added": added, "already_registered": already })))
 }
 
 async fn current_profile(
@@ -103,25 +83,15 @@ async fn current_profile(
 ) -> Result<Json<ProfileRecordWire>, ApiError> {
     let feeder = known_feeder(&s, &feeder).await?;
     let rec = s.store.current_profile(&feeder).await?.ok_or_else(|| {
-        ApiError::NotFound(FieldError::new(
-            "profile",
-            format!("feeder {feeder} has no dither profile yet"),
-        ))
+        ApiError::NotFound(FieldError::new("profile", format!("feeder {feeder} has no dither profile yet")))
     })?;
     Ok(Json(rec.to_wire()))
 }
 
-async fn list_profiles(
-    State(s): State<AppState>,
-    Path(feeder): Path<String>,
-) -> Result<Json<Vec<Value>>, ApiError> {
+async fn list_profiles(State(s): State<AppState>, Path(feeder): Path<String>) -> Result<Json<Vec<Value>>, ApiError> {
     let feeder = known_feeder(&s, &feeder).await?;
     let recs = s.store.profiles(&feeder).await?;
-    Ok(Json(
-        recs.iter()
-            .map(|r| json!({ "record": r.to_wire(), "in_use": r.in_use }))
-            .collect(),
-    ))
+    Ok(Json(recs.iter().map(|r| json!({ "record": r.to_wire(), "in_use": r.in_use })).collect()))
 }
 
 async fn publish_profile(
@@ -144,14 +114,11 @@ async fn replace_profile(
     body: Bytes,
 ) -> Result<Json<Value>, ApiError> {
     let feeder = known_feeder(&s, &feeder).await?;
-    let version: u32 = version.trim_start_matches('v').parse().map_err(|_| {
-        ApiError::invalid("version", format!("{version:?} is not a version number"))
-    })?;
+    let version: u32 = version
+        .trim_start_matches('v')
+        .parse()
+        .map_err(|_| ApiError::invalid("version", format!("{version:?} is not a version number")))?;
     let profile = parse_profile(&body)?;
-    s.store
-        .replace_unused_profile(&feeder, ProfileVersion(version), &profile)
-        .await?;
-    Ok(Json(
-        json!({ "feeder_id": feeder, "version": version, "replaced": true }),
-    ))
+    s.store.replace_unused_profile(&feeder, ProfileVersion(version), &profile).await?;
+    Ok(Json(json!({ "feeder_id": feeder, "version": version, "replaced": true })))
 }

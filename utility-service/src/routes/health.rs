@@ -8,9 +8,7 @@ use super::AppState;
 use crate::error::ApiError;
 
 pub fn router() -> Router<AppState> {
-    Router::new()
-        .route("/healthz", get(healthz))
-        .route("/metrics", get(metrics))
+    Router::new().route("/healthz", get(healthz)).route("/metrics", get(metrics))
 }
 
 /// 200 when the database answers.
@@ -20,11 +18,5 @@ async fn healthz(State(s): State<AppState>) -> Result<&'static str, ApiError> {
 }
 
 async fn metrics(State(s): State<AppState>) -> impl IntoResponse {
-    (
-        [(
-            header::CONTENT_TYPE,
-            "application/openmetrics-text; version=1.0.0; charset=utf-8",
-        )],
-        s.metrics.render(),
-    )
+    ([(header::CONTENT_TYPE, "application/openmetrics-text; version=1.0.0; charset=utf-8")], s.metrics.render())
 }

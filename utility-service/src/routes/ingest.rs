@@ -47,10 +47,7 @@ async fn ingest(s: &AppState, body: Body) -> Result<AckWire, ApiError> {
             return replay(s, prev, &hash);
         }
         if !s.store.feeder_exists(&header.feeder_id).await? {
-            return Err(ApiError::invalid(
-                "feeder_id",
-                format!("feeder {} is not registered", header.feeder_id),
-            ));
+            return Err(ApiError::invalid("feeder_id", format!("feeder {} is not registered", header.feeder_id)));
         }
         let profiles = s.store.profiles(&header.feeder_id).await?;
         let mut ids: Vec<&str> = batch

@@ -26,11 +26,7 @@ pub struct AppState {
 }
 
 pub fn router(state: AppState) -> Router {
-    Router::new()
-        .merge(health::router())
-        .merge(ingest::router())
-        .merge(feeders::router())
-        .with_state(state)
+    Router::new().merge(health::router()).merge(ingest::router()).merge(feeders::router()).with_state(state)
 }
 
 /// Proof that the request carried the operator token (`Authorization: Bearer …`).
@@ -40,11 +36,7 @@ impl FromRequestParts<AppState> for Operator {
     type Rejection = ApiError;
 
     async fn from_request_parts(parts: &mut Parts, state: &AppState) -> Result<Self, ApiError> {
-        let header = parts
-            .headers
-            .get(axum::http::header::AUTHORIZATION)
-            .and_then(|v| v.to_str().ok())
-            .unwrap_or("");
+        let header = parts.headers.get(axum::http::header::AUTHORIZATION).and_then(|v| v.to_str().ok()).unwrap_or("");
         let token = header.strip_prefix("Bearer ").unwrap_or("");
         if token.is_empty() {
             return Err(ApiError::Unauthorized(FieldError::new(
@@ -52,14 +44,8 @@ impl FromRequestParts<AppState> for Operator {
                 "operator endpoint: send the operator token as 'Authorization: Bearer <token>'",
             )));
         }
-        if !constant_time_eq(
-            token.as_bytes(),
-            state.config.operator_token.expose().as_bytes(),
-        ) {
-            return Err(ApiError::Unauthorized(FieldError::new(
-                "authorization",
-                "operator token is wrong",
-            )));
+        if !constant_time_eq(token.as_bytes(), state.config.operator_token.expose().as_bytes()) {
+            return Err(ApiError::Unauthorized(FieldError::new("authorization", "operator token is wrong")));
         }
         Ok(Operator)
     }
@@ -81,8 +67,5 @@ pub fn parse_json<T: DeserializeOwned>(body: &[u8]) -> Result<T, ApiError> {
 
 /// Server time as UTC epoch seconds.
 pub fn now_s() -> i64 {
-    std::time::SystemTime::now()
-        .duration_since(std::time::UNIX_EPOCH)
-        .map(|d| d.as_secs() as i64)
-        .unwrap_or(0)
+    std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).map(|d| d.as_secs() as i64).unwrap_or(0)
 }

@@ -11,9 +11,7 @@ use std::time::Duration;
 
 use anyhow::Context;
 use meterveil_shared::wire::AckWire;
-use meterveil_shared::{
-    DitherProfile, DitherProfileSpec, FeederId, FieldError, MeterId, ProfileVersion,
-};
+use meterveil_shared::{DitherProfile, DitherProfileSpec, FeederId, FieldError, MeterId, ProfileVersion};
 use sqlx::sqlite::{SqliteConnectOptions, SqliteJournalMode, SqlitePoolOptions, SqliteSynchronous};
 use sqlx::{QueryBuilder, Row, Sqlite, SqlitePool};
 use tokio::sync::Mutex;
@@ -80,11 +78,7 @@ impl Store {
     /// Opens (creating if missing) the database at `url` (`sqlite:PATH` or a path)
     /// and applies the migrations in `migrations/sqlite`.
     pub async fn open(url: &str) -> anyhow::Result<Self> {
-        let url = if url.starts_with("sqlite:") {
-            url.to_owned()
-        } else {
-            format!("sqlite:{url}")
-        };
+        let url = if url.starts_with("sqlite:") { url.to_owned() } else { format!("sqlite:{url}") };
         let opts = SqliteConnectOptions::from_str(&url)
             .with_context(|| format!("DATABASE_URL {url:?} is not a SQLite URL"))?
             .create_if_missing(true)
@@ -97,14 +91,8 @@ impl Store {
             .connect_with(opts)
             .await
             .with_context(|| format!("opening database {url}"))?;
-        sqlx::migrate!("../migrations/sqlite")
-            .run(&pool)
-            .await
-            .context("applying migrations")?;
-        Ok(Self {
-            pool,
-            writer: std::sync::Arc::new(Mutex::new(())),
-        })
+        sqlx::migrate!("../migrations/sqlite").run(&pool).await.context("applying migrations")?;
+        Ok(Self { pool, writer: std::sync::Arc::new(Mutex::new(())) })
     }
 
     pub fn pool(&self) -> &SqlitePool {
@@ -112,21 +100,14 @@ impl Store {
     }
 
     /// Registers a feeder. Returns false when it already existed (same id).
-    pub async fn create_feeder(
-        &self,
-        id: &FeederId,
-        name: &str,
-        now: i64,
-    ) -> Result<bool, ApiError> {
+    pub async fn create_feeder(&self, id: &FeederId, name: &str, now: i64) -> Result<bool, ApiError> {
         let _w = self.writer.lock().await;
-        let r = sqlx::query(
-            "INSERT OR IGNORE INTO feeders (feeder_id, name, created_at) VALUES (?, ?, ?)",
-        )
-        .bind(id.as_str())
-        .bind(name)
-        .bind(now)
-        .execute(&self.pool)
-        .await?;
+        let r = sqlx::query("INSERT OR IGNORE INTO feeders (feeder_id, name, created_at) VALUES (?, ?, ?)")
+            .bind(id.as_str())
+            .bind(name)
+            .bind(now)
+            .execute(&self.pool)
+            .await?;
         Ok(r.rows_affected() == 1)
     }
 
@@ -140,21 +121,15 @@ impl Store {
 
     /// Registers meters on a feeder. Meters already on this feeder are counted, not
     /// an error; a meter registered on another feeder is a 409 and nothing is added.
-    pub async fn add_meters(
-        &self,
-        feeder: &FeederId,
-        ids: &[MeterId],
-        now: i64,
-    ) -> Result<(u64, u64), ApiError> {
+    pub async fn add_meters(&self, feeder: &FeederId, ids: &[MeterId], now: i64) -> Result<(u64, u64), ApiError> {
         let _w = self.writer.lock().await;
         let mut tx = self.pool.begin().await?;
         let mut added = 0;
         for (i, id) in ids.iter().enumerate() {
-            let existing: Option<String> =
-                sqlx::query_scalar("SELECT feeder_id FROM meters WHERE meter_id = ?")
-                    .bind(id.as_str())
-                    .fetch_optional(&mut *tx)
-                    .await?;
+            let existing: Option<String> = sqlx::query_scalar("SELECT feeder_id FROM meters WHERE meter_id = ?")
+                .bind(id.as_str())
+                .fetch_optional(&mut *tx)
+                .await?;
             match existing {
                 Some(f) if f == feeder.as_str() => {}
                 Some(f) => {
@@ -164,14 +139,12 @@ impl Store {
                     )))
                 }
                 None => {
-                    sqlx::query(
-                        "INSERT INTO meters (meter_id, feeder_id, created_at) VALUES (?, ?, ?)",
-                    )
-                    .bind(id.as_str())
-                    .bind(feeder.as_str())
-                    .bind(now)
-                    .execute(&mut *tx)
-                    .await?;
+                    sqlx::query("INSERT INTO meters (meter_id, feeder_id, created_at) VALUES (?, ?, ?)")
+                        .bind(id.as_str())
+                        .bind(feeder.as_str())
+                        .bind(now)
+                        .execute(&mut *tx)
+                        .await?;
                     added += 1;
                 }
             }
@@ -181,15 +154,10 @@ impl Store {
     }
 
     /// The subset of `ids` registered on `feeder`.
-    pub async fn known_meters(
-        &self,
-        feeder: &FeederId,
-        ids: &[&str],
-    ) -> Result<HashSet<String>, ApiError> {
+    pub async fn known_meters(&self, feeder: &FeederId, ids: &[&str]) -> Result<HashSet<String>, ApiError> {
         let mut known = HashSet::new();
         for chunk in ids.chunks(INSERT_CHUNK) {
-            let mut qb: QueryBuilder<Sqlite> =
-                QueryBuilder::new("SELECT meter_id FROM meters WHERE feeder_id = ");
+            let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new("SELECT meter_id FROM meters WHERE feeder_id = ");
             qb.push_bind(feeder.as_str()).push(" AND meter_id IN (");
             let mut sep = qb.separated(", ");
             for id in chunk {
@@ -205,12 +173,10 @@ impl Store {
     }
 
     pub async fn meters_of(&self, feeder: &FeederId) -> Result<Vec<String>, ApiError> {
-        Ok(
-            sqlx::query_scalar("SELECT meter_id FROM meters WHERE feeder_id = ? ORDER BY meter_id")
-                .bind(feeder.as_str())
-                .fetch_all(&self.pool)
-                .await?,
-        )
+        Ok(sqlx::query_scalar("SELECT meter_id FROM meters WHERE feeder_id = ? ORDER BY meter_id")
+            .bind(feeder.as_str())
+            .fetch_all(&self.pool)
+            .await?)
     }
 
     /// All versions of a feeder's profile, oldest first.
@@ -222,15 +188,10 @@ impl Store {
         .bind(feeder.as_str())
         .fetch_all(&self.pool)
         .await?;
-        rows.into_iter()
-            .map(|r| profile_from_row(feeder, &r))
-            .collect()
+        rows.into_iter().map(|r| profile_from_row(feeder, &r)).collect()
     }
 
-    pub async fn current_profile(
-        &self,
-        feeder: &FeederId,
-    ) -> Result<Option<ProfileRecord>, ApiError> {
+    pub async fn current_profile(&self, feeder: &FeederId) -> Result<Option<ProfileRecord>, ApiError> {
         Ok(self.profiles(feeder).await?.pop())
     }
 
@@ -243,12 +204,11 @@ impl Store {
     ) -> Result<ProfileRecord, ApiError> {
         let _w = self.writer.lock().await;
         let mut tx = self.pool.begin().await?;
-        let next: i64 = sqlx::query_scalar(
-            "SELECT COALESCE(MAX(version), 0) + 1 FROM dither_profiles WHERE feeder_id = ?",
-        )
-        .bind(feeder.as_str())
-        .fetch_one(&mut *tx)
-        .await?;
+        let next: i64 =
+            sqlx::query_scalar("SELECT COALESCE(MAX(version), 0) + 1 FROM dither_profiles WHERE feeder_id = ?")
+                .bind(feeder.as_str())
+                .fetch_one(&mut *tx)
+                .await?;
         let spec = profile.to_spec();
         sqlx::query(
             "INSERT INTO dither_profiles (feeder_id, version, noise, scale_kw, boundaries_kw, interval_s, send_registers, created_at)
@@ -283,13 +243,12 @@ impl Store {
     ) -> Result<(), ApiError> {
         let _w = self.writer.lock().await;
         let spec = profile.to_spec();
-        let in_use: Option<bool> = sqlx::query_scalar(
-            "SELECT in_use FROM dither_profiles WHERE feeder_id = ? AND version = ?",
-        )
-        .bind(feeder.as_str())
-        .bind(i64::from(version.0))
-        .fetch_optional(&self.pool)
-        .await?;
+        let in_use: Option<bool> =
+            sqlx::query_scalar("SELECT in_use FROM dither_profiles WHERE feeder_id = ? AND version = ?")
+                .bind(feeder.as_str())
+                .bind(i64::from(version.0))
+                .fetch_optional(&self.pool)
+                .await?;
         match in_use {
             None => Err(ApiError::NotFound(FieldError::new(
                 "version",
@@ -327,11 +286,7 @@ impl Store {
     }
 
     /// Stores a validated batch atomically: all of its rows or none.
-    pub async fn commit_batch(
-        &self,
-        b: &ValidatedBatch,
-        now: i64,
-    ) -> Result<CommitOutcome, ApiError> {
+    pub async fn commit_batch(&self, b: &ValidatedBatch, now: i64) -> Result<CommitOutcome, ApiError> {
         let _w = self.writer.lock().await;
         if let Some(existing) = self.find_batch(&b.batch_id).await? {
             return Ok(CommitOutcome::AlreadyStored(existing));
@@ -353,9 +308,8 @@ impl Store {
         }
         let mut stored_registers = 0;
         for chunk in b.registers.chunks(INSERT_CHUNK) {
-            let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
-                "INSERT OR IGNORE INTO register_reads (meter_id, read_at, wh_total, batch_id) ",
-            );
+            let mut qb: QueryBuilder<Sqlite> =
+                QueryBuilder::new("INSERT OR IGNORE INTO register_reads (meter_id, read_at, wh_total, batch_id) ");
             qb.push_values(chunk, |mut row, r| {
                 // wh_total was checked to fit an i64 during validation.
                 row.push_bind(r.meter_id.as_str())
@@ -407,8 +361,7 @@ impl Store {
         let mut out = Vec::with_capacity(rows.len());
         for r in rows {
             let feeder_id: String = r.try_get(0)?;
-            let fid = FeederId::parse(&feeder_id)
-                .map_err(|e| anyhow::anyhow!("stored feeder id: {e}"))?;
+            let fid = FeederId::parse(&feeder_id).map_err(|e| anyhow::anyhow!("stored feeder id: {e}"))?;
             out.push(FeederSummary {
                 current_profile: self.current_profile(&fid).await?.map(|p| p.to_wire()),
                 feeder_id,
@@ -423,10 +376,7 @@ impl Store {
 
     /// Every stored level of a feeder as (meter_id, interval_start, level, profile_version),
     /// ordered by meter and time.
-    pub async fn feeder_levels(
-        &self,
-        feeder: &FeederId,
-    ) -> Result<Vec<(String, i64, u8, u32)>, ApiError> {
+    pub async fn feeder_levels(&self, feeder: &FeederId) -> Result<Vec<(String, i64, u8, u32)>, ApiError> {
         let rows = sqlx::query(
             "SELECT r.meter_id, r.interval_start, r.level, r.profile_version
              FROM readings r JOIN meters m ON m.meter_id = r.meter_id
@@ -436,14 +386,7 @@ impl Store {
         .fetch_all(&self.pool)
         .await?;
         rows.iter()
-            .map(|r| {
-                Ok((
-                    r.try_get(0)?,
-                    r.try_get(1)?,
-                    r.try_get::<i64, _>(2)? as u8,
-                    r.try_get::<i64, _>(3)? as u32,
-                ))
-            })
+            .map(|r| Ok((r.try_get(0)?, r.try_get(1)?, r.try_get::<i64, _>(2)? as u8, r.try_get::<i64, _>(3)? as u32)))
             .collect()
     }
 
@@ -455,9 +398,8 @@ impl Store {
                 .await?;
         let mut out = Vec::new();
         for t in tables {
-            let rows = sqlx::query(&format!("SELECT name, type FROM pragma_table_info('{t}')"))
-                .fetch_all(&self.pool)
-                .await?;
+            let rows =
+                sqlx::query(&format!("SELECT name, type FROM pragma_table_info('{t}')")).fetch_all(&self.pool).await?;
             for r in rows {
                 out.push((t.clone(), r.try_get(0)?, r.try_get(1)?));
             }
@@ -466,10 +408,7 @@ impl Store {
     }
 }
 
-fn profile_from_row(
-    feeder: &FeederId,
-    r: &sqlx::sqlite::SqliteRow,
-) -> Result<ProfileRecord, ApiError> {
+fn profile_from_row(feeder: &FeederId, r: &sqlx::sqlite::SqliteRow) -> Result<ProfileRecord, ApiError> {
     let boundaries: String = r.try_get("boundaries_kw")?;
     let spec = DitherProfileSpec {
         noise: r.try_get("noise")?,
@@ -478,8 +417,7 @@ fn profile_from_row(
         interval_s: r.try_get::<i64, _>("interval_s")? as u32,
         send_registers: r.try_get("send_registers")?,
     };
-    let profile = DitherProfile::try_from(spec)
-        .map_err(|e| anyhow::anyhow!("stored profile is invalid: {e}"))?;
+    let profile = DitherProfile::try_from(spec).map_err(|e| anyhow::anyhow!("stored profile is invalid: {e}"))?;
     Ok(ProfileRecord {
         feeder_id: feeder.clone(),
         version: ProfileVersion(r.try_get::<i64, _>("version")? as u32),

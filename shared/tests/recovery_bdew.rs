@@ -1,0 +1,247 @@
+//! Recovery accuracy on test populations built from the BDEW standard load
+//! profiles H0, G0-G6 and L0-L2, as shipped by the Python package demandlib
+//! (version printed by the test; pinned in tests/reference/requirements.txt).
+//! Setting: 1400 meters × 28 days of 15-minute data, gaussian dither σ 0.3 kW,
+//! 3 levels (boundaries 1 and 2 kW), 5% of readings missing.
+
+mod common;
+
+use common::*;
+use meterveil_shared::recovery::linalg::truncate;
+use meterveil_shared::recovery::outage::DayLayout;
+use meterveil_shared::recovery::solver::{conditional_means, level_counts};
+use meterveil_shared::recovery::table::LikelihoodTable;
+use meterveil_shared::recovery::{
+    recover, LevelMatrix, RankChoice, RecoveryParams, SumConstraint, ValidRecoveryParams,
+};
+use meterveil_shared::{DitherProfile, DitherProfileSpec};
+use nalgebra::DMatrix;
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+
+const ALPHA: f64 = 15.0;
+const DAYS: usize = 28;
+const LAYOUT: DayLayout = DayLayout { window_start: 1_673_222_400, interval_s: 900 }; // 2023-01-09T00:00Z
+
+fn profile(b: &[f64]) -> DitherProfile {
+    DitherProfile::try_from(DitherProfileSpec {
+        noise: "gaussian".into(),
+        scale_kw: 0.3,
+        boundaries_kw: b.to_vec(),
+        interval_s: 900,
+        send_registers: false,
+    })
+    .unwrap()
+}
+
+fn params(rank: RankChoice) -> ValidRecoveryParams {
+    RecoveryParams { rank, alpha_kw: ALPHA, ..Default::default() }.check().unwrap()
+}
+
+/// Per-entry conditional means, missing entries at their interval's mean over reporting meters.
+fn svd_free_conditional_means(levels: &LevelMatrix, p: &DitherProfile) -> DMatrix<f64> {
+    let table = LikelihoodTable::new(p, -1.0, ALPHA + 1.0);
+    let cm = conditional_means(&table, ALPHA, &level_counts(levels, p.levels()));
+    let (m, n) = (levels.rows(), levels.cols());
+    let mut x = DMatrix::zeros(m, n);
+    for j in 0..n {
+        let vals: Vec<f64> = (0..m).filter_map(|i| levels.get(i, j).map(|l| cm[usize::from(l)])).collect();
+        let mean = if vals.is_empty() { 0.0 } else { vals.iter().sum::<f64>() / vals.len() as f64 };
+        for i in 0..m {
+            x[(i, j)] = levels.get(i, j).map_or(mean, |l| cm[usize::from(l)]);
+        }
+    }
+    x
+}
+
+/// The baseline: rank-r SVD of per-entry conditional means (missing entries at their interval's mean).
+fn svd_of_conditional_means(levels: &LevelMatrix, p: &DitherProfile, r: usize) -> DMatrix<f64> {
+    let (m, n) = (levels.rows(), levels.cols());
+    let x = svd_free_conditional_means(levels, p);
+    let lr = truncate(&x, r, 10, 2, None, &mut ChaCha8Rng::seed_from_u64(1));
+    let mut out = DMatrix::zeros(m, n);
+    lr.reconstruct_into(&mut out);
+    out.map(|v| v.clamp(0.0, ALPHA))
+}
+
+#[test]
+fn bdew_population_headline_accuracy() {
+    let (source, shapes) = bdew_shapes(DAYS);
+    eprintln!("shapes from {source}: {:?}", shapes.iter().map(|s| &s.0).collect::<Vec<_>>());
+    let mut rng = ChaCha8Rng::seed_from_u64(20);
+    let (truth, _) = population(&shapes, 1400, ALPHA, &mut rng);
+    let p3 = profile(&[1.0, 2.0]);
+    let levels = quantize(&truth, &p3, 0.05, &mut rng);
+
+    let rec =
+        recover(&levels, &p3, &[], LAYOUT, &params(RankChoice::Auto(vec![2, 5, 10, 20, 40])), &mut |_, _| {}).unwrap();
+    let d = &rec.diagnostics;
+    let e = nrmse(&rec.x, &truth);
+    let base = nrmse(&svd_of_conditional_means(&levels, &p3, d.rank), &truth);
+    let energy = median_daily_energy_error(&rec.x, &truth, 96);
+    eprintln!(
+        "K=3: nRMSE {e:.4} (SVD of conditional means {base:.4}, ratio {:.3}), median daily energy error {:.2}%, {d:?}",
+        e / base,
+        100.0 * energy
+    );
+    assert!(e <= 0.28, "nRMSE {e}");
+    assert!(e <= 0.65 * base, "nRMSE {e} vs baseline {base}");
+    assert!(energy <= 0.08, "median daily energy error {energy}");
+}
+
+/// The rank the automatic choice settles on for this population (see the headline
+/// test's printed rank scores); fixed here so the other checks run one fit each.
+const RANK: usize = 20;
+
+fn setup(m: usize, b: &[f64], seed: u64) -> (DMatrix<f64>, DitherProfile, LevelMatrix) {
+    let (_, shapes) = bdew_shapes(DAYS);
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let (truth, _) = population(&shapes, m, ALPHA, &mut rng);
+    let p = profile(b);
+    let levels = quantize(&truth, &p, 0.05, &mut rng);
+    (truth, p, levels)
+}
+
+#[test]
+fn bdew_register_reads_fix_daily_energy_to_one_wh() {
+    let (truth, p, levels) = setup(1400, &[1.0, 2.0], 21);
+    let mut cons = Vec::new();
+    for i in 0..truth.nrows() {
+        for d in 0..DAYS {
+            let cols = d * 96..(d + 1) * 96;
+            // A register advances in whole Wh: 15 minutes at x kW is 250·x Wh.
+            let wh = cols.clone().map(|j| truth[(i, j)] * 250.0).sum::<f64>().floor();
+            cons.push(SumConstraint { row: i, cols, sum_kw: wh / 250.0 });
+        }
+    }
+    let rec = recover(&levels, &p, &cons, LAYOUT, &params(RankChoice::Fixed(RANK)), &mut |_, _| {}).unwrap();
+    let mut worst = 0.0f64;
+    for c in &cons {
+        let got: f64 = c.cols.clone().map(|j| rec.x[(c.row, j)] * 250.0).sum();
+        worst = worst.max((got - c.sum_kw * 250.0).abs());
+    }
+    let e = nrmse(&rec.x, &truth);
+    let energy = median_daily_energy_error(&rec.x, &truth, 96);
+    eprintln!(
+        "registers: worst day error {worst:.2e} Wh, nRMSE {e:.4}, median daily energy error {:.4}%, {:?}",
+        energy * 100.0,
+        rec.diagnostics
+    );
+    assert!(worst <= 1.0, "{worst} Wh");
+    assert_eq!(rec.diagnostics.infeasible_constraints, 0);
+}
+
+#[test]
+fn bdew_corrupted_levels_are_absorbed_and_flagged() {
+    let (truth, p, mut levels) = setup(1400, &[1.0, 2.0], 22);
+    let prm = params(RankChoice::Fixed(RANK));
+    let clean = recover(&levels, &p, &[], LAYOUT, &prm, &mut |_, _| {}).unwrap();
+    let mut rng = ChaCha8Rng::seed_from_u64(99);
+    let mut replaced = Vec::new();
+    for j in 0..levels.cols() {
+        for i in 0..levels.rows() {
+            if let Some(l) = levels.get(i, j) {
+                if rng.random_bool(0.01) {
+                    // An arbitrary other level: tampering or a stuck register.
+                    let new = (l + rng.random_range(1..3u8)) % 3;
+                    levels.set(i, j, Some(new));
+                    replaced.push((i, j, new));
+                }
+            }
+        }
+    }
+    let rec = recover(&levels, &p, &[], LAYOUT, &prm, &mut |_, _| {}).unwrap();
+    let flagged =
+        replaced.iter().filter(|&&(i, j, _)| rec.flag(i, j) == meterveil_shared::recovery::Flag::Corrected).count();
+    // How many replacements are implausible at all under the true profile (the
+    // most any detector can tell apart from dither).
+    let thresh = 0.01 / (3.0 * 0.99);
+    let implausible = replaced
+        .iter()
+        .filter(|&&(i, j, l)| meterveil_shared::mechanism::level_probability(&p, l, truth[(i, j)]) < thresh)
+        .count();
+    let (e0, e1) = (nrmse(&clean.x, &truth), nrmse(&rec.x, &truth));
+    let false_flags = rec.diagnostics.corrected - flagged;
+    eprintln!(
+        "corruption: {} replaced, {flagged} flagged ({:.1}%), {implausible} implausible under the truth ({:.1}%), {false_flags} clean readings flagged; nRMSE {e0:.4} -> {e1:.4}",
+        replaced.len(),
+        100.0 * flagged as f64 / replaced.len() as f64,
+        100.0 * implausible as f64 / replaced.len() as f64
+    );
+    assert!(e1 - e0 <= 0.02, "nRMSE rose {e0} -> {e1}");
+    // A replacement that is plausible under the true load cannot be told apart from
+    // dither by any detector, so the share flagged is judged against the implausible ones.
+    assert!(flagged as f64 >= 0.8 * implausible as f64, "flagged {flagged} of {implausible} implausible");
+    assert!((false_flags as f64) < 0.01 * levels.observed() as f64, "{false_flags} clean readings flagged");
+}
+
+#[test]
+fn bdew_eight_levels() {
+    let b: Vec<f64> = (1..=7).map(|i| 0.5 * f64::from(i)).collect();
+    let (truth, p, levels) = setup(1400, &b, 23);
+    let rec = recover(&levels, &p, &[], LAYOUT, &params(RankChoice::Fixed(RANK)), &mut |_, _| {}).unwrap();
+    let e = nrmse(&rec.x, &truth);
+    eprintln!("K=8 (boundaries 0.5..3.5 kW): nRMSE {e:.4}, {:?}", rec.diagnostics);
+    assert!(e <= 0.24, "{e}");
+}
+
+#[test]
+fn bdew_error_falls_with_population_size() {
+    // Published scaling of quantized matrix completion (Davenport et al. 2014):
+    // error falls like sqrt(r / m) at fixed history.
+    let mut out = Vec::new();
+    for m in [250usize, 2000] {
+        let (truth, p, levels) = setup(m, &[1.0, 2.0], 24);
+        let rec = recover(&levels, &p, &[], LAYOUT, &params(RankChoice::Fixed(10)), &mut |_, _| {}).unwrap();
+        out.push(nrmse(&rec.x, &truth));
+    }
+    eprintln!("scaling: nRMSE at 250 meters {:.4}, at 2000 meters {:.4}, ratio {:.3}", out[0], out[1], out[1] / out[0]);
+    // Part of the error is the interval noise of the test population, which no
+    // population model can recover; the ratio states what the population buys.
+    assert!(out[1] < out[0], "{out:?}");
+}
+
+#[test]
+fn bdew_feeder_wide_outages_beat_the_vee_rule() {
+    let (truth, p, mut levels) = setup(1400, &[1.0, 2.0], 25);
+    // Outages of 1, 4 and 12 hours, starting at 07:00 on day 3, 17:00 on day 10, 06:00 on day 19.
+    let outages = [(3 * 96 + 28, 4), (10 * 96 + 68, 16), (19 * 96 + 24, 48)];
+    let mut gap_cols = Vec::new();
+    for &(s, len) in &outages {
+        for j in s..s + len {
+            for i in 0..levels.rows() {
+                levels.set(i, j, None);
+            }
+            gap_cols.push(j);
+        }
+    }
+    let rec = recover(&levels, &p, &[], LAYOUT, &params(RankChoice::Fixed(RANK)), &mut |_, _| {}).unwrap();
+    assert_eq!(rec.diagnostics.outage_intervals, 4 + 16 + 48);
+    assert!(gap_cols.iter().all(|&j| rec.flag(0, j) == meterveil_shared::recovery::Flag::Estimated));
+    let ours = nrmse_cols(&rec.x, &truth, &gap_cols);
+    let mut vee = rec.x.clone();
+    let runs: Vec<(usize, usize)> = outages.iter().map(|&(s, l)| (s, s + l)).collect();
+    meterveil_shared::recovery::outage::vee_rule_fill(&mut vee, &runs, LAYOUT, 8);
+    let rule = nrmse_cols(&vee, &truth, &gap_cols);
+    // The same rule on what the utility has without the population model: the
+    // per-entry conditional means of the levels.
+    let mut plain = svd_free_conditional_means(&levels, &p);
+    meterveil_shared::recovery::outage::vee_rule_fill(&mut plain, &runs, LAYOUT, 8);
+    let rule_plain = nrmse_cols(&plain, &truth, &gap_cols);
+    for &(s, l) in &outages {
+        let c: Vec<usize> = (s..s + l).collect();
+        eprintln!(
+            "  gap of {} h: ours {:.4}, rule {:.4}",
+            l / 4,
+            nrmse_cols(&rec.x, &truth, &c),
+            nrmse_cols(&vee, &truth, &c)
+        );
+    }
+    eprintln!(
+        "outages: nRMSE inside the gaps {ours:.4}; VEE rule (linear up to 2 h, like-day average by day type beyond) on the recovered profiles {rule:.4} (ratio {:.3}), on per-entry conditional means {rule_plain:.4} (ratio {:.3})",
+        ours / rule,
+        ours / rule_plain
+    );
+    assert!(ours <= 0.9 * rule_plain, "{ours} vs {rule_plain}");
+    assert!(ours <= 1.05 * rule, "{ours} vs {rule}");
+}
