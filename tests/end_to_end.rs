@@ -575,3 +575,113 @@ async fn gateway_run_reads_a_file_once_and_reports_bad_lines() {
     let again = meterveil_gateway::run::run(config, rx).await.expect("second run");
     assert_eq!((again.levels_queued, again.lines_rejected, again.upload.batches), (0, 0, 0));
 }
+
+/// `utility-service recover` on files made from the simulated town: every meter
+/// and interval comes back, with flags, bands inside [0, alpha], register days
+/// summing to their energy, and bad input named by file, line and field.
+#[test]
+fn recover_command_on_files() {
+    use meterveil_gateway::simulate::Town;
+    use meterveil_shared::mechanism::dither_and_quantize;
+    use rand::{Rng, SeedableRng};
+
+    let dir = tempfile::tempdir().expect("tempdir");
+    let town = Town::new(60, 7, 1_700_006_400, 5);
+    let profile = r#"{"noise":"gaussian","scale_kw":0.3,"boundaries_kw":[1.0,2.0],"interval_s":900}"#;
+    let p = meterveil_shared::DitherProfile::from_json(profile).expect("profile");
+    std::fs::write(dir.path().join("profile.json"), profile).expect("write");
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(8);
+    let mut levels = String::from("meter_id,interval_start,level\n");
+    let mut regs = String::from("meter_id,day_start,wh\n");
+    let mut rows = 0;
+    for h in &town.households {
+        for d in 0..7 {
+            let day = town.start_day + d * 86_400;
+            let load = town.day_load(h, d as u32);
+            for (i, kw) in load.iter().enumerate() {
+                let l = dither_and_quantize(&p, *kw, &mut rng);
+                if !rng.random_bool(0.05) {
+                    levels.push_str(&format!("{},{},{l}\n", h.meter_id, day + 900 * i as i64));
+                    rows += 1;
+                }
+            }
+            if d < 3 {
+                regs.push_str(&format!("{},{day},{}\n", h.meter_id, (load.iter().sum::<f64>() * 250.0).floor()));
+            }
+        }
+    }
+    std::fs::write(dir.path().join("levels.csv"), &levels).expect("write");
+    std::fs::write(dir.path().join("reg.csv"), &regs).expect("write");
+    let out = dir.path().join("out.csv");
+    let bin = env!("CARGO_BIN_EXE_utility-service");
+    let run = std::process::Command::new(bin)
+        .args(["recover", "--levels"])
+        .arg(dir.path().join("levels.csv"))
+        .arg("--profile")
+        .arg(dir.path().join("profile.json"))
+        .arg("--output")
+        .arg(&out)
+        .arg("--registers")
+        .arg(dir.path().join("reg.csv"))
+        .args(["--rank", "auto", "--alpha-kw", "15"])
+        .output()
+        .expect("run recover");
+    assert!(run.status.success(), "{}", String::from_utf8_lossy(&run.stderr));
+    let summary: Value =
+        serde_json::from_slice(run.stdout.split(|b| *b == b'\n').rfind(|l| !l.is_empty()).expect("line"))
+            .expect("json");
+    assert_eq!(summary["meters"], 60);
+    assert_eq!(summary["intervals"], 7 * 96);
+    assert_eq!(summary["readings"], rows);
+    assert_eq!(summary["register_days"], 180);
+    let text = std::fs::read_to_string(&out).expect("out");
+    let mut lines = text.lines();
+    assert_eq!(lines.next(), Some("meter_id,interval_start,kw,flag,kw_low,kw_high"));
+    let body: Vec<Vec<&str>> = lines.map(|l| l.split(',').collect()).collect();
+    assert_eq!(body.len(), 60 * 7 * 96);
+    let mut day_sum: std::collections::HashMap<(String, i64), f64> = Default::default();
+    for r in &body {
+        let (kw, lo, hi): (f64, f64, f64) =
+            (r[2].parse().expect("kw"), r[4].parse().expect("lo"), r[5].parse().expect("hi"));
+        assert!(["derived", "estimated", "corrected"].contains(&r[3]), "{r:?}");
+        assert!(0.0 <= lo && lo <= kw + 1e-4 && kw <= hi + 1e-4 && hi <= 15.0, "{r:?}");
+        let t: i64 = r[1].parse().expect("t");
+        *day_sum.entry((r[0].to_owned(), t - t.rem_euclid(86_400))).or_default() += kw * 250.0;
+    }
+    for l in regs.lines().skip(1) {
+        let c: Vec<&str> = l.split(',').collect();
+        let want: f64 = c[2].parse().expect("wh");
+        let got = day_sum[&(c[0].to_owned(), c[1].parse().expect("day"))];
+        // The output rounds kW to 4 decimals: 96 · 250 · 5e-5 = 1.2 Wh of slack at most.
+        assert!((got - want).abs() <= 1.0 + 1.2, "{l}: {got}");
+    }
+
+    // Bad input: the file, the line and the field are named; nothing is written.
+    let bad = dir.path().join("bad.csv");
+    std::fs::write(&bad, "meter_id,interval_start,level\nm1,1700006400,1\nm1,1700007300,7\n").expect("write");
+    let out2 = dir.path().join("out2.csv");
+    let run = std::process::Command::new(bin)
+        .args(["recover", "--levels"])
+        .arg(&bad)
+        .arg("--profile")
+        .arg(dir.path().join("profile.json"))
+        .arg("--output")
+        .arg(&out2)
+        .output()
+        .expect("run");
+    assert!(!run.status.success());
+    let err = String::from_utf8_lossy(&run.stderr);
+    assert!(err.contains("bad.csv line 3") && err.contains("level") && err.contains("out of range"), "{err}");
+    assert!(!out2.exists());
+    let run = std::process::Command::new(bin)
+        .args(["recover", "--levels"])
+        .arg(dir.path().join("levels.csv"))
+        .arg("--profile")
+        .arg(dir.path().join("profile.json"))
+        .arg("--output")
+        .arg(&out2)
+        .args(["--rank", "many"])
+        .output()
+        .expect("run");
+    assert!(String::from_utf8_lossy(&run.stderr).contains("--rank"), "{}", String::from_utf8_lossy(&run.stderr));
+}

@@ -5,6 +5,8 @@ use std::path::PathBuf;
 
 use clap::{Parser, Subcommand};
 
+use meterveil_shared::recovery::{RankChoice, RecoveryParams};
+
 use crate::config::{Secret, ServiceConfig};
 use crate::demo::{self, DemoOptions};
 
@@ -34,6 +36,27 @@ pub enum Command {
         /// Largest accepted request body, bytes.
         #[arg(long, default_value_t = 4 * 1024 * 1024)]
         body_limit_bytes: usize,
+    },
+    /// Recover every meter's profile from a file of quantized levels.
+    Recover {
+        /// CSV with header meter_id,interval_start,level.
+        #[arg(long)]
+        levels: PathBuf,
+        /// Dither profile JSON the levels were made with.
+        #[arg(long)]
+        profile: PathBuf,
+        /// Output CSV: meter_id,interval_start,kw,flag,kw_low,kw_high.
+        #[arg(long)]
+        output: PathBuf,
+        /// Optional CSV of daily energies: meter_id,day_start,wh.
+        #[arg(long)]
+        registers: Option<PathBuf>,
+        /// A rank, or "auto" (held-out likelihood over 2, 5, 10, 20, 40).
+        #[arg(long, default_value = "auto")]
+        rank: String,
+        /// Service limit in kW: estimates stay in [0, alpha].
+        #[arg(long, default_value_t = 15.0)]
+        alpha_kw: f64,
     },
     /// One command: a fresh service and the invented town of Quillmarsh, 28 days of
     /// 15-minute data through real gateway outboxes over HTTP, then a summary.
@@ -68,6 +91,21 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
             let svc = crate::app::start_with_store(config, store, Some(until)).await?;
             println!("listening on {}", svc.url());
             svc.wait().await
+        }
+        Command::Recover { levels, profile, output, registers, rank, alpha_kw } => {
+            let rank = match rank.as_str() {
+                "auto" => RecoveryParams::default().rank,
+                n => RankChoice::Fixed(
+                    n.parse().map_err(|_| anyhow::anyhow!("--rank: {n:?} is neither a number nor \"auto\""))?,
+                ),
+            };
+            let params = RecoveryParams { rank, alpha_kw, ..RecoveryParams::default() };
+            let summary = tokio::task::spawn_blocking(move || {
+                crate::offline::run_recover(&levels, &profile, &output, registers.as_deref(), params)
+            })
+            .await??;
+            println!("{summary}");
+            Ok(())
         }
         Command::Demo { meters, days, dir, truth } => {
             let opts = DemoOptions { meters, days, dir, truth };

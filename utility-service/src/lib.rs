@@ -11,5 +11,6 @@ pub mod demo;
 pub mod error;
 pub mod ingest;
 pub mod metrics;
+pub mod offline;
 pub mod routes;
 pub mod store;

@@ -79,7 +79,7 @@ pub fn truncate(
         s.push(eig.eigenvalues[i].max(0.0).sqrt());
     }
     let mut u = &q * &ub; // (m, keep)
-    // V = Bᵀ U_b diag(1/s); components with s ≈ 0 are dropped below.
+                          // V = Bᵀ U_b diag(1/s); components with s ≈ 0 are dropped below.
     let mut v = b.transpose() * &ub; // (n, keep)
     for (c, sc) in s.iter().enumerate() {
         if *sc > 1e-12 {

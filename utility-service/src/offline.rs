@@ -1,0 +1,287 @@
+//! File mode for analysts: `utility-service recover` reads levels, a profile and
+//! optional register energies from files, and writes the recovered profiles.
+//!
+//! - LEVELS.csv: header `meter_id,interval_start,level` (any column order; UTC
+//!   epoch seconds; absent rows are missing readings).
+//! - PROFILE.json: `{"noise":…,"scale_kw":…,"boundaries_kw":[…],"interval_s":900}`.
+//! - REG.csv: header `meter_id,day_start,wh`: a meter's energy over one UTC day.
+//! - OUT.csv: `meter_id,interval_start,kw,flag,kw_low,kw_high`, every meter and
+//!   interval of the window (the span from the earliest to the latest level).
+
+use std::collections::{BTreeMap, HashMap};
+use std::io::{BufRead, BufWriter, Write};
+use std::path::Path;
+
+use anyhow::Context;
+use meterveil_shared::recovery::outage::DayLayout;
+use meterveil_shared::recovery::{recover, LevelMatrix, Recovery, RecoveryParams, SumConstraint};
+use meterveil_shared::{DitherProfile, FieldError, IntervalStart, MeterId};
+
+/// A recovery window: meters (sorted), first interval and the level matrix.
+pub struct Window {
+    pub meters: Vec<MeterId>,
+    pub start: i64,
+    pub interval_s: u32,
+    pub levels: LevelMatrix,
+}
+
+impl Window {
+    pub fn layout(&self) -> DayLayout {
+        DayLayout { window_start: self.start, interval_s: self.interval_s }
+    }
+    pub fn interval_start(&self, col: usize) -> i64 {
+        self.start + col as i64 * i64::from(self.interval_s)
+    }
+}
+
+/// A file input problem: which file, which line (1-based; 0 for the whole file), what.
+#[derive(Debug, thiserror::Error)]
+#[error("{file} line {line}: {error}")]
+pub struct InputError {
+    pub file: String,
+    pub line: usize,
+    pub error: FieldError,
+}
+
+fn header_positions(file: &str, header: &str, want: &[&str]) -> Result<Vec<usize>, InputError> {
+    let cols: Vec<String> = header.split(',').map(|c| c.trim().to_ascii_lowercase()).collect();
+    want.iter()
+        .map(|w| {
+            cols.iter().position(|c| c == w).ok_or_else(|| InputError {
+                file: file.into(),
+                line: 1,
+                error: FieldError::new("header", format!("has no {w} column (expected {})", want.join(","))),
+            })
+        })
+        .collect()
+}
+
+fn cells(line: &str) -> Vec<&str> {
+    line.split(',').map(str::trim).collect()
+}
+
+fn get<'a>(file: &str, line: usize, c: &[&'a str], pos: usize, field: &str) -> Result<&'a str, InputError> {
+    c.get(pos).copied().ok_or_else(|| InputError {
+        file: file.into(),
+        line,
+        error: FieldError::new(field, "is missing"),
+    })
+}
+
+/// Reads quantized levels into a window. Every problem names the file, line and field.
+pub fn read_levels(path: &Path, profile: &DitherProfile) -> anyhow::Result<Window> {
+    let file = path.display().to_string();
+    let f = std::fs::File::open(path).with_context(|| format!("opening {file}"))?;
+    let mut lines = std::io::BufReader::new(f).lines();
+    let header = lines.next().transpose()?.unwrap_or_default();
+    let pos = header_positions(&file, &header, &["meter_id", "interval_start", "level"])?;
+    let len = profile.interval();
+    let k = profile.levels();
+    let mut rows: Vec<(String, i64, u8)> = Vec::new();
+    for (no, line) in lines.enumerate() {
+        let line_no = no + 2;
+        let line = line?;
+        if line.trim().is_empty() {
+            continue;
+        }
+        let c = cells(&line);
+        let err = |e: FieldError| InputError { file: file.clone(), line: line_no, error: e };
+        let meter = MeterId::parse(get(&file, line_no, &c, pos[0], "meter_id")?).map_err(err)?;
+        let raw_t = get(&file, line_no, &c, pos[1], "interval_start")?;
+        let t: i64 = raw_t
+            .parse()
+            .map_err(|_| err(FieldError::new("interval_start", format!("{raw_t:?} is not an integer epoch second"))))?;
+        IntervalStart::new(t, len).map_err(err)?;
+        let raw_l = get(&file, line_no, &c, pos[2], "level")?;
+        let level: u8 =
+            raw_l.parse().map_err(|_| err(FieldError::new("level", format!("{raw_l:?} is not a level number"))))?;
+        if usize::from(level) >= k {
+            return Err(err(FieldError::new(
+                "level",
+                format!("{level} is out of range: the profile has {k} levels (0 to {})", k - 1),
+            ))
+            .into());
+        }
+        rows.push((meter.to_string(), t, level));
+    }
+    if rows.is_empty() {
+        return Err(InputError { file, line: 0, error: FieldError::new("rows", "the file has no levels") }.into());
+    }
+    let start = rows.iter().map(|r| r.1).min().unwrap_or(0);
+    let end = rows.iter().map(|r| r.1).max().unwrap_or(0);
+    let step = i64::from(len.seconds());
+    let cols = ((end - start) / step + 1) as usize;
+    if cols > 400_000 {
+        return Err(InputError {
+            file,
+            line: 0,
+            error: FieldError::new("interval_start", format!("the window spans {cols} intervals; split it")),
+        }
+        .into());
+    }
+    let mut index: BTreeMap<String, usize> = BTreeMap::new();
+    for r in &rows {
+        index.entry(r.0.clone()).or_insert(0);
+    }
+    for (i, v) in index.values_mut().enumerate() {
+        *v = i;
+    }
+    let mut levels = LevelMatrix::missing(index.len(), cols);
+    let mut seen: HashMap<(usize, usize), usize> = HashMap::with_capacity(rows.len());
+    for (n, (m, t, l)) in rows.iter().enumerate() {
+        let (i, j) = (index[m], ((t - start) / step) as usize);
+        if let Some(prev) = seen.insert((i, j), n) {
+            return Err(InputError {
+                file,
+                line: n + 2,
+                error: FieldError::new("interval_start", format!("meter {m} at {t} repeats data line {}", prev + 2)),
+            }
+            .into());
+        }
+        levels.set(i, j, Some(*l));
+    }
+    let meters = index.keys().map(|m| MeterId::parse(m)).collect::<Result<Vec<_>, _>>()?;
+    Ok(Window { meters, start, interval_s: len.seconds(), levels })
+}
+
+/// Reads daily register energies into sum constraints. Days not wholly inside the
+/// window are skipped (returned count), since their energy includes intervals we do not fit.
+pub fn read_registers(path: &Path, w: &Window) -> anyhow::Result<(Vec<SumConstraint>, usize)> {
+    let file = path.display().to_string();
+    let text = std::fs::read_to_string(path).with_context(|| format!("reading {file}"))?;
+    let mut lines = text.lines();
+    let pos = header_positions(&file, lines.next().unwrap_or(""), &["meter_id", "day_start", "wh"])?;
+    let rows: HashMap<&str, usize> = w.meters.iter().enumerate().map(|(i, m)| (m.as_str(), i)).collect();
+    let per_day = (86_400 / w.interval_s) as i64;
+    let hours = f64::from(w.interval_s) / 3600.0;
+    let (mut out, mut skipped) = (Vec::new(), 0);
+    for (no, line) in lines.enumerate() {
+        let line_no = no + 2;
+        if line.trim().is_empty() {
+            continue;
+        }
+        let c = cells(line);
+        let err = |e: FieldError| InputError { file: file.clone(), line: line_no, error: e };
+        let meter = get(&file, line_no, &c, pos[0], "meter_id")?;
+        let Some(&row) = rows.get(meter) else {
+            return Err(
+                err(FieldError::new("meter_id", format!("meter {meter} has no levels in the levels file"))).into()
+            );
+        };
+        let raw_d = get(&file, line_no, &c, pos[1], "day_start")?;
+        let day: i64 = raw_d
+            .parse()
+            .map_err(|_| err(FieldError::new("day_start", format!("{raw_d:?} is not an integer epoch second"))))?;
+        if day.rem_euclid(86_400) != 0 {
+            return Err(err(FieldError::new("day_start", format!("{day} is not a UTC midnight"))).into());
+        }
+        let raw_wh = get(&file, line_no, &c, pos[2], "wh")?;
+        let wh: f64 = raw_wh.parse().map_err(|_| err(FieldError::new("wh", format!("{raw_wh:?} is not a number"))))?;
+        if !(wh.is_finite() && wh >= 0.0) {
+            return Err(err(FieldError::new("wh", format!("{wh} must be a non-negative number of Wh"))).into());
+        }
+        let first = (day - w.start) / i64::from(w.interval_s);
+        if first < 0 || first + per_day > w.levels.cols() as i64 || (day - w.start) % i64::from(w.interval_s) != 0 {
+            skipped += 1;
+            continue;
+        }
+        let cols = first as usize..(first + per_day) as usize;
+        out.push(SumConstraint { row, cols, sum_kw: wh / (1000.0 * hours) });
+    }
+    Ok((out, skipped))
+}
+
+/// Writes every meter and interval of the window with its flag and 95% band.
+pub fn write_recovery(path: &Path, w: &Window, rec: &Recovery, alpha: f64) -> anyhow::Result<()> {
+    let f = std::fs::File::create(path).with_context(|| format!("creating {}", path.display()))?;
+    let mut out = BufWriter::new(f);
+    writeln!(out, "meter_id,interval_start,kw,flag,kw_low,kw_high")?;
+    for (i, m) in w.meters.iter().enumerate() {
+        for j in 0..w.levels.cols() {
+            let (x, sd) = (rec.x[(i, j)], rec.std_kw[(i, j)]);
+            let (lo, hi) = band(x, sd, alpha);
+            writeln!(out, "{m},{},{x:.4},{},{lo:.4},{hi:.4}", w.interval_start(j), rec.flag(i, j).as_str())?;
+        }
+    }
+    out.flush()?;
+    Ok(())
+}
+
+/// The 95% band x ± 1.96 sd, inside [0, alpha].
+pub fn band(x: f64, sd: f64, alpha: f64) -> (f64, f64) {
+    if !sd.is_finite() {
+        return (0.0, alpha);
+    }
+    ((x - 1.96 * sd).max(0.0), (x + 1.96 * sd).min(alpha))
+}
+
+/// Progress on a terminal as a bar, otherwise as plain lines.
+pub fn progress_reporter() -> impl FnMut(&str, f64) {
+    use std::io::IsTerminal;
+    let bar = std::io::stderr().is_terminal().then(|| {
+        let b = indicatif::ProgressBar::new(1000);
+        b.set_style(
+            indicatif::ProgressStyle::with_template("{msg:>16} [{bar:40}] {percent:>3}%")
+                .unwrap_or_else(|_| indicatif::ProgressStyle::default_bar()),
+        );
+        b
+    });
+    let mut last = String::new();
+    move |stage: &str, frac: f64| match &bar {
+        Some(b) => {
+            b.set_message(stage.to_owned());
+            b.set_position((frac * 1000.0) as u64);
+            if stage == "fitting" && frac >= 1.0 {
+                b.finish_and_clear();
+            }
+        }
+        None => {
+            let line = format!("{stage} {:.0}%", frac * 100.0);
+            if line != last {
+                eprintln!("{line}");
+                last = line;
+            }
+        }
+    }
+}
+
+/// The whole `recover` command; returns the JSON summary line.
+pub fn run_recover(
+    levels: &Path,
+    profile: &Path,
+    output: &Path,
+    registers: Option<&Path>,
+    params: RecoveryParams,
+) -> anyhow::Result<serde_json::Value> {
+    let text = std::fs::read_to_string(profile).with_context(|| format!("reading {}", profile.display()))?;
+    let profile = DitherProfile::from_json(&text).map_err(|e| anyhow::anyhow!("{}: {e}", profile.display()))?;
+    let alpha = params.alpha_kw;
+    let params = params.check().map_err(|e| anyhow::anyhow!("--{}: {}", e.field.replace('_', "-"), e.reason))?;
+    let w = read_levels(levels, &profile)?;
+    let (constraints, skipped) = match registers {
+        Some(p) => read_registers(p, &w)?,
+        None => (Vec::new(), 0),
+    };
+    let mut report = progress_reporter();
+    let rec = recover(&w.levels, &profile, &constraints, w.layout(), &params, &mut report)?;
+    write_recovery(output, &w, &rec, alpha)?;
+    let d = &rec.diagnostics;
+    Ok(serde_json::json!({
+        "meters": w.meters.len(),
+        "intervals": w.levels.cols(),
+        "window_start": w.start,
+        "readings": d.readings,
+        "register_days": constraints.len(),
+        "register_days_outside_window": skipped,
+        "rank": d.rank,
+        "rank_scores": d.rank_scores,
+        "iterations": d.iterations,
+        "stop": d.stop,
+        "log_likelihood_per_reading": d.log_likelihood_per_reading,
+        "corrected": d.corrected,
+        "outage_intervals": d.outage_intervals,
+        "infeasible_constraints": d.infeasible_constraints,
+        "wall_s": d.wall_s,
+        "output": output.display().to_string(),
+    }))
+}
