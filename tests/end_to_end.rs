@@ -443,7 +443,17 @@ async fn batches_are_idempotent_and_used_profiles_immutable() {
 
 /// Allowed columns of each schema whose names mention a unit. Anything else with
 /// a unit name, and any REAL column but the profile's own scale, fails.
-const UNIT_COLUMNS: [&str; 5] = ["scale_kw", "boundaries_kw", "wh_total", "register_mwh", "alpha_kw"];
+const UNIT_COLUMNS: [&str; 7] =
+    ["scale_kw", "boundaries_kw", "wh_total", "register_mwh", "estimate_kw", "band_low_kw", "band_high_kw"];
+
+/// REAL columns that hold configuration or the population model's estimates, never a reading.
+const REAL_COLUMNS: [(&str, &str); 5] = [
+    ("dither_profiles", "scale_kw"),
+    ("recovery_jobs", "progress"),
+    ("recovered_intervals", "estimate_kw"),
+    ("recovered_intervals", "band_low_kw"),
+    ("recovered_intervals", "band_high_kw"),
+];
 
 fn check_columns(cols: &[(String, String, String)]) {
     for (table, name, ty) in cols {
@@ -457,11 +467,7 @@ fn check_columns(cols: &[(String, String, String)]) {
             || ty.to_uppercase().contains("FLOA")
             || ty.to_uppercase().contains("DOUB")
         {
-            assert_eq!(
-                (table.as_str(), name.as_str()),
-                ("dither_profiles", "scale_kw"),
-                "{table}.{name} is a {ty} column"
-            );
+            assert!(REAL_COLUMNS.contains(&(table.as_str(), name.as_str())), "{table}.{name} is a {ty} column");
         }
     }
 }
@@ -684,4 +690,87 @@ fn recover_command_on_files() {
         .output()
         .expect("run");
     assert!(String::from_utf8_lossy(&run.stderr).contains("--rank"), "{}", String::from_utf8_lossy(&run.stderr));
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn recovery_job_over_stored_levels() {
+    let t = spawn_service().await;
+    let work = tempfile::tempdir().expect("tempdir");
+    let mut opts = SimulateOptions::new(t.url(), work.path().join("outboxes"));
+    opts.operator_token = Some(TOKEN.into());
+    opts.meters = 48;
+    opts.days = 4;
+    let report = simulate::run(&opts).await.expect("simulation");
+    let from = report.first_day;
+    let to = from + 4 * 86_400;
+    let (s, body) = t
+        .post_json("/v1/recoveries", &json!({"feeder_id": "QM-CHAPEL-ROW", "from": from, "to": to, "rank": 5}), true)
+        .await;
+    assert_eq!(s, StatusCode::ACCEPTED, "{body}");
+    let id = body["job_id"].as_str().expect("id").to_owned();
+    let get = |path: String| t.http.get(format!("{}{path}", t.url())).bearer_auth(TOKEN).send();
+    let mut job = Value::Null;
+    for _ in 0..600 {
+        job = get(format!("/v1/recoveries/{id}")).await.expect("status").json().await.expect("json");
+        if job["state"] == "done" || job["state"] == "failed" {
+            break;
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+    }
+    assert_eq!(job["state"], "done", "{job}");
+    assert_eq!(job["diagnostics"]["meters"], 12);
+    assert_eq!(job["diagnostics"]["intervals"], 4 * 96);
+    let rows: Vec<Value> =
+        get(format!("/v1/recoveries/{id}/intervals")).await.expect("rows").json().await.expect("json");
+    assert_eq!(rows.len(), 12 * 4 * 96);
+    // Each meter-day with register reads at both midnights sums to their difference.
+    let reads: Vec<(String, i64, i64)> =
+        sqlx::query_as("SELECT meter_id, read_at, wh_total FROM register_reads ORDER BY meter_id, read_at")
+            .fetch_all(t.svc.store.pool())
+            .await
+            .expect("reads");
+    let mut sums: std::collections::HashMap<(String, i64), f64> = Default::default();
+    for r in &rows {
+        let at = r["interval_start"].as_i64().expect("t");
+        *sums.entry((r["meter_id"].as_str().expect("m").to_owned(), at - at.rem_euclid(86_400))).or_default() +=
+            r["kw"].as_f64().expect("kw") * 250.0;
+    }
+    let mut checked = 0;
+    for w in reads.windows(2) {
+        if let Some(got) = sums.get(&(w[0].0.clone(), w[0].1)) {
+            if w[0].0 == w[1].0 && w[1].1 - w[0].1 == 86_400 {
+                assert!(
+                    (got - (w[1].2 - w[0].2) as f64).abs() <= 1.0,
+                    "{} day {}: {got} vs {}",
+                    w[0].0,
+                    w[0].1,
+                    w[1].2 - w[0].2
+                );
+                checked += 1;
+            }
+        }
+    }
+    assert_eq!(checked, 12 * 4);
+    assert_eq!(job["diagnostics"]["register_days"], 12 * 4);
+    let csv = get(format!("/v1/recoveries/{id}/intervals?format=csv&meter_id=QM-CHAPEL-ROW-0001"))
+        .await
+        .expect("csv")
+        .text()
+        .await
+        .expect("text");
+    assert_eq!(csv.lines().count(), 1 + 4 * 96);
+    // Bad requests name their field.
+    let (s, body) =
+        t.post_json("/v1/recoveries", &json!({"feeder_id": "QM-CHAPEL-ROW", "from": to, "to": from}), true).await;
+    assert_eq!((s, body["field"].as_str()), (StatusCode::UNPROCESSABLE_ENTITY, Some("to")));
+    let (s, body) = t
+        .post_json(
+            "/v1/recoveries",
+            &json!({"feeder_id": "QM-CHAPEL-ROW", "from": from, "to": to, "rank": "lots"}),
+            true,
+        )
+        .await;
+    assert_eq!((s, body["field"].as_str()), (StatusCode::UNPROCESSABLE_ENTITY, Some("rank")));
+    let r = get("/v1/recoveries/rec-none".into()).await.expect("get");
+    assert_eq!(r.status().as_u16(), 404);
 }

@@ -10,6 +10,7 @@ pub mod config;
 pub mod demo;
 pub mod error;
 pub mod ingest;
+pub mod jobs;
 pub mod metrics;
 pub mod offline;
 pub mod routes;

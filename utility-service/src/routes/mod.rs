@@ -4,6 +4,7 @@
 pub mod feeders;
 pub mod health;
 pub mod ingest;
+pub mod recoveries;
 
 use std::sync::Arc;
 
@@ -26,7 +27,12 @@ pub struct AppState {
 }
 
 pub fn router(state: AppState) -> Router {
-    Router::new().merge(health::router()).merge(ingest::router()).merge(feeders::router()).with_state(state)
+    Router::new()
+        .merge(health::router())
+        .merge(ingest::router())
+        .merge(feeders::router())
+        .merge(recoveries::router())
+        .with_state(state)
 }
 
 /// Proof that the request carried the operator token (`Authorization: Bearer …`).

@@ -19,6 +19,8 @@ use tokio::sync::Mutex;
 use crate::error::ApiError;
 use crate::ingest::ValidatedBatch;
 
+pub mod recoveries;
+
 /// Rows per multi-row INSERT; 1000 rows of 5 values stays far below SQLite's
 /// 32766 bound on statement parameters.
 const INSERT_CHUNK: usize = 1000;

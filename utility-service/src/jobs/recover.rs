@@ -1,0 +1,147 @@
+//! Recovery of a feeder's stored levels over a window, as a background job.
+
+use std::collections::HashMap;
+use std::sync::{Arc, Mutex};
+use std::time::Duration;
+
+use anyhow::Context;
+use meterveil_shared::recovery::outage::DayLayout;
+use meterveil_shared::recovery::{recover, LevelMatrix, RankChoice, RecoveryParams, SumConstraint};
+use meterveil_shared::FeederId;
+
+use crate::offline::band;
+use crate::routes::{now_s, AppState};
+use crate::store::recoveries::RecoveredRow;
+
+#[derive(Debug, Clone)]
+pub struct RecoveryRequest {
+    pub feeder: FeederId,
+    /// Window [from, to), UTC epoch seconds aligned to the interval length.
+    pub from: i64,
+    pub to: i64,
+    pub rank: RankChoice,
+    pub alpha_kw: f64,
+}
+
+/// Register energies of whole UTC days inside the window, for meters whose day
+/// has every interval stored: then the gateway's count of forwarded intervals
+/// and the day's intervals coincide.
+pub fn day_constraints(
+    meters: &HashMap<String, usize>,
+    levels: &LevelMatrix,
+    reads: &[(String, i64, i64)],
+    from: i64,
+    interval_s: u32,
+) -> Vec<SumConstraint> {
+    let per_day = (86_400 / interval_s) as usize;
+    let hours = f64::from(interval_s) / 3600.0;
+    let mut out = Vec::new();
+    for w in reads.windows(2) {
+        let (a, b) = (&w[0], &w[1]);
+        if a.0 != b.0 || b.1 - a.1 != 86_400 || a.1.rem_euclid(86_400) != 0 || b.2 < a.2 || a.1 < from {
+            continue;
+        }
+        let Some(&row) = meters.get(&a.0) else { continue };
+        let first = ((a.1 - from) / i64::from(interval_s)) as usize;
+        let cols = first..first + per_day;
+        if cols.end > levels.cols() || cols.clone().any(|j| levels.get(row, j).is_none()) {
+            continue;
+        }
+        out.push(SumConstraint { row, cols, sum_kw: (b.2 - a.2) as f64 / (1000.0 * hours) });
+    }
+    out
+}
+
+/// Runs the job to completion, recording progress and the outcome in its row.
+pub async fn run(state: AppState, job_id: String, req: RecoveryRequest) {
+    if let Err(e) = run_inner(&state, &job_id, &req).await {
+        tracing::warn!(job = %job_id, error = %format!("{e:#}"), "recovery job failed");
+        let _ = state.store.fail_job(&job_id, &format!("{e:#}"), now_s()).await;
+    }
+}
+
+async fn run_inner(s: &AppState, job_id: &str, req: &RecoveryRequest) -> anyhow::Result<()> {
+    let store = &s.store;
+    store.job_progress(job_id, "running", 0.0, "loading levels", now_s()).await?;
+    let rows = store.feeder_levels_between(&req.feeder, req.from, req.to).await?;
+    let mut versions: Vec<u32> = rows.iter().map(|r| r.3).collect();
+    versions.sort_unstable();
+    versions.dedup();
+    let version = match versions.as_slice() {
+        [] => anyhow::bail!("no readings of feeder {} in [{}, {})", req.feeder, req.from, req.to),
+        [v] => *v,
+        many => anyhow::bail!(
+            "the window holds readings of profile versions {many:?}; recover each version's window separately"
+        ),
+    };
+    let rec = store
+        .profiles(&req.feeder)
+        .await?
+        .into_iter()
+        .find(|p| p.version.0 == version)
+        .context("profile version of the readings")?;
+    let profile = rec.profile;
+    let step = i64::from(profile.interval().seconds());
+    if req.from.rem_euclid(step) != 0 || req.to.rem_euclid(step) != 0 {
+        anyhow::bail!("window bounds must be aligned to the {step}-second interval length");
+    }
+    let meters = store.meters_of(&req.feeder).await?;
+    let index: HashMap<String, usize> = meters.iter().enumerate().map(|(i, m)| (m.clone(), i)).collect();
+    let cols = ((req.to - req.from) / step) as usize;
+    let mut levels = LevelMatrix::missing(meters.len(), cols);
+    for (m, t, l, _) in &rows {
+        if let Some(&i) = index.get(m) {
+            levels.set(i, ((t - req.from) / step) as usize, Some(*l));
+        }
+    }
+    let reads = store.feeder_registers_between(&req.feeder, req.from, req.to).await?;
+    let constraints = day_constraints(&index, &levels, &reads, req.from, profile.interval().seconds());
+    let params = RecoveryParams { rank: req.rank.clone(), alpha_kw: req.alpha_kw, ..Default::default() }
+        .check()
+        .map_err(|e| anyhow::anyhow!("{e}"))?;
+
+    let progress = Arc::new(Mutex::new((String::from("choosing rank"), 0.0f64)));
+    let shared = progress.clone();
+    let layout = DayLayout { window_start: req.from, interval_s: profile.interval().seconds() };
+    let work = tokio::task::spawn_blocking(move || {
+        let _span = tracing::info_span!("recovery").entered();
+        recover(&levels, &profile, &constraints, layout, &params, &mut |stage, f| {
+            if let Ok(mut p) = shared.lock() {
+                *p = (stage.to_owned(), f);
+            }
+        })
+        .map(|r| (r, constraints.len()))
+    });
+    tokio::pin!(work);
+    let result = loop {
+        tokio::select! {
+            r = &mut work => break r,
+            _ = tokio::time::sleep(Duration::from_millis(500)) => {
+                let (stage, f) = progress.lock().map(|p| p.clone()).unwrap_or_default();
+                store.job_progress(job_id, "running", f, &stage, now_s()).await?;
+            }
+        }
+    };
+    let (rec, n_constraints) = result.context("recovery task")?.map_err(|e| anyhow::anyhow!("{e}"))?;
+    let mut out = Vec::with_capacity(meters.len() * cols);
+    for (i, m) in meters.iter().enumerate() {
+        for j in 0..cols {
+            let (x, sd) = (rec.x[(i, j)], rec.std_kw[(i, j)]);
+            let (lo, hi) = band(x, sd, req.alpha_kw);
+            out.push(RecoveredRow {
+                meter_id: m.clone(),
+                interval_start: req.from + j as i64 * step,
+                kw: x,
+                flag: rec.flag(i, j).as_str(),
+                kw_low: lo,
+                kw_high: hi,
+            });
+        }
+    }
+    let mut diag = serde_json::to_value(&rec.diagnostics)?;
+    diag["register_days"] = n_constraints.into();
+    diag["meters"] = meters.len().into();
+    diag["intervals"] = cols.into();
+    store.finish_job(job_id, version, &out, &diag, now_s()).await?;
+    Ok(())
+}

@@ -1,0 +1,229 @@
+//! Recovery jobs and results.
+
+use meterveil_shared::FeederId;
+use serde::Serialize;
+use sqlx::{QueryBuilder, Row, Sqlite};
+
+use super::Store;
+use crate::error::ApiError;
+
+#[derive(Debug, Clone, Serialize)]
+pub struct JobRecord {
+    pub job_id: String,
+    pub feeder_id: String,
+    pub window_start: i64,
+    pub window_end: i64,
+    pub params: serde_json::Value,
+    pub profile_version: Option<i64>,
+    pub state: String,
+    pub progress: f64,
+    pub message: String,
+    pub created_at: i64,
+    pub started_at: Option<i64>,
+    pub finished_at: Option<i64>,
+    pub diagnostics: Option<serde_json::Value>,
+    pub error: Option<String>,
+}
+
+/// One recovered interval as stored and served.
+#[derive(Debug, Clone, Serialize)]
+pub struct RecoveredRow {
+    pub meter_id: String,
+    pub interval_start: i64,
+    pub kw: f64,
+    pub flag: &'static str,
+    pub kw_low: f64,
+    pub kw_high: f64,
+}
+
+impl Store {
+    pub async fn create_job(
+        &self,
+        id: &str,
+        feeder: &FeederId,
+        from: i64,
+        to: i64,
+        params: &serde_json::Value,
+        now: i64,
+    ) -> Result<(), ApiError> {
+        let _w = self.writer.lock().await;
+        sqlx::query(
+            "INSERT INTO recovery_jobs (job_id, feeder_id, window_start, window_end, params, state, created_at) VALUES (?, ?, ?, ?, ?, 'queued', ?)",
+        )
+        .bind(id)
+        .bind(feeder.as_str())
+        .bind(from)
+        .bind(to)
+        .bind(params.to_string())
+        .bind(now)
+        .execute(&self.pool)
+        .await?;
+        Ok(())
+    }
+
+    pub async fn job_progress(
+        &self,
+        id: &str,
+        state: &str,
+        progress: f64,
+        message: &str,
+        now: i64,
+    ) -> Result<(), ApiError> {
+        let _w = self.writer.lock().await;
+        sqlx::query(
+            "UPDATE recovery_jobs SET state = ?, progress = ?, message = ?, started_at = COALESCE(started_at, ?) WHERE job_id = ? AND state IN ('queued', 'running')",
+        )
+        .bind(state)
+        .bind(progress)
+        .bind(message)
+        .bind(now)
+        .bind(id)
+        .execute(&self.pool)
+        .await?;
+        Ok(())
+    }
+
+    pub async fn fail_job(&self, id: &str, error: &str, now: i64) -> Result<(), ApiError> {
+        let _w = self.writer.lock().await;
+        sqlx::query("UPDATE recovery_jobs SET state = 'failed', error = ?, finished_at = ? WHERE job_id = ?")
+            .bind(error)
+            .bind(now)
+            .bind(id)
+            .execute(&self.pool)
+            .await?;
+        Ok(())
+    }
+
+    /// Stores all results and marks the job done in one transaction.
+    pub async fn finish_job(
+        &self,
+        id: &str,
+        profile_version: u32,
+        rows: &[RecoveredRow],
+        diagnostics: &serde_json::Value,
+        now: i64,
+    ) -> Result<(), ApiError> {
+        let _w = self.writer.lock().await;
+        let mut tx = self.pool.begin().await?;
+        for chunk in rows.chunks(700) {
+            let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
+                "INSERT INTO recovered_intervals (job_id, meter_id, interval_start, estimate_kw, flag, band_low_kw, band_high_kw) ",
+            );
+            qb.push_values(chunk, |mut b, r| {
+                b.push_bind(id)
+                    .push_bind(&r.meter_id)
+                    .push_bind(r.interval_start)
+                    .push_bind(r.kw)
+                    .push_bind(r.flag)
+                    .push_bind(r.kw_low)
+                    .push_bind(r.kw_high);
+            });
+            qb.build().execute(&mut *tx).await?;
+        }
+        sqlx::query(
+            "UPDATE recovery_jobs SET state = 'done', progress = 1, message = 'done', profile_version = ?, diagnostics = ?, finished_at = ? WHERE job_id = ?",
+        )
+        .bind(i64::from(profile_version))
+        .bind(diagnostics.to_string())
+        .bind(now)
+        .bind(id)
+        .execute(&mut *tx)
+        .await?;
+        tx.commit().await?;
+        Ok(())
+    }
+
+    pub async fn job(&self, id: &str) -> Result<Option<JobRecord>, ApiError> {
+        let Some(r) =
+            sqlx::query("SELECT * FROM recovery_jobs WHERE job_id = ?").bind(id).fetch_optional(&self.pool).await?
+        else {
+            return Ok(None);
+        };
+        let json = |s: Option<String>| s.and_then(|s| serde_json::from_str(&s).ok());
+        Ok(Some(JobRecord {
+            job_id: r.try_get("job_id")?,
+            feeder_id: r.try_get("feeder_id")?,
+            window_start: r.try_get("window_start")?,
+            window_end: r.try_get("window_end")?,
+            params: json(r.try_get("params")?).unwrap_or(serde_json::Value::Null),
+            profile_version: r.try_get("profile_version")?,
+            state: r.try_get("state")?,
+            progress: r.try_get("progress")?,
+            message: r.try_get("message")?,
+            created_at: r.try_get("created_at")?,
+            started_at: r.try_get("started_at")?,
+            finished_at: r.try_get("finished_at")?,
+            diagnostics: json(r.try_get("diagnostics")?),
+            error: r.try_get("error")?,
+        }))
+    }
+
+    pub async fn job_rows(&self, id: &str, meter: Option<&str>) -> Result<Vec<RecoveredRow>, ApiError> {
+        let rows = sqlx::query(
+            "SELECT meter_id, interval_start, estimate_kw, flag, band_low_kw, band_high_kw FROM recovered_intervals
+             WHERE job_id = ?1 AND (?2 IS NULL OR meter_id = ?2) ORDER BY meter_id, interval_start",
+        )
+        .bind(id)
+        .bind(meter)
+        .fetch_all(&self.pool)
+        .await?;
+        rows.iter()
+            .map(|r| {
+                let flag: String = r.try_get(3)?;
+                Ok(RecoveredRow {
+                    meter_id: r.try_get(0)?,
+                    interval_start: r.try_get(1)?,
+                    kw: r.try_get(2)?,
+                    flag: match flag.as_str() {
+                        "derived" => "derived",
+                        "corrected" => "corrected",
+                        _ => "estimated",
+                    },
+                    kw_low: r.try_get(4)?,
+                    kw_high: r.try_get(5)?,
+                })
+            })
+            .collect()
+    }
+
+    /// Levels of a feeder in [from, to) as (meter, interval_start, level, version).
+    pub async fn feeder_levels_between(
+        &self,
+        feeder: &FeederId,
+        from: i64,
+        to: i64,
+    ) -> Result<Vec<(String, i64, u8, u32)>, ApiError> {
+        let rows = sqlx::query(
+            "SELECT r.meter_id, r.interval_start, r.level, r.profile_version
+             FROM readings r JOIN meters m ON m.meter_id = r.meter_id
+             WHERE m.feeder_id = ? AND r.interval_start >= ? AND r.interval_start < ?",
+        )
+        .bind(feeder.as_str())
+        .bind(from)
+        .bind(to)
+        .fetch_all(&self.pool)
+        .await?;
+        rows.iter()
+            .map(|r| Ok((r.try_get(0)?, r.try_get(1)?, r.try_get::<i64, _>(2)? as u8, r.try_get::<i64, _>(3)? as u32)))
+            .collect()
+    }
+
+    /// Register reads of a feeder's meters in [from, to] as (meter, read_at, wh_total).
+    pub async fn feeder_registers_between(
+        &self,
+        feeder: &FeederId,
+        from: i64,
+        to: i64,
+    ) -> Result<Vec<(String, i64, i64)>, ApiError> {
+        let rows: Vec<(String, i64, i64)> = sqlx::query_as(
+            "SELECT g.meter_id, g.read_at, g.wh_total FROM register_reads g JOIN meters m ON m.meter_id = g.meter_id
+             WHERE m.feeder_id = ? AND g.read_at >= ? AND g.read_at <= ? ORDER BY g.meter_id, g.read_at",
+        )
+        .bind(feeder.as_str())
+        .bind(from)
+        .bind(to)
+        .fetch_all(&self.pool)
+        .await?;
+        Ok(rows)
+    }
+}
