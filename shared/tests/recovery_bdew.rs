@@ -84,6 +84,17 @@ fn bdew_population_headline_accuracy() {
         e / base,
         100.0 * energy
     );
+    let inside = (0..truth.nrows() * truth.ncols())
+        .filter(|&k| {
+            let (i, j) = (k % truth.nrows(), k / truth.nrows());
+            let sd = rec.std_kw[(i, j)];
+            (truth[(i, j)] - rec.x[(i, j)]).abs() <= 1.96 * sd
+        })
+        .count();
+    eprintln!(
+        "95% band covers {:.1}% of true values (a first-order floor; see solver::uncertainty)",
+        100.0 * inside as f64 / (truth.nrows() * truth.ncols()) as f64
+    );
     assert!(e <= 0.28, "nRMSE {e}");
     assert!(e <= 0.65 * base, "nRMSE {e} vs baseline {base}");
     assert!(energy <= 0.08, "median daily energy error {energy}");

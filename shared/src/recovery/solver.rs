@@ -2,7 +2,7 @@
 
 use std::time::Instant;
 
-use nalgebra::{DMatrix, DVector};
+use nalgebra::DMatrix;
 use rand::{Rng, SeedableRng};
 use rayon::prelude::*;
 use serde::Serialize;
@@ -321,6 +321,39 @@ impl Ctx<'_> {
     }
 }
 
+/// One plain iteration (Nesterov extrapolation with momentum index `t`, gradient
+/// ascent step of s²/curvature, rank-`rank` truncation, clipping to [0, alpha]),
+/// with no restarts or corruption handling: the unit the Python reference
+/// (tests/reference/recovery_iteration.py) implements too. Returns (x_new, t_next).
+#[allow(clippy::too_many_arguments)]
+pub fn one_iteration(
+    levels: &LevelMatrix,
+    profile: &DitherProfile,
+    x: &DMatrix<f64>,
+    x_prev: &DMatrix<f64>,
+    t: f64,
+    rank: usize,
+    alpha: f64,
+    oversample: usize,
+    rng: &mut impl Rng,
+) -> (DMatrix<f64>, f64) {
+    let table =
+        LikelihoodTable::new(profile, -0.5 * alpha - 5.0 * profile.scale_kw(), 1.5 * alpha + 5.0 * profile.scale_kw());
+    let p = super::RecoveryParams::default();
+    let ctx = Ctx { levels, table: &table, constraints: &[], alpha, step: 1.0 / max_curvature(profile), p: &p };
+    let mask = Mask { active: levels.as_slice().iter().map(|&v| v != MISSING).collect() };
+    let t_next = 0.5 * (1.0 + (1.0 + 4.0 * t * t).sqrt());
+    let beta = (t - 1.0) / t_next;
+    let z = x + (x - x_prev) * beta;
+    let mut w = DMatrix::zeros(x.nrows(), x.ncols());
+    ctx.ascent(&z, &mask, &mut w);
+    let lr = truncate(&w, rank, oversample, 1, None, rng);
+    let mut out = DMatrix::zeros(x.nrows(), x.ncols());
+    lr.reconstruct_into(&mut out);
+    ctx.project(&mut out);
+    (out, t_next)
+}
+
 /// Exact Euclidean projection of each constrained run onto
 /// {0 ≤ x ≤ alpha, Σ x = target}, and plain clipping elsewhere. Returns how many
 /// constraints were infeasible (target outside [0, alpha · len]).
@@ -493,7 +526,7 @@ pub fn recover(
     diagnostics.outage_intervals = outage_cols;
     diagnostics.infeasible_constraints = ctx.project(&mut x);
     let used = Mask { active: observed.iter().zip(&fit.corrupt).map(|(&o, &c)| o && !c).collect() };
-    let std_kw = uncertainty(&fit.lr, &used, &table, &x, alpha);
+    let std_kw = uncertainty(&fit.lr, &used, &table, &x);
     diagnostics.iterations = fit.iterations;
     diagnostics.stop = fit.stop;
     diagnostics.log_likelihood_per_reading = -ctx.objective(&x, &used);
@@ -539,69 +572,48 @@ fn initial_estimate(levels: &LevelMatrix, table: &LikelihoodTable, alpha: f64) -
 
 /// First-order standard deviation of each estimate under the rank-r model.
 ///
-/// With X = L Rᵀ (L = U√S, R = V√S) and Fisher information I_ij of each reading
-/// at its estimate, the row factor L_i has information A_i = Σ_j I_ij R_j R_jᵀ
-/// and the column factor R_j has B_j = Σ_i I_ij L_i L_iᵀ. The variance of X_ij
-/// is taken as R_jᵀ A_i⁻¹ R_j + L_iᵀ B_j⁻¹ L_i (the two factor uncertainties,
-/// their covariance ignored). This ignores rank selection and bias, so it is a
-/// floor on the true error, not a guarantee.
-fn uncertainty(lr: &LowRank, used: &Mask, table: &LikelihoodTable, x: &DMatrix<f64>, alpha: f64) -> DMatrix<f64> {
+/// With X = L Rᵀ (L = U√S, R = V√S) and Fisher information I_ij of each used
+/// reading at its estimate, the row factor L_i has information
+/// A_i = Σ_j I_ij R_j R_jᵀ and the column factor R_j has B_j = Σ_i I_ij L_i L_iᵀ.
+/// We approximate A_i ≈ c_i RᵀR with c_i the row's mean information (and B_j
+/// likewise), which keeps the cost at O(m n + (m + n) r²) instead of O(m n r²),
+/// and take Var X_ij ≈ R_jᵀ A_i⁻¹ R_j + L_iᵀ B_j⁻¹ L_i (the factor covariance is
+/// ignored). This ignores rank selection and bias, so it is a floor on the error,
+/// not a guarantee. Entries with no information anywhere in their row or column
+/// get an infinite deviation (band [0, alpha]).
+fn uncertainty(lr: &LowRank, used: &Mask, table: &LikelihoodTable, x: &DMatrix<f64>) -> DMatrix<f64> {
     let (m, n) = x.shape();
     let r = lr.rank();
     if r == 0 {
-        return DMatrix::from_element(m, n, alpha);
+        return DMatrix::from_element(m, n, f64::INFINITY);
     }
     let k = table.profile().levels();
-    let info = DMatrix::<f64>::from_fn(m, n, |i, j| {
-        let idx = i + j * m;
-        if !used.active[idx] {
-            return 0.0;
+    let mut row_info = vec![0.0; m];
+    let mut col_info = vec![0.0; n];
+    for j in 0..n {
+        for i in 0..m {
+            if used.active[i + j * m] {
+                let xv = x[(i, j)];
+                let info: f64 = (0..k as u8)
+                    .map(|lv| {
+                        let (l, d) = table.eval(lv, xv);
+                        l.exp() * d * d
+                    })
+                    .sum();
+                row_info[i] += info;
+                col_info[j] += info;
+            }
         }
-        let xv = x[(i, j)];
-        (0..k as u8)
-            .map(|lv| {
-                let (l, d) = table.eval(lv, xv);
-                l.exp() * d * d
-            })
-            .sum()
-    });
-    let sq: Vec<f64> = lr.s.iter().map(|s| s.sqrt()).collect();
-    let mut lf = lr.u.clone();
-    let mut rf = lr.v.clone();
-    for (c, q) in sq.iter().enumerate() {
-        lf.column_mut(c).scale_mut(*q);
-        rf.column_mut(c).scale_mut(*q);
     }
-    let ridge = 1e-9;
-    let inv_blocks = |fac: &DMatrix<f64>, count: usize, along_rows: bool| -> Vec<Option<DMatrix<f64>>> {
-        (0..count)
-            .map(|a| {
-                let mut g = DMatrix::<f64>::identity(r, r) * ridge;
-                let len = if along_rows { n } else { m };
-                for b in 0..len {
-                    let w = if along_rows { info[(a, b)] } else { info[(b, a)] };
-                    if w > 0.0 {
-                        let f = fac.row(b);
-                        g.ger(w, &f.transpose(), &f.transpose(), 1.0);
-                    }
-                }
-                g.try_inverse()
-            })
-            .collect()
-    };
-    let a_inv = inv_blocks(&rf, m, true);
-    let b_inv = inv_blocks(&lf, n, false);
+    // Leverages of the factors: h_i = L_iᵀ (LᵀL)⁻¹ L_i = |U_i|², g_j = |V_j|² (U, V orthonormal).
+    let h: Vec<f64> = (0..m).map(|i| lr.u.row(i).norm_squared()).collect();
+    let g: Vec<f64> = (0..n).map(|j| lr.v.row(j).norm_squared()).collect();
     DMatrix::from_fn(m, n, |i, j| {
-        let (Some(ai), Some(bj)) = (&a_inv[i], &b_inv[j]) else {
+        let (c, d) = (row_info[i] / n as f64, col_info[j] / m as f64);
+        if c <= 0.0 || d <= 0.0 {
             return f64::INFINITY;
-        };
-        let rj: DVector<f64> = rf.row(j).transpose();
-        let li: DVector<f64> = lf.row(i).transpose();
-        let var = (rj.transpose() * ai * &rj)[(0, 0)] + (li.transpose() * bj * &li)[(0, 0)];
-        if var.is_finite() && var >= 0.0 {
-            var.sqrt().min(alpha)
-        } else {
-            f64::INFINITY
         }
+        // R_jᵀ (c RᵀR)⁻¹ R_j = g_j / c, since RᵀR = S and R_j = V_j √S.
+        (g[j] / c + h[i] / d).sqrt()
     })
 }
