@@ -1,6 +1,6 @@
 """Times one iteration of the numpy/scipy reference (tests/reference/recovery_iteration.py)
-at a given size, with the same randomized truncation as the Rust code (r + 10
-columns, one subspace round), and prints one JSON line.
+at a given size, with the same randomized truncation as the Rust code's steady
+state (r + 10 columns, no extra subspace round), and prints one JSON line.
 
 usage: iteration_speed.py M N RANK
 """
@@ -18,8 +18,6 @@ from recovery_iteration import iteration  # noqa: E402
 def rsvd(w, rank, rng=np.random.default_rng(1)):
     k = min(rank + 10, *w.shape)
     q, _ = np.linalg.qr(w @ rng.standard_normal((w.shape[1], k)))
-    z, _ = np.linalg.qr(w.T @ q)
-    q, _ = np.linalg.qr(w @ z)
     ub, s, vt = np.linalg.svd(q.T @ w, full_matrices=False)
     return q @ ub, s, vt
 

@@ -58,7 +58,7 @@ fn one_iteration_matches_the_numpy_reference() {
     let reference: serde_json::Value = serde_json::from_slice(&out.stdout).expect("json");
     eprintln!("reference: numpy {}", reference["numpy"]);
 
-    let (got, t_next) = one_iteration(&levels, &p, &x, &x_prev, t, r, alpha, m.min(n), &mut rng);
+    let (got, t_next) = one_iteration(&levels, &p, &x, &x_prev, t, r, alpha, m.min(n), 1, &mut rng);
     assert!((t_next - reference["t_next"].as_f64().expect("t")).abs() < 1e-12);
     let want = DMatrix::<f64>::from_fn(m, n, |i, j| reference["x_new"][i][j].as_f64().expect("x"));
     let err = (&got - &want).norm() / want.norm();

@@ -192,17 +192,22 @@ impl Ctx<'_> {
     }
 
     /// w = z + step · ∇ log-likelihood(z), over active entries.
-    fn ascent(&self, z: &DMatrix<f64>, mask: &Mask, w: &mut DMatrix<f64>) {
+    /// w = z + step · ∇ log-likelihood(z) over active entries, where
+    /// z = x + beta (x - x_prev) is formed on the fly (one pass, no buffer for z).
+    fn ascent(&self, x: &DMatrix<f64>, x_prev: &DMatrix<f64>, beta: f64, mask: &Mask, w: &mut DMatrix<f64>) {
         let lv = self.levels.as_slice();
         let step = self.step;
-        w.as_mut_slice().par_chunks_mut(CHUNK).zip(z.as_slice().par_chunks(CHUNK)).enumerate().for_each(
-            |(c, (ws, zs))| {
+        w.as_mut_slice()
+            .par_chunks_mut(CHUNK)
+            .zip(x.as_slice().par_chunks(CHUNK).zip(x_prev.as_slice().par_chunks(CHUNK)))
+            .enumerate()
+            .for_each(|(c, (ws, (xs, ps)))| {
                 let off = c * CHUNK;
-                for (k, (wv, &zv)) in ws.iter_mut().zip(zs).enumerate() {
+                for (k, (wv, (&xv, &pv))) in ws.iter_mut().zip(xs.iter().zip(ps)).enumerate() {
+                    let zv = xv + beta * (xv - pv);
                     *wv = if mask.active[off + k] { zv + step * self.table.eval(lv[off + k], zv).1 } else { zv };
                 }
-            },
-        );
+            });
     }
 
     fn project(&self, x: &mut DMatrix<f64>) -> usize {
@@ -257,7 +262,6 @@ impl Ctx<'_> {
         let mut mask = base.clone();
         let mut obj = self.objective(&x, &mask);
         let mut x_prev = x.clone();
-        let mut z = DMatrix::zeros(m, n);
         let mut w = DMatrix::zeros(m, n);
         let mut x_new = DMatrix::zeros(m, n);
         let mut t = 1.0f64;
@@ -269,10 +273,7 @@ impl Ctx<'_> {
             it += 1;
             let t_next = 0.5 * (1.0 + (1.0 + 4.0 * t * t).sqrt());
             let beta = (t - 1.0) / t_next;
-            for ((zv, &xv), &pv) in z.as_mut_slice().iter_mut().zip(x.as_slice()).zip(x_prev.as_slice()) {
-                *zv = xv + beta * (xv - pv);
-            }
-            self.ascent(&z, &mask, &mut w);
+            self.ascent(&x, &x_prev, beta, &mask, &mut w);
             let lr_new = truncate(&w, rank, p.oversample, p.power_iterations, Some(&lr.v), rng);
             lr_new.reconstruct_into(&mut x_new);
             self.project(&mut x_new);
@@ -322,7 +323,8 @@ impl Ctx<'_> {
 }
 
 /// One plain iteration (Nesterov extrapolation with momentum index `t`, gradient
-/// ascent step of s²/curvature, rank-`rank` truncation, clipping to [0, alpha]),
+/// ascent step of s²/curvature, rank-`rank` truncation with `oversample` extra
+/// columns and `power` subspace rounds, clipping to [0, alpha]),
 /// with no restarts or corruption handling: the unit the Python reference
 /// (tests/reference/recovery_iteration.py) implements too. Returns (x_new, t_next).
 #[allow(clippy::too_many_arguments)]
@@ -335,6 +337,7 @@ pub fn one_iteration(
     rank: usize,
     alpha: f64,
     oversample: usize,
+    power: usize,
     rng: &mut impl Rng,
 ) -> (DMatrix<f64>, f64) {
     let table =
@@ -344,10 +347,9 @@ pub fn one_iteration(
     let mask = Mask { active: levels.as_slice().iter().map(|&v| v != MISSING).collect() };
     let t_next = 0.5 * (1.0 + (1.0 + 4.0 * t * t).sqrt());
     let beta = (t - 1.0) / t_next;
-    let z = x + (x - x_prev) * beta;
     let mut w = DMatrix::zeros(x.nrows(), x.ncols());
-    ctx.ascent(&z, &mask, &mut w);
-    let lr = truncate(&w, rank, oversample, 1, None, rng);
+    ctx.ascent(x, x_prev, beta, &mask, &mut w);
+    let lr = truncate(&w, rank, oversample, power, None, rng);
     let mut out = DMatrix::zeros(x.nrows(), x.ncols());
     lr.reconstruct_into(&mut out);
     ctx.project(&mut out);
@@ -511,8 +513,10 @@ pub fn recover(
         }
     };
     progress("fitting", 0.0);
-    let start = warm_x.as_ref().unwrap_or(&init);
-    let fit = ctx.fit(&full, rank, start, p.max_iterations, &mut rng);
+    // Only one starting matrix is kept alive during the final fit.
+    let start = warm_x.unwrap_or(init);
+    let fit = ctx.fit(&full, rank, &start, p.max_iterations, &mut rng);
+    drop(start);
     progress("fitting", 1.0);
 
     let mut x = fit.x;
