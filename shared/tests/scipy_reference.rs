@@ -5,7 +5,7 @@
 //! `tests/reference/requirements.txt` (scipy 1.17.1, mpmath 1.3.0) and the versions
 //! actually used are printed by the test.
 
-use std::process::Command;
+mod common;
 
 use meterveil_shared::mechanism::log_likelihood;
 use meterveil_shared::special::{log_logistic_cdf, log_ndtr};
@@ -13,17 +13,7 @@ use meterveil_shared::{DitherProfile, DitherProfileSpec};
 use serde_json::Value;
 
 fn reference() -> Value {
-    let python = std::env::var("METERVEIL_PYTHON").unwrap_or_else(|_| "python3".into());
-    let script = concat!(env!("CARGO_MANIFEST_DIR"), "/../tests/reference/likelihood_reference.py");
-    let out = Command::new(&python).arg(script).output().unwrap_or_else(|e| {
-        panic!("cannot run {python}: {e}; run the README test command, which installs the reference packages")
-    });
-    assert!(
-        out.status.success(),
-        "reference script failed (is scipy installed? see tests/reference/requirements.txt):\n{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    serde_json::from_slice(&out.stdout).expect("reference prints JSON")
+    common::python_json("likelihood_reference.py", &[])
 }
 
 fn close(a: f64, b: f64, rel: f64) -> bool {

@@ -4,7 +4,7 @@
 use std::collections::{HashMap, HashSet};
 
 use meterveil_shared::wire::BatchWire;
-use meterveil_shared::{BatchId, FeederId, FieldError, GatewayId, IntervalStart, MeterId};
+use meterveil_shared::{BatchId, FeederId, GatewayId, IntervalStart, MeterId};
 use sha2::{Digest, Sha256};
 
 use crate::error::ApiError;
@@ -51,12 +51,7 @@ pub fn body_sha256(body: &[u8]) -> String {
 
 /// Parses the JSON body, naming the path of the first bad field.
 pub fn parse_batch(body: &[u8]) -> Result<BatchWire, ApiError> {
-    let de = &mut serde_json::Deserializer::from_slice(body);
-    serde_path_to_error::deserialize(de).map_err(|e| {
-        let path = e.path().to_string();
-        let field = if path == "." { "body".to_owned() } else { path };
-        ApiError::Malformed(FieldError::new(field, e.into_inner().to_string()))
-    })
+    crate::routes::parse_json(body)
 }
 
 pub fn check_header(b: &BatchWire) -> Result<BatchHeader, ApiError> {
