@@ -662,6 +662,28 @@ fn recover_command_on_files() {
         assert!((got - want).abs() <= 1.0 + 1.2, "{l}: {got}");
     }
 
+    // Clustering the recovered profiles: every meter gets a cluster and a confidence.
+    let clusters = dir.path().join("clusters.csv");
+    let run = std::process::Command::new(bin)
+        .args(["cluster", "--profiles"])
+        .arg(&out)
+        .arg("--output")
+        .arg(&clusters)
+        .args(["--clusters", "4"])
+        .output()
+        .expect("run cluster");
+    assert!(run.status.success(), "{}", String::from_utf8_lossy(&run.stderr));
+    let summary: Value =
+        serde_json::from_slice(run.stdout.split(|b| *b == b'\n').rfind(|l| !l.is_empty()).expect("line"))
+            .expect("json");
+    assert_eq!((summary["clusters"].as_u64(), summary["chosen_by"].as_str()), (Some(4), Some("operator")));
+    assert_eq!(summary["representatives"][0]["weekday_kw"].as_array().map(Vec::len), Some(96));
+    let text = std::fs::read_to_string(&clusters).expect("clusters");
+    assert_eq!(text.lines().next(), Some("meter_id,cluster,confidence"));
+    let labels: HashSet<&str> = text.lines().skip(1).map(|l| l.split(',').nth(1).expect("cluster")).collect();
+    assert_eq!(text.lines().count(), 61);
+    assert_eq!(labels.len(), 4);
+
     // Bad input: the file, the line and the field are named; nothing is written.
     let bad = dir.path().join("bad.csv");
     std::fs::write(&bad, "meter_id,interval_start,level\nm1,1700006400,1\nm1,1700007300,7\n").expect("write");

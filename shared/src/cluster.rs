@@ -295,3 +295,97 @@ pub fn cluster(profiles: &DMatrix<f64>, params: &ClusterParams) -> Result<Cluste
     let (labels, confidence) = kmeans(&emb, k, params.seed);
     Ok(Clustering { labels, confidence, clusters: k, eigenvalues: vals })
 }
+
+/// A cluster's representative days: the mean over its members of their mean
+/// working day and mean weekend day (UTC days of the window), per interval, kW.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct Representative {
+    pub cluster: usize,
+    pub size: usize,
+    pub weekday_kw: Vec<f64>,
+    pub weekend_kw: Vec<f64>,
+}
+
+/// Representative shapes of each cluster. `window_start` is the UTC epoch second
+/// of column 0; `interval_s` divides a day.
+pub fn representatives(
+    profiles: &DMatrix<f64>,
+    c: &Clustering,
+    window_start: i64,
+    interval_s: u32,
+) -> Vec<Representative> {
+    let per_day = (86_400 / interval_s.max(1)) as usize;
+    let mut out: Vec<Representative> = (0..c.clusters)
+        .map(|k| Representative { cluster: k, size: 0, weekday_kw: vec![0.0; per_day], weekend_kw: vec![0.0; per_day] })
+        .collect();
+    let mut counts = vec![[vec![0usize; per_day], vec![0usize; per_day]]; c.clusters];
+    for (i, &l) in c.labels.iter().enumerate() {
+        out[l].size += 1;
+        for j in 0..profiles.ncols() {
+            let t = window_start + j as i64 * i64::from(interval_s);
+            let weekend = (t.div_euclid(86_400) + 3).rem_euclid(7) >= 5;
+            let slot = (t.rem_euclid(86_400) / i64::from(interval_s)) as usize % per_day;
+            let target = if weekend { &mut out[l].weekend_kw } else { &mut out[l].weekday_kw };
+            target[slot] += profiles[(i, j)];
+            counts[l][usize::from(weekend)][slot] += 1;
+        }
+    }
+    for (r, cnt) in out.iter_mut().zip(&counts) {
+        for (v, n) in r.weekday_kw.iter_mut().zip(&cnt[0]) {
+            *v /= (*n).max(1) as f64;
+        }
+        for (v, n) in r.weekend_kw.iter_mut().zip(&cnt[1]) {
+            *v /= (*n).max(1) as f64;
+        }
+    }
+    out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use rand_distr::{Distribution, Normal};
+
+    #[test]
+    fn each_bad_field_is_named() {
+        let d = ClusterParams::default;
+        let cases = [
+            (ClusterParams { clusters: Some(1), ..d() }, "clusters"),
+            (ClusterParams { max_clusters: 1, ..d() }, "max_clusters"),
+            (ClusterParams { dimension: 0, ..d() }, "dimension"),
+            (ClusterParams { neighbors: 0, ..d() }, "neighbors"),
+            (ClusterParams { ridge: 0.0, ..d() }, "ridge"),
+        ];
+        for (p, f) in cases {
+            assert_eq!(p.check().unwrap_err().field, f);
+        }
+    }
+
+    #[test]
+    fn separates_three_planted_shapes_and_counts_them() {
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(9);
+        let noise = Normal::new(0.0, 0.05).unwrap();
+        let shapes: Vec<Vec<f64>> = (0..3)
+            .map(|k| {
+                (0..192)
+                    .map(|j| 1.0 + ((j % 96) as f64 / 96.0 * std::f64::consts::TAU * (k + 1) as f64).sin())
+                    .collect()
+            })
+            .collect();
+        let m = 150;
+        let x = DMatrix::from_fn(m, 192, |i, j| {
+            (shapes[i % 3][j] * (0.5 + (i % 7) as f64 * 0.1) + noise.sample(&mut rng)).max(0.0)
+        });
+        let c = cluster(&x, &ClusterParams { dimension: 6, max_clusters: 8, ..Default::default() }).unwrap();
+        assert_eq!(c.clusters, 3, "{:?}", &c.eigenvalues);
+        for i in 0..m {
+            for j in 0..m {
+                assert_eq!(c.labels[i] == c.labels[j], i % 3 == j % 3);
+            }
+        }
+        assert!(c.confidence.iter().all(|v| (0.0..=1.0).contains(v)));
+        let reps = representatives(&x, &c, 1_700_006_400, 900);
+        assert_eq!(reps.iter().map(|r| r.size).sum::<usize>(), m);
+        assert!(cluster(&DMatrix::zeros(1, 5), &ClusterParams::default()).is_err());
+    }
+}

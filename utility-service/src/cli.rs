@@ -58,6 +58,18 @@ pub enum Command {
         #[arg(long, default_value_t = 15.0)]
         alpha_kw: f64,
     },
+    /// Group customers by load shape from recovered profiles (a `recover` output).
+    Cluster {
+        /// CSV with header meter_id,interval_start,kw,… (the recover output).
+        #[arg(long)]
+        profiles: PathBuf,
+        /// Output CSV: meter_id,cluster,confidence.
+        #[arg(long)]
+        output: PathBuf,
+        /// A number of clusters, or "auto" (eigengap rule).
+        #[arg(long, default_value = "auto")]
+        clusters: String,
+    },
     /// One command: a fresh service and the invented town of Quillmarsh, 28 days of
     /// 15-minute data through real gateway outboxes over HTTP, then a summary.
     Demo {
@@ -104,6 +116,19 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
                 crate::offline::run_recover(&levels, &profile, &output, registers.as_deref(), params)
             })
             .await??;
+            println!("{summary}");
+            Ok(())
+        }
+        Command::Cluster { profiles, output, clusters } => {
+            let clusters = match clusters.as_str() {
+                "auto" => None,
+                n => {
+                    Some(n.parse().map_err(|_| anyhow::anyhow!("--clusters: {n:?} is neither a number nor \"auto\""))?)
+                }
+            };
+            let summary =
+                tokio::task::spawn_blocking(move || crate::offline::run_cluster(&profiles, &output, clusters))
+                    .await??;
             println!("{summary}");
             Ok(())
         }

@@ -34,11 +34,25 @@ pub struct FeederRecovery {
     pub register_days: u64,
     pub nrmse: f64,
     pub median_daily_energy_error: f64,
+    /// Recovered kW per meter, in interval order over the window.
+    pub profiles: Vec<(String, Vec<f64>)>,
+}
+
+/// One load-shape cluster of the town, described for the summary.
+#[derive(Debug, Clone)]
+pub struct TownCluster {
+    pub size: usize,
+    pub weekday_peak: String,
+    pub weekday_kwh: f64,
+    pub weekend_kwh: f64,
+    /// The simulated kinds of its members, most common first (only a demo knows them).
+    pub kinds: Vec<(String, usize)>,
 }
 
 #[derive(Debug, Clone)]
 pub struct DemoSummary {
     pub recoveries: Vec<FeederRecovery>,
+    pub clusters: Vec<TownCluster>,
     pub service_url: String,
     pub database: PathBuf,
     pub simulation: SimulationReport,
@@ -94,7 +108,9 @@ pub async fn run(opts: &DemoOptions) -> anyhow::Result<DemoSummary> {
     for f in &feeders {
         recoveries.push(recover_feeder(&svc.url(), &token_for_jobs, &f.feeder_id, &town).await?);
     }
+    let clusters = cluster_town(&recoveries, &town)?;
     let summary = DemoSummary {
+        clusters,
         recoveries,
         service_url: svc.url(),
         database: db,
@@ -171,6 +187,21 @@ async fn recover_feeder(
         e.0 += (est - t).abs() / t.max(1e-9);
         e.1 += 1;
     }
+    let mut series: std::collections::BTreeMap<String, Vec<(i64, f64)>> = Default::default();
+    for row in &rows {
+        if let (Some(m), Some(t), Some(kw)) =
+            (row["meter_id"].as_str(), row["interval_start"].as_i64(), row["kw"].as_f64())
+        {
+            series.entry(m.to_owned()).or_default().push((t, kw));
+        }
+    }
+    let profiles = series
+        .into_iter()
+        .map(|(m, mut v)| {
+            v.sort_by_key(|p| p.0);
+            (m, v.into_iter().map(|p| p.1).collect())
+        })
+        .collect();
     let mut errs: Vec<f64> = per_meter.values().map(|(s, c)| s / f64::from(*c)).collect();
     errs.sort_by(f64::total_cmp);
     let d = &job["diagnostics"];
@@ -184,7 +215,46 @@ async fn recover_feeder(
         register_days: d["register_days"].as_u64().unwrap_or(0),
         nrmse: (num / den.max(1e-300)).sqrt(),
         median_daily_energy_error: errs.get(errs.len() / 2).copied().unwrap_or(f64::NAN),
+        profiles,
     })
+}
+
+/// Clusters every recovered profile of the town by load shape (eigengap count).
+fn cluster_town(recoveries: &[FeederRecovery], town: &simulate::Town) -> anyhow::Result<Vec<TownCluster>> {
+    use meterveil_shared::cluster::{cluster, representatives, ClusterParams};
+    let rows: Vec<&(String, Vec<f64>)> = recoveries.iter().flat_map(|r| r.profiles.iter()).collect();
+    let n = rows.first().map_or(0, |r| r.1.len());
+    if rows.len() < 2 || n == 0 || rows.iter().any(|r| r.1.len() != n) {
+        return Ok(Vec::new());
+    }
+    let x = nalgebra::DMatrix::from_fn(rows.len(), n, |i, j| rows[i].1[j]);
+    let c = cluster(&x, &ClusterParams::default()).map_err(|e| anyhow::anyhow!("clustering: {e}"))?;
+    let reps = representatives(&x, &c, town.start_day, 900);
+    let kind_of: std::collections::HashMap<&str, &str> =
+        town.households.iter().map(|h| (h.meter_id.as_str(), h.kind.as_str())).collect();
+    let mut out: Vec<TownCluster> = reps
+        .iter()
+        .map(|r| {
+            let mut kinds: std::collections::BTreeMap<String, usize> = Default::default();
+            for (i, &l) in c.labels.iter().enumerate() {
+                if l == r.cluster {
+                    *kinds.entry(kind_of.get(rows[i].0.as_str()).unwrap_or(&"?").to_string()).or_default() += 1;
+                }
+            }
+            let mut kinds: Vec<(String, usize)> = kinds.into_iter().collect();
+            kinds.sort_by(|a, b| b.1.cmp(&a.1));
+            let peak = r.weekday_kw.iter().enumerate().max_by(|a, b| a.1.total_cmp(b.1)).map_or(0, |p| p.0);
+            TownCluster {
+                size: r.size,
+                weekday_peak: format!("{:02}:{:02}", peak / 4, (peak % 4) * 15),
+                weekday_kwh: r.weekday_kw.iter().sum::<f64>() / 4.0,
+                weekend_kwh: r.weekend_kw.iter().sum::<f64>() / 4.0,
+                kinds,
+            }
+        })
+        .collect();
+    out.sort_by(|a, b| b.size.cmp(&a.size));
+    Ok(out)
 }
 
 /// The printed summary.
@@ -237,6 +307,28 @@ pub fn render(s: &DemoSummary) -> String {
             r.register_days,
             r.nrmse,
             100.0 * r.median_daily_energy_error
+        );
+    }
+    let _ = writeln!(
+        o,
+        "\n  Load-shape clusters of the recovered profiles ({} found by the eigengap rule):",
+        s.clusters.len()
+    );
+    let _ = writeln!(
+        o,
+        "  {:>7} {:>12} {:>12} {:>12}  simulated kinds (demo only)",
+        "members", "weekday peak", "weekday kWh", "weekend kWh"
+    );
+    for c in &s.clusters {
+        let kinds: Vec<String> = c.kinds.iter().take(3).map(|(k, n)| format!("{k} {n}")).collect();
+        let _ = writeln!(
+            o,
+            "  {:>7} {:>12} {:>12.1} {:>12.1}  {}",
+            c.size,
+            c.weekday_peak,
+            c.weekday_kwh,
+            c.weekend_kwh,
+            kinds.join(", ")
         );
     }
     let _ = writeln!(o, "\n  database: {}", s.database.display());

@@ -285,3 +285,103 @@ pub fn run_recover(
         "output": output.display().to_string(),
     }))
 }
+
+/// Recovered profiles read back from a `recover` output file.
+pub struct Profiles {
+    pub meters: Vec<String>,
+    pub start: i64,
+    pub interval_s: u32,
+    /// (meters, intervals) kW.
+    pub kw: nalgebra::DMatrix<f64>,
+}
+
+/// Reads OUT.csv (`meter_id,interval_start,kw,…`); every meter must cover the same intervals.
+pub fn read_profiles(path: &Path) -> anyhow::Result<Profiles> {
+    let file = path.display().to_string();
+    let text = std::fs::read_to_string(path).with_context(|| format!("reading {file}"))?;
+    let mut lines = text.lines();
+    let pos = header_positions(&file, lines.next().unwrap_or(""), &["meter_id", "interval_start", "kw"])?;
+    let mut rows: BTreeMap<String, BTreeMap<i64, f64>> = BTreeMap::new();
+    for (no, line) in lines.enumerate() {
+        let line_no = no + 2;
+        if line.trim().is_empty() {
+            continue;
+        }
+        let c = cells(line);
+        let err = |e: FieldError| InputError { file: file.clone(), line: line_no, error: e };
+        let m = MeterId::parse(get(&file, line_no, &c, pos[0], "meter_id")?).map_err(err)?;
+        let raw_t = get(&file, line_no, &c, pos[1], "interval_start")?;
+        let t: i64 = raw_t
+            .parse()
+            .map_err(|_| err(FieldError::new("interval_start", format!("{raw_t:?} is not an integer"))))?;
+        let raw_kw = get(&file, line_no, &c, pos[2], "kw")?;
+        let kw: f64 = raw_kw.parse().map_err(|_| err(FieldError::new("kw", format!("{raw_kw:?} is not a number"))))?;
+        if !(kw.is_finite() && kw >= 0.0) {
+            return Err(err(FieldError::new("kw", format!("{kw} must be a non-negative number"))).into());
+        }
+        if rows.entry(m.to_string()).or_default().insert(t, kw).is_some() {
+            return Err(err(FieldError::new("interval_start", format!("meter {m} repeats interval {t}"))).into());
+        }
+    }
+    let Some(first) = rows.values().next() else {
+        return Err(InputError { file, line: 0, error: FieldError::new("rows", "the file has no profiles") }.into());
+    };
+    let times: Vec<i64> = first.keys().copied().collect();
+    if times.len() < 2 {
+        return Err(InputError {
+            file,
+            line: 0,
+            error: FieldError::new("interval_start", "a profile needs at least two intervals"),
+        }
+        .into());
+    }
+    let step = times[1] - times[0];
+    if step <= 0 || 86_400 % step != 0 || times.windows(2).any(|w| w[1] - w[0] != step) {
+        return Err(InputError {
+            file,
+            line: 0,
+            error: FieldError::new("interval_start", "intervals must be evenly spaced and divide a day"),
+        }
+        .into());
+    }
+    for (m, r) in &rows {
+        if r.len() != times.len() || r.keys().zip(&times).any(|(a, b)| a != b) {
+            return Err(InputError {
+                file,
+                line: 0,
+                error: FieldError::new(
+                    "meter_id",
+                    format!("meter {m} does not cover the same intervals as the others"),
+                ),
+            }
+            .into());
+        }
+    }
+    let meters: Vec<String> = rows.keys().cloned().collect();
+    let kw = nalgebra::DMatrix::from_fn(meters.len(), times.len(), |i, j| rows[&meters[i]][&times[j]]);
+    Ok(Profiles { meters, start: times[0], interval_s: step as u32, kw })
+}
+
+/// The whole `cluster` command; returns the JSON summary line.
+pub fn run_cluster(profiles: &Path, output: &Path, clusters: Option<usize>) -> anyhow::Result<serde_json::Value> {
+    use meterveil_shared::cluster::{cluster, representatives, ClusterParams};
+    let p = read_profiles(profiles)?;
+    let params = ClusterParams { clusters, ..ClusterParams::default() };
+    let c = cluster(&p.kw, &params).map_err(|e| anyhow::anyhow!("--{}: {}", e.field, e.reason))?;
+    let f = std::fs::File::create(output).with_context(|| format!("creating {}", output.display()))?;
+    let mut out = BufWriter::new(f);
+    writeln!(out, "meter_id,cluster,confidence")?;
+    for (i, m) in p.meters.iter().enumerate() {
+        writeln!(out, "{m},{},{:.3}", c.labels[i], c.confidence[i])?;
+    }
+    out.flush()?;
+    let reps = representatives(&p.kw, &c, p.start, p.interval_s);
+    Ok(serde_json::json!({
+        "meters": p.meters.len(),
+        "clusters": c.clusters,
+        "chosen_by": if clusters.is_some() { "operator" } else { "eigengap" },
+        "leading_eigenvalues": c.eigenvalues,
+        "representatives": reps,
+        "output": output.display().to_string(),
+    }))
+}
