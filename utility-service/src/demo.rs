@@ -242,7 +242,7 @@ fn cluster_town(recoveries: &[FeederRecovery], town: &simulate::Town) -> anyhow:
                 }
             }
             let mut kinds: Vec<(String, usize)> = kinds.into_iter().collect();
-            kinds.sort_by(|a, b| b.1.cmp(&a.1));
+            kinds.sort_by_key(|k| std::cmp::Reverse(k.1));
             let peak = r.weekday_kw.iter().enumerate().max_by(|a, b| a.1.total_cmp(b.1)).map_or(0, |p| p.0);
             TownCluster {
                 size: r.size,
@@ -253,7 +253,7 @@ fn cluster_town(recoveries: &[FeederRecovery], town: &simulate::Town) -> anyhow:
             }
         })
         .collect();
-    out.sort_by(|a, b| b.size.cmp(&a.size));
+    out.sort_by_key(|c| std::cmp::Reverse(c.size));
     Ok(out)
 }
 
