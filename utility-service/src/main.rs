@@ -6,7 +6,7 @@ async fn main() -> anyhow::Result<()> {
     let cli = Cli::parse();
     // The demo prints its own summary; only warnings go to the log unless asked.
     let default = match cli.command {
-        Command::Demo { .. } => "warn",
+        Command::Demo { .. } => "warn,sqlx=error",
         _ => "info,sqlx=warn,tower_http=warn",
     };
     tracing_subscriber::fmt()
