@@ -191,8 +191,9 @@ fn leading_eigen(w: &[Vec<(usize, f64)>], k: usize, seed: u64) -> (Vec<f64>, DMa
 
 /// The eigengap rule: the count K in [2, max] with the largest λ_K - λ_{K+1}.
 pub fn eigengap(vals: &[f64], max: usize) -> usize {
+    // λ_K - λ_{K+1} needs K + 1 eigenvalues.
     let top = max.min(vals.len().saturating_sub(1));
-    (2..=top.max(2)).max_by(|&a, &b| (vals[a - 1] - vals[a]).total_cmp(&(vals[b - 1] - vals[b]))).unwrap_or(2)
+    (2..=top).max_by(|&a, &b| (vals[a - 1] - vals[a]).total_cmp(&(vals[b - 1] - vals[b]))).unwrap_or(2)
 }
 
 /// k-means (k-means++ starts, 10 restarts) on the rows of `e`; returns labels,
@@ -387,5 +388,10 @@ mod tests {
         let reps = representatives(&x, &c, 1_700_006_400, 900);
         assert_eq!(reps.iter().map(|r| r.size).sum::<usize>(), m);
         assert!(cluster(&DMatrix::zeros(1, 5), &ClusterParams::default()).is_err());
+        // Two or three customers: too few eigenvalues for a gap, still no panic.
+        for m in 2..=3 {
+            let c = cluster(&x.rows(0, m).clone_owned(), &ClusterParams::default()).unwrap();
+            assert!(c.clusters >= 1 && c.clusters <= m && c.labels.len() == m);
+        }
     }
 }

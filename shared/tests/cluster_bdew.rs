@@ -11,7 +11,6 @@ use common::*;
 use meterveil_shared::cluster::{cluster, features, ClusterParams};
 use meterveil_shared::recovery::outage::DayLayout;
 use meterveil_shared::recovery::{recover, RankChoice, RecoveryParams};
-use meterveil_shared::{DitherProfile, DitherProfileSpec};
 use nalgebra::DMatrix;
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
@@ -47,14 +46,7 @@ fn bdew_classes_are_found_in_true_and_recovered_profiles() {
     eprintln!("{source}; sklearn {}: true profiles: automatic count {} (of {}), ARI auto {:.3}, ARI with {} clusters {:.3}, sklearn KMeans on the same features {:.3}; eigenvalues {:?}",
         s["sklearn"], auto.clusters, shapes.len(), s["ari"]["auto"], shapes.len(), s["ari"]["fixed"], s["ari"]["sklearn_kmeans"], &auto.eigenvalues[..auto.eigenvalues.len().min(14)]);
 
-    let p = DitherProfile::try_from(DitherProfileSpec {
-        noise: "gaussian".into(),
-        scale_kw: 0.3,
-        boundaries_kw: vec![1.0, 2.0],
-        interval_s: 900,
-        send_registers: false,
-    })
-    .unwrap();
+    let p = gaussian_profile(0.3, &[1.0, 2.0]);
     let levels = quantize(&truth, &p, 0.05, &mut rng);
     let rp = RecoveryParams { rank: RankChoice::Fixed(20), alpha_kw: 15.0, ..Default::default() }.check().unwrap();
     let rec =

@@ -8,10 +8,10 @@ mod common;
 use std::io::Write;
 use std::process::{Command, Stdio};
 
+use common::gaussian_profile;
 use meterveil_shared::mechanism::dither_and_quantize;
 use meterveil_shared::recovery::solver::one_iteration;
 use meterveil_shared::recovery::LevelMatrix;
-use meterveil_shared::{DitherProfile, DitherProfileSpec};
 use nalgebra::DMatrix;
 use rand::{Rng, SeedableRng};
 use serde_json::json;
@@ -19,14 +19,7 @@ use serde_json::json;
 #[test]
 fn one_iteration_matches_the_numpy_reference() {
     let (m, n, r, alpha) = (24usize, 40usize, 3usize, 6.0);
-    let p = DitherProfile::try_from(DitherProfileSpec {
-        noise: "gaussian".into(),
-        scale_kw: 0.3,
-        boundaries_kw: vec![1.0, 2.0],
-        interval_s: 900,
-        send_registers: false,
-    })
-    .unwrap();
+    let p = gaussian_profile(0.3, &[1.0, 2.0]);
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(12);
     let truth = DMatrix::<f64>::from_fn(m, n, |i, j| 1.2 + ((i * 7 + j * 3) % 11) as f64 * 0.15);
     let mut levels = LevelMatrix::missing(m, n);

@@ -9,12 +9,12 @@ mod common;
 use common::*;
 use meterveil_shared::recovery::linalg::truncate;
 use meterveil_shared::recovery::outage::DayLayout;
-use meterveil_shared::recovery::solver::{conditional_means, level_counts};
+use meterveil_shared::recovery::solver::initial_estimate;
 use meterveil_shared::recovery::table::LikelihoodTable;
 use meterveil_shared::recovery::{
     recover, LevelMatrix, RankChoice, RecoveryParams, SumConstraint, ValidRecoveryParams,
 };
-use meterveil_shared::{DitherProfile, DitherProfileSpec};
+use meterveil_shared::DitherProfile;
 use nalgebra::DMatrix;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
@@ -24,14 +24,7 @@ const DAYS: usize = 28;
 const LAYOUT: DayLayout = DayLayout { window_start: 1_673_222_400, interval_s: 900 }; // 2023-01-09T00:00Z
 
 fn profile(b: &[f64]) -> DitherProfile {
-    DitherProfile::try_from(DitherProfileSpec {
-        noise: "gaussian".into(),
-        scale_kw: 0.3,
-        boundaries_kw: b.to_vec(),
-        interval_s: 900,
-        send_registers: false,
-    })
-    .unwrap()
+    gaussian_profile(0.3, b)
 }
 
 fn params(rank: RankChoice) -> ValidRecoveryParams {
@@ -40,18 +33,7 @@ fn params(rank: RankChoice) -> ValidRecoveryParams {
 
 /// Per-entry conditional means, missing entries at their interval's mean over reporting meters.
 fn svd_free_conditional_means(levels: &LevelMatrix, p: &DitherProfile) -> DMatrix<f64> {
-    let table = LikelihoodTable::new(p, -1.0, ALPHA + 1.0);
-    let cm = conditional_means(&table, ALPHA, &level_counts(levels, p.levels()));
-    let (m, n) = (levels.rows(), levels.cols());
-    let mut x = DMatrix::zeros(m, n);
-    for j in 0..n {
-        let vals: Vec<f64> = (0..m).filter_map(|i| levels.get(i, j).map(|l| cm[usize::from(l)])).collect();
-        let mean = if vals.is_empty() { 0.0 } else { vals.iter().sum::<f64>() / vals.len() as f64 };
-        for i in 0..m {
-            x[(i, j)] = levels.get(i, j).map_or(mean, |l| cm[usize::from(l)]);
-        }
-    }
-    x
+    initial_estimate(levels, &LikelihoodTable::new(p, -1.0, ALPHA + 1.0), ALPHA)
 }
 
 /// The baseline: rank-r SVD of per-entry conditional means (missing entries at their interval's mean).

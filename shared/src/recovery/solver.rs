@@ -541,8 +541,9 @@ pub fn recover(
 }
 
 /// Per-entry conditional means, missing entries filled by their interval's mean
-/// over the meters that reported (or the overall mean).
-fn initial_estimate(levels: &LevelMatrix, table: &LikelihoodTable, alpha: f64) -> DMatrix<f64> {
+/// over the meters that reported (or the overall mean). The solver's start, and
+/// the per-reading baseline tests compare against.
+pub fn initial_estimate(levels: &LevelMatrix, table: &LikelihoodTable, alpha: f64) -> DMatrix<f64> {
     let cm = conditional_means(table, alpha, &level_counts(levels, table.profile().levels()));
     let (m, n) = (levels.rows(), levels.cols());
     let mut x = DMatrix::zeros(m, n);

@@ -13,6 +13,18 @@ use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, LogNormal};
 use serde_json::Value;
 
+/// A gaussian profile on 15-minute intervals without register reads.
+pub fn gaussian_profile(scale_kw: f64, boundaries_kw: &[f64]) -> DitherProfile {
+    DitherProfile::try_from(meterveil_shared::DitherProfileSpec {
+        noise: "gaussian".into(),
+        scale_kw,
+        boundaries_kw: boundaries_kw.to_vec(),
+        interval_s: 900,
+        send_registers: false,
+    })
+    .expect("valid test profile")
+}
+
 /// Runs `tests/reference/<script>` with the reference interpreter and parses its JSON.
 pub fn python_json(script: &str, args: &[&str]) -> Value {
     let python = std::env::var("METERVEIL_PYTHON").unwrap_or_else(|_| "python3".into());
