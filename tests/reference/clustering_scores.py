@@ -20,7 +20,7 @@ def main():
     out = {"sklearn": sklearn.__version__, "ari": {}}
     for name, labels in p["labels"].items():
         out["ari"][name] = adjusted_rand_score(truth, labels)
-    if p.get("features"):
+    if p.get("features") and len(p["features"][0]) > 0:
         x = np.asarray(p["features"], float)
         km = KMeans(n_clusters=p["k"], n_init=10, random_state=0).fit(x)
         out["ari"]["sklearn_kmeans"] = adjusted_rand_score(truth, km.labels_)
