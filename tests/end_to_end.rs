@@ -447,9 +447,11 @@ const UNIT_COLUMNS: [&str; 7] =
     ["scale_kw", "boundaries_kw", "wh_total", "register_mwh", "estimate_kw", "band_low_kw", "band_high_kw"];
 
 /// REAL columns that hold configuration or the population model's estimates, never a reading.
-const REAL_COLUMNS: [(&str, &str); 5] = [
+const REAL_COLUMNS: [(&str, &str); 7] = [
     ("dither_profiles", "scale_kw"),
     ("recovery_jobs", "progress"),
+    ("analysis_jobs", "progress"),
+    ("cluster_assignments", "confidence"),
     ("recovered_intervals", "estimate_kw"),
     ("recovered_intervals", "band_low_kw"),
     ("recovered_intervals", "band_high_kw"),
@@ -795,4 +797,41 @@ async fn recovery_job_over_stored_levels() {
     assert_eq!((s, body["field"].as_str()), (StatusCode::UNPROCESSABLE_ENTITY, Some("rank")));
     let r = get("/v1/recoveries/rec-none".into()).await.expect("get");
     assert_eq!(r.status().as_u16(), 404);
+
+    // Clustering job over the recovered profiles, results stored with the job.
+    let (s, body) = t.post_json("/v1/clusterings", &json!({"recovery_jobs": [id], "clusters": 3}), true).await;
+    assert_eq!(s, StatusCode::ACCEPTED, "{body}");
+    let cid = body["job_id"].as_str().expect("id").to_owned();
+    for _ in 0..600 {
+        job = get(format!("/v1/analyses/{cid}")).await.expect("status").json().await.expect("json");
+        if job["state"] == "done" || job["state"] == "failed" {
+            break;
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+    }
+    assert_eq!(job["state"], "done", "{job}");
+    assert_eq!((job["kind"].as_str(), job["result"]["clusters"].as_u64()), (Some("cluster"), Some(3)));
+    let reps = job["result"]["representatives"].as_array().expect("representatives");
+    assert_eq!(reps.iter().map(|r| r["size"].as_u64().unwrap_or(0)).sum::<u64>(), 12);
+    assert!(reps.iter().all(|r| r["weekday_kw"].as_array().is_some_and(|v| v.len() == 96)));
+    let rows: Vec<Value> =
+        get(format!("/v1/clusterings/{cid}/assignments")).await.expect("rows").json().await.expect("json");
+    assert_eq!(rows.len(), 12);
+    assert!(rows.iter().all(|r| r["feeder_id"] == "QM-CHAPEL-ROW" && (0..3).contains(&r["cluster"].as_i64().unwrap())));
+    let csv = get(format!("/v1/clusterings/{cid}/assignments?format=csv")).await.expect("csv").text().await.expect("t");
+    assert!(csv.starts_with("meter_id,cluster,confidence\n") && csv.lines().count() == 13, "{csv}");
+    let stored = t.count(&format!("SELECT COUNT(*) FROM cluster_assignments WHERE job_id = '{cid}'")).await;
+    assert_eq!(stored, 12);
+    for (body, field) in [
+        (json!({"recovery_jobs": [id], "clusters": 1}), "clusters"),
+        (json!({"recovery_jobs": ["rec-none"]}), "recovery_jobs"),
+        (json!({"recovery_jobs": []}), "recovery_jobs"),
+    ] {
+        let (s, b) = t.post_json("/v1/clusterings", &body, true).await;
+        assert_eq!((s, b["field"].as_str()), (StatusCode::UNPROCESSABLE_ENTITY, Some(field)), "{b}");
+    }
+    let (s, _) = t.post_json("/v1/clusterings", &json!({"recovery_jobs": [id]}), false).await;
+    assert_eq!(s, StatusCode::UNAUTHORIZED);
+    let before = t.count("SELECT COUNT(*) FROM analysis_jobs").await;
+    assert_eq!(before, 1, "rejected requests made no job");
 }

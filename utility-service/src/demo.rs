@@ -34,8 +34,6 @@ pub struct FeederRecovery {
     pub register_days: u64,
     pub nrmse: f64,
     pub median_daily_energy_error: f64,
-    /// Recovered kW per meter, in interval order over the window.
-    pub profiles: Vec<(String, Vec<f64>)>,
 }
 
 /// One load-shape cluster of the town, described for the summary.
@@ -108,7 +106,7 @@ pub async fn run(opts: &DemoOptions) -> anyhow::Result<DemoSummary> {
     for f in &feeders {
         recoveries.push(recover_feeder(&svc.url(), &token_for_jobs, &f.feeder_id, &town).await?);
     }
-    let clusters = cluster_town(&recoveries, &town)?;
+    let clusters = cluster_town(&svc.url(), &token_for_jobs, &recoveries, &town).await?;
     let summary = DemoSummary {
         clusters,
         recoveries,
@@ -187,21 +185,6 @@ async fn recover_feeder(
         e.0 += (est - t).abs() / t.max(1e-9);
         e.1 += 1;
     }
-    let mut series: std::collections::BTreeMap<String, Vec<(i64, f64)>> = Default::default();
-    for row in &rows {
-        if let (Some(m), Some(t), Some(kw)) =
-            (row["meter_id"].as_str(), row["interval_start"].as_i64(), row["kw"].as_f64())
-        {
-            series.entry(m.to_owned()).or_default().push((t, kw));
-        }
-    }
-    let profiles = series
-        .into_iter()
-        .map(|(m, mut v)| {
-            v.sort_by_key(|p| p.0);
-            (m, v.into_iter().map(|p| p.1).collect())
-        })
-        .collect();
     let mut errs: Vec<f64> = per_meter.values().map(|(s, c)| s / f64::from(*c)).collect();
     errs.sort_by(f64::total_cmp);
     let d = &job["diagnostics"];
@@ -215,40 +198,72 @@ async fn recover_feeder(
         register_days: d["register_days"].as_u64().unwrap_or(0),
         nrmse: (num / den.max(1e-300)).sqrt(),
         median_daily_energy_error: errs.get(errs.len() / 2).copied().unwrap_or(f64::NAN),
-        profiles,
     })
 }
 
-/// Clusters every recovered profile of the town by load shape (eigengap count).
-fn cluster_town(recoveries: &[FeederRecovery], town: &simulate::Town) -> anyhow::Result<Vec<TownCluster>> {
-    use meterveil_shared::cluster::{cluster, representatives, ClusterParams};
-    let rows: Vec<&(String, Vec<f64>)> = recoveries.iter().flat_map(|r| r.profiles.iter()).collect();
-    let n = rows.first().map_or(0, |r| r.1.len());
-    if rows.len() < 2 || n == 0 || rows.iter().any(|r| r.1.len() != n) {
-        return Ok(Vec::new());
-    }
-    let x = nalgebra::DMatrix::from_fn(rows.len(), n, |i, j| rows[i].1[j]);
-    let c = cluster(&x, &ClusterParams::default()).map_err(|e| anyhow::anyhow!("clustering: {e}"))?;
-    let reps = representatives(&x, &c, town.start_day, 900);
+/// Clusters every recovered profile of the town by load shape (eigengap count),
+/// as a clustering job over the feeders' recovery jobs.
+async fn cluster_town(
+    base: &str,
+    token: &str,
+    recoveries: &[FeederRecovery],
+    town: &simulate::Town,
+) -> anyhow::Result<Vec<TownCluster>> {
+    let http = reqwest::Client::new();
+    let ids: Vec<&str> = recoveries.iter().map(|r| r.job_id.as_str()).collect();
+    let r: serde_json::Value = http
+        .post(format!("{base}/v1/clusterings"))
+        .bearer_auth(token)
+        .json(&serde_json::json!({ "recovery_jobs": ids, "clusters": "auto" }))
+        .send()
+        .await?
+        .error_for_status()?
+        .json()
+        .await?;
+    let job_id = r["job_id"].as_str().context("job id")?.to_owned();
+    let job = loop {
+        let j: serde_json::Value =
+            http.get(format!("{base}/v1/analyses/{job_id}")).bearer_auth(token).send().await?.json().await?;
+        match j["state"].as_str() {
+            Some("done") => break j,
+            Some("failed") => anyhow::bail!("clustering failed: {}", j["error"]),
+            _ => tokio::time::sleep(std::time::Duration::from_millis(250)).await,
+        }
+    };
+    let rows: Vec<serde_json::Value> = http
+        .get(format!("{base}/v1/clusterings/{job_id}/assignments"))
+        .bearer_auth(token)
+        .send()
+        .await?
+        .error_for_status()?
+        .json()
+        .await?;
     let kind_of: std::collections::HashMap<&str, &str> =
         town.households.iter().map(|h| (h.meter_id.as_str(), h.kind.as_str())).collect();
+    let per_hour = 3600 / job["result"]["interval_s"].as_u64().unwrap_or(900).max(1) as usize;
+    let reps = job["result"]["representatives"].as_array().cloned().unwrap_or_default();
+    let floats = |v: &serde_json::Value| -> Vec<f64> {
+        v.as_array().map(|a| a.iter().filter_map(|x| x.as_f64()).collect()).unwrap_or_default()
+    };
     let mut out: Vec<TownCluster> = reps
         .iter()
         .map(|r| {
+            let k = r["cluster"].as_i64().unwrap_or(-1);
             let mut kinds: std::collections::BTreeMap<String, usize> = Default::default();
-            for (i, &l) in c.labels.iter().enumerate() {
-                if l == r.cluster {
-                    *kinds.entry(kind_of.get(rows[i].0.as_str()).unwrap_or(&"?").to_string()).or_default() += 1;
-                }
+            for row in rows.iter().filter(|row| row["cluster"].as_i64() == Some(k)) {
+                let kind = kind_of.get(row["meter_id"].as_str().unwrap_or("")).unwrap_or(&"?");
+                *kinds.entry(kind.to_string()).or_default() += 1;
             }
             let mut kinds: Vec<(String, usize)> = kinds.into_iter().collect();
             kinds.sort_by_key(|k| std::cmp::Reverse(k.1));
-            let peak = r.weekday_kw.iter().enumerate().max_by(|a, b| a.1.total_cmp(b.1)).map_or(0, |p| p.0);
+            let (weekday, weekend) = (floats(&r["weekday_kw"]), floats(&r["weekend_kw"]));
+            let peak = weekday.iter().enumerate().max_by(|a, b| a.1.total_cmp(b.1)).map_or(0, |p| p.0);
+            let minutes = peak * 60 / per_hour;
             TownCluster {
-                size: r.size,
-                weekday_peak: format!("{:02}:{:02}", peak / 4, (peak % 4) * 15),
-                weekday_kwh: r.weekday_kw.iter().sum::<f64>() / 4.0,
-                weekend_kwh: r.weekend_kw.iter().sum::<f64>() / 4.0,
+                size: r["size"].as_u64().unwrap_or(0) as usize,
+                weekday_peak: format!("{:02}:{:02}", minutes / 60, minutes % 60),
+                weekday_kwh: weekday.iter().sum::<f64>() / per_hour as f64,
+                weekend_kwh: weekend.iter().sum::<f64>() / per_hour as f64,
                 kinds,
             }
         })

@@ -1,3 +1,46 @@
 //! Background jobs. CPU work runs on the blocking pool, never on the async runtime.
 
+pub mod cluster;
 pub mod recover;
+
+use std::sync::{Arc, Mutex};
+use std::time::Duration;
+
+use anyhow::Context;
+
+use crate::routes::{now_s, AppState};
+
+/// Runs `work` on the blocking pool, copying the stage and fraction it reports
+/// into the analysis job's row every half second.
+pub async fn run_reporting<T, F>(s: &AppState, job_id: &str, work: F) -> anyhow::Result<T>
+where
+    T: Send + 'static,
+    F: FnOnce(&mut dyn FnMut(&str, f64)) -> anyhow::Result<T> + Send + 'static,
+{
+    let progress = Arc::new(Mutex::new((String::from("starting"), 0.0f64)));
+    let shared = progress.clone();
+    let task = tokio::task::spawn_blocking(move || {
+        work(&mut |stage: &str, f: f64| {
+            if let Ok(mut p) = shared.lock() {
+                *p = (stage.to_owned(), f);
+            }
+        })
+    });
+    tokio::pin!(task);
+    loop {
+        tokio::select! {
+            r = &mut task => return r.context("job task")?,
+            _ = tokio::time::sleep(Duration::from_millis(500)) => {
+                let (stage, f) = progress.lock().map(|p| p.clone()).unwrap_or_default();
+                s.store.analysis_progress(job_id, f, &stage, now_s()).await?;
+            }
+        }
+    }
+}
+
+/// A job id with a kind prefix and 96 random bits.
+pub fn new_job_id(prefix: &str) -> String {
+    use rand::Rng;
+    let mut r = rand::rng();
+    format!("{prefix}-{:016x}{:08x}", r.random::<u64>(), r.random::<u32>())
+}

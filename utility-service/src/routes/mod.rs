@@ -1,6 +1,7 @@
 //! HTTP routes. Each module exports `router()`; handlers are short scripts over
 //! the store and the domain functions.
 
+pub mod analyses;
 pub mod feeders;
 pub mod health;
 pub mod ingest;
@@ -32,6 +33,7 @@ pub fn router(state: AppState) -> Router {
         .merge(ingest::router())
         .merge(feeders::router())
         .merge(recoveries::router())
+        .merge(analyses::router())
         .with_state(state)
 }
 

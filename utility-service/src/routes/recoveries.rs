@@ -64,18 +64,12 @@ async fn start(_: Operator, State(s): State<AppState>, body: Bytes) -> Result<(S
     if !(alpha_kw.is_finite() && alpha_kw > 0.0 && alpha_kw <= 10_000.0) {
         return Err(ApiError::invalid("alpha_kw", "must be a positive number of kW up to 10000"));
     }
-    let job_id = format!("rec-{}", uuid_like());
+    let job_id = crate::jobs::new_job_id("rec");
     let params = json!({ "rank": w.rank, "alpha_kw": alpha_kw });
     s.store.create_job(&job_id, &feeder, w.from, w.to, &params, now_s()).await?;
     let req = RecoveryRequest { feeder, from: w.from, to: w.to, rank, alpha_kw };
     tokio::spawn(run(s.clone(), job_id.clone(), req));
     Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
-}
-
-fn uuid_like() -> String {
-    use rand::Rng;
-    let mut r = rand::rng();
-    format!("{:016x}{:08x}", r.random::<u64>(), r.random::<u32>())
 }
 
 async fn find(s: &AppState, id: &str) -> Result<JobRecord, ApiError> {

@@ -19,6 +19,7 @@ use tokio::sync::Mutex;
 use crate::error::ApiError;
 use crate::ingest::ValidatedBatch;
 
+pub mod analyses;
 pub mod recoveries;
 
 /// Rows per multi-row INSERT; 1000 rows of 5 values stays far below SQLite's

@@ -1,0 +1,94 @@
+//! Load-shape clustering of the profiles of finished recovery jobs.
+
+use meterveil_shared::cluster::{cluster, representatives, ClusterParams};
+use nalgebra::DMatrix;
+use serde_json::json;
+
+use crate::routes::{now_s, AppState};
+use crate::store::analyses::Assignment;
+
+#[derive(Debug, Clone)]
+pub struct ClusterRequest {
+    /// Finished recovery jobs over one common window (one per feeder, typically).
+    pub recovery_jobs: Vec<String>,
+    /// Operator's cluster count, or `None` for the eigengap rule.
+    pub clusters: Option<usize>,
+}
+
+pub async fn run(state: AppState, job_id: String, req: ClusterRequest) {
+    if let Err(e) = run_inner(&state, &job_id, &req).await {
+        tracing::warn!(job = %job_id, error = %format!("{e:#}"), "clustering job failed");
+        let _ = state.store.fail_analysis(&job_id, &format!("{e:#}"), now_s()).await;
+    }
+}
+
+async fn run_inner(s: &AppState, job_id: &str, req: &ClusterRequest) -> anyhow::Result<()> {
+    s.store.analysis_progress(job_id, 0.0, "loading recovered profiles", now_s()).await?;
+    let mut meters: Vec<(String, String)> = Vec::new();
+    let mut values: Vec<f64> = Vec::new();
+    let mut window: Option<(i64, i64)> = None;
+    let mut cols = 0usize;
+    for id in &req.recovery_jobs {
+        let job = s.store.job(id).await?.ok_or_else(|| anyhow::anyhow!("recovery job {id} does not exist"))?;
+        anyhow::ensure!(job.state == "done", "recovery job {id} is {}, not done", job.state);
+        let w = (job.window_start, job.window_end);
+        anyhow::ensure!(
+            window.is_none_or(|v| v == w),
+            "recovery job {id} covers [{}, {}), unlike the first job's window",
+            w.0,
+            w.1
+        );
+        window = Some(w);
+        let rows = s.store.job_rows(id, None).await?;
+        let mut last: Option<&str> = None;
+        for r in &rows {
+            if last != Some(r.meter_id.as_str()) {
+                meters.push((r.meter_id.clone(), job.feeder_id.clone()));
+                last = Some(r.meter_id.as_str());
+            }
+            values.push(r.kw);
+        }
+        cols = if meters.is_empty() { 0 } else { values.len() / meters.len() };
+    }
+    let (from, to) = window.ok_or_else(|| anyhow::anyhow!("no recovery jobs given"))?;
+    anyhow::ensure!(
+        meters.len() >= 2 && cols >= 2,
+        "{} meters with {cols} intervals: too few to cluster",
+        meters.len()
+    );
+    anyhow::ensure!(values.len() == meters.len() * cols, "recovered rows do not form a full meters × intervals table");
+    let interval_s = ((to - from) / cols as i64) as u32;
+    let x = DMatrix::from_row_slice(meters.len(), cols, &values);
+    let params = ClusterParams { clusters: req.clusters, ..ClusterParams::default() };
+    let chosen_by = if req.clusters.is_some() { "operator" } else { "eigengap" };
+    let (c, reps) = super::run_reporting(s, job_id, move |progress| {
+        progress("clustering", 0.1);
+        let c = cluster(&x, &params).map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
+        let reps = representatives(&x, &c, from, interval_s);
+        Ok((c, reps))
+    })
+    .await?;
+    let assignments: Vec<Assignment> = meters
+        .iter()
+        .enumerate()
+        .map(|(i, (m, f))| Assignment {
+            meter_id: m.clone(),
+            feeder_id: f.clone(),
+            cluster: c.labels[i] as i64,
+            confidence: c.confidence[i],
+        })
+        .collect();
+    let result = json!({
+        "meters": meters.len(),
+        "clusters": c.clusters,
+        "chosen_by": chosen_by,
+        "leading_eigenvalues": c.eigenvalues,
+        "window_start": from,
+        "window_end": to,
+        "interval_s": interval_s,
+        "recovery_jobs": req.recovery_jobs,
+        "representatives": reps,
+    });
+    s.store.finish_analysis(job_id, &result, &assignments, now_s()).await?;
+    Ok(())
+}

@@ -1,0 +1,156 @@
+//! Analysis jobs (clustering, audit, calibration) and their stored results.
+
+use serde::Serialize;
+use sqlx::{QueryBuilder, Row, Sqlite};
+
+use super::Store;
+use crate::error::ApiError;
+
+#[derive(Debug, Clone, Serialize)]
+pub struct AnalysisRecord {
+    pub job_id: String,
+    pub kind: String,
+    pub params: serde_json::Value,
+    pub state: String,
+    pub progress: f64,
+    pub message: String,
+    pub created_at: i64,
+    pub started_at: Option<i64>,
+    pub finished_at: Option<i64>,
+    pub result: Option<serde_json::Value>,
+    pub error: Option<String>,
+}
+
+/// One customer's cluster as stored and served.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct Assignment {
+    pub meter_id: String,
+    pub feeder_id: String,
+    pub cluster: i64,
+    pub confidence: f64,
+}
+
+impl Store {
+    pub async fn create_analysis(
+        &self,
+        id: &str,
+        kind: &str,
+        params: &serde_json::Value,
+        now: i64,
+    ) -> Result<(), ApiError> {
+        let _w = self.writer.lock().await;
+        sqlx::query(
+            "INSERT INTO analysis_jobs (job_id, kind, params, state, created_at) VALUES (?, ?, ?, 'queued', ?)",
+        )
+        .bind(id)
+        .bind(kind)
+        .bind(params.to_string())
+        .bind(now)
+        .execute(&self.pool)
+        .await?;
+        Ok(())
+    }
+
+    pub async fn analysis_progress(&self, id: &str, progress: f64, message: &str, now: i64) -> Result<(), ApiError> {
+        let _w = self.writer.lock().await;
+        sqlx::query(
+            "UPDATE analysis_jobs SET state = 'running', progress = ?, message = ?, started_at = COALESCE(started_at, ?)
+             WHERE job_id = ? AND state IN ('queued', 'running')",
+        )
+        .bind(progress.clamp(0.0, 1.0))
+        .bind(message)
+        .bind(now)
+        .bind(id)
+        .execute(&self.pool)
+        .await?;
+        Ok(())
+    }
+
+    pub async fn fail_analysis(&self, id: &str, error: &str, now: i64) -> Result<(), ApiError> {
+        let _w = self.writer.lock().await;
+        sqlx::query("UPDATE analysis_jobs SET state = 'failed', error = ?, finished_at = ? WHERE job_id = ?")
+            .bind(error)
+            .bind(now)
+            .bind(id)
+            .execute(&self.pool)
+            .await?;
+        Ok(())
+    }
+
+    /// Stores the result (and any cluster assignments) and marks the job done in
+    /// one transaction.
+    pub async fn finish_analysis(
+        &self,
+        id: &str,
+        result: &serde_json::Value,
+        assignments: &[Assignment],
+        now: i64,
+    ) -> Result<(), ApiError> {
+        let _w = self.writer.lock().await;
+        let mut tx = self.pool.begin().await?;
+        for chunk in assignments.chunks(800) {
+            let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
+                "INSERT INTO cluster_assignments (job_id, meter_id, feeder_id, cluster, confidence) ",
+            );
+            qb.push_values(chunk, |mut b, a| {
+                b.push_bind(id)
+                    .push_bind(&a.meter_id)
+                    .push_bind(&a.feeder_id)
+                    .push_bind(a.cluster)
+                    .push_bind(a.confidence.clamp(0.0, 1.0));
+            });
+            qb.build().execute(&mut *tx).await?;
+        }
+        sqlx::query(
+            "UPDATE analysis_jobs SET state = 'done', progress = 1, message = 'done', result = ?, finished_at = ? WHERE job_id = ?",
+        )
+        .bind(result.to_string())
+        .bind(now)
+        .bind(id)
+        .execute(&mut *tx)
+        .await?;
+        tx.commit().await?;
+        Ok(())
+    }
+
+    pub async fn analysis(&self, id: &str) -> Result<Option<AnalysisRecord>, ApiError> {
+        let Some(r) =
+            sqlx::query("SELECT * FROM analysis_jobs WHERE job_id = ?").bind(id).fetch_optional(&self.pool).await?
+        else {
+            return Ok(None);
+        };
+        let json = |s: Option<String>| s.and_then(|s| serde_json::from_str(&s).ok());
+        Ok(Some(AnalysisRecord {
+            job_id: r.try_get("job_id")?,
+            kind: r.try_get("kind")?,
+            params: json(r.try_get("params")?).unwrap_or(serde_json::Value::Null),
+            state: r.try_get("state")?,
+            progress: r.try_get("progress")?,
+            message: r.try_get("message")?,
+            created_at: r.try_get("created_at")?,
+            started_at: r.try_get("started_at")?,
+            finished_at: r.try_get("finished_at")?,
+            result: json(r.try_get("result")?),
+            error: r.try_get("error")?,
+        }))
+    }
+
+    pub async fn assignments(&self, id: &str) -> Result<Vec<Assignment>, ApiError> {
+        let rows = sqlx::query(
+            "SELECT meter_id, feeder_id, cluster, confidence FROM cluster_assignments WHERE job_id = ? ORDER BY meter_id",
+        )
+        .bind(id)
+        .fetch_all(&self.pool)
+        .await?;
+        rows.iter()
+            .map(|r| {
+                Ok(Assignment {
+                    meter_id: r.try_get(0)?,
+                    feeder_id: r.try_get(1)?,
+                    cluster: r.try_get(2)?,
+                    confidence: r.try_get(3)?,
+                })
+            })
+            .collect()
+    }
+}
