@@ -587,23 +587,24 @@ async fn gateway_run_reads_a_file_once_and_reports_bad_lines() {
 /// `utility-service recover` on files made from the simulated town: every meter
 /// and interval comes back, with flags, bands inside [0, alpha], register days
 /// summing to their energy, and bad input named by file, line and field.
-#[test]
-fn recover_command_on_files() {
+/// Writes profile.json, levels.csv (5% missing) and reg.csv (the first three
+/// days) for `meters` households of the demo town over `days` days; returns the
+/// number of level rows.
+fn write_town_files(dir: &std::path::Path, meters: usize, days: i64) -> usize {
     use meterveil_gateway::simulate::Town;
     use meterveil_shared::mechanism::dither_and_quantize;
     use rand::{Rng, SeedableRng};
 
-    let dir = tempfile::tempdir().expect("tempdir");
-    let town = Town::new(60, 7, 1_700_006_400, 5);
+    let town = Town::new(meters, days as u32, 1_700_006_400, 5);
     let profile = r#"{"noise":"gaussian","scale_kw":0.3,"boundaries_kw":[1.0,2.0],"interval_s":900}"#;
     let p = meterveil_shared::DitherProfile::from_json(profile).expect("profile");
-    std::fs::write(dir.path().join("profile.json"), profile).expect("write");
+    std::fs::write(dir.join("profile.json"), profile).expect("write");
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(8);
     let mut levels = String::from("meter_id,interval_start,level\n");
     let mut regs = String::from("meter_id,day_start,wh\n");
     let mut rows = 0;
     for h in &town.households {
-        for d in 0..7 {
+        for d in 0..days {
             let day = town.start_day + d * 86_400;
             let load = town.day_load(h, d as u32);
             for (i, kw) in load.iter().enumerate() {
@@ -618,8 +619,15 @@ fn recover_command_on_files() {
             }
         }
     }
-    std::fs::write(dir.path().join("levels.csv"), &levels).expect("write");
-    std::fs::write(dir.path().join("reg.csv"), &regs).expect("write");
+    std::fs::write(dir.join("levels.csv"), &levels).expect("write");
+    std::fs::write(dir.join("reg.csv"), &regs).expect("write");
+    rows
+}
+
+#[test]
+fn recover_command_on_files() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let rows = write_town_files(dir.path(), 60, 7);
     let out = dir.path().join("out.csv");
     let bin = env!("CARGO_BIN_EXE_utility-service");
     let run = std::process::Command::new(bin)
@@ -656,6 +664,7 @@ fn recover_command_on_files() {
         let t: i64 = r[1].parse().expect("t");
         *day_sum.entry((r[0].to_owned(), t - t.rem_euclid(86_400))).or_default() += kw * 250.0;
     }
+    let regs = std::fs::read_to_string(dir.path().join("reg.csv")).expect("reg");
     for l in regs.lines().skip(1) {
         let c: Vec<&str> = l.split(',').collect();
         let want: f64 = c[2].parse().expect("wh");
@@ -834,4 +843,101 @@ async fn recovery_job_over_stored_levels() {
     assert_eq!(s, StatusCode::UNAUTHORIZED);
     let before = t.count("SELECT COUNT(*) FROM analysis_jobs").await;
     assert_eq!(before, 1, "rejected requests made no job");
+}
+
+fn last_json_line(out: &[u8]) -> Value {
+    serde_json::from_slice(out.split(|b| *b == b'\n').rfind(|l| !l.is_empty()).expect("line")).expect("json")
+}
+
+#[test]
+fn audit_and_calibrate_commands_on_files() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    write_town_files(dir.path(), 60, 7);
+    let p = |f: &str| dir.path().join(f);
+    std::fs::write(p("captured.txt"), "# the meters an eavesdropper holds\nQM-CHAPEL-ROW-0001\n").expect("write");
+    let bin = env!("CARGO_BIN_EXE_utility-service");
+    let run = std::process::Command::new(bin)
+        .arg("audit")
+        .args(["--levels".as_ref(), p("levels.csv").as_os_str()])
+        .args(["--profile".as_ref(), p("profile.json").as_os_str()])
+        .args(["--captured".as_ref(), p("captured.txt").as_os_str()])
+        .args(["--output".as_ref(), p("audit.json").as_os_str()])
+        .args(["--html".as_ref(), p("audit.html").as_os_str()])
+        .output()
+        .expect("run audit");
+    assert!(run.status.success(), "{}", String::from_utf8_lossy(&run.stderr));
+    let a: Value = serde_json::from_str(&std::fs::read_to_string(p("audit.json")).expect("audit")).expect("json");
+    for key in [
+        "strongest.nrmse",
+        "strongest.event_f1",
+        "strongest.strategy",
+        "utility.nrmse",
+        "utility.event_f1",
+        "mechanism.mutual_information_bits",
+        "mechanism.ldp_epsilon",
+    ] {
+        let (a0, a1) = key.split_once('.').expect("dotted");
+        assert!(!a[a0][a1].is_null(), "{key} missing");
+    }
+    let strategies: Vec<&str> =
+        a["strategies"].as_array().expect("s").iter().filter_map(|s| s["strategy"].as_str()).collect();
+    assert!(strategies.contains(&"day_folding") && strategies.contains(&"posterior_mean"), "{strategies:?}");
+    assert_eq!(a["captured_meters"], 1);
+    assert!(a["direct"]["strategies"].as_array().is_some_and(|s| s.len() == strategies.len()));
+    assert!(!a["curve_captured"].as_array().expect("curve").is_empty());
+    let html = std::fs::read_to_string(p("audit.html")).expect("html");
+    assert!(
+        html.contains("<svg") && html.contains("not a legal privacy") && !html.contains("http://")
+            || html.contains("www.w3.org")
+    );
+    assert!(!html.contains("<script"));
+    let summary = last_json_line(&run.stdout);
+    assert_eq!(summary["strongest"]["strategy"], a["strongest"]["strategy"]);
+
+    // A captured meter that is not in the levels file names its line and writes nothing.
+    std::fs::write(p("bad.txt"), "QM-CHAPEL-ROW-0001\nQM-NOWHERE-0009\n").expect("write");
+    let run = std::process::Command::new(bin)
+        .arg("audit")
+        .args(["--levels".as_ref(), p("levels.csv").as_os_str()])
+        .args(["--profile".as_ref(), p("profile.json").as_os_str()])
+        .args(["--captured".as_ref(), p("bad.txt").as_os_str()])
+        .args(["--output".as_ref(), p("audit2.json").as_os_str()])
+        .output()
+        .expect("run audit");
+    let err = String::from_utf8_lossy(&run.stderr);
+    assert!(!run.status.success() && err.contains("bad.txt line 2") && err.contains("meter_id"), "{err}");
+    assert!(!p("audit2.json").exists());
+
+    let run = std::process::Command::new(bin)
+        .arg("calibrate")
+        .args(["--levels".as_ref(), p("levels.csv").as_os_str()])
+        .args(["--profile".as_ref(), p("profile.json").as_os_str()])
+        .args(["--output".as_ref(), p("recommended.json").as_os_str()])
+        .args(["--report".as_ref(), p("calibration.json").as_os_str()])
+        .args(["--html".as_ref(), p("calibration.html").as_os_str()])
+        .args(["--max-event-f1", "0.5", "--captured", "1", "--max-energy-error", "0.3"])
+        .output()
+        .expect("run calibrate");
+    assert!(run.status.success(), "{}", String::from_utf8_lossy(&run.stderr));
+    let c: Value = serde_json::from_str(&std::fs::read_to_string(p("calibration.json")).expect("c")).expect("json");
+    let summary = last_json_line(&run.stdout);
+    assert_eq!(summary["meets_targets"], c["meets_targets"]);
+    if c["meets_targets"] == true {
+        let rec = std::fs::read_to_string(p("recommended.json")).expect("recommended profile");
+        meterveil_shared::DitherProfile::from_json(&rec).expect("a valid profile");
+    } else {
+        assert!(!p("recommended.json").exists());
+        assert!(c["message"].as_str().unwrap_or("").contains("cannot both be met"));
+    }
+    assert!(std::fs::read_to_string(p("calibration.html")).expect("html").contains("<svg"));
+    let run = std::process::Command::new(bin)
+        .arg("calibrate")
+        .args(["--levels".as_ref(), p("levels.csv").as_os_str()])
+        .args(["--profile".as_ref(), p("profile.json").as_os_str()])
+        .args(["--output".as_ref(), p("r2.json").as_os_str()])
+        .args(["--max-event-f1", "1.5"])
+        .output()
+        .expect("run calibrate");
+    let err = String::from_utf8_lossy(&run.stderr);
+    assert!(!run.status.success() && err.contains("event-f1-max"), "{err}");
 }

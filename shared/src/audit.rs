@@ -18,9 +18,10 @@
 //! Events are scored by one detector on every reconstruction: an interval is
 //! flagged when the reconstruction exceeds the meter's typical day (the median
 //! over the window's days of the same reconstruction at that time of day) by at
-//! least a threshold. A flagged run (consecutive flagged intervals of a meter) is
-//! correct when it overlaps an injected event of that meter; an event is found
-//! when a flagged run overlaps it. The audit reports the documented 1 kW
+//! least a threshold. An injected event is found when at least one of its
+//! intervals is flagged (recall, per event); a flagged interval is correct when
+//! it lies inside an injected event of that meter (precision, per interval, so
+//! that flagging everything scores the events' share of intervals, not 1). The audit reports the documented 1 kW
 //! threshold and, for the strongest attacker, the best threshold of a grid: an
 //! attacker who knows the mechanism can tune its threshold by simulation.
 
@@ -125,22 +126,22 @@ pub fn inject_events(
 pub struct EventCounts {
     pub events: usize,
     pub events_found: usize,
-    pub flagged_runs: usize,
-    pub runs_correct: usize,
+    pub flagged_intervals: usize,
+    pub flagged_in_events: usize,
 }
 
 impl EventCounts {
     pub fn add(&mut self, o: &EventCounts) {
         self.events += o.events;
         self.events_found += o.events_found;
-        self.flagged_runs += o.flagged_runs;
-        self.runs_correct += o.runs_correct;
+        self.flagged_intervals += o.flagged_intervals;
+        self.flagged_in_events += o.flagged_in_events;
     }
     pub fn precision(&self) -> f64 {
-        if self.flagged_runs == 0 {
+        if self.flagged_intervals == 0 {
             0.0
         } else {
-            self.runs_correct as f64 / self.flagged_runs as f64
+            self.flagged_in_events as f64 / self.flagged_intervals as f64
         }
     }
     pub fn recall(&self) -> f64 {
@@ -194,34 +195,26 @@ pub fn score_events(r: &DMatrix<f64>, events: &[InjectedEvent], layout: DayLayou
     let typ = typical_day(r, layout);
     let per_day = layout.per_day();
     let phase = layout.phase();
-    let mut c = EventCounts { events: events.len(), ..Default::default() };
-    let mut found = vec![false; events.len()];
-    for i in 0..r.nrows() {
-        let mine: Vec<usize> = (0..events.len()).filter(|&e| events[e].row == i).collect();
-        let mut j = 0;
-        while j < r.ncols() {
-            let flagged = |j: usize| r[(i, j)] - typ[(i, (j + phase) % per_day)] >= threshold;
-            if !flagged(j) {
-                j += 1;
-                continue;
-            }
-            let start = j;
-            while j < r.ncols() && flagged(j) {
-                j += 1;
-            }
-            c.flagged_runs += 1;
-            let mut hit = false;
-            for &e in &mine {
-                let ev = &events[e];
-                if start < ev.start + ev.len && ev.start < j {
-                    found[e] = true;
-                    hit = true;
-                }
-            }
-            c.runs_correct += usize::from(hit);
+    let (m, n) = r.shape();
+    // Which event (if any) covers each interval of each meter.
+    let mut inside = vec![false; m * n];
+    for e in events {
+        for j in e.start..(e.start + e.len).min(n) {
+            inside[e.row * n + j] = true;
         }
     }
-    c.events_found = found.iter().filter(|f| **f).count();
+    let flagged = |i: usize, j: usize| r[(i, j)] - typ[(i, (j + phase) % per_day)] >= threshold;
+    let mut c = EventCounts { events: events.len(), ..Default::default() };
+    for i in 0..m {
+        for j in 0..n {
+            if flagged(i, j) {
+                c.flagged_intervals += 1;
+                c.flagged_in_events += usize::from(inside[i * n + j]);
+            }
+        }
+    }
+    c.events_found =
+        events.iter().filter(|e| e.row < m && (e.start..(e.start + e.len).min(n)).any(|j| flagged(e.row, j))).count();
     c
 }
 
@@ -712,6 +705,15 @@ pub struct AuditReport {
     pub caution: String,
 }
 
+/// Captured-meter counts of the curve for a feeder of `m` meters: one meter,
+/// then 1, 2, 5 and 10% of the feeder.
+pub fn default_curve_counts(m: usize) -> Vec<usize> {
+    let mut v: Vec<usize> =
+        [0.0, 0.01, 0.02, 0.05, 0.10].iter().map(|f| ((f * m as f64).ceil() as usize).max(1)).collect();
+    v.dedup();
+    v
+}
+
 #[derive(Debug, Clone, PartialEq)]
 pub struct AuditConfig {
     pub alpha_kw: f64,
@@ -721,7 +723,8 @@ pub struct AuditConfig {
     pub seed: u64,
     /// Rank choice of the utility's recovery.
     pub utility_rank: RankChoice,
-    /// Captured-meter counts of the first curve (each ≤ the captured set).
+    /// Captured-meter counts of the first curve: the captured set's first
+    /// meters, then other meters of the feeder (events are injected into all).
     pub curve_captured: Vec<usize>,
     /// Days of history of the second curve.
     pub curve_days: Vec<usize>,
@@ -842,11 +845,28 @@ pub fn bootstrap(
     if whole_days(layout, n).len() < 2 {
         return Err(FieldError::new("window", "the audit needs at least two whole days"));
     }
-    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(cfg.seed);
+    // Meters of the captured-count curve: the captured set first, then others
+    // spread over the feeder, up to the largest count asked for.
+    let mut counts: Vec<usize> = cfg.curve_captured.iter().copied().filter(|c| (1..=m).contains(c)).collect();
+    counts.sort_unstable();
+    counts.dedup();
+    let mut curve_rows = captured.to_vec();
+    let want = counts.last().copied().unwrap_or(0);
+    let others: Vec<usize> = (0..m).filter(|i| !captured.contains(i)).collect();
+    if want > curve_rows.len() && !others.is_empty() {
+        let extra = want - curve_rows.len();
+        let stride = (others.len() as f64 / extra as f64).max(1.0);
+        curve_rows.extend((0..extra).map(|e| others[((e as f64 * stride) as usize).min(others.len() - 1)]));
+        curve_rows.dedup();
+    }
+    // Separate streams, so that the captured meters' events and levels do not
+    // depend on how many other meters the feeder has.
+    let mut event_rng = rand_chacha::ChaCha8Rng::seed_from_u64(cfg.seed);
+    let mut dither_rng = rand_chacha::ChaCha8Rng::seed_from_u64(cfg.seed ^ 0x9e37_79b9_7f4a_7c15);
     let habit = base.map(|v| v.clamp(0.0, cfg.alpha_kw));
     let mut truth = habit.clone();
-    let events = inject_events(&mut truth, captured, layout, &cfg.events, cfg.alpha_kw, &mut rng);
-    let levels = redraw_levels(&truth, profile, &mut rng);
+    let events = inject_events(&mut truth, &curve_rows, layout, &cfg.events, cfg.alpha_kw, &mut event_rng);
+    let levels = redraw_levels(&truth, profile, &mut dither_rng);
     progress("utility recovery of the whole feeder", 0.05);
     let all: Vec<usize> = (0..m).collect();
     let cons = if profile.send_registers() { day_sums(&truth, &all, layout) } else { Vec::new() };
@@ -881,12 +901,8 @@ pub fn bootstrap(
     let sim =
         Simulated { levels: &levels, truth: &truth, utility: &util.x, events: &events, profile, alpha: cfg.alpha_kw };
     let mut curve_captured = Vec::new();
-    let mut counts: Vec<usize> =
-        cfg.curve_captured.iter().copied().filter(|c| (1..=captured.len()).contains(c)).collect();
-    counts.sort_unstable();
-    counts.dedup();
-    for c in counts {
-        curve_captured.push(curve_point(&sim, &captured[..c], full.clone(), layout)?);
+    for c in counts.into_iter().filter(|c| *c <= curve_rows.len()) {
+        curve_captured.push(curve_point(&sim, &curve_rows[..c], full.clone(), layout)?);
     }
     let days = whole_days(layout, n);
     let mut curve_days = Vec::new();
@@ -922,6 +938,28 @@ pub fn bootstrap(
         assumptions: assumptions(profile),
         caution: CAUTION.into(),
     })
+}
+
+/// The strongest event F1 with counts pooled over several bootstrap reports
+/// (for example one per captured meter): per strategy and threshold the counts
+/// are summed, then the best F1 is taken. Returns (strategy, F1).
+pub fn pooled_event_f1(reports: &[AuditReport]) -> (String, f64) {
+    let mut pooled: std::collections::BTreeMap<&str, Vec<EventCounts>> = Default::default();
+    for r in reports {
+        for s in &r.strategies {
+            let Some(e) = &s.events else { continue };
+            let slot =
+                pooled.entry(&s.strategy).or_insert_with(|| vec![EventCounts::default(); e.counts_by_threshold.len()]);
+            for (a, c) in slot.iter_mut().zip(&e.counts_by_threshold) {
+                a.add(c);
+            }
+        }
+    }
+    pooled
+        .into_iter()
+        .map(|(s, c)| (s.to_owned(), event_figures(c).f1))
+        .max_by(|a, b| a.1.total_cmp(&b.1))
+        .unwrap_or_default()
 }
 
 /// Attackers on the stored levels of the captured meters, compared with the
@@ -973,9 +1011,12 @@ mod tests {
         }
         x[(0, 200)] += 1.5; // a false alarm
         let c = score_events(&x, &ev, layout, 1.0);
-        assert_eq!(c, EventCounts { events: 1, events_found: 1, flagged_runs: 2, runs_correct: 1 });
-        assert!((c.f1() - 2.0 / 3.0).abs() < 1e-12);
+        assert_eq!(c, EventCounts { events: 1, events_found: 1, flagged_intervals: 4, flagged_in_events: 3 });
+        assert!((c.f1() - 2.0 * 0.75 / 1.75).abs() < 1e-12);
         assert_eq!(score_events(&x, &ev, layout, 2.5).f1(), 0.0);
+        // Flagging everything finds every event but scores only the events' share of intervals.
+        let all = score_events(&(x.clone() * 0.0), &ev, layout, -1.0);
+        assert_eq!((all.recall(), all.precision()), (1.0, 3.0 / 288.0));
     }
 
     #[test]

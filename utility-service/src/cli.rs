@@ -70,6 +70,67 @@ pub enum Command {
         #[arg(long, default_value = "auto")]
         clusters: String,
     },
+    /// Audit what an eavesdropper holding the captured meters' uploads could
+    /// reconstruct, against every attacker strategy known, beside the utility.
+    Audit {
+        /// CSV with header meter_id,interval_start,level: the whole feeder.
+        #[arg(long)]
+        levels: PathBuf,
+        /// Dither profile JSON the levels were made with.
+        #[arg(long)]
+        profile: PathBuf,
+        /// Text file of captured meter ids, one per line.
+        #[arg(long)]
+        captured: PathBuf,
+        /// Output JSON of the audit.
+        #[arg(long)]
+        output: PathBuf,
+        /// Also write a self-contained HTML report with charts.
+        #[arg(long)]
+        html: Option<PathBuf>,
+        /// Optional CSV of daily energies: meter_id,day_start,wh.
+        #[arg(long)]
+        registers: Option<PathBuf>,
+        #[arg(long, default_value_t = 15.0)]
+        alpha_kw: f64,
+        /// Seed of the simulated events and dither (the audit is a reproducible simulation).
+        #[arg(long, default_value_t = 11)]
+        seed: u64,
+    },
+    /// Recommend a feeder's dither scale and level set for privacy and accuracy targets.
+    Calibrate {
+        /// CSV with header meter_id,interval_start,level: the whole feeder.
+        #[arg(long)]
+        levels: PathBuf,
+        /// The feeder's current dither profile JSON.
+        #[arg(long)]
+        profile: PathBuf,
+        /// Where the recommended profile JSON goes (written only when the targets are met).
+        #[arg(long)]
+        output: PathBuf,
+        /// Full calibration JSON with the trade-off curve.
+        #[arg(long)]
+        report: Option<PathBuf>,
+        /// HTML report with the trade-off chart.
+        #[arg(long)]
+        html: Option<PathBuf>,
+        /// Optional CSV of daily energies: meter_id,day_start,wh.
+        #[arg(long)]
+        registers: Option<PathBuf>,
+        /// Bound on the strongest attacker's event F1.
+        #[arg(long, default_value_t = 0.3)]
+        max_event_f1: f64,
+        /// Meters the attacker holds.
+        #[arg(long, default_value_t = 1)]
+        captured: usize,
+        /// Bound on the utility's median daily-energy error (fraction).
+        #[arg(long, default_value_t = 0.1)]
+        max_energy_error: f64,
+        #[arg(long, default_value_t = 15.0)]
+        alpha_kw: f64,
+        #[arg(long, default_value_t = 5)]
+        seed: u64,
+    },
     /// One command: a fresh service and the invented town of Quillmarsh, 28 days of
     /// 15-minute data through real gateway outboxes over HTTP, then a summary.
     Demo {
@@ -129,6 +190,58 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
             let summary =
                 tokio::task::spawn_blocking(move || crate::offline::run_cluster(&profiles, &output, clusters))
                     .await??;
+            println!("{summary}");
+            Ok(())
+        }
+        Command::Audit { levels, profile, captured, output, html, registers, alpha_kw, seed } => {
+            let summary = tokio::task::spawn_blocking(move || {
+                crate::offline::run_audit(&crate::offline::AuditFiles {
+                    levels: &levels,
+                    profile: &profile,
+                    captured: &captured,
+                    output: &output,
+                    html: html.as_deref(),
+                    registers: registers.as_deref(),
+                    alpha_kw,
+                    seed,
+                })
+            })
+            .await??;
+            println!("{summary}");
+            Ok(())
+        }
+        Command::Calibrate {
+            levels,
+            profile,
+            output,
+            report,
+            html,
+            registers,
+            max_event_f1,
+            captured,
+            max_energy_error,
+            alpha_kw,
+            seed,
+        } => {
+            let targets = meterveil_shared::calibrate::Targets {
+                event_f1_max: max_event_f1,
+                captured,
+                daily_energy_error_max: max_energy_error,
+            };
+            let summary = tokio::task::spawn_blocking(move || {
+                crate::offline::run_calibrate(&crate::offline::CalibrateFiles {
+                    levels: &levels,
+                    profile: &profile,
+                    output: &output,
+                    report: report.as_deref(),
+                    html: html.as_deref(),
+                    registers: registers.as_deref(),
+                    targets,
+                    alpha_kw,
+                    seed,
+                })
+            })
+            .await??;
             println!("{summary}");
             Ok(())
         }

@@ -13,5 +13,6 @@ pub mod ingest;
 pub mod jobs;
 pub mod metrics;
 pub mod offline;
+pub mod report;
 pub mod routes;
 pub mod store;

@@ -385,3 +385,185 @@ pub fn run_cluster(profiles: &Path, output: &Path, clusters: Option<usize>) -> a
         "output": output.display().to_string(),
     }))
 }
+
+/// Writes `contents` to `path` through a temporary file in the same folder and
+/// a rename, so that a reader never sees half a file.
+pub fn write_atomically(path: &Path, contents: &[u8]) -> anyhow::Result<()> {
+    let dir = path.parent().filter(|d| !d.as_os_str().is_empty()).unwrap_or(Path::new("."));
+    let mut tmp = tempfile::NamedTempFile::new_in(dir).with_context(|| format!("writing into {}", dir.display()))?;
+    tmp.write_all(contents)?;
+    tmp.as_file().sync_all()?;
+    tmp.persist(path).with_context(|| format!("writing {}", path.display()))?;
+    Ok(())
+}
+
+/// Reads a list of meter ids, one per line (`#` starts a comment), and returns
+/// their rows in the window. Every problem names the line.
+pub fn read_captured(path: &Path, w: &Window) -> anyhow::Result<Vec<usize>> {
+    let file = path.display().to_string();
+    let text = std::fs::read_to_string(path).with_context(|| format!("reading {file}"))?;
+    let rows: HashMap<&str, usize> = w.meters.iter().enumerate().map(|(i, m)| (m.as_str(), i)).collect();
+    let mut out: Vec<usize> = Vec::new();
+    for (no, line) in text.lines().enumerate() {
+        let id = line.split('#').next().unwrap_or("").trim();
+        if id.is_empty() {
+            continue;
+        }
+        let err = |reason: String| InputError {
+            file: file.clone(),
+            line: no + 1,
+            error: FieldError::new("meter_id", reason),
+        };
+        let m = MeterId::parse(id).map_err(|e| err(e.reason))?;
+        let Some(&row) = rows.get(m.as_str()) else {
+            return Err(err(format!("meter {m} has no levels in the levels file")).into());
+        };
+        if out.contains(&row) {
+            return Err(err(format!("meter {m} is named twice")).into());
+        }
+        out.push(row);
+    }
+    if out.is_empty() {
+        return Err(InputError { file, line: 0, error: FieldError::new("meter_id", "names no captured meter") }.into());
+    }
+    Ok(out)
+}
+
+fn read_profile_file(path: &Path) -> anyhow::Result<DitherProfile> {
+    let text = std::fs::read_to_string(path).with_context(|| format!("reading {}", path.display()))?;
+    DitherProfile::from_json(&text).map_err(|e| anyhow::anyhow!("{}: {e}", path.display()))
+}
+
+/// The utility's full-population recovery of a levels file (automatic rank).
+fn recover_window(
+    w: &Window,
+    profile: &DitherProfile,
+    constraints: &[SumConstraint],
+    alpha: f64,
+) -> anyhow::Result<Recovery> {
+    let params = RecoveryParams { alpha_kw: alpha, ..RecoveryParams::default() }
+        .check()
+        .map_err(|e| anyhow::anyhow!("--{}: {}", e.field.replace('_', "-"), e.reason))?;
+    let mut report = progress_reporter();
+    Ok(recover(&w.levels, profile, constraints, w.layout(), &params, &mut report)?)
+}
+
+/// Options of the `audit` command.
+pub struct AuditFiles<'a> {
+    pub levels: &'a Path,
+    pub profile: &'a Path,
+    pub captured: &'a Path,
+    pub output: &'a Path,
+    pub html: Option<&'a Path>,
+    pub registers: Option<&'a Path>,
+    pub alpha_kw: f64,
+    pub seed: u64,
+}
+
+/// The whole `audit` command: the utility's recovery of every meter in the
+/// levels file, the bootstrap audit of the captured meters on it, and the
+/// attackers on the stored levels (direct mode). Returns the JSON summary.
+pub fn run_audit(a: &AuditFiles<'_>) -> anyhow::Result<serde_json::Value> {
+    use meterveil_shared::audit::{bootstrap, default_curve_counts, direct, AuditConfig};
+    let profile = read_profile_file(a.profile)?;
+    let w = read_levels(a.levels, &profile)?;
+    let captured = read_captured(a.captured, &w)?;
+    let (constraints, _) = match a.registers {
+        Some(p) => read_registers(p, &w)?,
+        None => (Vec::new(), 0),
+    };
+    let rec = recover_window(&w, &profile, &constraints, a.alpha_kw)?;
+    let cfg = AuditConfig {
+        alpha_kw: a.alpha_kw,
+        seed: a.seed,
+        utility_rank: meterveil_shared::recovery::RankChoice::Fixed(rec.diagnostics.rank),
+        curve_captured: default_curve_counts(w.meters.len()),
+        ..AuditConfig::default()
+    };
+    let mut report = progress_reporter();
+    let mut out = bootstrap(&rec.x, &captured, &profile, w.layout(), &cfg, &mut report)
+        .map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
+    let lc = meterveil_shared::audit::select_rows(&w.levels, &captured, 0..w.levels.cols());
+    let uc = nalgebra::DMatrix::from_fn(captured.len(), w.levels.cols(), |r, j| rec.x[(captured[r], j)]);
+    let cc: Vec<SumConstraint> = constraints
+        .iter()
+        .filter_map(|c| {
+            captured.iter().position(|&i| i == c.row).map(|r| SumConstraint {
+                row: r,
+                cols: c.cols.clone(),
+                sum_kw: c.sum_kw,
+            })
+        })
+        .collect();
+    out.direct = Some(
+        direct(&lc, &uc, &cc, &profile, w.layout(), a.alpha_kw)
+            .map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?,
+    );
+    let json = serde_json::to_vec_pretty(&out)?;
+    write_atomically(a.output, &json)?;
+    if let Some(h) = a.html {
+        let title = format!("Privacy audit: {} captured of {} meters", out.captured_meters, out.population);
+        write_atomically(h, crate::report::audit_html(&title, &out).as_bytes())?;
+    }
+    Ok(serde_json::json!({
+        "captured": out.captured_meters,
+        "meters": out.population,
+        "days": out.days,
+        "strongest": { "strategy": out.strongest.strategy, "event_f1": out.strongest.event_f1, "nrmse": out.strongest.nrmse },
+        "utility": { "nrmse": out.utility.nrmse, "event_f1": out.utility.event_f1 },
+        "mechanism": { "mutual_information_bits": out.mechanism.mutual_information_bits, "ldp_epsilon": out.mechanism.ldp_epsilon },
+        "output": a.output.display().to_string(),
+    }))
+}
+
+/// Options of the `calibrate` command.
+pub struct CalibrateFiles<'a> {
+    pub levels: &'a Path,
+    pub profile: &'a Path,
+    pub output: &'a Path,
+    pub report: Option<&'a Path>,
+    pub html: Option<&'a Path>,
+    pub registers: Option<&'a Path>,
+    pub targets: meterveil_shared::calibrate::Targets,
+    pub alpha_kw: f64,
+    pub seed: u64,
+}
+
+/// The whole `calibrate` command: recovers the feeder, searches the dither, and
+/// writes the recommended profile (only when the targets are met) and the report.
+pub fn run_calibrate(a: &CalibrateFiles<'_>) -> anyhow::Result<serde_json::Value> {
+    use meterveil_shared::calibrate::{calibrate, CalibrationConfig};
+    let profile = read_profile_file(a.profile)?;
+    let w = read_levels(a.levels, &profile)?;
+    let (constraints, _) = match a.registers {
+        Some(p) => read_registers(p, &w)?,
+        None => (Vec::new(), 0),
+    };
+    let rec = recover_window(&w, &profile, &constraints, a.alpha_kw)?;
+    let cfg = CalibrationConfig {
+        alpha_kw: a.alpha_kw,
+        seed: a.seed,
+        utility_rank: meterveil_shared::recovery::RankChoice::Fixed(rec.diagnostics.rank),
+        ..CalibrationConfig::new(a.targets.clone())
+    };
+    cfg.check(w.meters.len()).map_err(|e| anyhow::anyhow!("--{}: {}", e.field.replace('_', "-"), e.reason))?;
+    let mut report = progress_reporter();
+    let c = calibrate(&rec.x, &profile, w.layout(), &cfg, &mut report)
+        .map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
+    if let Some(r) = a.report {
+        write_atomically(r, &serde_json::to_vec_pretty(&c)?)?;
+    }
+    if let Some(h) = a.html {
+        write_atomically(h, crate::report::calibration_html("Dither calibration", &c).as_bytes())?;
+    }
+    if c.meets_targets {
+        write_atomically(a.output, &serde_json::to_vec_pretty(&c.recommended)?)?;
+    }
+    Ok(serde_json::json!({
+        "meets_targets": c.meets_targets,
+        "message": c.message,
+        "recommended": c.recommended,
+        "evaluations": c.evaluations,
+        "output": if c.meets_targets { serde_json::json!(a.output.display().to_string()) } else { serde_json::Value::Null },
+    }))
+}

@@ -1,0 +1,94 @@
+//! Dither calibration on a BDEW household population (package demandlib, H0):
+//! repeatable, and its recommendation holds up in an independent simulation with
+//! fresh random numbers; impossible targets are said to be impossible.
+
+mod common;
+
+use common::*;
+use meterveil_shared::audit::{bootstrap, pooled_event_f1, AuditConfig};
+use meterveil_shared::calibrate::{calibrate, CalibrationConfig, Simulation, Targets};
+use meterveil_shared::recovery::outage::DayLayout;
+use meterveil_shared::recovery::RankChoice;
+use meterveil_shared::DitherProfile;
+use nalgebra::DMatrix;
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+
+const LAYOUT: DayLayout = DayLayout { window_start: 1_673_222_400, interval_s: 900 };
+
+fn base(m: usize, days: usize) -> DMatrix<f64> {
+    let (_, shapes) = bdew_shapes(days);
+    let h0: Vec<_> = shapes.into_iter().filter(|s| s.0 == "H0").collect();
+    population(&h0, m, 15.0, &mut ChaCha8Rng::seed_from_u64(61)).0
+}
+
+fn config(f1: f64, energy: f64) -> CalibrationConfig {
+    CalibrationConfig {
+        utility_rank: RankChoice::Fixed(5),
+        ..CalibrationConfig::new(Targets { event_f1_max: f1, captured: 1, daily_energy_error_max: energy })
+    }
+}
+
+#[test]
+fn calibration_is_repeatable_and_its_recommendation_holds_with_fresh_random_numbers() {
+    let x = base(80, 28);
+    let current = gaussian_profile(0.3, &[1.0, 2.0]);
+    let cfg = config(0.4, 0.15);
+    let a = calibrate(&x, &current, LAYOUT, &cfg, &mut |_, _| {}).unwrap();
+    let b = calibrate(&x, &current, LAYOUT, &cfg, &mut |_, _| {}).unwrap();
+    eprintln!("{}", a.message);
+    for p in &a.curve {
+        eprintln!(
+            "    {} levels σ {:.3} kW: attacker F1 {:.3} ({}), utility daily energy {:.3}, nRMSE {:.3}",
+            p.levels,
+            p.scale_kw,
+            p.attacker_event_f1,
+            p.attacker_strategy,
+            p.utility_daily_energy_error,
+            p.utility_nrmse
+        );
+    }
+    assert_eq!(a.recommended, b.recommended, "two runs disagree");
+    assert_eq!(a.curve, b.curve);
+    assert!(a.meets_targets, "{}", a.message);
+
+    // Independent check: a fresh simulation (new events, new captured meters' draws, new dither).
+    let rec = DitherProfile::try_from(a.recommended.clone()).unwrap();
+    let fresh = Simulation::new(&x, &rec, LAYOUT, &cfg, 9_999).evaluate(rec.boundaries_kw(), rec.scale_kw()).unwrap();
+    eprintln!(
+        "fresh simulation of the recommendation: attacker F1 {:.3} ({}), utility daily energy {:.3}",
+        fresh.attacker_event_f1, fresh.attacker_strategy, fresh.utility_daily_energy_error
+    );
+    assert!(fresh.attacker_event_f1 <= cfg.targets.event_f1_max, "{fresh:?}");
+    assert!(fresh.utility_daily_energy_error <= cfg.targets.daily_energy_error_max, "{fresh:?}");
+    // And the audit itself, one captured meter at a time with its own random
+    // numbers, counts pooled over eight meters the calibration did not capture.
+    let reports: Vec<_> = (0..8)
+        .map(|i| {
+            let cfg = AuditConfig {
+                seed: 77 + i,
+                utility_rank: RankChoice::Fixed(5),
+                curve_days: vec![],
+                ..Default::default()
+            };
+            bootstrap(&x, &[5 + 10 * i as usize], &rec, LAYOUT, &cfg, &mut |_, _| {}).unwrap()
+        })
+        .collect();
+    let (strategy, f1) = pooled_event_f1(&reports);
+    eprintln!("audit of the recommendation, eight single meters pooled: strongest event F1 {f1:.3} ({strategy})");
+    assert!(f1 <= cfg.targets.event_f1_max, "{f1}");
+}
+
+#[test]
+fn impossible_targets_are_reported_with_the_closest_trade_off() {
+    let x = base(40, 7);
+    let current = gaussian_profile(0.3, &[1.0, 2.0]);
+    let cfg = CalibrationConfig { grid: 4, sets: 2, ..config(0.02, 0.005) };
+    let c = calibrate(&x, &current, LAYOUT, &cfg, &mut |_, _| {}).unwrap();
+    eprintln!("{}", c.message);
+    assert!(!c.meets_targets);
+    assert!(c.message.contains("cannot both be met"), "{}", c.message);
+    assert!(c.curve.contains(&c.chosen));
+    let bad = CalibrationConfig { sets: 50, ..cfg.clone() };
+    assert_eq!(calibrate(&x, &current, LAYOUT, &bad, &mut |_, _| {}).unwrap_err().field, "captured");
+}
