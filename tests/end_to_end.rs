@@ -843,6 +843,80 @@ async fn recovery_job_over_stored_levels() {
     assert_eq!(s, StatusCode::UNAUTHORIZED);
     let before = t.count("SELECT COUNT(*) FROM analysis_jobs").await;
     assert_eq!(before, 1, "rejected requests made no job");
+
+    // Privacy audit of one captured meter over the recovery, and its report.
+    let wait = |id: String| {
+        let get = &get;
+        async move {
+            let mut job = Value::Null;
+            for _ in 0..1200 {
+                job = get(format!("/v1/analyses/{id}")).await.expect("status").json().await.expect("json");
+                if job["state"] == "done" || job["state"] == "failed" {
+                    break;
+                }
+                tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+            }
+            job
+        }
+    };
+    let (s, body) =
+        t.post_json("/v1/audits", &json!({"recovery_job": id, "captured": ["QM-CHAPEL-ROW-0001"]}), true).await;
+    assert_eq!(s, StatusCode::ACCEPTED, "{body}");
+    let aid = body["job_id"].as_str().expect("id").to_owned();
+    let audit = wait(aid.clone()).await;
+    assert_eq!(audit["state"], "done", "{audit}");
+    let r = &audit["result"];
+    assert!(r["strongest"]["event_f1"].is_number() && r["utility"]["nrmse"].is_number(), "{r}");
+    assert!(r["mechanism"]["ldp_epsilon"].as_f64().is_some_and(|e| e > 0.0));
+    assert!(r["direct"]["strongest"]["nrmse"].is_number());
+    let html = get(format!("/v1/analyses/{aid}/report")).await.expect("report").text().await.expect("text");
+    assert!(html.contains("<svg") && html.contains("QM-CHAPEL-ROW"), "{}", &html[..html.len().min(400)]);
+
+    // Calibration with loose targets, publishing its recommendation as version 2.
+    let (s, body) = t
+        .post_json(
+            "/v1/calibrations",
+            &json!({"recovery_job": id, "event_f1_max": 0.9, "daily_energy_error_max": 0.5, "publish": true}),
+            true,
+        )
+        .await;
+    assert_eq!(s, StatusCode::ACCEPTED, "{body}");
+    let cal = wait(body["job_id"].as_str().expect("id").to_owned()).await;
+    assert_eq!(cal["state"], "done", "{cal}");
+    let c = &cal["result"];
+    assert_eq!(c["meets_targets"], true, "{c}");
+    assert_eq!(c["published_version"], 2);
+    let current: Value = t
+        .http
+        .get(format!("{}/v1/feeders/QM-CHAPEL-ROW/profile", t.url()))
+        .send()
+        .await
+        .expect("profile")
+        .json()
+        .await
+        .expect("json");
+    assert_eq!(current["version"], 2, "{current}");
+    assert_eq!(current["profile"]["scale_kw"], c["recommended"]["scale_kw"], "{current}");
+
+    for (path, body, field) in [
+        ("/v1/audits", json!({"recovery_job": id, "captured": ["QM-NOWHERE-0001"]}), "captured"),
+        ("/v1/audits", json!({"recovery_job": id, "captured": []}), "captured"),
+        ("/v1/audits", json!({"recovery_job": "rec-none", "captured": ["QM-CHAPEL-ROW-0001"]}), "recovery_job"),
+        (
+            "/v1/calibrations",
+            json!({"recovery_job": id, "event_f1_max": 2.0, "daily_energy_error_max": 0.1}),
+            "event_f1_max",
+        ),
+        (
+            "/v1/calibrations",
+            json!({"recovery_job": id, "event_f1_max": 0.3, "daily_energy_error_max": 0.1, "captured": 5}),
+            "captured",
+        ),
+    ] {
+        let (s, b) = t.post_json(path, &body, true).await;
+        assert_eq!((s, b["field"].as_str()), (StatusCode::UNPROCESSABLE_ENTITY, Some(field)), "{path} {b}");
+    }
+    assert_eq!(t.count("SELECT COUNT(*) FROM analysis_jobs").await, 3, "rejected requests made no job");
 }
 
 fn last_json_line(out: &[u8]) -> Value {

@@ -27,7 +27,7 @@
 
 use nalgebra::DMatrix;
 use rand::Rng;
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 
 use crate::error::FieldError;
 use crate::mechanism::{level_of, log_likelihood};
@@ -38,7 +38,7 @@ use crate::recovery::table::LikelihoodTable;
 use crate::recovery::{recover, LevelMatrix, RankChoice, RecoveryParams, SumConstraint};
 
 /// One kind of appliance event injected in the parametric bootstrap.
-#[derive(Debug, Clone, Serialize, PartialEq)]
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
 pub struct EventKind {
     pub name: String,
     pub kw: f64,
@@ -70,7 +70,7 @@ pub fn standard_event_mix() -> Vec<EventKind> {
 }
 
 /// An injected event: `row` of the matrix it was added to, columns `start..start+len`.
-#[derive(Debug, Clone, Copy, Serialize, PartialEq)]
+#[derive(Debug, Clone, Copy, Serialize, Deserialize, PartialEq)]
 pub struct InjectedEvent {
     pub row: usize,
     pub start: usize,
@@ -122,7 +122,7 @@ pub fn inject_events(
 }
 
 /// Counts behind an event score, so that scores pool over meters and sets.
-#[derive(Debug, Clone, Copy, Default, Serialize, PartialEq)]
+#[derive(Debug, Clone, Copy, Default, Serialize, Deserialize, PartialEq)]
 pub struct EventCounts {
     pub events: usize,
     pub events_found: usize,
@@ -392,7 +392,7 @@ pub fn attack(
 
 /// Event detection of one reconstruction: at the documented threshold and at
 /// the best threshold of [`THRESHOLDS_KW`].
-#[derive(Debug, Clone, Serialize, PartialEq)]
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
 pub struct EventFigures {
     pub f1_at_documented_threshold: f64,
     pub f1: f64,
@@ -424,7 +424,7 @@ pub fn score_all_thresholds(r: &DMatrix<f64>, events: &[InjectedEvent], layout: 
 }
 
 /// What one strategy (or the utility) recovers of the captured meters.
-#[derive(Debug, Clone, Serialize, PartialEq)]
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
 pub struct StrategyFigures {
     pub strategy: String,
     /// Against the simulated truth, events included.
@@ -438,7 +438,7 @@ pub struct StrategyFigures {
 }
 
 /// The strongest attacker, metric by metric (each may come from a different strategy).
-#[derive(Debug, Clone, Serialize, PartialEq)]
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
 pub struct Strongest {
     /// The strategy strongest on the privacy-relevant metric: event F1 in the
     /// bootstrap, nRMSE when no events are scored.
@@ -610,7 +610,7 @@ pub fn select_rows(levels: &LevelMatrix, rows: &[usize], cols: std::ops::Range<u
 }
 
 /// Per-reading figures of the mechanism that need no attacker model.
-#[derive(Debug, Clone, Serialize, PartialEq)]
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
 pub struct MechanismFigures {
     /// I(reading; level), bits, over the feeder's reading distribution.
     pub mutual_information_bits: f64,
@@ -648,7 +648,7 @@ pub fn mechanism_figures(profile: &DitherProfile, readings_kw: &[f64], alpha: f6
 }
 
 /// The utility's own figures on the captured meters, from the full-feeder recovery.
-#[derive(Debug, Clone, Serialize, PartialEq)]
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
 pub struct UtilityFigures {
     pub nrmse: f64,
     #[serde(skip_serializing_if = "Option::is_none")]
@@ -664,7 +664,7 @@ pub struct UtilityFigures {
 
 /// One point of a curve: the strongest attacker with `captured` meters and
 /// `days` days of history, beside the utility on the same meters.
-#[derive(Debug, Clone, Serialize, PartialEq)]
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
 pub struct CurvePoint {
     pub captured: usize,
     pub days: usize,
@@ -676,14 +676,14 @@ pub struct CurvePoint {
 }
 
 /// Attackers on the stored levels, compared with the utility's recovery.
-#[derive(Debug, Clone, Serialize, PartialEq)]
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
 pub struct DirectFigures {
     pub strategies: Vec<StrategyFigures>,
     pub strongest: Strongest,
     pub note: String,
 }
 
-#[derive(Debug, Clone, Serialize, PartialEq)]
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
 pub struct AuditReport {
     pub mode: String,
     pub captured_meters: usize,

@@ -18,7 +18,7 @@ use argmin::solver::brent::BrentRoot;
 use nalgebra::DMatrix;
 use rand::SeedableRng;
 use rand_distr::{Distribution, StandardNormal};
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 
 use crate::audit::{
     attack, day_sums, event_figures, inject_events, levels_from_standard, median_daily_energy_error, nrmse,
@@ -29,7 +29,7 @@ use crate::profile::{DitherProfile, DitherProfileSpec, NoiseFamily};
 use crate::recovery::outage::DayLayout;
 use crate::recovery::{recover, RankChoice, RecoveryParams};
 
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Targets {
     /// Bound on the strongest attacker's event F1 …
     pub event_f1_max: f64,
@@ -109,7 +109,7 @@ impl CalibrationConfig {
 }
 
 /// One evaluated candidate.
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct TradeoffPoint {
     pub levels: usize,
     pub boundaries_kw: Vec<f64>,
@@ -121,7 +121,7 @@ pub struct TradeoffPoint {
     pub utility_nrmse: f64,
 }
 
-#[derive(Debug, Clone, PartialEq, Serialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Calibration {
     pub meets_targets: bool,
     /// The recommendation, or when the targets cannot both be met, the closest trade-off.

@@ -1,5 +1,6 @@
 //! Background jobs. CPU work runs on the blocking pool, never on the async runtime.
 
+pub mod audit;
 pub mod cluster;
 pub mod recover;
 

@@ -22,6 +22,9 @@ pub fn router() -> Router<AppState> {
         .route("/v1/clusterings", post(start_clustering))
         .route("/v1/clusterings/{job_id}/assignments", get(assignments))
         .route("/v1/analyses/{job_id}", get(status))
+        .route("/v1/analyses/{job_id}/report", get(report))
+        .route("/v1/audits", post(start_audit))
+        .route("/v1/calibrations", post(start_calibration))
 }
 
 #[derive(Deserialize)]
@@ -81,6 +84,128 @@ async fn start_clustering(
     s.store.create_analysis(&job_id, "cluster", &params, now_s()).await?;
     tokio::spawn(run(s.clone(), job_id.clone(), ClusterRequest { recovery_jobs: w.recovery_jobs, clusters }));
     Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
+}
+
+/// A finished recovery job named by a request, or the error naming `recovery_job`.
+async fn done_recovery(s: &AppState, id: &str) -> Result<crate::store::recoveries::JobRecord, ApiError> {
+    let Some(job) = s.store.job(id).await? else {
+        return Err(ApiError::invalid("recovery_job", format!("no recovery job {id}")));
+    };
+    if job.state != "done" {
+        return Err(ApiError::Conflict(FieldError::new(
+            "recovery_job",
+            format!("recovery job {id} is {}; analyse it when it is done", job.state),
+        )));
+    }
+    Ok(job)
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct AuditWire {
+    recovery_job: String,
+    captured: Vec<String>,
+    #[serde(default)]
+    seed: Option<u64>,
+}
+
+async fn start_audit(
+    _: Operator,
+    State(s): State<AppState>,
+    body: Bytes,
+) -> Result<(StatusCode, Json<Value>), ApiError> {
+    let w: AuditWire = parse_json(&body)?;
+    let job = done_recovery(&s, &w.recovery_job).await?;
+    if w.captured.is_empty() || w.captured.len() > 1000 {
+        return Err(ApiError::invalid("captured", "name from 1 to 1000 captured meters"));
+    }
+    let feeder = meterveil_shared::FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
+    let meters: std::collections::HashSet<String> = s.store.meters_of(&feeder).await?.into_iter().collect();
+    let mut seen = std::collections::HashSet::new();
+    for m in &w.captured {
+        if !meters.contains(m) {
+            return Err(ApiError::invalid("captured", format!("meter {m} is not on feeder {feeder}")));
+        }
+        if !seen.insert(m) {
+            return Err(ApiError::invalid("captured", format!("meter {m} is named twice")));
+        }
+    }
+    let seed = w.seed.unwrap_or(11);
+    let job_id = new_job_id("aud");
+    let params = json!({ "recovery_job": w.recovery_job, "captured": w.captured, "seed": seed });
+    s.store.create_analysis(&job_id, "audit", &params, now_s()).await?;
+    let req = crate::jobs::audit::AuditRequest { recovery_job: w.recovery_job, captured: w.captured, seed };
+    tokio::spawn(crate::jobs::audit::run_audit(s.clone(), job_id.clone(), req));
+    Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct CalibrationWire {
+    recovery_job: String,
+    event_f1_max: f64,
+    #[serde(default = "one")]
+    captured: usize,
+    daily_energy_error_max: f64,
+    #[serde(default)]
+    publish: bool,
+    #[serde(default)]
+    seed: Option<u64>,
+}
+
+fn one() -> usize {
+    1
+}
+
+async fn start_calibration(
+    _: Operator,
+    State(s): State<AppState>,
+    body: Bytes,
+) -> Result<(StatusCode, Json<Value>), ApiError> {
+    use meterveil_shared::calibrate::{CalibrationConfig, Targets};
+    let w: CalibrationWire = parse_json(&body)?;
+    let job = done_recovery(&s, &w.recovery_job).await?;
+    let targets = Targets {
+        event_f1_max: w.event_f1_max,
+        captured: w.captured,
+        daily_energy_error_max: w.daily_energy_error_max,
+    };
+    let population = job.diagnostics.as_ref().and_then(|d| d["meters"].as_u64()).unwrap_or(0) as usize;
+    CalibrationConfig::new(targets.clone()).check(population).map_err(ApiError::Invalid)?;
+    let seed = w.seed.unwrap_or(5);
+    let job_id = new_job_id("cal");
+    let params = json!({ "recovery_job": w.recovery_job, "targets": targets, "publish": w.publish, "seed": seed });
+    s.store.create_analysis(&job_id, "calibrate", &params, now_s()).await?;
+    let req =
+        crate::jobs::audit::CalibrationRequest { recovery_job: w.recovery_job, targets, publish: w.publish, seed };
+    tokio::spawn(crate::jobs::audit::run_calibration(s.clone(), job_id.clone(), req));
+    Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
+}
+
+/// The HTML report of a finished audit or calibration.
+async fn report(_: Operator, State(s): State<AppState>, Path(id): Path<String>) -> Result<Response, ApiError> {
+    let job = find(&s, &id).await?;
+    if job.state != "done" {
+        return Err(ApiError::Conflict(FieldError::new(
+            "job_id",
+            format!("job {id} is {}; its report appears when it is done", job.state),
+        )));
+    }
+    let result = job.result.unwrap_or(Value::Null);
+    let feeder = result["feeder_id"].as_str().unwrap_or("?").to_owned();
+    let bad = |e: serde_json::Error| ApiError::Internal(anyhow::anyhow!("stored result of {id} does not parse: {e}"));
+    let html = match job.kind.as_str() {
+        "audit" => {
+            let r: meterveil_shared::audit::AuditReport = serde_json::from_value(result).map_err(bad)?;
+            crate::report::audit_html(&format!("Privacy audit of feeder {feeder}"), &r)
+        }
+        "calibrate" => {
+            let c: meterveil_shared::calibrate::Calibration = serde_json::from_value(result).map_err(bad)?;
+            crate::report::calibration_html(&format!("Dither calibration of feeder {feeder}"), &c)
+        }
+        other => return Err(ApiError::invalid("job_id", format!("a {other} job has no report"))),
+    };
+    Ok(([(header::CONTENT_TYPE, "text/html; charset=utf-8")], html).into_response())
 }
 
 async fn find(s: &AppState, id: &str) -> Result<AnalysisRecord, ApiError> {

@@ -113,6 +113,35 @@ impl Store {
         Ok(())
     }
 
+    /// Marks a calibration done and, when asked, publishes its recommended
+    /// profile as the feeder's next version, in one transaction. Returns the version.
+    pub async fn finish_calibration(
+        &self,
+        id: &str,
+        result: &serde_json::Value,
+        publish: Option<(&meterveil_shared::FeederId, &meterveil_shared::DitherProfile)>,
+        now: i64,
+    ) -> Result<Option<i64>, ApiError> {
+        let _w = self.writer.lock().await;
+        let mut tx = self.pool.begin().await?;
+        let version = match publish {
+            Some((f, p)) => Some(super::insert_profile(&mut tx, f, p, now).await?),
+            None => None,
+        };
+        let mut result = result.clone();
+        result["published_version"] = version.into();
+        sqlx::query(
+            "UPDATE analysis_jobs SET state = 'done', progress = 1, message = 'done', result = ?, finished_at = ? WHERE job_id = ?",
+        )
+        .bind(result.to_string())
+        .bind(now)
+        .bind(id)
+        .execute(&mut *tx)
+        .await?;
+        tx.commit().await?;
+        Ok(version)
+    }
+
     pub async fn analysis(&self, id: &str) -> Result<Option<AnalysisRecord>, ApiError> {
         let Some(r) =
             sqlx::query("SELECT * FROM analysis_jobs WHERE job_id = ?").bind(id).fetch_optional(&self.pool).await?

@@ -207,26 +207,7 @@ impl Store {
     ) -> Result<ProfileRecord, ApiError> {
         let _w = self.writer.lock().await;
         let mut tx = self.pool.begin().await?;
-        let next: i64 =
-            sqlx::query_scalar("SELECT COALESCE(MAX(version), 0) + 1 FROM dither_profiles WHERE feeder_id = ?")
-                .bind(feeder.as_str())
-                .fetch_one(&mut *tx)
-                .await?;
-        let spec = profile.to_spec();
-        sqlx::query(
-            "INSERT INTO dither_profiles (feeder_id, version, noise, scale_kw, boundaries_kw, interval_s, send_registers, created_at)
-             VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
-        )
-        .bind(feeder.as_str())
-        .bind(next)
-        .bind(&spec.noise)
-        .bind(spec.scale_kw)
-        .bind(serde_json::to_string(&spec.boundaries_kw).map_err(anyhow::Error::from)?)
-        .bind(i64::from(spec.interval_s))
-        .bind(spec.send_registers)
-        .bind(now)
-        .execute(&mut *tx)
-        .await?;
+        let next = insert_profile(&mut tx, feeder, profile, now).await?;
         tx.commit().await?;
         Ok(ProfileRecord {
             feeder_id: feeder.clone(),
@@ -436,4 +417,33 @@ fn stored_batch_from_row(r: &sqlx::sqlite::SqliteRow) -> Result<StoredBatch, Api
         body_sha256: r.try_get("body_sha256")?,
         ack: serde_json::from_str(&ack).map_err(anyhow::Error::from)?,
     })
+}
+
+/// Inserts `profile` as the feeder's next version inside `tx`; returns the version.
+pub(crate) async fn insert_profile(
+    tx: &mut sqlx::Transaction<'_, Sqlite>,
+    feeder: &FeederId,
+    profile: &DitherProfile,
+    now: i64,
+) -> Result<i64, ApiError> {
+    let next: i64 = sqlx::query_scalar("SELECT COALESCE(MAX(version), 0) + 1 FROM dither_profiles WHERE feeder_id = ?")
+        .bind(feeder.as_str())
+        .fetch_one(&mut **tx)
+        .await?;
+    let spec = profile.to_spec();
+    sqlx::query(
+        "INSERT INTO dither_profiles (feeder_id, version, noise, scale_kw, boundaries_kw, interval_s, send_registers, created_at)
+         VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+    )
+    .bind(feeder.as_str())
+    .bind(next)
+    .bind(&spec.noise)
+    .bind(spec.scale_kw)
+    .bind(serde_json::to_string(&spec.boundaries_kw).map_err(anyhow::Error::from)?)
+    .bind(i64::from(spec.interval_s))
+    .bind(spec.send_registers)
+    .bind(now)
+    .execute(&mut **tx)
+    .await?;
+    Ok(next)
 }
