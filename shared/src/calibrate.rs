@@ -65,7 +65,7 @@ impl CalibrationConfig {
     pub fn new(targets: Targets) -> Self {
         Self {
             targets,
-            scale_range_kw: (0.05, 2.0),
+            scale_range_kw: (0.05, 4.0),
             grid: 6,
             level_sets: Vec::new(),
             sets: 8,
@@ -255,7 +255,7 @@ pub fn quantile_boundaries(readings: &[f64], quantiles: &[f64]) -> Vec<f64> {
     let mut out: Vec<f64> = Vec::new();
     for q in quantiles {
         let x = v.get(((v.len().saturating_sub(1)) as f64 * q) as usize).copied().unwrap_or(1.0);
-        let b = ((x / 0.05).round() * 0.05).max(0.05);
+        let b = (((x / 0.05).round() * 5.0).round() / 100.0).max(0.05);
         if out.last().is_none_or(|l| b > *l + 1e-9) {
             out.push(b);
         }

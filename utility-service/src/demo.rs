@@ -51,6 +51,7 @@ pub struct TownCluster {
 pub struct DemoSummary {
     pub recoveries: Vec<FeederRecovery>,
     pub clusters: Vec<TownCluster>,
+    pub privacy: Option<PrivacyCheck>,
     pub service_url: String,
     pub database: PathBuf,
     pub simulation: SimulationReport,
@@ -68,15 +69,13 @@ fn demo_token() -> String {
 }
 
 pub async fn run(opts: &DemoOptions) -> anyhow::Result<DemoSummary> {
-    let (dir, _temp) = match &opts.dir {
+    // The folder is kept after the run: it holds the database and the reports.
+    let dir = match &opts.dir {
         Some(d) => {
             std::fs::create_dir_all(d).with_context(|| format!("creating {}", d.display()))?;
-            (d.clone(), None)
+            d.clone()
         }
-        None => {
-            let t = tempfile::Builder::new().prefix("meterveil-demo-").tempdir()?;
-            (t.path().to_path_buf(), Some(t))
-        }
+        None => tempfile::Builder::new().prefix("meterveil-demo-").tempdir()?.keep(),
     };
     let db = dir.join("meterveil-demo.sqlite");
     for suffix in ["", "-wal", "-shm"] {
@@ -107,8 +106,13 @@ pub async fn run(opts: &DemoOptions) -> anyhow::Result<DemoSummary> {
         recoveries.push(recover_feeder(&svc.url(), &token_for_jobs, &f.feeder_id, &town).await?);
     }
     let clusters = cluster_town(&svc.url(), &token_for_jobs, &recoveries, &town).await?;
+    let privacy = match recoveries.first() {
+        Some(r) => Some(privacy_check(&svc.url(), &token_for_jobs, r, &dir).await?),
+        None => None,
+    };
     let summary = DemoSummary {
         clusters,
+        privacy,
         recoveries,
         service_url: svc.url(),
         database: db,
@@ -201,6 +205,98 @@ async fn recover_feeder(
     })
 }
 
+/// Starts an analysis job by POSTing `body` to `path` and waits for it; returns its record.
+async fn analysis_job(
+    base: &str,
+    token: &str,
+    path: &str,
+    body: serde_json::Value,
+) -> anyhow::Result<serde_json::Value> {
+    let http = reqwest::Client::new();
+    let r: serde_json::Value = http
+        .post(format!("{base}{path}"))
+        .bearer_auth(token)
+        .json(&body)
+        .send()
+        .await?
+        .error_for_status()?
+        .json()
+        .await?;
+    let job_id = r["job_id"].as_str().context("job id")?.to_owned();
+    loop {
+        let j: serde_json::Value =
+            http.get(format!("{base}/v1/analyses/{job_id}")).bearer_auth(token).send().await?.json().await?;
+        match j["state"].as_str() {
+            Some("done") => return Ok(j),
+            Some("failed") => anyhow::bail!("{path} job failed: {}", j["error"]),
+            _ => tokio::time::sleep(std::time::Duration::from_millis(250)).await,
+        }
+    }
+}
+
+/// The demo's privacy audit of one feeder and its dither calibration.
+#[derive(Debug, Clone)]
+pub struct PrivacyCheck {
+    pub feeder_id: String,
+    pub captured: String,
+    pub audit: serde_json::Value,
+    pub calibration: serde_json::Value,
+    pub reports: Vec<PathBuf>,
+}
+
+async fn privacy_check(
+    base: &str,
+    token: &str,
+    rec: &FeederRecovery,
+    dir: &std::path::Path,
+) -> anyhow::Result<PrivacyCheck> {
+    let http = reqwest::Client::new();
+    let rows: Vec<serde_json::Value> = http
+        .get(format!("{base}/v1/recoveries/{}/intervals?format=json", rec.job_id))
+        .bearer_auth(token)
+        .send()
+        .await?
+        .error_for_status()?
+        .json()
+        .await?;
+    let captured = rows.first().and_then(|r| r["meter_id"].as_str()).context("a recovered meter")?.to_owned();
+    eprintln!("demo: auditing what an eavesdropper holding {captured} could learn ...");
+    let audit = analysis_job(
+        base,
+        token,
+        "/v1/audits",
+        serde_json::json!({ "recovery_job": rec.job_id, "captured": [captured] }),
+    )
+    .await?;
+    eprintln!("demo: calibrating the dither of {} ...", rec.feeder_id);
+    let body = serde_json::json!({
+        "recovery_job": rec.job_id, "event_f1_max": 0.3, "captured": 1, "daily_energy_error_max": 0.1, "publish": true
+    });
+    let calibration = analysis_job(base, token, "/v1/calibrations", body).await?;
+    let mut reports = Vec::new();
+    for (job, name) in [(&audit, "audit.html"), (&calibration, "calibration.html")] {
+        let id = job["job_id"].as_str().unwrap_or_default();
+        let html = http
+            .get(format!("{base}/v1/analyses/{id}/report"))
+            .bearer_auth(token)
+            .send()
+            .await?
+            .error_for_status()?
+            .text()
+            .await?;
+        let path = dir.join(name);
+        crate::offline::write_atomically(&path, html.as_bytes())?;
+        reports.push(path);
+    }
+    Ok(PrivacyCheck {
+        feeder_id: rec.feeder_id.clone(),
+        captured,
+        audit: audit["result"].clone(),
+        calibration: calibration["result"].clone(),
+        reports,
+    })
+}
+
 /// Clusters every recovered profile of the town by load shape (eigengap count),
 /// as a clustering job over the feeders' recovery jobs.
 async fn cluster_town(
@@ -211,25 +307,10 @@ async fn cluster_town(
 ) -> anyhow::Result<Vec<TownCluster>> {
     let http = reqwest::Client::new();
     let ids: Vec<&str> = recoveries.iter().map(|r| r.job_id.as_str()).collect();
-    let r: serde_json::Value = http
-        .post(format!("{base}/v1/clusterings"))
-        .bearer_auth(token)
-        .json(&serde_json::json!({ "recovery_jobs": ids, "clusters": "auto" }))
-        .send()
-        .await?
-        .error_for_status()?
-        .json()
-        .await?;
-    let job_id = r["job_id"].as_str().context("job id")?.to_owned();
-    let job = loop {
-        let j: serde_json::Value =
-            http.get(format!("{base}/v1/analyses/{job_id}")).bearer_auth(token).send().await?.json().await?;
-        match j["state"].as_str() {
-            Some("done") => break j,
-            Some("failed") => anyhow::bail!("clustering failed: {}", j["error"]),
-            _ => tokio::time::sleep(std::time::Duration::from_millis(250)).await,
-        }
-    };
+    let job =
+        analysis_job(base, token, "/v1/clusterings", serde_json::json!({ "recovery_jobs": ids, "clusters": "auto" }))
+            .await?;
+    let job_id = job["job_id"].as_str().context("job id")?.to_owned();
     let rows: Vec<serde_json::Value> = http
         .get(format!("{base}/v1/clusterings/{job_id}/assignments"))
         .bearer_auth(token)
@@ -346,6 +427,9 @@ pub fn render(s: &DemoSummary) -> String {
             kinds.join(", ")
         );
     }
+    if let Some(p) = &s.privacy {
+        render_privacy(&mut o, p);
+    }
     let _ = writeln!(o, "\n  database: {}", s.database.display());
     let _ = writeln!(
         o,
@@ -356,4 +440,83 @@ pub fn render(s: &DemoSummary) -> String {
          local regulation and the utility's privacy officer."
     );
     o
+}
+
+fn render_privacy(o: &mut String, p: &PrivacyCheck) {
+    let a = &p.audit;
+    let f = |v: &serde_json::Value| v.as_f64().unwrap_or(f64::NAN);
+    let _ = writeln!(
+        o,
+        "\n  Privacy audit of {} (parametric bootstrap: appliance events injected into {}'s recovered profile,\n  \
+         levels re-drawn, every known attack run on that one meter's {} days):",
+        p.feeder_id, p.captured, a["days"]
+    );
+    let _ = writeln!(o, "  {:<22} {:>7} {:>12} {:>9}", "strategy", "nRMSE", "day energy", "event F1");
+    for s in a["strategies"].as_array().into_iter().flatten() {
+        let _ = writeln!(
+            o,
+            "  {:<22} {:>7.3} {:>11.1}% {:>9.3}",
+            s["strategy"].as_str().unwrap_or("?"),
+            f(&s["nrmse"]),
+            100.0 * f(&s["daily_energy_error"]),
+            f(&s["events"]["f1"])
+        );
+    }
+    let u = &a["utility"];
+    let _ = writeln!(
+        o,
+        "  {:<22} {:>7.3} {:>11.1}% {:>9.3}   (whole-feeder recovery, same meter)",
+        "utility",
+        f(&u["nrmse"]),
+        100.0 * f(&u["daily_energy_error"]),
+        f(&u["event_f1"])
+    );
+    let st = &a["strongest"];
+    let _ = writeln!(
+        o,
+        "  strongest attacker: event F1 {:.2} ({}), nRMSE {:.3} ({}).",
+        f(&st["event_f1"]),
+        st["strategy"].as_str().unwrap_or("?"),
+        f(&st["nrmse"]),
+        st["nrmse_strategy"].as_str().unwrap_or("?")
+    );
+    let m = &a["mechanism"];
+    let _ = writeln!(
+        o,
+        "  per reading: {:.2} bits of {:.2} about the load; LDP epsilon {:.0} over [0, {}] kW (finite only\n  \
+         because the dither has full support, and far too large to be a guarantee).",
+        f(&m["mutual_information_bits"]),
+        f(&m["level_bits"]),
+        f(&m["ldp_epsilon"]),
+        m["ldp_range_kw"][1]
+    );
+    let curve: Vec<String> = a["curve_captured"]
+        .as_array()
+        .into_iter()
+        .flatten()
+        .map(|c| format!("{} meters F1 {:.2}", c["captured"], f(&c["strongest_event_f1"])))
+        .collect();
+    let _ = writeln!(o, "  more captured meters: {}", curve.join(", "));
+    let c = &p.calibration;
+    let _ = writeln!(
+        o,
+        "\n  Dither calibration of {} (targets: event F1 ≤ 0.3 for one captured meter, daily energy error ≤ 10%):",
+        p.feeder_id
+    );
+    let _ = writeln!(o, "  {}", c["message"].as_str().unwrap_or(""));
+    let r = &c["recommended"];
+    let _ = writeln!(
+        o,
+        "  recommended: {} σ {} kW, boundaries {} kW{}",
+        r["noise"].as_str().unwrap_or("?"),
+        r["scale_kw"],
+        r["boundaries_kw"],
+        match c["published_version"].as_i64() {
+            Some(v) => format!("; published as version {v}, gateways pick it up on their next pull"),
+            None => "; not published".into(),
+        }
+    );
+    for path in &p.reports {
+        let _ = writeln!(o, "  report: {}", path.display());
+    }
 }
