@@ -344,7 +344,8 @@ pub fn calibrate(
             true,
             format!(
                 "{} levels at σ {:.3} kW: the strongest attacker holding {} meter(s) detects events with F1 {:.2} \
-                 (target ≤ {:.2}, searched at {:.2}); the utility's median daily-energy error is {:.1}% (target ≤ {:.1}%)",
+                 (target ≤ {:.2}, searched at {:.2}); the utility's median daily-energy error is {:.1}% (target ≤ {:.1}%) \
+                 and its interval nRMSE {:.2}",
                 p.levels,
                 p.scale_kw,
                 t.captured,
@@ -352,7 +353,8 @@ pub fn calibrate(
                 t.event_f1_max,
                 aim,
                 100.0 * p.utility_daily_energy_error,
-                100.0 * t.daily_energy_error_max
+                100.0 * t.daily_energy_error_max,
+                p.utility_nrmse
             ),
         ),
         None => {
