@@ -792,6 +792,62 @@ async fn recovery_job_over_stored_levels() {
         .await
         .expect("text");
     assert_eq!(csv.lines().count(), 1 + 4 * 96);
+
+    // Settlement: every meter-day with both midnight register reads settles at their advance.
+    let days: Vec<Value> = get(format!("/v1/recoveries/{id}/daily")).await.expect("daily").json().await.expect("json");
+    let advances: std::collections::HashMap<(String, i64), i64> = reads
+        .windows(2)
+        .filter(|w| w[0].0 == w[1].0 && w[1].1 - w[0].1 == 86_400)
+        .map(|w| ((w[0].0.clone(), w[0].1), w[1].2 - w[0].2))
+        .collect();
+    let mut settled = 0;
+    for d in &days {
+        let key = (d["meter_id"].as_str().expect("m").to_owned(), d["day_start"].as_i64().expect("day"));
+        if let Some(adv) = advances.get(&key) {
+            assert_eq!(d["energy_wh"].as_f64(), Some(*adv as f64), "{d}");
+            assert_eq!(d["source"], "register");
+            settled += 1;
+        }
+    }
+    assert_eq!((days.len(), settled), (12 * 4, 12 * 4));
+    let local = get(format!("/v1/recoveries/{id}/intervals?format=local-csv&meter_id=QM-CHAPEL-ROW-0001"))
+        .await
+        .expect("local")
+        .text()
+        .await
+        .expect("text");
+    assert!(local.starts_with("meter_id,interval_start,interval_end_local,local_date,wh,"), "{local}");
+    assert_eq!(local.lines().count(), 1 + 4 * 96);
+
+    // The ESPI export validates against the published schema; a broken copy does not.
+    let xml = get(format!("/v1/recoveries/{id}/intervals?format=espi")).await.expect("espi").text().await.expect("t");
+    let work = tempfile::tempdir().expect("tempdir");
+    let good = work.path().join("good.xml");
+    std::fs::write(&good, &xml).expect("write");
+    let bad = work.path().join("bad.xml");
+    std::fs::write(
+        &bad,
+        xml.replacen("<espi:value>", "<espi:valeur>", 1).replacen("</espi:value>", "</espi:valeur>", 1),
+    )
+    .expect("write");
+    let validate = |p: &std::path::Path| -> Value {
+        let python = std::env::var("METERVEIL_PYTHON").unwrap_or_else(|_| "python3".into());
+        let dir = concat!(env!("CARGO_MANIFEST_DIR"), "/../tests/reference");
+        let out = std::process::Command::new(python)
+            .arg(format!("{dir}/validate_espi.py"))
+            .arg(format!("{dir}/espi"))
+            .arg(p)
+            .output()
+            .expect("python");
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        serde_json::from_slice(&out.stdout).expect("json")
+    };
+    let v = validate(&good);
+    eprintln!("ESPI export: xmlschema {}, schema version {}: {v}", v["xmlschema"], v["schema_version"]);
+    assert_eq!(v["valid"], true, "{v}");
+    assert_eq!(v["schema_version"], "4.0.20231213");
+    assert_eq!(validate(&bad)["valid"], false);
+    assert_eq!(xml.matches("<espi:IntervalReading>").count(), 12 * 4 * 96);
     // Bad requests name their field.
     let (s, body) =
         t.post_json("/v1/recoveries", &json!({"feeder_id": "QM-CHAPEL-ROW", "from": to, "to": from}), true).await;

@@ -77,6 +77,9 @@ pub struct NewFeederWire {
     pub feeder_id: String,
     #[serde(default)]
     pub name: String,
+    /// IANA time zone of the feeder's customers (e.g. "Europe/London"); default UTC.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub time_zone: Option<String>,
 }
 
 /// Operator request: register meters on a feeder.

@@ -15,4 +15,5 @@ pub mod metrics;
 pub mod offline;
 pub mod report;
 pub mod routes;
+pub mod settlement;
 pub mod store;

@@ -113,7 +113,11 @@ pub async fn provision(service_url: &str, token: &str, town: &Town) -> anyhow::R
     };
     let profiles = starting_profiles();
     for f in &town.feeders {
-        let body = NewFeederWire { feeder_id: f.feeder_id.clone(), name: f.name.clone() };
+        let body = NewFeederWire {
+            feeder_id: f.feeder_id.clone(),
+            name: f.name.clone(),
+            time_zone: Some(town::TIME_ZONE.into()),
+        };
         let r = http.post(format!("{base}/v1/feeders")).bearer_auth(token).json(&body).send().await?;
         check(r, format!("registering feeder {}", f.feeder_id)).await?;
         let ids: Vec<String> =

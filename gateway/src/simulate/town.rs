@@ -12,6 +12,9 @@ use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, LogNormal, Normal, Poisson};
 use serde::Serialize;
 
+/// Quillmarsh keeps British time (an invented town, a real zone with DST).
+pub const TIME_ZONE: &str = "Europe/London";
+
 /// Service limit used by the demo, kW: the largest average power any Quillmarsh
 /// meter draws (the bakery's ovens plus its shop).
 pub const TOWN_ALPHA_KW: f64 = 15.0;

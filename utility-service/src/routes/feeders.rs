@@ -46,7 +46,14 @@ async fn create_feeder(
 ) -> Result<(StatusCode, Json<Value>), ApiError> {
     let req: NewFeederWire = parse_json(&body)?;
     let id = feeder_path(&req.feeder_id)?;
-    let created = s.store.create_feeder(&id, &req.name, now_s()).await?;
+    let tz = req.time_zone.as_deref().unwrap_or("UTC");
+    if tz.parse::<chrono_tz::Tz>().is_err() {
+        return Err(ApiError::invalid(
+            "time_zone",
+            format!("{tz:?} is not an IANA time zone name (e.g. \"Europe/London\")"),
+        ));
+    }
+    let created = s.store.create_feeder(&id, &req.name, tz, now_s()).await?;
     let status = if created { StatusCode::CREATED } else { StatusCode::OK };
     Ok((status, Json(json!({ "feeder_id": id, "created": created }))))
 }

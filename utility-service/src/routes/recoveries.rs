@@ -21,6 +21,7 @@ pub fn router() -> Router<AppState> {
         .route("/v1/recoveries", post(start))
         .route("/v1/recoveries/{job_id}", get(status))
         .route("/v1/recoveries/{job_id}/intervals", get(intervals))
+        .route("/v1/recoveries/{job_id}/daily", get(daily))
 }
 
 #[derive(Deserialize)]
@@ -100,8 +101,24 @@ async fn intervals(
         )));
     }
     let rows = s.store.job_rows(&id, q.meter_id.as_deref()).await?;
-    tracing::info!(job = %id, rows = rows.len(), meter = ?q.meter_id, "per-meter recovery export");
+    tracing::info!(job = %id, rows = rows.len(), meter = ?q.meter_id, format = ?q.format, "per-meter recovery export");
+    let interval_s = job_interval(&rows, &job);
     match q.format.as_deref().unwrap_or("json") {
+        "local-csv" => {
+            let tz = feeder_tz(&s, &job.feeder_id).await?;
+            let csv = crate::settlement::interval_csv(&rows, tz, interval_s);
+            Ok(([(header::CONTENT_TYPE, "text/csv; charset=utf-8")], csv).into_response())
+        }
+        "espi" => {
+            let xml = crate::settlement::espi_feed(
+                &rows,
+                &format!("urn:meterveil:recovery:{id}"),
+                &format!("/v1/recoveries/{id}/intervals?format=espi"),
+                interval_s,
+                now_s(),
+            );
+            Ok(([(header::CONTENT_TYPE, "application/atom+xml; charset=utf-8")], xml).into_response())
+        }
         "json" => Ok(Json(rows).into_response()),
         "csv" => {
             let mut out = String::from("meter_id,interval_start,kw,flag,kw_low,kw_high\n");
@@ -112,6 +129,50 @@ async fn intervals(
                 ));
             }
             Ok(([(header::CONTENT_TYPE, "text/csv; charset=utf-8")], out).into_response())
+        }
+        other => Err(ApiError::invalid("format", format!("{other:?} is not json, csv, local-csv or espi"))),
+    }
+}
+
+/// Interval length of a job's rows (the window over the per-meter row count).
+fn job_interval(rows: &[crate::store::recoveries::RecoveredRow], job: &JobRecord) -> u32 {
+    let per_meter = rows.iter().take_while(|r| rows.first().is_some_and(|f| f.meter_id == r.meter_id)).count().max(1);
+    (((job.window_end - job.window_start) / per_meter as i64).max(1)) as u32
+}
+
+async fn feeder_tz(s: &AppState, feeder: &str) -> Result<chrono_tz::Tz, ApiError> {
+    let id = FeederId::parse(feeder).map_err(ApiError::Invalid)?;
+    let name = s.store.feeder_time_zone(&id).await?.unwrap_or_else(|| "UTC".into());
+    name.parse().map_err(|_| ApiError::Internal(anyhow::anyhow!("feeder {feeder} has an unknown time zone {name:?}")))
+}
+
+/// Settlement energies per meter and UTC day, reconciled to register advances.
+async fn daily(
+    _: Operator,
+    State(s): State<AppState>,
+    Path(id): Path<String>,
+    Query(q): Query<IntervalQuery>,
+) -> Result<Response, ApiError> {
+    let job = find(&s, &id).await?;
+    if job.state != "done" {
+        return Err(ApiError::Conflict(FieldError::new(
+            "job_id",
+            format!("job {id} is {}; results appear when it is done", job.state),
+        )));
+    }
+    let rows = s.store.job_rows(&id, q.meter_id.as_deref()).await?;
+    let feeder = FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
+    let mut reads = s.store.feeder_registers_between(&feeder, job.window_start, job.window_end + 1).await?;
+    if let Some(m) = &q.meter_id {
+        reads.retain(|r| &r.0 == m);
+    }
+    let days = crate::settlement::daily(&rows, &reads, job_interval(&rows, &job));
+    tracing::info!(job = %id, days = days.len(), meter = ?q.meter_id, "per-meter daily energy export");
+    match q.format.as_deref().unwrap_or("json") {
+        "json" => Ok(Json(days).into_response()),
+        "csv" => {
+            Ok(([(header::CONTENT_TYPE, "text/csv; charset=utf-8")], crate::settlement::daily_csv(&days))
+                .into_response())
         }
         other => Err(ApiError::invalid("format", format!("{other:?} is not json or csv"))),
     }

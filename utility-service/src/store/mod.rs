@@ -103,15 +103,25 @@ impl Store {
     }
 
     /// Registers a feeder. Returns false when it already existed (same id).
-    pub async fn create_feeder(&self, id: &FeederId, name: &str, now: i64) -> Result<bool, ApiError> {
+    pub async fn create_feeder(&self, id: &FeederId, name: &str, time_zone: &str, now: i64) -> Result<bool, ApiError> {
         let _w = self.writer.lock().await;
-        let r = sqlx::query("INSERT OR IGNORE INTO feeders (feeder_id, name, created_at) VALUES (?, ?, ?)")
-            .bind(id.as_str())
-            .bind(name)
-            .bind(now)
-            .execute(&self.pool)
-            .await?;
+        let r =
+            sqlx::query("INSERT OR IGNORE INTO feeders (feeder_id, name, time_zone, created_at) VALUES (?, ?, ?, ?)")
+                .bind(id.as_str())
+                .bind(name)
+                .bind(time_zone)
+                .bind(now)
+                .execute(&self.pool)
+                .await?;
         Ok(r.rows_affected() == 1)
+    }
+
+    /// The feeder's IANA time zone name, or None when it is not registered.
+    pub async fn feeder_time_zone(&self, id: &FeederId) -> Result<Option<String>, ApiError> {
+        Ok(sqlx::query_scalar("SELECT time_zone FROM feeders WHERE feeder_id = ?")
+            .bind(id.as_str())
+            .fetch_optional(&self.pool)
+            .await?)
     }
 
     pub async fn feeder_exists(&self, id: &FeederId) -> Result<bool, ApiError> {

@@ -1,0 +1,294 @@
+//! Settlement outputs of a finished recovery: daily energies reconciled to
+//! register reads, per-interval CSV in UTC and the feeder's local time, and the
+//! open-standard NAESB REQ.21 ESPI XML (an Atom feed of IntervalBlocks).
+//!
+//! Settlement days are the register reads' days (UTC midnight to UTC midnight),
+//! so that a day's energy can equal its register advance exactly. The interval
+//! CSV labels every interval by its local ending time as well, for local
+//! aggregation; a local day then has 92 or 100 quarter-hours at the DST changes.
+
+use std::collections::HashMap;
+use std::fmt::Write as _;
+
+use chrono::{DateTime, SecondsFormat, TimeZone, Utc};
+use chrono_tz::Tz;
+use serde::Serialize;
+
+use crate::store::recoveries::RecoveredRow;
+
+/// One meter-day of settlement.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct DailyEnergy {
+    pub meter_id: String,
+    /// UTC epoch second of the day's start (a UTC midnight).
+    pub day_start: i64,
+    /// ISO 8601 date of that UTC day.
+    pub day: String,
+    /// Settled energy: the register advance where both midnight reads exist,
+    /// otherwise the sum of the recovered intervals.
+    pub energy_wh: f64,
+    /// One standard deviation of `energy_wh`: 0 for a register advance, else the
+    /// intervals' bands combined as independent (an understatement: interval
+    /// errors of one meter-day are correlated).
+    pub uncertainty_wh: f64,
+    pub source: &'static str,
+    pub recovered_wh: f64,
+    pub register_wh: Option<i64>,
+    pub intervals: usize,
+    pub derived: usize,
+    pub estimated: usize,
+    pub corrected: usize,
+}
+
+fn utc_date(t: i64) -> String {
+    DateTime::<Utc>::from_timestamp(t, 0).map(|d| d.format("%Y-%m-%d").to_string()).unwrap_or_default()
+}
+
+/// Register advances per (meter, UTC day start) from reads at consecutive midnights.
+pub fn register_advances(reads: &[(String, i64, i64)]) -> HashMap<(String, i64), i64> {
+    let mut out = HashMap::new();
+    for w in reads.windows(2) {
+        let (a, b) = (&w[0], &w[1]);
+        if a.0 == b.0 && a.1.rem_euclid(86_400) == 0 && b.1 - a.1 == 86_400 && b.2 >= a.2 {
+            out.insert((a.0.clone(), a.1), b.2 - a.2);
+        }
+    }
+    out
+}
+
+/// Daily energies of every meter over the whole UTC days the rows cover.
+/// `rows` are ordered by meter and time; `reads` are (meter, read_at, wh_total)
+/// ordered by meter and time.
+pub fn daily(rows: &[RecoveredRow], reads: &[(String, i64, i64)], interval_s: u32) -> Vec<DailyEnergy> {
+    let per_day = (86_400 / interval_s.max(1)) as usize;
+    let wh_per_kw = f64::from(interval_s) / 3.6;
+    let advances = register_advances(reads);
+    let mut groups: Vec<((String, i64), Vec<&RecoveredRow>)> = Vec::new();
+    for r in rows {
+        let key = (r.meter_id.clone(), r.interval_start - r.interval_start.rem_euclid(86_400));
+        match groups.last_mut() {
+            Some((k, v)) if *k == key => v.push(r),
+            _ => groups.push((key, vec![r])),
+        }
+    }
+    groups
+        .into_iter()
+        .filter(|(_, v)| v.len() == per_day)
+        .map(|((meter, day), v)| {
+            let recovered: f64 = v.iter().map(|r| r.kw * wh_per_kw).sum();
+            let var: f64 = v.iter().map(|r| ((r.kw_high - r.kw_low) / (2.0 * 1.96) * wh_per_kw).powi(2)).sum();
+            let count = |f: &str| v.iter().filter(|r| r.flag == f).count();
+            let reg = advances.get(&(meter.clone(), day)).copied();
+            DailyEnergy {
+                day: utc_date(day),
+                day_start: day,
+                energy_wh: reg.map_or(recovered, |w| w as f64),
+                uncertainty_wh: if reg.is_some() { 0.0 } else { var.sqrt() },
+                source: if reg.is_some() { "register" } else { "recovered" },
+                recovered_wh: recovered,
+                register_wh: reg,
+                intervals: v.len(),
+                derived: count("derived"),
+                estimated: count("estimated"),
+                corrected: count("corrected"),
+                meter_id: meter,
+            }
+        })
+        .collect()
+}
+
+pub fn daily_csv(days: &[DailyEnergy]) -> String {
+    let mut out = String::from(
+        "meter_id,day_start,day,energy_wh,uncertainty_wh,source,recovered_wh,register_wh,intervals,derived,estimated,corrected\n",
+    );
+    for d in days {
+        let _ = writeln!(
+            out,
+            "{},{},{},{:.1},{:.1},{},{:.1},{},{},{},{},{}",
+            d.meter_id,
+            d.day_start,
+            d.day,
+            d.energy_wh,
+            d.uncertainty_wh,
+            d.source,
+            d.recovered_wh,
+            d.register_wh.map(|w| w.to_string()).unwrap_or_default(),
+            d.intervals,
+            d.derived,
+            d.estimated,
+            d.corrected
+        );
+    }
+    out
+}
+
+fn local(tz: Tz, t: i64) -> DateTime<Tz> {
+    tz.from_utc_datetime(&DateTime::<Utc>::from_timestamp(t, 0).unwrap_or_default().naive_utc())
+}
+
+/// Per-interval CSV: UTC start, the local ending time as ISO 8601 with its
+/// offset (the interval-ending label), the local date the interval belongs to
+/// (that of its start), energy and the recovery's figures.
+pub fn interval_csv(rows: &[RecoveredRow], tz: Tz, interval_s: u32) -> String {
+    let wh_per_kw = f64::from(interval_s) / 3.6;
+    let mut out = String::from("meter_id,interval_start,interval_end_local,local_date,wh,kw,flag,kw_low,kw_high\n");
+    for r in rows {
+        let end = local(tz, r.interval_start + i64::from(interval_s));
+        let start = local(tz, r.interval_start);
+        let _ = writeln!(
+            out,
+            "{},{},{},{},{:.1},{:.4},{},{:.4},{:.4}",
+            r.meter_id,
+            r.interval_start,
+            end.to_rfc3339_opts(SecondsFormat::Secs, false),
+            start.format("%Y-%m-%d"),
+            r.kw * wh_per_kw,
+            r.kw,
+            r.flag,
+            r.kw_low,
+            r.kw_high
+        );
+    }
+    out
+}
+
+/// ESPI quality codes (QualityOfReading) of a recovery flag: `derived` → 11
+/// (calculated), `estimated` (no reading) → 8 (machine estimate from historical
+/// data), `corrected` (reading judged corrupt and replaced) → 10 (failed a check)
+/// and 8.
+pub fn espi_quality(flag: &str) -> &'static [u16] {
+    match flag {
+        "derived" => &[11],
+        "corrected" => &[10, 8],
+        _ => &[8],
+    }
+}
+
+fn xml_escape(s: &str) -> String {
+    s.replace('&', "&amp;").replace('<', "&lt;").replace('>', "&gt;").replace('"', "&quot;")
+}
+
+/// An Atom feed holding one ESPI ReadingType (energy, mWh, forward, delta data)
+/// and one IntervalBlock per meter and UTC day, values in milliwatt-hours.
+pub fn espi_feed(rows: &[RecoveredRow], feed_id: &str, base_href: &str, interval_s: u32, now: i64) -> String {
+    let updated =
+        DateTime::<Utc>::from_timestamp(now, 0).unwrap_or_default().to_rfc3339_opts(SecondsFormat::Secs, true);
+    let mwh_per_kw = f64::from(interval_s) / 3.6 * 1000.0;
+    let href = xml_escape(base_href);
+    let mut x = String::with_capacity(rows.len() * 220 + 2000);
+    let _ = write!(
+        x,
+        "<?xml version=\"1.0\" encoding=\"UTF-8\"?>\n<feed xmlns=\"http://www.w3.org/2005/Atom\" xmlns:espi=\"http://naesb.org/espi\">\n\
+         <id>{id}</id>\n<title>Recovered interval energy</title>\n<updated>{updated}</updated>\n<link rel=\"self\" href=\"{href}\"/>\n\
+         <entry>\n<id>{id}/reading-type</id>\n<title>Energy delivered, mWh per interval</title>\n<published>{updated}</published>\n\
+         <updated>{updated}</updated>\n<link rel=\"self\" href=\"{href}#reading-type\"/>\n<link rel=\"up\" href=\"{href}\"/>\n\
+         <content><espi:ReadingType><espi:accumulationBehaviour>4</espi:accumulationBehaviour><espi:commodity>1</espi:commodity>\
+         <espi:defaultQuality>11</espi:defaultQuality><espi:flowDirection>1</espi:flowDirection><espi:intervalLength>{interval_s}</espi:intervalLength>\
+         <espi:kind>12</espi:kind><espi:powerOfTenMultiplier>-3</espi:powerOfTenMultiplier><espi:uom>72</espi:uom></espi:ReadingType></content>\n</entry>\n",
+        id = xml_escape(feed_id),
+    );
+    let mut i = 0;
+    while i < rows.len() {
+        let meter = &rows[i].meter_id;
+        let day = rows[i].interval_start - rows[i].interval_start.rem_euclid(86_400);
+        let mut j = i;
+        while j < rows.len() && rows[j].meter_id == *meter && rows[j].interval_start < day + 86_400 {
+            j += 1;
+        }
+        let m = xml_escape(meter);
+        let _ = write!(
+            x,
+            "<entry>\n<id>{id}/{m}/{day}</id>\n<title>{m} {date}</title>\n<published>{updated}</published>\n<updated>{updated}</updated>\n\
+             <link rel=\"self\" href=\"{href}#{m}-{day}\"/>\n<link rel=\"up\" href=\"{href}#reading-type\"/>\n\
+             <content><espi:IntervalBlock><espi:interval><espi:duration>{dur}</espi:duration><espi:start>{day}</espi:start></espi:interval>",
+            id = xml_escape(feed_id),
+            date = utc_date(day),
+            dur = (rows[j - 1].interval_start + i64::from(interval_s) - rows[i].interval_start),
+        );
+        for r in &rows[i..j] {
+            x.push_str("<espi:IntervalReading>");
+            for q in espi_quality(r.flag) {
+                let _ = write!(x, "<espi:ReadingQuality><espi:quality>{q}</espi:quality></espi:ReadingQuality>");
+            }
+            let _ = write!(
+                x,
+                "<espi:timePeriod><espi:duration>{interval_s}</espi:duration><espi:start>{}</espi:start></espi:timePeriod><espi:value>{}</espi:value></espi:IntervalReading>",
+                r.interval_start,
+                (r.kw * mwh_per_kw).round() as i64
+            );
+        }
+        x.push_str("</espi:IntervalBlock></content>\n</entry>\n");
+        i = j;
+    }
+    x.push_str("</feed>\n");
+    x
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn rows(meter: &str, from: i64, to: i64, kw: f64) -> Vec<RecoveredRow> {
+        (from..to)
+            .step_by(900)
+            .map(|t| RecoveredRow {
+                meter_id: meter.into(),
+                interval_start: t,
+                kw,
+                flag: "derived",
+                kw_low: kw - 0.1,
+                kw_high: kw + 0.1,
+            })
+            .collect()
+    }
+
+    fn per_local_date(csv: &str) -> std::collections::BTreeMap<String, usize> {
+        let mut m = std::collections::BTreeMap::new();
+        for l in csv.lines().skip(1) {
+            *m.entry(l.split(',').nth(3).unwrap_or("").to_owned()).or_insert(0) += 1;
+        }
+        m
+    }
+
+    /// British Summer Time 2026 starts on Sunday 29 March at 01:00 UTC and ends on
+    /// Sunday 25 October at 01:00 UTC (UK rule: last Sunday of March and October,
+    /// at 01:00 GMT; common practice, from the published rule).
+    #[test]
+    fn local_days_have_92_and_100_quarter_hours_at_the_clock_changes() {
+        let tz: Tz = "Europe/London".parse().unwrap();
+        // 2026-03-28 00:00 UTC = 00:00 GMT; three local days.
+        let spring = 1_774_656_000;
+        let csv = interval_csv(&rows("M-1", spring, spring + 3 * 86_400 - 3600, 1.0), tz, 900);
+        let days = per_local_date(&csv);
+        assert_eq!(days.get("2026-03-28"), Some(&96));
+        assert_eq!(days.get("2026-03-29"), Some(&92), "{days:?}");
+        // 2026-10-24 00:00 BST = 2026-10-23 23:00 UTC.
+        let autumn = 1_792_796_400;
+        let csv = interval_csv(&rows("M-1", autumn, autumn + 3 * 86_400 + 3600, 1.0), tz, 900);
+        let days = per_local_date(&csv);
+        assert_eq!(days.get("2026-10-24"), Some(&96));
+        assert_eq!(days.get("2026-10-25"), Some(&100), "{days:?}");
+        assert_eq!(days.get("2026-10-26"), Some(&96));
+        // The repeated hour keeps distinct labels: the offset tells them apart.
+        let labels: Vec<&str> = csv.lines().skip(1).map(|l| l.split(',').nth(2).unwrap_or("")).collect();
+        assert!(labels.contains(&"2026-10-25T01:15:00+01:00") && labels.contains(&"2026-10-25T01:15:00+00:00"));
+        let unique: std::collections::HashSet<&&str> = labels.iter().collect();
+        assert_eq!(unique.len(), labels.len());
+        // Interval-ending label: the first interval of the window ends at 00:15 local.
+        assert!(csv.lines().nth(1).unwrap_or("").contains(",2026-10-24T00:15:00+01:00,"), "{}", &csv[..200]);
+    }
+
+    #[test]
+    fn a_register_day_settles_at_its_advance() {
+        let day = 1_774_656_000;
+        let r = rows("M-1", day, day + 2 * 86_400, 0.5);
+        let reads = vec![("M-1".to_owned(), day, 10_000), ("M-1".to_owned(), day + 86_400, 22_345)];
+        let d = daily(&r, &reads, 900);
+        assert_eq!(d.len(), 2);
+        assert_eq!((d[0].energy_wh, d[0].source, d[0].uncertainty_wh), (12_345.0, "register", 0.0));
+        assert!((d[0].recovered_wh - 12_000.0).abs() < 1e-9);
+        assert_eq!((d[1].source, d[1].energy_wh), ("recovered", 12_000.0));
+        assert!(d[1].uncertainty_wh > 0.0);
+        assert_eq!(d[0].derived, 96);
+    }
+}
