@@ -1071,3 +1071,133 @@ fn audit_and_calibrate_commands_on_files() {
     let err = String::from_utf8_lossy(&run.stderr);
     assert!(!run.status.success() && err.contains("event-f1-max"), "{err}");
 }
+
+/// A `utility-service serve` child process on a free port; returns it and its URL.
+fn serve_child(db: &std::path::Path, lease_s: u32) -> (std::process::Child, String) {
+    use std::io::BufRead;
+    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
+        .args(["serve", "--bind", "127.0.0.1:0", "--operator-token", TOKEN, "--job-lease-s", &lease_s.to_string()])
+        .arg("--database-url")
+        .arg(format!("sqlite:{}", db.display()))
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .expect("start utility-service serve");
+    let mut line = String::new();
+    std::io::BufReader::new(child.stdout.take().expect("stdout")).read_line(&mut line).expect("read");
+    let url = line.trim().strip_prefix("listening on ").expect("listening line").to_owned();
+    (child, url)
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_job_whose_worker_is_killed_is_retried_by_another_and_never_half_served() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let db = dir.path().join("shared.sqlite");
+    // Fill the database through an in-process service that runs no worker.
+    let feeder_meters;
+    let (from, to);
+    {
+        let mut config = ServiceConfig::local(format!("sqlite:{}", db.display()), Secret::new(TOKEN));
+        config.run_worker = false;
+        let svc = app::start(config).await.expect("service");
+        let mut opts = SimulateOptions::new(svc.url(), dir.path().join("outboxes"));
+        opts.operator_token = Some(TOKEN.into());
+        opts.meters = 400;
+        opts.days = 7;
+        let report = simulate::run(&opts).await.expect("simulation");
+        from = report.first_day;
+        to = from + 7 * 86_400;
+        feeder_meters = svc.store.meters_of(&FeederId::parse("QM-MILLPOND").expect("id")).await.expect("m").len();
+        svc.stop().await.expect("stop");
+    }
+    let http = reqwest::Client::new();
+    let (mut first, url) = serve_child(&db, 3);
+    let job: Value = http
+        .post(format!("{url}/v1/recoveries"))
+        .bearer_auth(TOKEN)
+        .json(&json!({"feeder_id": "QM-MILLPOND", "from": from, "to": to, "rank": "auto"}))
+        .send()
+        .await
+        .expect("post")
+        .json()
+        .await
+        .expect("json");
+    let id = job["job_id"].as_str().expect("id").to_owned();
+    let status = |url: String| {
+        let http = http.clone();
+        let id = id.clone();
+        async move {
+            http.get(format!("{url}/v1/recoveries/{id}"))
+                .bearer_auth(TOKEN)
+                .send()
+                .await
+                .expect("get")
+                .json::<Value>()
+                .await
+                .expect("json")
+        }
+    };
+    // Kill the first worker once it is computing.
+    let mut seen = Value::Null;
+    for _ in 0..600 {
+        seen = status(url.clone()).await;
+        if seen["state"] == "running" && seen["progress"].as_f64().unwrap_or(0.0) > 0.0 {
+            break;
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(20)).await;
+    }
+    assert_eq!(seen["state"], "running", "{seen}");
+    first.kill().expect("SIGKILL");
+    first.wait().expect("reaped");
+    let store = meterveil_service::store::Store::open(&format!("sqlite:{}", db.display())).await.expect("open");
+    let partial: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM recovered_intervals WHERE job_id = ?")
+        .bind(&id)
+        .fetch_one(store.pool())
+        .await
+        .expect("count");
+    assert_eq!(partial, 0, "a killed worker left results behind");
+
+    // A second process takes the job over once the lease has run out.
+    let (mut second, url2) = serve_child(&db, 3);
+    let r = http.get(format!("{url2}/v1/recoveries/{id}/intervals")).bearer_auth(TOKEN).send().await.expect("get");
+    assert_eq!(r.status().as_u16(), 409, "results are not served before the job is done");
+    let mut done = Value::Null;
+    for _ in 0..1200 {
+        done = status(url2.clone()).await;
+        if done["state"] == "done" || done["state"] == "failed" {
+            break;
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+    }
+    let _ = second.kill();
+    let _ = second.wait();
+    assert_eq!(done["state"], "done", "{done}");
+    let attempts: i64 = sqlx::query_scalar("SELECT attempts FROM recovery_jobs WHERE job_id = ?")
+        .bind(&id)
+        .fetch_one(store.pool())
+        .await
+        .expect("attempts");
+    assert_eq!(attempts, 2);
+    let rows: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM recovered_intervals WHERE job_id = ?")
+        .bind(&id)
+        .fetch_one(store.pool())
+        .await
+        .expect("count");
+    assert_eq!(rows as usize, feeder_meters * 7 * 96);
+    // The operator's job list shows it, with its two attempts.
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
+        .args(["jobs", "--database-url"])
+        .arg(format!("sqlite:{}", db.display()))
+        .output()
+        .expect("jobs");
+    let text = String::from_utf8_lossy(&out.stdout);
+    let line = text.lines().find(|l| l.starts_with(&id)).unwrap_or_else(|| panic!("{text}"));
+    assert!(line.contains(" done ") && line.contains("100%") && line.contains("  2  "), "{line}");
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
+        .args(["jobs", "--database-url"])
+        .arg(format!("sqlite:{}", db.display()))
+        .args(["cancel", &id])
+        .output()
+        .expect("jobs cancel");
+    assert!(!out.status.success() && String::from_utf8_lossy(&out.stderr).contains("already ended"));
+}

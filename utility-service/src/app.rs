@@ -60,11 +60,17 @@ pub async fn start_with_store(
     let listener =
         tokio::net::TcpListener::bind(config.bind).await.with_context(|| format!("binding {}", config.bind))?;
     let addr = listener.local_addr()?;
-    let state = AppState { store: store.clone(), config: Arc::new(config), metrics: metrics.clone() };
+    let state = AppState {
+        store: store.clone(),
+        config: Arc::new(config),
+        metrics: metrics.clone(),
+        wake: Arc::new(tokio::sync::Notify::new()),
+    };
+    let worker = state.config.run_worker.then(|| tokio::spawn(crate::jobs::worker::run(state.clone())));
     let app = routes::router(state).layer(TraceLayer::new_for_http());
     let (tx, rx) = oneshot::channel::<()>();
     let handle = tokio::spawn(async move {
-        axum::serve(listener, app)
+        let served = axum::serve(listener, app)
             .with_graceful_shutdown(async move {
                 match until {
                     Some(f) => {
@@ -75,7 +81,11 @@ pub async fn start_with_store(
                     }
                 }
             })
-            .await
+            .await;
+        if let Some(w) = worker {
+            w.abort();
+        }
+        served
     });
     tracing::info!(%addr, "utility service listening");
     Ok(RunningService { addr, store, metrics, shutdown: Some(tx), handle })

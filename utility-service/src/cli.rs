@@ -36,6 +36,26 @@ pub enum Command {
         /// Largest accepted request body, bytes.
         #[arg(long, default_value_t = 4 * 1024 * 1024)]
         body_limit_bytes: usize,
+        /// Serve HTTP only; leave the jobs to `utility-service work` processes.
+        #[arg(long)]
+        no_worker: bool,
+        /// Job lease, seconds: a job whose worker died is retried after at most this long.
+        #[arg(long, default_value_t = 30)]
+        job_lease_s: i64,
+    },
+    /// Run a job worker only (no HTTP) against the database; start several to share the work.
+    Work {
+        #[arg(long, env = "DATABASE_URL", default_value = "sqlite:meterveil.sqlite")]
+        database_url: String,
+        #[arg(long, default_value_t = 30)]
+        job_lease_s: i64,
+    },
+    /// List, inspect or cancel jobs in the database.
+    Jobs {
+        #[arg(long, env = "DATABASE_URL", default_value = "sqlite:meterveil.sqlite")]
+        database_url: String,
+        #[command(subcommand)]
+        action: Option<JobsAction>,
     },
     /// Recover every meter's profile from a file of quantized levels.
     Recover {
@@ -147,15 +167,87 @@ pub enum Command {
     },
 }
 
+#[derive(Debug, Subcommand)]
+pub enum JobsAction {
+    /// The most recent jobs, newest first (the default).
+    List {
+        #[arg(long, default_value_t = 50)]
+        limit: i64,
+    },
+    /// One job's whole record as JSON.
+    Show { job_id: String },
+    /// Cancel a queued or running job.
+    Cancel { job_id: String },
+}
+
+async fn jobs_command(database_url: &str, action: Option<JobsAction>) -> anyhow::Result<()> {
+    let store = crate::store::Store::open(database_url).await?;
+    match action.unwrap_or(JobsAction::List { limit: 50 }) {
+        JobsAction::List { limit } => {
+            println!("{:<30} {:<9} {:<8} {:>5} {:>3}  message", "job", "kind", "state", "done", "try");
+            for j in store.list_jobs(limit).await? {
+                let msg = j.error.clone().unwrap_or(j.message.clone());
+                println!(
+                    "{:<30} {:<9} {:<8} {:>4.0}% {:>3}  {}",
+                    j.job_id,
+                    j.kind,
+                    j.state,
+                    100.0 * j.progress,
+                    j.attempts,
+                    msg
+                );
+            }
+        }
+        JobsAction::Show { job_id } => {
+            let v = match store.job(&job_id).await? {
+                Some(j) => serde_json::to_value(j)?,
+                None => match store.analysis(&job_id).await? {
+                    Some(a) => serde_json::to_value(a)?,
+                    None => anyhow::bail!("job_id: no job {job_id}"),
+                },
+            };
+            println!("{}", serde_json::to_string_pretty(&v)?);
+        }
+        JobsAction::Cancel { job_id } => {
+            if store.cancel_job(&job_id, crate::routes::now_s()).await? {
+                println!("cancelled {job_id}");
+            } else {
+                anyhow::bail!("job_id: {job_id} does not exist or has already ended");
+            }
+        }
+    }
+    Ok(())
+}
+
 pub async fn execute(cli: Cli) -> anyhow::Result<()> {
     match cli.command {
-        Command::Serve { bind, database_url, operator_token, body_limit_bytes } => {
+        Command::Work { database_url, job_lease_s } => {
+            let store = crate::store::Store::open(&database_url).await?;
+            let mut config = ServiceConfig::local(database_url, Secret::new(""));
+            config.job_lease_s = job_lease_s;
+            let state = crate::routes::AppState {
+                store,
+                config: std::sync::Arc::new(config),
+                metrics: Default::default(),
+                wake: Default::default(),
+            };
+            println!("worker {} started", state.store.worker_id());
+            tokio::select! {
+                _ = crate::jobs::worker::run(state) => {}
+                _ = tokio::signal::ctrl_c() => tracing::info!("Ctrl-C: the running job's lease will expire and another worker retries it"),
+            }
+            Ok(())
+        }
+        Command::Jobs { database_url, action } => jobs_command(&database_url, action).await,
+        Command::Serve { bind, database_url, operator_token, body_limit_bytes, no_worker, job_lease_s } => {
             if operator_token.len() < 16 {
                 anyhow::bail!("--operator-token: use at least 16 characters");
             }
             let mut config = ServiceConfig::local(database_url, Secret::new(operator_token));
             config.bind = bind;
             config.body_limit_bytes = body_limit_bytes;
+            config.run_worker = !no_worker;
+            config.job_lease_s = job_lease_s;
             let store = crate::store::Store::open(&config.database_url).await?;
             let until = Box::pin(async {
                 let _ = tokio::signal::ctrl_c().await;

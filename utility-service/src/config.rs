@@ -39,6 +39,13 @@ pub struct ServiceConfig {
     /// How long (seconds) after a profile version is superseded readings made
     /// with it are still accepted, so gateways have time to pull the new one.
     pub stale_grace_s: i64,
+    /// Whether this process runs a job worker beside the HTTP service.
+    pub run_worker: bool,
+    /// A worker's lease on a job, seconds; renewed every third of it while the
+    /// job runs, so a job whose worker died is taken over after at most this long.
+    pub job_lease_s: i64,
+    /// A job whose worker died this many times fails instead of running again.
+    pub job_max_attempts: i64,
 }
 
 impl ServiceConfig {
@@ -51,6 +58,9 @@ impl ServiceConfig {
             body_limit_bytes: 4 * 1024 * 1024,
             clock_tolerance_s: 300,
             stale_grace_s: 86_400,
+            run_worker: true,
+            job_lease_s: 30,
+            job_max_attempts: 3,
         }
     }
 }

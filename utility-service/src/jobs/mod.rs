@@ -3,6 +3,7 @@
 pub mod audit;
 pub mod cluster;
 pub mod recover;
+pub mod worker;
 
 use std::sync::{Arc, Mutex};
 use std::time::Duration;

@@ -13,7 +13,6 @@ use serde_json::{json, Value};
 
 use super::{now_s, parse_json, AppState, Operator};
 use crate::error::ApiError;
-use crate::jobs::cluster::{run, ClusterRequest};
 use crate::jobs::new_job_id;
 use crate::store::analyses::AnalysisRecord;
 
@@ -80,9 +79,9 @@ async fn start_clustering(
         window = Some(jw);
     }
     let job_id = new_job_id("clu");
-    let params = json!({ "recovery_jobs": w.recovery_jobs, "clusters": w.clusters });
+    let params = json!({ "recovery_jobs": w.recovery_jobs, "clusters": clusters });
     s.store.create_analysis(&job_id, "cluster", &params, now_s()).await?;
-    tokio::spawn(run(s.clone(), job_id.clone(), ClusterRequest { recovery_jobs: w.recovery_jobs, clusters }));
+    s.wake.notify_one();
     Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
 }
 
@@ -134,8 +133,7 @@ async fn start_audit(
     let job_id = new_job_id("aud");
     let params = json!({ "recovery_job": w.recovery_job, "captured": w.captured, "seed": seed });
     s.store.create_analysis(&job_id, "audit", &params, now_s()).await?;
-    let req = crate::jobs::audit::AuditRequest { recovery_job: w.recovery_job, captured: w.captured, seed };
-    tokio::spawn(crate::jobs::audit::run_audit(s.clone(), job_id.clone(), req));
+    s.wake.notify_one();
     Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
 }
 
@@ -176,9 +174,7 @@ async fn start_calibration(
     let job_id = new_job_id("cal");
     let params = json!({ "recovery_job": w.recovery_job, "targets": targets, "publish": w.publish, "seed": seed });
     s.store.create_analysis(&job_id, "calibrate", &params, now_s()).await?;
-    let req =
-        crate::jobs::audit::CalibrationRequest { recovery_job: w.recovery_job, targets, publish: w.publish, seed };
-    tokio::spawn(crate::jobs::audit::run_calibration(s.clone(), job_id.clone(), req));
+    s.wake.notify_one();
     Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
 }
 

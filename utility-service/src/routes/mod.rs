@@ -25,6 +25,8 @@ pub struct AppState {
     pub store: Store,
     pub config: Arc<ServiceConfig>,
     pub metrics: Arc<Metrics>,
+    /// Wakes this process's job worker when a job is queued.
+    pub wake: Arc<tokio::sync::Notify>,
 }
 
 pub fn router(state: AppState) -> Router {

@@ -13,7 +13,6 @@ use serde_json::{json, Value};
 
 use super::{now_s, parse_json, AppState, Operator};
 use crate::error::ApiError;
-use crate::jobs::recover::{run, RecoveryRequest};
 use crate::store::recoveries::JobRecord;
 
 pub fn router() -> Router<AppState> {
@@ -66,10 +65,13 @@ async fn start(_: Operator, State(s): State<AppState>, body: Bytes) -> Result<(S
         return Err(ApiError::invalid("alpha_kw", "must be a positive number of kW up to 10000"));
     }
     let job_id = crate::jobs::new_job_id("rec");
-    let params = json!({ "rank": w.rank, "alpha_kw": alpha_kw });
+    let rank = match rank {
+        RankChoice::Fixed(r) => json!(r),
+        RankChoice::Auto(_) => json!("auto"),
+    };
+    let params = json!({ "rank": rank, "alpha_kw": alpha_kw });
     s.store.create_job(&job_id, &feeder, w.from, w.to, &params, now_s()).await?;
-    let req = RecoveryRequest { feeder, from: w.from, to: w.to, rank, alpha_kw };
-    tokio::spawn(run(s.clone(), job_id.clone(), req));
+    s.wake.notify_one();
     Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
 }
 

@@ -55,12 +55,13 @@ impl Store {
         let _w = self.writer.lock().await;
         sqlx::query(
             "UPDATE analysis_jobs SET state = 'running', progress = ?, message = ?, started_at = COALESCE(started_at, ?)
-             WHERE job_id = ? AND state IN ('queued', 'running')",
+             WHERE job_id = ? AND state IN ('queued', 'running') AND (worker IS NULL OR worker = ?)",
         )
         .bind(progress.clamp(0.0, 1.0))
         .bind(message)
         .bind(now)
         .bind(id)
+        .bind(&self.worker_id)
         .execute(&self.pool)
         .await?;
         Ok(())
@@ -68,12 +69,16 @@ impl Store {
 
     pub async fn fail_analysis(&self, id: &str, error: &str, now: i64) -> Result<(), ApiError> {
         let _w = self.writer.lock().await;
-        sqlx::query("UPDATE analysis_jobs SET state = 'failed', error = ?, finished_at = ? WHERE job_id = ?")
-            .bind(error)
-            .bind(now)
-            .bind(id)
-            .execute(&self.pool)
-            .await?;
+        sqlx::query(
+            "UPDATE analysis_jobs SET state = 'failed', error = ?, finished_at = ?
+             WHERE job_id = ? AND state IN ('queued', 'running') AND (worker IS NULL OR worker = ?)",
+        )
+        .bind(error)
+        .bind(now)
+        .bind(id)
+        .bind(&self.worker_id)
+        .execute(&self.pool)
+        .await?;
         Ok(())
     }
 
@@ -88,6 +93,7 @@ impl Store {
     ) -> Result<(), ApiError> {
         let _w = self.writer.lock().await;
         let mut tx = self.pool.begin().await?;
+        Self::take_done(&mut tx, id, result, &self.worker_id, now).await?;
         for chunk in assignments.chunks(800) {
             let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
                 "INSERT INTO cluster_assignments (job_id, meter_id, feeder_id, cluster, confidence) ",
@@ -101,15 +107,34 @@ impl Store {
             });
             qb.build().execute(&mut *tx).await?;
         }
-        sqlx::query(
-            "UPDATE analysis_jobs SET state = 'done', progress = 1, message = 'done', result = ?, finished_at = ? WHERE job_id = ?",
+        tx.commit().await?;
+        Ok(())
+    }
+
+    /// Marks the job done with its result if this worker still holds it.
+    async fn take_done(
+        tx: &mut sqlx::Transaction<'_, Sqlite>,
+        id: &str,
+        result: &serde_json::Value,
+        worker: &str,
+        now: i64,
+    ) -> Result<(), ApiError> {
+        let held = sqlx::query(
+            "UPDATE analysis_jobs SET state = 'done', progress = 1, message = 'done', result = ?, finished_at = ?
+             WHERE job_id = ? AND state = 'running' AND (worker IS NULL OR worker = ?)",
         )
         .bind(result.to_string())
         .bind(now)
         .bind(id)
-        .execute(&mut *tx)
+        .bind(worker)
+        .execute(&mut **tx)
         .await?;
-        tx.commit().await?;
+        if held.rows_affected() != 1 {
+            return Err(ApiError::Conflict(meterveil_shared::FieldError::new(
+                "job_id",
+                format!("job {id} is no longer held by this worker; its results were discarded"),
+            )));
+        }
         Ok(())
     }
 
@@ -130,14 +155,7 @@ impl Store {
         };
         let mut result = result.clone();
         result["published_version"] = version.into();
-        sqlx::query(
-            "UPDATE analysis_jobs SET state = 'done', progress = 1, message = 'done', result = ?, finished_at = ? WHERE job_id = ?",
-        )
-        .bind(result.to_string())
-        .bind(now)
-        .bind(id)
-        .execute(&mut *tx)
-        .await?;
+        Self::take_done(&mut tx, id, &result, &self.worker_id, now).await?;
         tx.commit().await?;
         Ok(version)
     }

@@ -20,6 +20,7 @@ use crate::error::ApiError;
 use crate::ingest::ValidatedBatch;
 
 pub mod analyses;
+pub mod queue;
 pub mod recoveries;
 
 /// Rows per multi-row INSERT; 1000 rows of 5 values stays far below SQLite's
@@ -75,6 +76,8 @@ pub struct FeederSummary {
 pub struct Store {
     pool: SqlitePool,
     writer: std::sync::Arc<Mutex<()>>,
+    /// Identifies this process as a job worker in lease columns.
+    worker_id: String,
 }
 
 impl Store {
@@ -95,7 +98,11 @@ impl Store {
             .await
             .with_context(|| format!("opening database {url}"))?;
         sqlx::migrate!("../migrations/sqlite").run(&pool).await.context("applying migrations")?;
-        Ok(Self { pool, writer: std::sync::Arc::new(Mutex::new(())) })
+        let worker_id = {
+            use rand::Rng;
+            format!("w-{}-{:08x}", std::process::id(), rand::rng().random::<u32>())
+        };
+        Ok(Self { pool, writer: std::sync::Arc::new(Mutex::new(())), worker_id })
     }
 
     pub fn pool(&self) -> &SqlitePool {

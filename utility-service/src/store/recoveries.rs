@@ -71,13 +71,15 @@ impl Store {
     ) -> Result<(), ApiError> {
         let _w = self.writer.lock().await;
         sqlx::query(
-            "UPDATE recovery_jobs SET state = ?, progress = ?, message = ?, started_at = COALESCE(started_at, ?) WHERE job_id = ? AND state IN ('queued', 'running')",
+            "UPDATE recovery_jobs SET state = ?, progress = ?, message = ?, started_at = COALESCE(started_at, ?)
+             WHERE job_id = ? AND state IN ('queued', 'running') AND (worker IS NULL OR worker = ?)",
         )
         .bind(state)
         .bind(progress)
         .bind(message)
         .bind(now)
         .bind(id)
+        .bind(&self.worker_id)
         .execute(&self.pool)
         .await?;
         Ok(())
@@ -85,12 +87,16 @@ impl Store {
 
     pub async fn fail_job(&self, id: &str, error: &str, now: i64) -> Result<(), ApiError> {
         let _w = self.writer.lock().await;
-        sqlx::query("UPDATE recovery_jobs SET state = 'failed', error = ?, finished_at = ? WHERE job_id = ?")
-            .bind(error)
-            .bind(now)
-            .bind(id)
-            .execute(&self.pool)
-            .await?;
+        sqlx::query(
+            "UPDATE recovery_jobs SET state = 'failed', error = ?, finished_at = ?
+             WHERE job_id = ? AND state IN ('queued', 'running') AND (worker IS NULL OR worker = ?)",
+        )
+        .bind(error)
+        .bind(now)
+        .bind(id)
+        .bind(&self.worker_id)
+        .execute(&self.pool)
+        .await?;
         Ok(())
     }
 
@@ -105,6 +111,25 @@ impl Store {
     ) -> Result<(), ApiError> {
         let _w = self.writer.lock().await;
         let mut tx = self.pool.begin().await?;
+        // Only the lease holder may finish: a worker whose lease ran out (and whose
+        // job another worker took over) or whose job was cancelled writes nothing.
+        let held = sqlx::query(
+            "UPDATE recovery_jobs SET state = 'done', progress = 1, message = 'done', profile_version = ?, diagnostics = ?, finished_at = ?
+             WHERE job_id = ? AND state = 'running' AND (worker IS NULL OR worker = ?)",
+        )
+        .bind(i64::from(profile_version))
+        .bind(diagnostics.to_string())
+        .bind(now)
+        .bind(id)
+        .bind(&self.worker_id)
+        .execute(&mut *tx)
+        .await?;
+        if held.rows_affected() != 1 {
+            return Err(ApiError::Conflict(meterveil_shared::FieldError::new(
+                "job_id",
+                format!("job {id} is no longer held by this worker; its results were discarded"),
+            )));
+        }
         for chunk in rows.chunks(700) {
             let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
                 "INSERT INTO recovered_intervals (job_id, meter_id, interval_start, estimate_kw, flag, band_low_kw, band_high_kw) ",
@@ -120,15 +145,6 @@ impl Store {
             });
             qb.build().execute(&mut *tx).await?;
         }
-        sqlx::query(
-            "UPDATE recovery_jobs SET state = 'done', progress = 1, message = 'done', profile_version = ?, diagnostics = ?, finished_at = ? WHERE job_id = ?",
-        )
-        .bind(i64::from(profile_version))
-        .bind(diagnostics.to_string())
-        .bind(now)
-        .bind(id)
-        .execute(&mut *tx)
-        .await?;
         tx.commit().await?;
         Ok(())
     }

@@ -1,0 +1,185 @@
+//! The durable job queue over `recovery_jobs` and `analysis_jobs`: claims with
+//! leases, renewals, cancellation and listing. Finishing statements elsewhere
+//! check the lease too (`worker = this store's worker id`).
+
+use serde::Serialize;
+use sqlx::Row;
+
+use super::Store;
+use crate::error::ApiError;
+
+/// The two job tables.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+pub enum JobTable {
+    Recovery,
+    Analysis,
+}
+
+impl JobTable {
+    pub fn name(self) -> &'static str {
+        match self {
+            JobTable::Recovery => "recovery_jobs",
+            JobTable::Analysis => "analysis_jobs",
+        }
+    }
+    pub fn of(job_id: &str) -> Self {
+        if job_id.starts_with("rec-") {
+            JobTable::Recovery
+        } else {
+            JobTable::Analysis
+        }
+    }
+}
+
+/// A job this worker now holds.
+#[derive(Debug, Clone)]
+pub struct Claimed {
+    pub table: JobTable,
+    pub job_id: String,
+    /// `recover`, `cluster`, `audit` or `calibrate`.
+    pub kind: String,
+    pub params: serde_json::Value,
+    pub attempts: i64,
+    /// Recovery jobs: feeder and window.
+    pub feeder_id: Option<String>,
+    pub window: Option<(i64, i64)>,
+}
+
+/// One line of the job list.
+#[derive(Debug, Clone, Serialize)]
+pub struct JobLine {
+    pub job_id: String,
+    pub kind: String,
+    pub state: String,
+    pub progress: f64,
+    pub message: String,
+    pub attempts: i64,
+    pub worker: Option<String>,
+    pub created_at: i64,
+    pub started_at: Option<i64>,
+    pub finished_at: Option<i64>,
+    pub error: Option<String>,
+}
+
+impl Store {
+    /// This process's worker id (random per opened store).
+    pub fn worker_id(&self) -> &str {
+        &self.worker_id
+    }
+
+    /// Fails jobs whose lease ran out `max_attempts` times, then claims the oldest
+    /// queued (or lease-expired) job, recoveries first since analyses build on them.
+    pub async fn claim_next(&self, now: i64, lease_s: i64, max_attempts: i64) -> Result<Option<Claimed>, ApiError> {
+        let _w = self.writer.lock().await;
+        for table in [JobTable::Recovery, JobTable::Analysis] {
+            let t = table.name();
+            sqlx::query(&format!(
+                "UPDATE {t} SET state = 'failed', finished_at = ?1,
+                        error = 'its worker stopped ' || attempts || ' times before finishing (lease expired)'
+                 WHERE state = 'running' AND lease_until < ?1 AND attempts >= ?2"
+            ))
+            .bind(now)
+            .bind(max_attempts)
+            .execute(&self.pool)
+            .await?;
+        }
+        for table in [JobTable::Recovery, JobTable::Analysis] {
+            let t = table.name();
+            let extra = if table == JobTable::Recovery {
+                "'recover' AS kind, feeder_id, window_start, window_end"
+            } else {
+                "kind, NULL AS feeder_id, NULL AS window_start, NULL AS window_end"
+            };
+            let row = sqlx::query(&format!(
+                "UPDATE {t} SET state = 'running', worker = ?1, lease_until = ?2 + ?3, attempts = attempts + 1,
+                        started_at = COALESCE(started_at, ?2), message = 'claimed'
+                 WHERE job_id = (SELECT job_id FROM {t}
+                                 WHERE state = 'queued' OR (state = 'running' AND lease_until < ?2)
+                                 ORDER BY created_at, job_id LIMIT 1)
+                 RETURNING job_id, params, attempts, {extra}"
+            ))
+            .bind(&self.worker_id)
+            .bind(now)
+            .bind(lease_s)
+            .fetch_optional(&self.pool)
+            .await?;
+            if let Some(r) = row {
+                let params: String = r.try_get("params")?;
+                let from: Option<i64> = r.try_get("window_start")?;
+                let to: Option<i64> = r.try_get("window_end")?;
+                return Ok(Some(Claimed {
+                    table,
+                    job_id: r.try_get("job_id")?,
+                    kind: r.try_get("kind")?,
+                    params: serde_json::from_str(&params).unwrap_or(serde_json::Value::Null),
+                    attempts: r.try_get("attempts")?,
+                    feeder_id: r.try_get("feeder_id")?,
+                    window: from.zip(to),
+                }));
+            }
+        }
+        Ok(None)
+    }
+
+    /// Extends this worker's lease; false when the job is no longer ours (taken
+    /// over after our lease ran out, or cancelled).
+    pub async fn renew_lease(&self, table: JobTable, id: &str, until: i64) -> Result<bool, ApiError> {
+        let _w = self.writer.lock().await;
+        let r = sqlx::query(&format!(
+            "UPDATE {} SET lease_until = ? WHERE job_id = ? AND worker = ? AND state = 'running'",
+            table.name()
+        ))
+        .bind(until)
+        .bind(id)
+        .bind(&self.worker_id)
+        .execute(&self.pool)
+        .await?;
+        Ok(r.rows_affected() == 1)
+    }
+
+    /// Cancels a queued or running job (it ends as failed, "cancelled by the
+    /// operator"); false when it had already ended or does not exist.
+    pub async fn cancel_job(&self, id: &str, now: i64) -> Result<bool, ApiError> {
+        let _w = self.writer.lock().await;
+        let r = sqlx::query(&format!(
+            "UPDATE {} SET state = 'failed', error = 'cancelled by the operator', finished_at = ?
+             WHERE job_id = ? AND state IN ('queued', 'running')",
+            JobTable::of(id).name()
+        ))
+        .bind(now)
+        .bind(id)
+        .execute(&self.pool)
+        .await?;
+        Ok(r.rows_affected() == 1)
+    }
+
+    /// The most recent jobs of both tables, newest first.
+    pub async fn list_jobs(&self, limit: i64) -> Result<Vec<JobLine>, ApiError> {
+        let rows = sqlx::query(
+            "SELECT job_id, 'recover' AS kind, state, progress, message, attempts, worker, created_at, started_at, finished_at, error FROM recovery_jobs
+             UNION ALL
+             SELECT job_id, kind, state, progress, message, attempts, worker, created_at, started_at, finished_at, error FROM analysis_jobs
+             ORDER BY created_at DESC, job_id LIMIT ?",
+        )
+        .bind(limit)
+        .fetch_all(&self.pool)
+        .await?;
+        rows.iter()
+            .map(|r| {
+                Ok(JobLine {
+                    job_id: r.try_get("job_id")?,
+                    kind: r.try_get("kind")?,
+                    state: r.try_get("state")?,
+                    progress: r.try_get("progress")?,
+                    message: r.try_get("message")?,
+                    attempts: r.try_get("attempts")?,
+                    worker: r.try_get("worker")?,
+                    created_at: r.try_get("created_at")?,
+                    started_at: r.try_get("started_at")?,
+                    finished_at: r.try_get("finished_at")?,
+                    error: r.try_get("error")?,
+                })
+            })
+            .collect()
+    }
+}
