@@ -4,6 +4,13 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 
+# Debian's Chromium for the dashboard's browser test.
+if ! command -v chromium >/dev/null 2>&1; then
+    if [ "$(id -u)" = 0 ]; then apt_get="apt-get"; else apt_get="sudo apt-get"; fi
+    $apt_get update -q
+    DEBIAN_FRONTEND=noninteractive $apt_get install -y -q chromium
+fi
+
 venv=target/reference-venv
 if [ ! -x "$venv/bin/python" ]; then
     python3 -m venv "$venv"

@@ -1201,3 +1201,129 @@ async fn a_job_whose_worker_is_killed_is_retried_by_another_and_never_half_serve
         .expect("jobs cancel");
     assert!(!out.status.success() && String::from_utf8_lossy(&out.stderr).contains("already ended"));
 }
+
+/// Loads a page in headless Chromium (Debian's package, installed by the test
+/// command) twice, with two one-time sign-in links to it: a screenshot into
+/// `png`, then the rendered DOM. Returns (dom, both runs' log).
+fn chromium(shot_url: &str, dom_url: &str, png: &std::path::Path) -> (String, String) {
+    let bin = std::env::var("METERVEIL_CHROMIUM").unwrap_or_else(|_| "chromium".into());
+    let profile = tempfile::tempdir().expect("profile dir");
+    let common = [
+        "--headless",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-quic",
+        "--no-first-run",
+        "--disable-background-networking",
+        "--disable-component-update",
+        "--disable-sync",
+        "--enable-logging=stderr",
+        "--v=0",
+        "--window-size=1280,1400",
+    ];
+    let run = |extra: &[String]| {
+        std::process::Command::new(&bin)
+            .args(common)
+            .arg(format!("--user-data-dir={}", profile.path().display()))
+            .args(extra)
+            .output()
+            .unwrap_or_else(|e| panic!("cannot run {bin}: {e}; the README test command installs Debian's chromium"))
+    };
+    let shot = run(&[format!("--screenshot={}", png.display()), shot_url.to_owned()]);
+    assert!(shot.status.success(), "{}", String::from_utf8_lossy(&shot.stderr));
+    let dom = run(&["--dump-dom".to_owned(), dom_url.to_owned()]);
+    let mut log = String::from_utf8_lossy(&shot.stderr).into_owned();
+    log += &String::from_utf8_lossy(&dom.stderr);
+    (String::from_utf8_lossy(&dom.stdout).into_owned(), log)
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn dashboard_pages_render_in_a_real_browser() {
+    let t = spawn_service().await;
+    let work = tempfile::tempdir().expect("tempdir");
+    let mut opts = SimulateOptions::new(t.url(), work.path().join("outboxes"));
+    opts.operator_token = Some(TOKEN.into());
+    opts.meters = 48;
+    opts.days = 4;
+    let report = simulate::run(&opts).await.expect("simulation");
+    let (from, to) = (report.first_day, report.first_day + 4 * 86_400);
+    let wait = |path: String| {
+        let http = t.http.clone();
+        let base = t.url();
+        async move {
+            for _ in 0..1200 {
+                let j: Value = http
+                    .get(format!("{base}{path}"))
+                    .bearer_auth(TOKEN)
+                    .send()
+                    .await
+                    .expect("get")
+                    .json()
+                    .await
+                    .expect("json");
+                if j["state"] == "done" || j["state"] == "failed" {
+                    assert_eq!(j["state"], "done", "{j}");
+                    return j;
+                }
+                tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+            }
+            panic!("{path} did not finish");
+        }
+    };
+    let (_, b) = t
+        .post_json("/v1/recoveries", &json!({"feeder_id": "QM-CHAPEL-ROW", "from": from, "to": to, "rank": 5}), true)
+        .await;
+    let rec = b["job_id"].as_str().expect("id").to_owned();
+    wait(format!("/v1/recoveries/{rec}")).await;
+    let (_, b) = t.post_json("/v1/clusterings", &json!({"recovery_jobs": [rec], "clusters": 3}), true).await;
+    let clu = b["job_id"].as_str().expect("id").to_owned();
+    wait(format!("/v1/analyses/{clu}")).await;
+    let (_, b) =
+        t.post_json("/v1/audits", &json!({"recovery_job": rec, "captured": ["QM-CHAPEL-ROW-0001"]}), true).await;
+    let aud = b["job_id"].as_str().expect("id").to_owned();
+    wait(format!("/v1/analyses/{aud}")).await;
+
+    // Without a session the dashboard sends the browser to the sign-in page.
+    let plain = reqwest::Client::builder().redirect(reqwest::redirect::Policy::none()).build().expect("client");
+    let r = plain.get(format!("{}/dashboard", t.url())).send().await.expect("get");
+    assert!(r.status().is_redirection() && r.headers()["location"] == "/dashboard/login", "{:?}", r.status());
+    let (s, _) = t.post_json("/v1/dashboard/links", &json!({}), false).await;
+    assert_eq!(s, StatusCode::UNAUTHORIZED, "links need the operator token");
+
+    let shots = std::path::Path::new(env!("CARGO_TARGET_TMPDIR")).join("screenshots");
+    std::fs::create_dir_all(&shots).expect("screenshot dir");
+    let pages = [
+        ("overview", "/dashboard".to_owned(), "QM-CHAPEL-ROW"),
+        ("meter", format!("/dashboard/recoveries/{rec}?meter_id=QM-CHAPEL-ROW-0002"), "QM-CHAPEL-ROW-0002"),
+        ("clusters", format!("/dashboard/clusterings/{clu}"), "Representative working day"),
+        ("audit", format!("/dashboard/analyses/{aud}"), "In plain words"),
+    ];
+    for (name, path, expect) in pages {
+        // Each Chromium run is a fresh browser: one one-time link per load.
+        let mut urls = Vec::new();
+        for _ in 0..2 {
+            let (s, b) = t.post_json("/v1/dashboard/links", &json!({ "next": path }), true).await;
+            assert_eq!(s, StatusCode::OK, "{b}");
+            urls.push(format!("{}{}", t.url(), b["url"].as_str().expect("url")));
+        }
+        let png = shots.join(format!("{name}.png"));
+        let _ = std::fs::remove_file(&png);
+        let (dom, log) = {
+            let (u0, u1) = (urls[0].clone(), urls[1].clone());
+            let png = png.clone();
+            tokio::task::spawn_blocking(move || chromium(&u0, &u1, &png)).await.expect("browser")
+        };
+        assert!(dom.contains(expect), "{name}: page lacks {expect:?}: {}", &dom[..dom.len().min(600)]);
+        if name != "overview" {
+            assert!(dom.contains("<svg"), "{name}: no chart");
+        }
+        let console: Vec<&str> = log.lines().filter(|l| l.contains(":CONSOLE")).collect();
+        assert!(console.is_empty(), "{name}: console messages {console:?}");
+        let size = std::fs::metadata(&png).map(|m| m.len()).unwrap_or(0);
+        assert!(size > 10_000, "{name}: screenshot {} is {size} bytes", png.display());
+        eprintln!("dashboard {name}: screenshot {} ({size} bytes)", png.display());
+        // A used link does not sign in again.
+        let r = plain.get(&urls[0]).send().await.expect("get");
+        assert_eq!(r.status().as_u16(), 401);
+    }
+}

@@ -18,6 +18,7 @@ pub struct RunningService {
     pub addr: SocketAddr,
     pub store: Store,
     pub metrics: Arc<Metrics>,
+    dashboard: Arc<crate::routes::dashboard::Sessions>,
     shutdown: Option<oneshot::Sender<()>>,
     handle: JoinHandle<std::io::Result<()>>,
 }
@@ -26,6 +27,11 @@ impl RunningService {
     /// Base URL, e.g. `http://127.0.0.1:41234`.
     pub fn url(&self) -> String {
         format!("http://{}", self.addr)
+    }
+
+    /// A one-time dashboard sign-in path to `next`.
+    pub fn dashboard_link(&self, next: &str) -> String {
+        self.dashboard.one_time_link(next)
     }
 
     /// Stops accepting connections, finishes in-flight requests and returns.
@@ -65,7 +71,9 @@ pub async fn start_with_store(
         config: Arc::new(config),
         metrics: metrics.clone(),
         wake: Arc::new(tokio::sync::Notify::new()),
+        dashboard: Default::default(),
     };
+    let dashboard = state.dashboard.clone();
     let worker = state.config.run_worker.then(|| tokio::spawn(crate::jobs::worker::run(state.clone())));
     let app = routes::router(state).layer(TraceLayer::new_for_http());
     let (tx, rx) = oneshot::channel::<()>();
@@ -88,5 +96,5 @@ pub async fn start_with_store(
         served
     });
     tracing::info!(%addr, "utility service listening");
-    Ok(RunningService { addr, store, metrics, shutdown: Some(tx), handle })
+    Ok(RunningService { addr, store, metrics, dashboard, shutdown: Some(tx), handle })
 }

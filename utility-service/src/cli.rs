@@ -164,6 +164,10 @@ pub enum Command {
         /// Also write the town's true loads (evaluation only) to this CSV.
         #[arg(long)]
         truth: Option<PathBuf>,
+        /// Finish after the summary; without it, on a terminal the demo keeps the
+        /// service and its dashboard up until Ctrl-C.
+        #[arg(long)]
+        exit: bool,
     },
 }
 
@@ -230,6 +234,7 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
                 config: std::sync::Arc::new(config),
                 metrics: Default::default(),
                 wake: Default::default(),
+                dashboard: Default::default(),
             };
             println!("worker {} started", state.store.worker_id());
             tokio::select! {
@@ -337,10 +342,14 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
             println!("{summary}");
             Ok(())
         }
-        Command::Demo { meters, days, dir, truth } => {
-            let opts = DemoOptions { meters, days, dir, truth };
+        Command::Demo { meters, days, dir, truth, exit } => {
+            use std::io::IsTerminal;
+            let stay_up = !exit && std::io::stdout().is_terminal();
+            let opts = DemoOptions { meters, days, dir, truth, stay_up };
             let summary = demo::run(&opts).await?;
-            print!("{}", demo::render(&summary));
+            if !stay_up {
+                print!("{}", demo::render(&summary));
+            }
             Ok(())
         }
     }

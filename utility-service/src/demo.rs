@@ -19,6 +19,8 @@ pub struct DemoOptions {
     pub days: u32,
     pub dir: Option<PathBuf>,
     pub truth: Option<PathBuf>,
+    /// Keep the service up after the summary until Ctrl-C (with a dashboard link).
+    pub stay_up: bool,
 }
 
 /// One feeder's recovery in the demo, scored against the town's true loads
@@ -122,6 +124,13 @@ pub async fn run(opts: &DemoOptions) -> anyhow::Result<DemoSummary> {
         readings_rejected: svc.metrics.readings_rejected.get(),
         duplicates: svc.metrics.readings_duplicate.get(),
     };
+    if opts.stay_up {
+        print!("{}", render(&summary));
+        let code = svc.dashboard_link("/dashboard");
+        println!("\n  Dashboard: {}{code}\n  (a one-time sign-in link; later sign in at {}/dashboard/login with the operator token)", svc.url(), svc.url());
+        println!("  The service stays up until Ctrl-C.");
+        let _ = tokio::signal::ctrl_c().await;
+    }
     svc.stop().await?;
     Ok(summary)
 }

@@ -5,12 +5,18 @@ use meterveil_shared::audit::{AuditReport, CurvePoint};
 use meterveil_shared::calibrate::Calibration;
 use plotters::prelude::*;
 
-fn esc(s: &str) -> String {
+pub(crate) fn esc(s: &str) -> String {
     s.replace('&', "&amp;").replace('<', "&lt;").replace('>', "&gt;").replace('"', "&quot;")
 }
 
 /// A line chart of several series over a shared x axis, as an SVG string.
-fn line_chart(title: &str, x_label: &str, y_label: &str, series: &[(&str, Vec<(f64, f64)>)], y_max: f64) -> String {
+pub(crate) fn line_chart(
+    title: &str,
+    x_label: &str,
+    y_label: &str,
+    series: &[(&str, Vec<(f64, f64)>)],
+    y_max: f64,
+) -> String {
     let mut svg = String::new();
     {
         let root = SVGBackend::with_string(&mut svg, (640, 360)).into_drawing_area();
@@ -54,7 +60,7 @@ fn curve_series(points: &[CurvePoint], x: impl Fn(&CurvePoint) -> f64) -> Vec<(&
     ]
 }
 
-const STYLE: &str = "body{font-family:sans-serif;max-width:58em;margin:2em auto;padding:0 1em;color:#222}\
+pub(crate) const STYLE: &str = "body{font-family:sans-serif;max-width:58em;margin:2em auto;padding:0 1em;color:#222}\
 table{border-collapse:collapse}td,th{border:1px solid #bbb;padding:.25em .6em;text-align:right}\
 th:first-child,td:first-child{text-align:left}.caution{background:#fff4e0;border-left:4px solid #e0a030;padding:.6em 1em}";
 
@@ -206,4 +212,47 @@ pub fn calibration_html(title: &str, c: &Calibration) -> String {
     h += "</table>";
     h += &format!("<p class=\"caution\">{}</p>", esc(meterveil_shared::audit::CAUTION));
     h + "</body></html>\n"
+}
+
+/// A meter's recovered profile with its band, and its stored levels drawn at
+/// their band's lower boundary, over hours from `t0`.
+pub(crate) fn profile_chart(title: &str, t0: i64, recovered: &[(i64, f64, f64, f64)], levels: &[(i64, f64)]) -> String {
+    let mut svg = String::new();
+    {
+        let root = SVGBackend::with_string(&mut svg, (900, 360)).into_drawing_area();
+        let draw = || -> Result<(), Box<dyn std::error::Error + '_>> {
+            root.fill(&WHITE)?;
+            let h = |t: i64| (t - t0) as f64 / 3600.0;
+            let x1 = recovered.last().map_or(24.0, |r| h(r.0)).max(1.0);
+            let y1 = recovered.iter().map(|r| r.3).chain(levels.iter().map(|l| l.1)).fold(1.0f64, f64::max) * 1.1;
+            let mut chart = ChartBuilder::on(&root)
+                .caption(title, ("sans-serif", 18))
+                .margin(12)
+                .x_label_area_size(40)
+                .y_label_area_size(52)
+                .build_cartesian_2d(0.0..x1, 0.0..y1)?;
+            chart.configure_mesh().x_desc("hours from the window start").y_desc("kW").draw()?;
+            let band: Vec<(f64, f64)> =
+                recovered.iter().map(|r| (h(r.0), r.3)).chain(recovered.iter().rev().map(|r| (h(r.0), r.2))).collect();
+            chart
+                .draw_series(std::iter::once(Polygon::new(band, BLUE.mix(0.18).filled())))?
+                .label("95% band")
+                .legend(|(x, y)| Rectangle::new([(x, y - 5), (x + 18, y + 5)], BLUE.mix(0.18).filled()));
+            chart
+                .draw_series(LineSeries::new(recovered.iter().map(|r| (h(r.0), r.1)), BLUE.stroke_width(2)))?
+                .label("recovered kW")
+                .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLUE.stroke_width(2)));
+            chart
+                .draw_series(levels.iter().map(|l| Circle::new((h(l.0), l.1), 2, RED.mix(0.6).filled())))?
+                .label("stored level (its lower boundary, kW)")
+                .legend(|(x, y)| Circle::new((x + 9, y), 3, RED.filled()));
+            chart.configure_series_labels().background_style(WHITE.mix(0.85)).border_style(BLACK).draw()?;
+            root.present()?;
+            Ok(())
+        };
+        if let Err(e) = draw() {
+            tracing::warn!(error = %e, "chart could not be drawn");
+        }
+    }
+    svg
 }

@@ -2,6 +2,7 @@
 //! the store and the domain functions.
 
 pub mod analyses;
+pub mod dashboard;
 pub mod feeders;
 pub mod health;
 pub mod ingest;
@@ -27,6 +28,8 @@ pub struct AppState {
     pub metrics: Arc<Metrics>,
     /// Wakes this process's job worker when a job is queued.
     pub wake: Arc<tokio::sync::Notify>,
+    /// Dashboard sessions and one-time sign-in codes.
+    pub dashboard: Arc<dashboard::Sessions>,
 }
 
 pub fn router(state: AppState) -> Router {
@@ -36,6 +39,7 @@ pub fn router(state: AppState) -> Router {
         .merge(feeders::router())
         .merge(recoveries::router())
         .merge(analyses::router())
+        .merge(dashboard::router())
         .with_state(state)
 }
 
@@ -61,7 +65,7 @@ impl FromRequestParts<AppState> for Operator {
     }
 }
 
-fn constant_time_eq(a: &[u8], b: &[u8]) -> bool {
+pub(crate) fn constant_time_eq(a: &[u8], b: &[u8]) -> bool {
     a.len() == b.len() && a.iter().zip(b).fold(0u8, |acc, (x, y)| acc | (x ^ y)) == 0
 }
 

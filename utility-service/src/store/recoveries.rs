@@ -202,6 +202,32 @@ impl Store {
             .collect()
     }
 
+    /// One meter's levels in [from, to) as (interval_start, level), in time order.
+    pub async fn meter_levels_between(&self, meter: &str, from: i64, to: i64) -> Result<Vec<(i64, u8)>, ApiError> {
+        let rows: Vec<(i64, i64)> = sqlx::query_as(
+            "SELECT interval_start, level FROM readings WHERE meter_id = ? AND interval_start >= ? AND interval_start < ?
+             ORDER BY interval_start",
+        )
+        .bind(meter)
+        .bind(from)
+        .bind(to)
+        .fetch_all(&self.pool)
+        .await?;
+        Ok(rows.into_iter().map(|(t, l)| (t, l as u8)).collect())
+    }
+
+    /// First and last interval start of a feeder's stored readings.
+    pub async fn feeder_span(&self, feeder: &FeederId) -> Result<Option<(i64, i64)>, ApiError> {
+        let r: (Option<i64>, Option<i64>) = sqlx::query_as(
+            "SELECT MIN(r.interval_start), MAX(r.interval_start) FROM readings r JOIN meters m ON m.meter_id = r.meter_id
+             WHERE m.feeder_id = ?",
+        )
+        .bind(feeder.as_str())
+        .fetch_one(&self.pool)
+        .await?;
+        Ok(r.0.zip(r.1))
+    }
+
     /// Levels of a feeder in [from, to) as (meter, interval_start, level, version).
     pub async fn feeder_levels_between(
         &self,

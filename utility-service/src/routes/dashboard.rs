@@ -1,0 +1,366 @@
+//! The operator dashboard: server-rendered HTML with inline SVG charts, no
+//! scripts and no external resources. Signing in takes the operator token
+//! (a form) or a one-time link minted with it (`POST /v1/dashboard/links`); the
+//! browser then holds a session cookie.
+
+use std::collections::HashMap;
+use std::sync::Mutex;
+
+use axum::extract::{FromRequestParts, Path, Query, State};
+use axum::http::request::Parts;
+use axum::http::{header, StatusCode};
+use axum::response::{Html, IntoResponse, Redirect, Response};
+use axum::routing::{get, post};
+use axum::{Form, Json, Router};
+use meterveil_shared::{DitherProfile, FeederId};
+use serde::Deserialize;
+use serde_json::{json, Value};
+
+use super::{now_s, AppState, Operator};
+use crate::error::ApiError;
+use crate::report::{esc, line_chart, profile_chart, STYLE};
+
+const SESSION_COOKIE: &str = "mv_session";
+const SESSION_S: i64 = 8 * 3600;
+const LINK_S: i64 = 120;
+
+/// Live sessions and unused one-time codes, each with its expiry (epoch seconds).
+#[derive(Default)]
+pub struct Sessions {
+    sessions: Mutex<HashMap<String, i64>>,
+    codes: Mutex<HashMap<String, i64>>,
+}
+
+fn random_token() -> String {
+    use rand::Rng;
+    let mut r = rand::rng();
+    format!("{:016x}{:016x}", r.random::<u64>(), r.random::<u64>())
+}
+
+impl Sessions {
+    fn open(&self) -> String {
+        let id = random_token();
+        if let Ok(mut s) = self.sessions.lock() {
+            let now = now_s();
+            s.retain(|_, exp| *exp > now);
+            s.insert(id.clone(), now + SESSION_S);
+        }
+        id
+    }
+    fn valid(&self, id: &str) -> bool {
+        self.sessions.lock().map(|s| s.get(id).is_some_and(|exp| *exp > now_s())).unwrap_or(false)
+    }
+    fn mint(&self) -> String {
+        let code = random_token();
+        if let Ok(mut c) = self.codes.lock() {
+            let now = now_s();
+            c.retain(|_, exp| *exp > now);
+            c.insert(code.clone(), now + LINK_S);
+        }
+        code
+    }
+    /// A one-time sign-in path to `next` (a dashboard path), valid for two minutes.
+    pub fn one_time_link(&self, next: &str) -> String {
+        let code = self.mint();
+        let next = safe_next(Some(next));
+        format!("/dashboard/enter?code={code}&next={}", next.replace('&', "%26").replace('?', "%3F").replace('=', "%3D"))
+    }
+    fn redeem(&self, code: &str) -> bool {
+        self.codes.lock().map(|mut c| c.remove(code).is_some_and(|exp| exp > now_s())).unwrap_or(false)
+    }
+}
+
+pub fn router() -> Router<AppState> {
+    Router::new()
+        .route("/dashboard/login", get(login_page).post(login))
+        .route("/dashboard/enter", get(enter))
+        .route("/v1/dashboard/links", post(mint_link))
+        .route("/dashboard", get(overview))
+        .route("/dashboard/recoveries/{job_id}", get(meter_page))
+        .route("/dashboard/clusterings/{job_id}", get(clusters_page))
+        .route("/dashboard/analyses/{job_id}", get(analysis_page))
+}
+
+/// A signed-in dashboard user; otherwise a redirect to the sign-in page.
+pub struct Viewer;
+
+impl FromRequestParts<AppState> for Viewer {
+    type Rejection = Response;
+
+    async fn from_request_parts(parts: &mut Parts, state: &AppState) -> Result<Self, Response> {
+        let cookies = parts.headers.get(header::COOKIE).and_then(|v| v.to_str().ok()).unwrap_or("");
+        let ok = cookies
+            .split(';')
+            .filter_map(|c| c.trim().split_once('='))
+            .any(|(k, v)| k == SESSION_COOKIE && state.dashboard.valid(v));
+        if ok {
+            Ok(Viewer)
+        } else {
+            Err(Redirect::to("/dashboard/login").into_response())
+        }
+    }
+}
+
+fn page(title: &str, body: &str, refresh: bool) -> Html<String> {
+    let meta = if refresh { "<meta http-equiv=\"refresh\" content=\"5\">" } else { "" };
+    Html(format!(
+        "<!doctype html><html lang=\"en\"><head><meta charset=\"utf-8\">{meta}<title>{t}</title><style>{STYLE}</style></head>\
+         <body><p><a href=\"/dashboard\">Meterveil dashboard</a></p><h1>{t}</h1>{body}</body></html>\n",
+        t = esc(title)
+    ))
+}
+
+fn with_session(state: &AppState, to: &str) -> Response {
+    let id = state.dashboard.open();
+    let cookie = format!("{SESSION_COOKIE}={id}; HttpOnly; SameSite=Strict; Path=/dashboard; Max-Age={SESSION_S}");
+    ([(header::SET_COOKIE, cookie)], Redirect::to(to)).into_response()
+}
+
+async fn login_page() -> Html<String> {
+    page(
+        "Sign in",
+        "<form method=\"post\" action=\"/dashboard/login\"><label>Operator token <input type=\"password\" name=\"token\" autocomplete=\"off\"></label> <button type=\"submit\">Sign in</button></form>",
+        false,
+    )
+}
+
+#[derive(Deserialize)]
+struct LoginForm {
+    token: String,
+}
+
+async fn login(State(s): State<AppState>, Form(f): Form<LoginForm>) -> Response {
+    if super::constant_time_eq(f.token.as_bytes(), s.config.operator_token.expose().as_bytes()) && !f.token.is_empty() {
+        with_session(&s, "/dashboard")
+    } else {
+        (
+            StatusCode::UNAUTHORIZED,
+            page(
+                "Sign in",
+                "<p>That operator token is wrong.</p><p><a href=\"/dashboard/login\">Try again</a></p>",
+                false,
+            ),
+        )
+            .into_response()
+    }
+}
+
+#[derive(Deserialize)]
+struct LinkWire {
+    #[serde(default)]
+    next: Option<String>,
+}
+
+fn safe_next(next: Option<&str>) -> String {
+    match next {
+        Some(n) if n.starts_with("/dashboard") && !n.contains("//") && !n.contains('\\') => n.to_owned(),
+        _ => "/dashboard".to_owned(),
+    }
+}
+
+/// A one-time sign-in link, valid for two minutes.
+async fn mint_link(_: Operator, State(s): State<AppState>, body: axum::body::Bytes) -> Result<Json<Value>, ApiError> {
+    let w: LinkWire = if body.is_empty() { LinkWire { next: None } } else { super::parse_json(&body)? };
+    let code = s.dashboard.mint();
+    let next = safe_next(w.next.as_deref());
+    let url = format!(
+        "/dashboard/enter?code={code}&next={}",
+        next.replace('&', "%26").replace('?', "%3F").replace('=', "%3D")
+    );
+    Ok(Json(json!({ "url": url, "expires_in_s": LINK_S })))
+}
+
+#[derive(Deserialize)]
+struct EnterQuery {
+    code: String,
+    next: Option<String>,
+}
+
+async fn enter(State(s): State<AppState>, Query(q): Query<EnterQuery>) -> Response {
+    if s.dashboard.redeem(&q.code) {
+        with_session(&s, &safe_next(q.next.as_deref()))
+    } else {
+        (StatusCode::UNAUTHORIZED, page("Sign in", "<p>This sign-in link was used or has expired.</p>", false))
+            .into_response()
+    }
+}
+
+async fn overview(_: Viewer, State(s): State<AppState>) -> Result<Html<String>, ApiError> {
+    let mut b = String::from("<h2>Feeders</h2><table><tr><th>feeder</th><th>time zone</th><th>meters</th><th>readings</th><th>completeness</th><th>register reads</th><th>dither profile</th></tr>");
+    for f in s.store.feeder_summaries().await? {
+        let id = FeederId::parse(&f.feeder_id).map_err(ApiError::Invalid)?;
+        let tz = s.store.feeder_time_zone(&id).await?.unwrap_or_default();
+        let completeness = match s.store.feeder_span(&id).await? {
+            Some((a, z)) => {
+                let step = f.current_profile.as_ref().map_or(900, |p| i64::from(p.profile.interval_s.max(1)));
+                let expected = f.meters * ((z - a) / step + 1);
+                format!("{:.1}%", 100.0 * f.readings as f64 / expected.max(1) as f64)
+            }
+            None => "–".into(),
+        };
+        let profile = f
+            .current_profile
+            .as_ref()
+            .map(|p| match DitherProfile::try_from(p.profile.clone()) {
+                Ok(d) => format!("v{}: {}", p.version, d.describe()),
+                Err(e) => format!("v{}: invalid ({e})", p.version),
+            })
+            .unwrap_or_else(|| "none".into());
+        b += &format!(
+            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{completeness}</td><td>{}</td><td>{}</td></tr>",
+            esc(&f.feeder_id),
+            esc(&tz),
+            f.meters,
+            f.readings,
+            f.register_reads,
+            esc(&profile)
+        );
+    }
+    b += "</table><h2>Jobs</h2><table><tr><th>job</th><th>kind</th><th>state</th><th>progress</th><th>attempts</th><th>message</th></tr>";
+    let jobs = s.store.list_jobs(30).await?;
+    let live = jobs.iter().any(|j| j.state == "running" || j.state == "queued");
+    for j in &jobs {
+        let link = match (j.kind.as_str(), j.state.as_str()) {
+            ("recover", "done") => format!("<a href=\"/dashboard/recoveries/{0}\">{0}</a>", esc(&j.job_id)),
+            ("cluster", "done") => format!("<a href=\"/dashboard/clusterings/{0}\">{0}</a>", esc(&j.job_id)),
+            ("audit" | "calibrate", "done") => format!("<a href=\"/dashboard/analyses/{0}\">{0}</a>", esc(&j.job_id)),
+            _ => esc(&j.job_id),
+        };
+        b += &format!(
+            "<tr><td>{link}</td><td>{}</td><td>{}</td><td><progress max=\"1\" value=\"{:.3}\"></progress> {:.0}%</td><td>{}</td><td>{}</td></tr>",
+            esc(&j.kind),
+            esc(&j.state),
+            j.progress,
+            100.0 * j.progress,
+            j.attempts,
+            esc(j.error.as_deref().unwrap_or(&j.message))
+        );
+    }
+    b += "</table>";
+    if live {
+        b += "<p>This page refreshes every 5 seconds while jobs run.</p>";
+    }
+    Ok(page("Meterveil dashboard", &b, live))
+}
+
+#[derive(Deserialize)]
+struct MeterQuery {
+    meter_id: Option<String>,
+}
+
+async fn meter_page(
+    _: Viewer,
+    State(s): State<AppState>,
+    Path(id): Path<String>,
+    Query(q): Query<MeterQuery>,
+) -> Result<Html<String>, ApiError> {
+    let job = s.store.job(&id).await?.ok_or_else(|| {
+        ApiError::NotFound(meterveil_shared::FieldError::new("job_id", format!("no recovery job {id}")))
+    })?;
+    if job.state != "done" {
+        return Ok(page(&format!("Recovery {id}"), &format!("<p>The job is {}.</p>", esc(&job.state)), true));
+    }
+    let feeder = FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
+    let meters = s.store.meters_of(&feeder).await?;
+    let meter = q.meter_id.filter(|m| meters.contains(m)).or_else(|| meters.first().cloned()).unwrap_or_default();
+    let rows = s.store.job_rows(&id, Some(&meter)).await?;
+    tracing::info!(job = %id, meter = %meter, "dashboard per-meter view");
+    let week_end = job.window_start + 7 * 86_400;
+    let recovered: Vec<(i64, f64, f64, f64)> = rows
+        .iter()
+        .filter(|r| r.interval_start < week_end)
+        .map(|r| (r.interval_start, r.kw, r.kw_low, r.kw_high))
+        .collect();
+    let profile = s
+        .store
+        .profiles(&feeder)
+        .await?
+        .into_iter()
+        .find(|p| Some(i64::from(p.version.0)) == job.profile_version)
+        .map(|p| p.profile);
+    let bounds: Vec<f64> = profile.as_ref().map(|p| p.boundaries_kw().to_vec()).unwrap_or_default();
+    let levels: Vec<(i64, f64)> = s
+        .store
+        .meter_levels_between(&meter, job.window_start, week_end.min(job.window_end))
+        .await?
+        .into_iter()
+        .map(|(t, l)| (t, if l == 0 { 0.0 } else { bounds.get(usize::from(l) - 1).copied().unwrap_or(0.0) }))
+        .collect();
+    let mut b = format!(
+        "<p>Feeder {} · window starting {} (UTC epoch) · first 7 days shown.</p>",
+        esc(&job.feeder_id),
+        job.window_start
+    );
+    b += &profile_chart(&format!("Meter {meter}"), job.window_start, &recovered, &levels);
+    let counts = |f: &str| rows.iter().filter(|r| r.flag == f).count();
+    b += &format!(
+        "<p>Intervals: {} derived, {} estimated (no reading), {} corrected (reading judged corrupt).</p><h2>Meters</h2><p>",
+        counts("derived"),
+        counts("estimated"),
+        counts("corrected")
+    );
+    for m in &meters {
+        b += &format!("<a href=\"/dashboard/recoveries/{}?meter_id={1}\">{1}</a> ", esc(&id), esc(m));
+    }
+    b += "</p>";
+    Ok(page(&format!("Recovered profile of {meter}"), &b, false))
+}
+
+async fn clusters_page(_: Viewer, State(s): State<AppState>, Path(id): Path<String>) -> Result<Html<String>, ApiError> {
+    let job = s.store.analysis(&id).await?.ok_or_else(|| {
+        ApiError::NotFound(meterveil_shared::FieldError::new("job_id", format!("no clustering job {id}")))
+    })?;
+    let r = job.result.unwrap_or(Value::Null);
+    let interval_s = r["interval_s"].as_u64().unwrap_or(900).max(1) as f64;
+    let reps = r["representatives"].as_array().cloned().unwrap_or_default();
+    let series_of = |key: &str| -> Vec<(String, Vec<(f64, f64)>)> {
+        reps.iter()
+            .map(|c| {
+                let pts = c[key]
+                    .as_array()
+                    .map(|v| {
+                        v.iter()
+                            .enumerate()
+                            .map(|(i, x)| (i as f64 * interval_s / 3600.0, x.as_f64().unwrap_or(0.0)))
+                            .collect()
+                    })
+                    .unwrap_or_default();
+                (format!("cluster {} ({} customers)", c["cluster"], c["size"]), pts)
+            })
+            .collect()
+    };
+    let mut b = format!(
+        "<p>{} customers in {} clusters (count chosen by {}).</p>",
+        r["meters"],
+        r["clusters"],
+        esc(r["chosen_by"].as_str().unwrap_or("?"))
+    );
+    for (key, title) in [("weekday_kw", "Representative working day"), ("weekend_kw", "Representative weekend day")] {
+        let series = series_of(key);
+        let y = series.iter().flat_map(|s| s.1.iter().map(|p| p.1)).fold(0.5f64, f64::max) * 1.1;
+        let refs: Vec<(&str, Vec<(f64, f64)>)> = series.iter().map(|(n, v)| (n.as_str(), v.clone())).collect();
+        b += &line_chart(title, "hour of the day (UTC)", "kW", &refs, y);
+    }
+    Ok(page(&format!("Load-shape clusters {id}"), &b, false))
+}
+
+async fn analysis_page(_: Viewer, State(s): State<AppState>, Path(id): Path<String>) -> Result<Response, ApiError> {
+    let job = s.store.analysis(&id).await?.ok_or_else(|| {
+        ApiError::NotFound(meterveil_shared::FieldError::new("job_id", format!("no analysis job {id}")))
+    })?;
+    let result = job.result.unwrap_or(Value::Null);
+    let feeder = result["feeder_id"].as_str().unwrap_or("?").to_owned();
+    let bad = |e: serde_json::Error| ApiError::Internal(anyhow::anyhow!("stored result of {id} does not parse: {e}"));
+    let html = match job.kind.as_str() {
+        "audit" => crate::report::audit_html(
+            &format!("Privacy audit of feeder {feeder}"),
+            &serde_json::from_value(result).map_err(bad)?,
+        ),
+        "calibrate" => crate::report::calibration_html(
+            &format!("Dither calibration of feeder {feeder}"),
+            &serde_json::from_value(result).map_err(bad)?,
+        ),
+        other => return Err(ApiError::invalid("job_id", format!("a {other} job has no report page"))),
+    };
+    Ok(Html(html.replacen("<body>", "<body><p><a href=\"/dashboard\">Meterveil dashboard</a></p>", 1)).into_response())
+}
