@@ -25,6 +25,9 @@ struct TestService {
     svc: RunningService,
     _dir: tempfile::TempDir,
     http: reqwest::Client,
+    /// The key of gateway gw-1 once `small_feeder` provisioned it, and its next sequence number.
+    gw_key: std::sync::Mutex<Vec<u8>>,
+    seq: AtomicU64,
 }
 
 impl TestService {
@@ -34,6 +37,45 @@ impl TestService {
 
     async fn count(&self, sql: &str) -> i64 {
         sqlx::query_scalar(sql).fetch_one(self.svc.store.pool()).await.expect("count query")
+    }
+
+    /// Provisions `gateway` on `feeder`; returns its secret.
+    async fn provision(&self, gateway: &str, feeder: &str) -> Vec<u8> {
+        let (s, b) = self.post_json("/v1/gateways", &json!({"gateway_id": gateway, "feeder_id": feeder}), true).await;
+        assert_eq!(s, StatusCode::CREATED, "{b}");
+        hex::decode(b["secret"].as_str().expect("secret")).expect("hex")
+    }
+
+    /// Uploads `body` signed as gw-1 with the next sequence number.
+    async fn post_batch(&self, body: &Value) -> (StatusCode, Value) {
+        let seq = self.seq.fetch_add(1, Ordering::SeqCst) + 1;
+        let key = self.gw_key.lock().expect("key").clone();
+        self.post_signed(body.to_string().as_bytes(), "gw-1", seq, now_s(), &key).await
+    }
+
+    /// Uploads raw `body` with explicit signing fields.
+    async fn post_signed(&self, body: &[u8], gateway: &str, seq: u64, ts: i64, key: &[u8]) -> (StatusCode, Value) {
+        use meterveil_shared::auth::*;
+        let text = signing_text("POST", "/v1/ingest/batches", gateway, seq, ts, &body_sha256(body));
+        let resp = self
+            .http
+            .post(format!("{}/v1/ingest/batches", self.url()))
+            .header("content-type", "application/json")
+            .header(HEADER_GATEWAY, gateway)
+            .header(HEADER_SEQUENCE, seq.to_string())
+            .header(HEADER_TIMESTAMP, ts.to_string())
+            .header(HEADER_SIGNATURE, sign(key, &text))
+            .body(body.to_vec())
+            .send()
+            .await
+            .expect("request");
+        let status = StatusCode::from_u16(resp.status().as_u16()).expect("status");
+        let retry = resp.headers().get("retry-after").and_then(|v| v.to_str().ok()).map(str::to_owned);
+        let mut body = resp.json::<Value>().await.unwrap_or(Value::Null);
+        if let Some(r) = retry {
+            body["retry_after_header"] = r.into();
+        }
+        (status, body)
     }
 
     async fn post_json(&self, path: &str, body: &Value, operator: bool) -> (StatusCode, Value) {
@@ -54,7 +96,7 @@ async fn spawn_service_with(tweak: impl FnOnce(&mut ServiceConfig)) -> TestServi
         ServiceConfig::local(format!("sqlite:{}", dir.path().join("svc.sqlite").display()), Secret::new(TOKEN));
     tweak(&mut config);
     let svc = app::start(config).await.expect("service starts");
-    TestService { svc, _dir: dir, http: reqwest::Client::new() }
+    TestService { svc, _dir: dir, http: reqwest::Client::new(), gw_key: Default::default(), seq: AtomicU64::new(0) }
 }
 
 async fn spawn_service() -> TestService {
@@ -76,6 +118,7 @@ async fn small_feeder(t: &TestService) {
     let profile = json!({"noise": "gaussian", "scale_kw": 0.3, "boundaries_kw": [1.0, 2.0], "interval_s": 900, "send_registers": true});
     let (s, body) = t.post_json("/v1/feeders/F1/profiles", &profile, true).await;
     assert_eq!(s, StatusCode::CREATED, "{body}");
+    *t.gw_key.lock().expect("key") = t.provision("gw-1", "F1").await;
 }
 
 /// A reverse proxy that fails some uploads: every `before`-th request is answered
@@ -254,7 +297,7 @@ fn batch(id: &str, readings: Vec<Value>) -> Value {
 }
 
 async fn assert_rejected(t: &TestService, body: &Value, status: StatusCode, field: &str, reason_part: &str) {
-    let (s, resp) = t.post_json("/v1/ingest/batches", body, false).await;
+    let (s, resp) = t.post_batch(body).await;
     assert_eq!(s, status, "{resp}");
     assert_eq!(resp["field"], field, "{resp}");
     assert!(resp["reason"].as_str().unwrap_or("").contains(reason_part), "{resp}");
@@ -283,9 +326,9 @@ async fn bad_batches_are_refused_with_the_field_and_reason_and_store_nothing() {
         ),
         (
             json!({"batch_id": "b", "gateway_id": "gw-1", "feeder_id": "F9", "readings": [good_reading(ok)]}),
-            StatusCode::UNPROCESSABLE_ENTITY,
+            StatusCode::FORBIDDEN,
             "feeder_id",
-            "not registered",
+            "serves feeder F1, not F9",
         ),
         (
             batch(
@@ -364,7 +407,7 @@ async fn bad_batches_are_refused_with_the_field_and_reason_and_store_nothing() {
     for (body, status, field, reason) in &cases {
         assert_rejected(&t, body, *status, field, reason).await;
     }
-    let (s, _) = t.post_json("/v1/ingest/batches", &batch("b", vec![good_reading(ok)]), false).await;
+    let (s, _) = t.post_batch(&batch("b", vec![good_reading(ok)])).await;
     assert_eq!(s, StatusCode::OK, "a good batch is still accepted afterwards");
     let m = t.http.get(format!("{}/metrics", t.url())).send().await.expect("metrics").text().await.expect("text");
     assert!(m.contains(&format!("meterveil_ingest_batches_total{{outcome=\"rejected\"}} {}", cases.len())), "{m}");
@@ -393,7 +436,7 @@ async fn stale_profile_versions_are_refused() {
             json!({"meter_id": "m2", "interval_start": next, "level": 3, "profile_version": 2}),
         ],
     );
-    assert_eq!(t.post_json("/v1/ingest/batches", &body, false).await.0, StatusCode::OK);
+    assert_eq!(t.post_batch(&body).await.0, StatusCode::OK);
 }
 
 #[tokio::test]
@@ -401,20 +444,19 @@ async fn batches_are_idempotent_and_used_profiles_immutable() {
     let t = spawn_service().await;
     small_feeder(&t).await;
     let b = batch("batch-1", vec![good_reading(aligned_past(3)), good_reading(aligned_past(2))]);
-    let (s, first) = t.post_json("/v1/ingest/batches", &b, false).await;
+    let (s, first) = t.post_batch(&b).await;
     assert_eq!(s, StatusCode::OK);
     assert_eq!(first["stored_readings"], 2);
-    let (s, again) = t.post_json("/v1/ingest/batches", &b, false).await;
+    let (s, again) = t.post_batch(&b).await;
     assert_eq!((s, &again), (StatusCode::OK, &first), "a replay gets the same acknowledgement");
     assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 2);
     // Same batch id, different body.
     let other = batch("batch-1", vec![good_reading(aligned_past(5))]);
-    let (s, body) = t.post_json("/v1/ingest/batches", &other, false).await;
+    let (s, body) = t.post_batch(&other).await;
     assert_eq!(s, StatusCode::CONFLICT, "{body}");
     assert_eq!(body["field"], "batch_id");
     // A new batch repeating a stored (meter, interval) stores it once.
-    let (s, ack) =
-        t.post_json("/v1/ingest/batches", &batch("batch-2", vec![good_reading(aligned_past(2))]), false).await;
+    let (s, ack) = t.post_batch(&batch("batch-2", vec![good_reading(aligned_past(2))])).await;
     assert_eq!(s, StatusCode::OK);
     assert_eq!((ack["stored_readings"].as_u64(), ack["duplicate_readings"].as_u64()), (Some(0), Some(1)));
     assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 2);
@@ -498,9 +540,12 @@ async fn no_raw_reading_is_stored_in_the_outbox_or_the_service() {
     small_feeder(&t).await;
     let dir = tempfile::tempdir().expect("tempdir");
     let outbox_path = dir.path().join("gw.sqlite");
+    let key = meterveil_gateway::gateway::GatewayKey::from_hex(&hex::encode(t.gw_key.lock().expect("key").clone()))
+        .expect("key");
     let identity = GatewayIdentity {
         gateway_id: GatewayId::parse("gw-1").expect("id"),
         feeder_id: FeederId::parse("F1").expect("id"),
+        key,
     };
     let client = ServiceClient::new(&t.url(), std::time::Duration::from_secs(5)).expect("client");
     let mut gw = Gateway::open(identity, &outbox_path, client).await.expect("gateway");
@@ -558,7 +603,8 @@ async fn gateway_run_reads_a_file_once_and_reports_bad_lines() {
     let input = dir.path().join("export.csv");
     std::fs::write(&input, &csv).expect("write");
     let config_text = format!(
-        "gateway_id = \"gw-1\"\nfeeder_id = \"F1\"\nservice_url = \"{}\"\noutbox = \"{}\"\n[source]\nkind = \"file\"\npath = \"{}\"\n[upload]\nbatch_max = 96\n",
+        "gateway_id = \"gw-1\"\nfeeder_id = \"F1\"\nsecret = \"{}\"\nservice_url = \"{}\"\noutbox = \"{}\"\n[source]\nkind = \"file\"\npath = \"{}\"\n[upload]\nbatch_max = 96\n",
+        hex::encode(t.gw_key.lock().expect("key").clone()),
         t.url(),
         dir.path().join("outbox.sqlite").display(),
         input.display()
@@ -1077,6 +1123,7 @@ fn serve_child(db: &std::path::Path, lease_s: u32) -> (std::process::Child, Stri
     use std::io::BufRead;
     let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
         .args(["serve", "--bind", "127.0.0.1:0", "--operator-token", TOKEN, "--job-lease-s", &lease_s.to_string()])
+        .args(["--gateway-master-key", "test-master-key-0123456789abcdef0123456789"])
         .arg("--database-url")
         .arg(format!("sqlite:{}", db.display()))
         .stdout(std::process::Stdio::piped())
@@ -1326,4 +1373,121 @@ async fn dashboard_pages_render_in_a_real_browser() {
         let r = plain.get(&urls[0]).send().await.expect("get");
         assert_eq!(r.status().as_u16(), 401);
     }
+}
+
+/// Nothing of a refused upload is stored: no reading, no batch, no sequence number.
+async fn nothing_stored(t: &TestService) {
+    assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 0, "nothing stored");
+    assert_eq!(t.count("SELECT COUNT(*) FROM ingest_batches").await, 0, "no batch recorded");
+    assert_eq!(t.count("SELECT COUNT(*) FROM gateway_sequences").await, 0, "no sequence recorded");
+}
+
+fn refused(s: StatusCode, body: &Value, status: StatusCode, field: &str, reason_part: &str) {
+    assert_eq!(s, status, "{body}");
+    assert_eq!(body["field"], field, "{body}");
+    assert!(body["reason"].as_str().unwrap_or("").contains(reason_part), "{body}");
+}
+
+#[tokio::test]
+async fn unsigned_forged_stale_reused_and_foreign_uploads_are_refused() {
+    let t = spawn_service_with(|c| {
+        c.gateway_burst = 12.0;
+        c.gateway_batches_per_s = 0.01;
+    })
+    .await;
+    small_feeder(&t).await;
+    let key = t.gw_key.lock().expect("key").clone();
+    let body = batch("b1", vec![good_reading(aligned_past(3))]).to_string();
+    let b = body.as_bytes();
+
+    // No signature at all.
+    let (s, r) = t.post_json("/v1/ingest/batches", &batch("b1", vec![good_reading(aligned_past(3))]), false).await;
+    refused(s, &r, StatusCode::UNAUTHORIZED, "x-meterveil-gateway", "is missing");
+    // Unknown gateway.
+    let (s, r) = t.post_signed(b, "gw-nobody", 1, now_s(), &key).await;
+    refused(s, &r, StatusCode::UNAUTHORIZED, "x-meterveil-gateway", "not provisioned");
+    // Wrong key.
+    let (s, r) = t.post_signed(b, "gw-1", 1, now_s(), b"not-the-key-of-gw-1-0123456789").await;
+    refused(s, &r, StatusCode::UNAUTHORIZED, "x-meterveil-signature", "does not match");
+    // A body altered after signing.
+    {
+        use meterveil_shared::auth::*;
+        let text = signing_text("POST", "/v1/ingest/batches", "gw-1", 1, now_s(), &body_sha256(b));
+        let altered = body.replace("\"level\":1", "\"level\":2");
+        let resp = t
+            .http
+            .post(format!("{}/v1/ingest/batches", t.url()))
+            .header(HEADER_GATEWAY, "gw-1")
+            .header(HEADER_SEQUENCE, "1")
+            .header(HEADER_TIMESTAMP, now_s().to_string())
+            .header(HEADER_SIGNATURE, sign(&key, &text))
+            .body(altered)
+            .send()
+            .await
+            .expect("send");
+        assert_eq!(resp.status().as_u16(), 401);
+    }
+    // A timestamp six minutes off: the message tells the service's time.
+    let (s, r) = t.post_signed(b, "gw-1", 1, now_s() - 360, &key).await;
+    refused(s, &r, StatusCode::UNAUTHORIZED, "x-meterveil-timestamp", "from the service's clock");
+    assert!(r["reason"].as_str().unwrap_or("").contains(&(now_s() / 100).to_string()), "{r}");
+    // A feeder the gateway does not serve, and a meter of another feeder.
+    assert_eq!(t.post_json("/v1/feeders", &json!({"feeder_id": "F2"}), true).await.0, StatusCode::CREATED);
+    assert_eq!(t.post_json("/v1/feeders/F2/meters", &json!({"meter_ids": ["x9"]}), true).await.0, StatusCode::OK);
+    let other_feeder =
+        json!({"batch_id": "b2", "gateway_id": "gw-1", "feeder_id": "F2", "readings": [good_reading(aligned_past(3))]});
+    let (s, r) = t.post_signed(other_feeder.to_string().as_bytes(), "gw-1", 1, now_s(), &key).await;
+    refused(s, &r, StatusCode::FORBIDDEN, "feeder_id", "serves feeder F1");
+    let foreign_meter = batch(
+        "b3",
+        vec![json!({"meter_id": "x9", "interval_start": aligned_past(3), "level": 1, "profile_version": 1})],
+    );
+    let (s, r) = t.post_signed(foreign_meter.to_string().as_bytes(), "gw-1", 1, now_s(), &key).await;
+    refused(s, &r, StatusCode::FORBIDDEN, "meter_id", "on feeder F2");
+    // A batch naming another gateway than the one that signed it.
+    let impostor =
+        json!({"batch_id": "b4", "gateway_id": "gw-2", "feeder_id": "F1", "readings": [good_reading(aligned_past(3))]});
+    let (s, r) = t.post_signed(impostor.to_string().as_bytes(), "gw-1", 1, now_s(), &key).await;
+    refused(s, &r, StatusCode::FORBIDDEN, "gateway_id", "signed by gw-1");
+    nothing_stored(&t).await;
+
+    // Accepted once; the same upload again is answered with the same acknowledgement.
+    let (s, first) = t.post_signed(b, "gw-1", 5, now_s(), &key).await;
+    assert_eq!(s, StatusCode::OK, "{first}");
+    let (s, again) = t.post_signed(b, "gw-1", 5, now_s(), &key).await;
+    assert_eq!((s, &again), (StatusCode::OK, &first));
+    assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 1);
+    // Sequence 5 with another body; and a fresh body under an old number.
+    let other = batch("b5", vec![good_reading(aligned_past(4))]).to_string();
+    let (s, r) = t.post_signed(other.as_bytes(), "gw-1", 5, now_s(), &key).await;
+    refused(s, &r, StatusCode::CONFLICT, "x-meterveil-sequence", "already used with another body");
+    let (s, r) = t.post_signed(other.as_bytes(), "gw-1", 4, now_s(), &key).await;
+    refused(s, &r, StatusCode::CONFLICT, "x-meterveil-sequence", "not above");
+    assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 1, "the refused uploads stored nothing");
+    assert_eq!(t.count("SELECT COUNT(*) FROM gateway_sequences").await, 1);
+
+    // Over the rate: the burst of 12 is spent, and Retry-After says when to come back.
+    let mut limited = None;
+    for i in 0..12 {
+        let (s, r) = t.post_signed(other.as_bytes(), "gw-1", 100 + i, now_s(), &key).await;
+        if s == StatusCode::TOO_MANY_REQUESTS {
+            limited = Some(r);
+            break;
+        }
+    }
+    let r = limited.expect("the rate limit answered 429");
+    refused(
+        StatusCode::TOO_MANY_REQUESTS,
+        &r,
+        StatusCode::TOO_MANY_REQUESTS,
+        "x-meterveil-gateway",
+        "over its upload rate",
+    );
+    assert!(r["retry_after_header"].as_str().and_then(|v| v.parse::<u64>().ok()).is_some_and(|v| v >= 1), "{r}");
+
+    // Rotating the key locks the old one out.
+    let new_key = t.provision("gw-1", "F1").await;
+    assert_ne!(new_key, key);
+    let (s, r) = t.post_signed(other.as_bytes(), "gw-1", 200, now_s(), &key).await;
+    refused(s, &r, StatusCode::UNAUTHORIZED, "x-meterveil-signature", "does not match");
 }

@@ -34,7 +34,9 @@ impl ServiceClient {
         let status = resp.status().as_u16();
         let text = resp.text().await.unwrap_or_default();
         let reason = serde_json::from_str::<ErrorWire>(&text).map(|e| e.message).unwrap_or(text);
-        if status >= 500 || status == 408 || status == 429 {
+        // 401 too: a clock off by minutes or a key being rotated is fixed by the
+        // operator, and the rows must wait in the outbox meanwhile, not be refused.
+        if status >= 500 || status == 408 || status == 429 || status == 401 {
             UploadError::Transient(format!("{status}: {reason}"))
         } else {
             UploadError::Refused { status, reason }
@@ -51,9 +53,36 @@ impl ServiceClient {
         resp.json().await.map_err(|e| UploadError::Transient(format!("profile body: {e}")))
     }
 
-    pub async fn post_batch(&self, batch: &BatchWire) -> Result<AckWire, UploadError> {
-        let url = format!("{}/v1/ingest/batches", self.base);
-        let resp = self.http.post(url).json(batch).send().await.map_err(|e| UploadError::Transient(e.to_string()))?;
+    /// Uploads a batch signed with the gateway's key under `sequence`.
+    pub async fn post_batch(
+        &self,
+        batch: &BatchWire,
+        sequence: i64,
+        key: &crate::gateway::GatewayKey,
+    ) -> Result<AckWire, UploadError> {
+        use meterveil_shared::auth::{
+            body_sha256, sign, signing_text, HEADER_GATEWAY, HEADER_SEQUENCE, HEADER_SIGNATURE, HEADER_TIMESTAMP,
+        };
+        let path = "/v1/ingest/batches";
+        let url = format!("{}{path}", self.base);
+        let body = serde_json::to_vec(batch).map_err(|e| UploadError::Transient(format!("encoding: {e}")))?;
+        let now = std::time::SystemTime::now()
+            .duration_since(std::time::UNIX_EPOCH)
+            .map(|d| d.as_secs() as i64)
+            .unwrap_or_default();
+        let text = signing_text("POST", path, &batch.gateway_id, sequence as u64, now, &body_sha256(&body));
+        let resp = self
+            .http
+            .post(url)
+            .header(reqwest::header::CONTENT_TYPE, "application/json")
+            .header(HEADER_GATEWAY, &batch.gateway_id)
+            .header(HEADER_SEQUENCE, sequence.to_string())
+            .header(HEADER_TIMESTAMP, now.to_string())
+            .header(HEADER_SIGNATURE, sign(key.bytes(), &text))
+            .body(body)
+            .send()
+            .await
+            .map_err(|e| UploadError::Transient(e.to_string()))?;
         if !resp.status().is_success() {
             return Err(Self::classify(resp).await);
         }

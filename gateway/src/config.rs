@@ -59,6 +59,10 @@ fn default_refresh_s() -> u64 {
 struct RawConfig {
     gateway_id: String,
     feeder_id: String,
+    /// The hex secret shown when the gateway was provisioned; or set
+    /// METERVEIL_GATEWAY_SECRET instead of writing it here.
+    #[serde(default)]
+    secret: Option<String>,
     service_url: String,
     outbox: PathBuf,
     source: SourceConfig,
@@ -88,9 +92,14 @@ impl GatewayConfig {
 
     pub fn parse(text: &str) -> anyhow::Result<Self> {
         let raw: RawConfig = toml::from_str(text)?;
+        let secret = match raw.secret.clone().or_else(|| std::env::var("METERVEIL_GATEWAY_SECRET").ok()) {
+            Some(s) => s,
+            None => anyhow::bail!("secret: missing; give the provisioned secret here or in METERVEIL_GATEWAY_SECRET"),
+        };
         let identity = GatewayIdentity {
             gateway_id: GatewayId::parse(&raw.gateway_id)?,
             feeder_id: FeederId::parse(&raw.feeder_id)?,
+            key: crate::gateway::GatewayKey::from_hex(&secret)?,
         };
         if !(raw.service_url.starts_with("http://") || raw.service_url.starts_with("https://")) {
             anyhow::bail!("service_url: {:?} must start with http:// or https://", raw.service_url);
@@ -122,6 +131,7 @@ mod tests {
     const OK: &str = r#"
 gateway_id = "gw-1"
 feeder_id = "F-1"
+secret = "00112233445566778899aabbccddeeff00112233445566778899aabbccddeeff"
 service_url = "http://127.0.0.1:9"
 outbox = "/tmp/x.sqlite"
 [source]
@@ -142,6 +152,8 @@ max_ms = 100
         assert!(GatewayConfig::parse(&bad).unwrap_err().to_string().contains("source.path"));
         let bad = OK.replace("gw-1", "gw 1");
         assert!(format!("{:#}", GatewayConfig::parse(&bad).unwrap_err()).contains("gateway_id"));
+        let bad = OK.replace("secret = \"0011", "secret = \"zz11");
+        assert!(GatewayConfig::parse(&bad).unwrap_err().to_string().contains("secret"));
         let bad = OK.replace("http://127", "ftp://127");
         assert!(GatewayConfig::parse(&bad).unwrap_err().to_string().contains("service_url"));
     }

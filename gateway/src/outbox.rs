@@ -29,6 +29,8 @@ pub struct Outbox {
 #[derive(Debug, Clone)]
 pub struct ClaimedBatch {
     pub batch_id: String,
+    /// The gateway's sequence number for this upload (the same on every retry).
+    pub sequence: i64,
     pub attempts: i64,
     pub readings: Vec<ReadingWire>,
     pub registers: Vec<RegisterWire>,
@@ -175,12 +177,22 @@ impl Outbox {
     /// readings (and up to `max_rows` register reads). `None` when nothing waits.
     pub async fn claim(&self, max_rows: usize) -> anyhow::Result<Option<ClaimedBatch>> {
         let mut tx = self.pool.begin().await?;
-        let open: Option<(String, i64)> =
-            sqlx::query_as("SELECT batch_id, attempts FROM open_batches ORDER BY created_at, rowid LIMIT 1")
+        let open: Option<(String, i64, Option<i64>)> =
+            sqlx::query_as("SELECT batch_id, attempts, sequence FROM open_batches ORDER BY created_at, rowid LIMIT 1")
                 .fetch_optional(&mut *tx)
                 .await?;
-        let (batch_id, attempts) = match open {
-            Some(b) => b,
+        let (batch_id, attempts, sequence) = match open {
+            Some((id, attempts, Some(seq))) => (id, attempts, seq),
+            Some((id, attempts, None)) => {
+                // A batch opened before sequence numbers existed.
+                let seq = next_sequence(&mut tx).await?;
+                sqlx::query("UPDATE open_batches SET sequence = ? WHERE batch_id = ?")
+                    .bind(seq)
+                    .bind(&id)
+                    .execute(&mut *tx)
+                    .await?;
+                (id, attempts, seq)
+            }
             None => {
                 let id = uuid::Uuid::new_v4().to_string();
                 let limit = max_rows as i64;
@@ -205,12 +217,14 @@ impl Outbox {
                 if n + g == 0 {
                     return Ok(None);
                 }
-                sqlx::query("INSERT INTO open_batches (batch_id, created_at) VALUES (?, ?)")
+                let seq = next_sequence(&mut tx).await?;
+                sqlx::query("INSERT INTO open_batches (batch_id, created_at, sequence) VALUES (?, ?, ?)")
                     .bind(&id)
                     .bind(now_s())
+                    .bind(seq)
                     .execute(&mut *tx)
                     .await?;
-                (id, 0)
+                (id, 0, seq)
             }
         };
         let readings = sqlx::query(
@@ -246,7 +260,7 @@ impl Outbox {
         })
         .collect::<Result<Vec<_>, sqlx::Error>>()?;
         tx.commit().await?;
-        Ok(Some(ClaimedBatch { batch_id, attempts, readings, registers }))
+        Ok(Some(ClaimedBatch { batch_id, sequence, attempts, readings, registers }))
     }
 
     /// The service acknowledged the batch: its rows may go.
@@ -319,4 +333,11 @@ impl Outbox {
             .await?;
         rec.map(|r| serde_json::from_str(&r).context("cached profile")).transpose()
     }
+}
+
+/// Takes the gateway's next upload sequence number inside `tx`.
+async fn next_sequence(tx: &mut sqlx::Transaction<'_, sqlx::Sqlite>) -> anyhow::Result<i64> {
+    Ok(sqlx::query_scalar("UPDATE upload_sequence SET last = last + 1 WHERE id = 1 RETURNING last")
+        .fetch_one(&mut **tx)
+        .await?)
 }

@@ -81,7 +81,7 @@ impl Uploader {
                 continue;
             };
             let wire = batch.to_wire(self.identity.gateway_id.as_str(), self.identity.feeder_id.as_str());
-            match self.client.post_batch(&wire).await {
+            match self.client.post_batch(&wire, batch.sequence, &self.identity.key).await {
                 Ok(ack) => {
                     self.outbox.acknowledge(&batch.batch_id).await?;
                     failures = 0;

@@ -3,6 +3,7 @@
 //! core. Pure computation: no async runtime, no database, no HTTP.
 
 pub mod audit;
+pub mod auth;
 pub mod calibrate;
 pub mod cluster;
 pub mod domain;

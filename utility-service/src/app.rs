@@ -72,6 +72,7 @@ pub async fn start_with_store(
         metrics: metrics.clone(),
         wake: Arc::new(tokio::sync::Notify::new()),
         dashboard: Default::default(),
+        buckets: Default::default(),
     };
     let dashboard = state.dashboard.clone();
     let worker = state.config.run_worker.then(|| tokio::spawn(crate::jobs::worker::run(state.clone())));

@@ -36,6 +36,10 @@ pub enum Command {
         /// Largest accepted request body, bytes.
         #[arg(long, default_value_t = 4 * 1024 * 1024)]
         body_limit_bytes: usize,
+        /// Master key the gateways' signing keys are derived from (at least 32
+        /// characters; keep it secret and stable: changing it invalidates every gateway).
+        #[arg(long, env = "METERVEIL_GATEWAY_MASTER_KEY", hide_env_values = true)]
+        gateway_master_key: String,
         /// Serve HTTP only; leave the jobs to `utility-service work` processes.
         #[arg(long)]
         no_worker: bool,
@@ -235,6 +239,7 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
                 metrics: Default::default(),
                 wake: Default::default(),
                 dashboard: Default::default(),
+                buckets: Default::default(),
             };
             println!("worker {} started", state.store.worker_id());
             tokio::select! {
@@ -244,14 +249,26 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
             Ok(())
         }
         Command::Jobs { database_url, action } => jobs_command(&database_url, action).await,
-        Command::Serve { bind, database_url, operator_token, body_limit_bytes, no_worker, job_lease_s } => {
+        Command::Serve {
+            bind,
+            database_url,
+            operator_token,
+            body_limit_bytes,
+            gateway_master_key,
+            no_worker,
+            job_lease_s,
+        } => {
             if operator_token.len() < 16 {
                 anyhow::bail!("--operator-token: use at least 16 characters");
+            }
+            if gateway_master_key.len() < 32 {
+                anyhow::bail!("--gateway-master-key: use at least 32 characters");
             }
             let mut config = ServiceConfig::local(database_url, Secret::new(operator_token));
             config.bind = bind;
             config.body_limit_bytes = body_limit_bytes;
             config.run_worker = !no_worker;
+            config.gateway_master_key = Secret::new(gateway_master_key);
             config.job_lease_s = job_lease_s;
             let store = crate::store::Store::open(&config.database_url).await?;
             let until = Box::pin(async {

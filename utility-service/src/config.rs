@@ -46,6 +46,13 @@ pub struct ServiceConfig {
     pub job_lease_s: i64,
     /// A job whose worker died this many times fails instead of running again.
     pub job_max_attempts: i64,
+    /// Master key the gateways' keys are derived from (never stored in the database).
+    pub gateway_master_key: Secret,
+    /// How far (seconds) a signed upload's timestamp may be from the service's clock.
+    pub signature_window_s: i64,
+    /// Per-gateway upload rate: batches per second sustained, and the burst allowed.
+    pub gateway_batches_per_s: f64,
+    pub gateway_burst: f64,
 }
 
 impl ServiceConfig {
@@ -61,6 +68,18 @@ impl ServiceConfig {
             run_worker: true,
             job_lease_s: 30,
             job_max_attempts: 3,
+            gateway_master_key: Secret::new(random_key()),
+            signature_window_s: 300,
+            gateway_batches_per_s: 20.0,
+            gateway_burst: 40.0,
         }
     }
+}
+
+/// A random 256-bit key, hex: the master key of a service started without one
+/// (demos and tests; its gateways must be provisioned again after a restart).
+pub fn random_key() -> String {
+    use rand::Rng;
+    let mut r = rand::rng();
+    (0..4).map(|_| format!("{:016x}", r.random::<u64>())).collect()
 }

@@ -127,7 +127,10 @@ pub async fn run(opts: &DemoOptions) -> anyhow::Result<DemoSummary> {
     if opts.stay_up {
         print!("{}", render(&summary));
         let code = svc.dashboard_link("/dashboard");
-        println!("\n  Dashboard: {}{code}\n  (a one-time sign-in link; later sign in at {}/dashboard/login with the operator token)", svc.url(), svc.url());
+        println!(
+            "\n  Dashboard: {}{code}\n  (a one-time sign-in link, valid for two minutes; the session it opens lasts eight hours)",
+            svc.url()
+        );
         println!("  The service stays up until Ctrl-C.");
         let _ = tokio::signal::ctrl_c().await;
     }

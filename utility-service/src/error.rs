@@ -23,9 +23,16 @@ pub enum ApiError {
     /// Body over the limit (413).
     #[error("{0}")]
     TooLarge(FieldError),
-    /// Missing or wrong operator token (401).
+    /// Missing or wrong operator token, or a gateway signature that fails (401).
     #[error("{0}")]
     Unauthorized(FieldError),
+    /// Authenticated, but not allowed this (403): a gateway writing for a feeder
+    /// or meter it does not serve.
+    #[error("{0}")]
+    Forbidden(FieldError),
+    /// Over the per-gateway rate (429), with the seconds to wait.
+    #[error("{0}")]
+    TooMany(FieldError, u64),
     /// Anything else: logged, answered with an opaque 500.
     #[error(transparent)]
     Internal(#[from] anyhow::Error),
@@ -40,6 +47,8 @@ impl ApiError {
             ApiError::NotFound(_) => StatusCode::NOT_FOUND,
             ApiError::TooLarge(_) => StatusCode::PAYLOAD_TOO_LARGE,
             ApiError::Unauthorized(_) => StatusCode::UNAUTHORIZED,
+            ApiError::Forbidden(_) => StatusCode::FORBIDDEN,
+            ApiError::TooMany(..) => StatusCode::TOO_MANY_REQUESTS,
             ApiError::Internal(_) => StatusCode::INTERNAL_SERVER_ERROR,
         }
     }
@@ -58,13 +67,19 @@ impl From<sqlx::Error> for ApiError {
 impl IntoResponse for ApiError {
     fn into_response(self) -> Response {
         let status = self.status();
+        let retry_after = match &self {
+            ApiError::TooMany(_, s) => Some(*s),
+            _ => None,
+        };
         let fe = match self {
             ApiError::Malformed(f)
             | ApiError::Invalid(f)
             | ApiError::Conflict(f)
             | ApiError::NotFound(f)
             | ApiError::TooLarge(f)
-            | ApiError::Unauthorized(f) => f,
+            | ApiError::Unauthorized(f)
+            | ApiError::Forbidden(f)
+            | ApiError::TooMany(f, _) => f,
             ApiError::Internal(e) => {
                 tracing::error!(error = ?e, "internal error");
                 FieldError::new("", "internal error; see the service log")
@@ -72,6 +87,12 @@ impl IntoResponse for ApiError {
         };
         let message = if fe.field.is_empty() { fe.reason.clone() } else { fe.to_string() };
         let body = ErrorWire { field: fe.field, reason: fe.reason, message };
-        (status, Json(body)).into_response()
+        let mut resp = (status, Json(body)).into_response();
+        if let Some(s) = retry_after {
+            if let Ok(v) = axum::http::HeaderValue::from_str(&s.max(1).to_string()) {
+                resp.headers_mut().insert(axum::http::header::RETRY_AFTER, v);
+            }
+        }
+        resp
     }
 }

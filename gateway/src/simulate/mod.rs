@@ -185,9 +185,12 @@ pub async fn run(opts: &SimulateOptions) -> anyhow::Result<SimulationReport> {
         for (g, group) in members.chunks(opts.meters_per_gateway.max(1)).enumerate() {
             gateways += 1;
             let gateway_id = format!("{}-GW{:02}", f.feeder_id, g + 1);
+            let key =
+                provision_gateway(&opts.service_url, opts.operator_token.as_deref(), &gateway_id, &f.feeder_id).await?;
             let identity = GatewayIdentity {
                 gateway_id: GatewayId::parse(&gateway_id)?,
                 feeder_id: FeederId::parse(&f.feeder_id)?,
+                key,
             };
             let outbox = opts.work_dir.join(format!("{gateway_id}.outbox.sqlite"));
             let group: Vec<town::Household> = group.iter().map(|h| (*h).clone()).collect();
@@ -253,4 +256,26 @@ async fn run_gateway(
     let _ = done_tx.send(true);
     let (_, stats) = up.await.context("uploader")??;
     Ok((generated, levels, registers, stats))
+}
+
+/// Provisions a simulated gateway through the service's operator endpoint.
+async fn provision_gateway(
+    base: &str,
+    token: Option<&str>,
+    gateway_id: &str,
+    feeder_id: &str,
+) -> anyhow::Result<crate::gateway::GatewayKey> {
+    let token = token.context("the simulation needs the operator token to provision its gateways")?;
+    let r = reqwest::Client::new()
+        .post(format!("{base}/v1/gateways"))
+        .bearer_auth(token)
+        .json(&serde_json::json!({ "gateway_id": gateway_id, "feeder_id": feeder_id }))
+        .send()
+        .await?;
+    let status = r.status();
+    let body: serde_json::Value = r.json().await.unwrap_or_default();
+    if !status.is_success() {
+        anyhow::bail!("provisioning gateway {gateway_id}: {status} {body}");
+    }
+    crate::gateway::GatewayKey::from_hex(body["secret"].as_str().unwrap_or(""))
 }

@@ -63,7 +63,10 @@ impl Sessions {
     pub fn one_time_link(&self, next: &str) -> String {
         let code = self.mint();
         let next = safe_next(Some(next));
-        format!("/dashboard/enter?code={code}&next={}", next.replace('&', "%26").replace('?', "%3F").replace('=', "%3D"))
+        format!(
+            "/dashboard/enter?code={code}&next={}",
+            next.replace('&', "%26").replace('?', "%3F").replace('=', "%3D")
+        )
     }
     fn redeem(&self, code: &str) -> bool {
         self.codes.lock().map(|mut c| c.remove(code).is_some_and(|exp| exp > now_s())).unwrap_or(false)

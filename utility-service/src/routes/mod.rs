@@ -30,6 +30,8 @@ pub struct AppState {
     pub wake: Arc<tokio::sync::Notify>,
     /// Dashboard sessions and one-time sign-in codes.
     pub dashboard: Arc<dashboard::Sessions>,
+    /// Per-gateway upload rate buckets.
+    pub buckets: Arc<ingest::Buckets>,
 }
 
 pub fn router(state: AppState) -> Router {

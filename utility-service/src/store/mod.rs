@@ -20,7 +20,9 @@ use crate::error::ApiError;
 use crate::ingest::ValidatedBatch;
 
 pub mod analyses;
+pub mod gateways;
 pub mod queue;
+
 pub mod recoveries;
 
 /// Rows per multi-row INSERT; 1000 rows of 5 values stays far below SQLite's
@@ -287,12 +289,43 @@ impl Store {
     }
 
     /// Stores a validated batch atomically: all of its rows or none.
-    pub async fn commit_batch(&self, b: &ValidatedBatch, now: i64) -> Result<CommitOutcome, ApiError> {
+    /// Stores a validated batch in one transaction; with `sequence`, the signed
+    /// upload's (gateway, sequence) is recorded in the same transaction, and a
+    /// number that is not above the gateway's last accepted one is refused (409).
+    pub async fn commit_batch(
+        &self,
+        b: &ValidatedBatch,
+        sequence: Option<i64>,
+        now: i64,
+    ) -> Result<CommitOutcome, ApiError> {
         let _w = self.writer.lock().await;
         if let Some(existing) = self.find_batch(&b.batch_id).await? {
             return Ok(CommitOutcome::AlreadyStored(existing));
         }
         let mut tx = self.pool.begin().await?;
+        if let Some(seq) = sequence {
+            let moved =
+                sqlx::query("UPDATE gateways SET last_sequence = ?1 WHERE gateway_id = ?2 AND last_sequence < ?1")
+                    .bind(seq)
+                    .bind(b.gateway_id.as_str())
+                    .execute(&mut *tx)
+                    .await?;
+            if moved.rows_affected() != 1 {
+                return Err(ApiError::Conflict(meterveil_shared::FieldError::new(
+                    "x-meterveil-sequence",
+                    format!("sequence {seq} is not above the last one this gateway had accepted"),
+                )));
+            }
+            sqlx::query(
+                "INSERT INTO gateway_sequences (gateway_id, sequence, body_sha256, batch_id) VALUES (?, ?, ?, ?)",
+            )
+            .bind(b.gateway_id.as_str())
+            .bind(seq)
+            .bind(&b.body_sha256)
+            .bind(&b.batch_id)
+            .execute(&mut *tx)
+            .await?;
+        }
         let mut stored_readings = 0;
         for chunk in b.readings.chunks(INSERT_CHUNK) {
             let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
