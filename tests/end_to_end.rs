@@ -1491,3 +1491,48 @@ async fn unsigned_forged_stale_reused_and_foreign_uploads_are_refused() {
     let (s, r) = t.post_signed(other.as_bytes(), "gw-1", 200, now_s(), &key).await;
     refused(s, &r, StatusCode::UNAUTHORIZED, "x-meterveil-signature", "does not match");
 }
+
+#[tokio::test]
+async fn a_compressed_body_is_limited_after_decompression() {
+    use std::io::Write;
+    let t = spawn_service_with(|c| c.body_limit_bytes = 64 * 1024).await;
+    small_feeder(&t).await;
+    let key = t.gw_key.lock().expect("key").clone();
+    let gzip = |b: &[u8]| {
+        let mut e = flate2::write::GzEncoder::new(Vec::new(), flate2::Compression::best());
+        e.write_all(b).expect("gzip");
+        e.finish().expect("gzip")
+    };
+    let send = |plain: Vec<u8>, seq: u64| {
+        let (http, url, key) = (t.http.clone(), t.url(), key.clone());
+        async move {
+            use meterveil_shared::auth::*;
+            // The signature covers the decompressed body.
+            let text = signing_text("POST", "/v1/ingest/batches", "gw-1", seq, now_s(), &body_sha256(&plain));
+            http.post(format!("{url}/v1/ingest/batches"))
+                .header("content-type", "application/json")
+                .header("content-encoding", "gzip")
+                .header(HEADER_GATEWAY, "gw-1")
+                .header(HEADER_SEQUENCE, seq.to_string())
+                .header(HEADER_TIMESTAMP, now_s().to_string())
+                .header(HEADER_SIGNATURE, sign(&key, &text))
+                .body(gzip(&plain))
+                .send()
+                .await
+                .expect("send")
+        }
+    };
+    // 4 MB of whitespace inside valid JSON compresses to a few kilobytes.
+    let mut bomb = batch("b1", vec![good_reading(aligned_past(3))]).to_string().into_bytes();
+    bomb.splice(1..1, std::iter::repeat_n(b' ', 4 * 1024 * 1024));
+    assert!(gzip(&bomb).len() < 64 * 1024);
+    let r = send(bomb, 1).await;
+    assert_eq!(r.status().as_u16(), 413);
+    let e: Value = r.json().await.expect("json");
+    assert!(e["reason"].as_str().unwrap_or("").contains("limit"), "{e}");
+    assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 0);
+    // A compressed batch within the limit is accepted.
+    let r = send(batch("b2", vec![good_reading(aligned_past(3))]).to_string().into_bytes(), 2).await;
+    assert_eq!(r.status().as_u16(), 200, "{:?}", r.text().await);
+    assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 1);
+}

@@ -76,7 +76,14 @@ pub async fn start_with_store(
     };
     let dashboard = state.dashboard.clone();
     let worker = state.config.run_worker.then(|| tokio::spawn(crate::jobs::worker::run(state.clone())));
-    let app = routes::router(state).layer(TraceLayer::new_for_http());
+    // A request that takes longer than this is answered 408 and dropped; a batch's
+    // commit is one transaction, so nothing half-written remains.
+    let app = routes::router(state)
+        .layer(tower_http::timeout::TimeoutLayer::with_status_code(
+            axum::http::StatusCode::REQUEST_TIMEOUT,
+            std::time::Duration::from_secs(60),
+        ))
+        .layer(TraceLayer::new_for_http());
     let (tx, rx) = oneshot::channel::<()>();
     let handle = tokio::spawn(async move {
         let served = axum::serve(listener, app)

@@ -19,7 +19,14 @@ use crate::ingest::{body_sha256, check_header, parse_batch, validate, IngestCont
 use crate::store::CommitOutcome;
 
 pub fn router() -> Router<AppState> {
-    Router::new().route("/v1/ingest/batches", post(ingest_batch)).route("/v1/gateways", post(provision))
+    // Bodies may come gzip-compressed; the size limit applies to the decompressed
+    // stream, so a small compressed bomb is refused like a large body (413).
+    Router::new()
+        .route(
+            "/v1/ingest/batches",
+            post(ingest_batch).layer(tower_http::decompression::RequestDecompressionLayer::new()),
+        )
+        .route("/v1/gateways", post(provision))
 }
 
 const INGEST_PATH: &str = "/v1/ingest/batches";
