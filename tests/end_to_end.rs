@@ -1536,3 +1536,179 @@ async fn a_compressed_body_is_limited_after_decompression() {
     assert_eq!(r.status().as_u16(), 200, "{:?}", r.text().await);
     assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 1);
 }
+
+/// Entry point of the crash test's gateway child process: runs `gateway run` on
+/// the configuration named by METERVEIL_CHILD_GATEWAY until its file is done.
+#[test]
+#[ignore = "run by killed_gateways_and_a_killed_service_lose_and_repeat_nothing as a child process"]
+fn child_gateway_process() {
+    let Ok(path) = std::env::var("METERVEIL_CHILD_GATEWAY") else { return };
+    let rt = tokio::runtime::Runtime::new().expect("runtime");
+    let config = meterveil_gateway::config::GatewayConfig::load(std::path::Path::new(&path)).expect("config");
+    let (_tx, rx) = tokio::sync::watch::channel(false);
+    rt.block_on(meterveil_gateway::run::run(config, rx)).expect("gateway run");
+}
+
+fn serve_on(db: &std::path::Path, port: u16) -> std::process::Child {
+    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
+        .args(["serve", "--bind", &format!("127.0.0.1:{port}"), "--operator-token", TOKEN, "--no-worker"])
+        .args(["--gateway-master-key", "test-master-key-0123456789abcdef0123456789"])
+        .arg("--database-url")
+        .arg(format!("sqlite:{}", db.display()))
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .expect("serve");
+    // Wait until it answers.
+    for _ in 0..200 {
+        if std::net::TcpStream::connect(("127.0.0.1", port)).is_ok() {
+            return child;
+        }
+        std::thread::sleep(std::time::Duration::from_millis(25));
+    }
+    let _ = child.kill();
+    let _ = child.wait();
+    panic!("the service did not come up on port {port}");
+}
+
+fn gateway_child(config: &std::path::Path) -> std::process::Child {
+    std::process::Command::new(std::env::current_exe().expect("test binary"))
+        .args(["child_gateway_process", "--exact", "--ignored", "--nocapture"])
+        .env("METERVEIL_CHILD_GATEWAY", config)
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .expect("gateway child")
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn killed_gateways_and_a_killed_service_lose_and_repeat_nothing() {
+    use rand::{Rng, SeedableRng};
+    let dir = tempfile::tempdir().expect("tempdir");
+    let db = dir.path().join("svc.sqlite");
+    let port = std::net::TcpListener::bind("127.0.0.1:0").expect("port").local_addr().expect("addr").port();
+    let base = format!("http://127.0.0.1:{port}");
+    let mut service = serve_on(&db, port);
+    let http = reqwest::Client::new();
+    let op = |path: &str, body: Value| {
+        let (http, url) = (http.clone(), format!("{base}{path}"));
+        async move {
+            http.post(url)
+                .bearer_auth(TOKEN)
+                .json(&body)
+                .send()
+                .await
+                .expect("post")
+                .json::<Value>()
+                .await
+                .expect("json")
+        }
+    };
+    op("/v1/feeders", json!({"feeder_id": "F1"})).await;
+    let meters: Vec<String> = (1..=12).map(|i| format!("m{i}")).collect();
+    op("/v1/feeders/F1/meters", json!({ "meter_ids": meters })).await;
+    op(
+        "/v1/feeders/F1/profiles",
+        json!({"noise": "gaussian", "scale_kw": 0.3, "boundaries_kw": [1.0, 2.0], "send_registers": true}),
+    )
+    .await;
+    let secret = op("/v1/gateways", json!({"gateway_id": "gw-1", "feeder_id": "F1"})).await["secret"]
+        .as_str()
+        .expect("secret")
+        .to_owned();
+
+    // A week of 15-minute energies for twelve meters, in time order.
+    let start = aligned_past(0) - aligned_past(0).rem_euclid(86_400) - 8 * 86_400;
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(12);
+    let mut csv = String::from("meter_id,interval_start,wh\n");
+    let mut source: std::collections::BTreeMap<(String, i64), i64> = Default::default();
+    for i in 0..7 * 96 {
+        for m in &meters {
+            let wh: i64 = rng.random_range(20..900);
+            csv.push_str(&format!("{m},{},{wh}\n", start + 900 * i));
+            source.insert((m.clone(), start + 900 * i), wh);
+        }
+    }
+    std::fs::write(dir.path().join("week.csv"), &csv).expect("write");
+    let config = dir.path().join("gateway.toml");
+    std::fs::write(
+        &config,
+        format!(
+            "gateway_id = \"gw-1\"\nfeeder_id = \"F1\"\nsecret = \"{secret}\"\nservice_url = \"{base}\"\noutbox = \"{}\"\n\
+             [source]\nkind = \"file\"\npath = \"{}\"\n[upload]\nbatch_max = 24\ninitial_ms = 20\nmax_ms = 200\n",
+            dir.path().join("outbox.sqlite").display(),
+            dir.path().join("week.csv").display()
+        ),
+    )
+    .expect("config");
+
+    // Kill the gateway at random moments; once, kill the service too while it ingests.
+    let mut kills = 0;
+    let mut progress = Vec::new();
+    let watcher = meterveil_service::store::Store::open(&format!("sqlite:{}", db.display())).await.expect("open");
+    for round in 0..12 {
+        let mut gw = gateway_child(&config);
+        tokio::time::sleep(std::time::Duration::from_millis(rng.random_range(30..250))).await;
+        if round == 3 {
+            service.kill().expect("SIGKILL service");
+            service.wait().expect("reaped");
+            tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+        }
+        if gw.try_wait().expect("poll").is_none() {
+            gw.kill().expect("SIGKILL gateway");
+            kills += 1;
+        }
+        gw.wait().expect("reaped");
+        if round == 3 {
+            service = serve_on(&db, port);
+        }
+        let n: i64 =
+            sqlx::query_scalar("SELECT COUNT(*) FROM readings").fetch_one(watcher.pool()).await.expect("count");
+        progress.push(n);
+    }
+    // A last run to the end of the file.
+    let mut gw = gateway_child(&config);
+    let deadline = std::time::Instant::now() + std::time::Duration::from_secs(180);
+    let status = loop {
+        if let Some(s) = gw.try_wait().expect("poll") {
+            break s;
+        }
+        assert!(std::time::Instant::now() < deadline, "the last gateway run did not finish");
+        tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+    };
+    assert!(status.success(), "the last gateway run failed");
+    let _ = service.kill();
+    let _ = service.wait();
+
+    let store = meterveil_service::store::Store::open(&format!("sqlite:{}", db.display())).await.expect("open");
+    let stored: Vec<(String, i64)> =
+        sqlx::query_as("SELECT meter_id, interval_start FROM readings ORDER BY meter_id, interval_start")
+            .fetch_all(store.pool())
+            .await
+            .expect("readings");
+    let keys: Vec<(String, i64)> = source.keys().cloned().collect();
+    eprintln!(
+        "crash test: {kills} gateway kills, one service kill; readings stored after each kill {progress:?}; finally {} of {}",
+        stored.len(),
+        keys.len()
+    );
+    assert!(kills >= 5, "only {kills} kills landed while the gateway ran");
+    let interrupted = progress.iter().filter(|&&n| n > 0 && (n as usize) < keys.len()).count();
+    assert!(interrupted >= 3, "too few kills interrupted an upload half way: {progress:?}");
+    assert_eq!(stored, keys, "every source reading stored exactly once");
+    // Energy checksum: each day's register advance is exactly the source's day energy.
+    let reads: Vec<(String, i64, i64)> =
+        sqlx::query_as("SELECT meter_id, read_at, wh_total FROM register_reads ORDER BY meter_id, read_at")
+            .fetch_all(store.pool())
+            .await
+            .expect("reads");
+    let mut days = 0;
+    for w in reads.windows(2) {
+        if w[0].0 == w[1].0 && w[1].1 - w[0].1 == 86_400 {
+            let want: i64 = (0..96).map(|i| source[&(w[0].0.clone(), w[0].1 + 900 * i)]).sum();
+            assert_eq!(w[1].2 - w[0].2, want, "{} day {}", w[0].0, w[0].1);
+            days += 1;
+        }
+    }
+    assert_eq!(days, 12 * 7, "every day of the week, per meter, between its two midnight reads");
+}
