@@ -25,7 +25,12 @@ fn base(m: usize, days: usize) -> DMatrix<f64> {
 fn config(f1: f64, energy: f64) -> CalibrationConfig {
     CalibrationConfig {
         utility_rank: RankChoice::Fixed(5),
-        ..CalibrationConfig::new(Targets { event_f1_max: f1, captured: 1, daily_energy_error_max: energy })
+        ..CalibrationConfig::new(Targets {
+            event_f1_max: f1,
+            captured: 1,
+            daily_energy_error_max: energy,
+            profile_nrmse_max: None,
+        })
     }
 }
 
@@ -89,6 +94,12 @@ fn impossible_targets_are_reported_with_the_closest_trade_off() {
     assert!(!c.meets_targets);
     assert!(c.message.contains("cannot both be met"), "{}", c.message);
     assert!(c.curve.contains(&c.chosen));
+    // Privacy is easy here, but no scale keeps the interval profiles this accurate.
+    let mut shape = CalibrationConfig { grid: 3, sets: 2, level_sets: vec![vec![1.0, 2.0]], ..config(0.9, 0.5) };
+    shape.targets.profile_nrmse_max = Some(0.01);
+    let c = calibrate(&x, &current, LAYOUT, &shape, &mut |_, _| {}).unwrap();
+    eprintln!("{}", c.message);
+    assert!(!c.meets_targets && c.message.contains("interval nRMSE above 0.01"), "{}", c.message);
     let bad = CalibrationConfig { sets: 50, ..cfg.clone() };
     assert_eq!(calibrate(&x, &current, LAYOUT, &bad, &mut |_, _| {}).unwrap_err().field, "captured");
 }

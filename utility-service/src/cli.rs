@@ -150,6 +150,9 @@ pub enum Command {
         /// Bound on the utility's median daily-energy error (fraction).
         #[arg(long, default_value_t = 0.1)]
         max_energy_error: f64,
+        /// Optional bound on the utility's interval nRMSE over the feeder.
+        #[arg(long)]
+        max_profile_nrmse: Option<f64>,
         #[arg(long, default_value_t = 15.0)]
         alpha_kw: f64,
         #[arg(long, default_value_t = 5)]
@@ -334,6 +337,7 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
             max_event_f1,
             captured,
             max_energy_error,
+            max_profile_nrmse,
             alpha_kw,
             seed,
         } => {
@@ -341,6 +345,7 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
                 event_f1_max: max_event_f1,
                 captured,
                 daily_energy_error_max: max_energy_error,
+                profile_nrmse_max: max_profile_nrmse,
             };
             let summary = tokio::task::spawn_blocking(move || {
                 crate::offline::run_calibrate(&crate::offline::CalibrateFiles {

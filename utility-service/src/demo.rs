@@ -149,25 +149,8 @@ async fn recover_feeder(
     let http = reqwest::Client::new();
     let to = town.start_day + i64::from(town.days) * 86_400;
     let body = serde_json::json!({ "feeder_id": feeder, "from": town.start_day, "to": to, "rank": "auto" });
-    let r: serde_json::Value = http
-        .post(format!("{base}/v1/recoveries"))
-        .bearer_auth(token)
-        .json(&body)
-        .send()
-        .await?
-        .error_for_status()?
-        .json()
-        .await?;
-    let job_id = r["job_id"].as_str().context("job id")?.to_owned();
-    let job = loop {
-        let j: serde_json::Value =
-            http.get(format!("{base}/v1/recoveries/{job_id}")).bearer_auth(token).send().await?.json().await?;
-        match j["state"].as_str() {
-            Some("done") => break j,
-            Some("failed") => anyhow::bail!("recovery of {feeder} failed: {}", j["error"]),
-            _ => tokio::time::sleep(std::time::Duration::from_millis(250)).await,
-        }
-    };
+    let job = run_job(base, token, "/v1/recoveries", body, "/v1/recoveries").await?;
+    let job_id = job["job_id"].as_str().context("job id")?.to_owned();
     let rows: Vec<serde_json::Value> = http
         .get(format!("{base}/v1/recoveries/{job_id}/intervals"))
         .bearer_auth(token)
@@ -217,12 +200,14 @@ async fn recover_feeder(
     })
 }
 
-/// Starts an analysis job by POSTing `body` to `path` and waits for it; returns its record.
-async fn analysis_job(
+/// Starts a job by POSTing `body` to `path` and waits for it (its status at
+/// `status/{job_id}`); returns its record.
+async fn run_job(
     base: &str,
     token: &str,
     path: &str,
     body: serde_json::Value,
+    status: &str,
 ) -> anyhow::Result<serde_json::Value> {
     let http = reqwest::Client::new();
     let r: serde_json::Value = http
@@ -237,7 +222,7 @@ async fn analysis_job(
     let job_id = r["job_id"].as_str().context("job id")?.to_owned();
     loop {
         let j: serde_json::Value =
-            http.get(format!("{base}/v1/analyses/{job_id}")).bearer_auth(token).send().await?.json().await?;
+            http.get(format!("{base}{status}/{job_id}")).bearer_auth(token).send().await?.json().await?;
         match j["state"].as_str() {
             Some("done") => return Ok(j),
             Some("failed") => anyhow::bail!("{path} job failed: {}", j["error"]),
@@ -273,18 +258,20 @@ async fn privacy_check(
         .await?;
     let captured = rows.first().and_then(|r| r["meter_id"].as_str()).context("a recovered meter")?.to_owned();
     eprintln!("demo: auditing what an eavesdropper holding {captured} could learn ...");
-    let audit = analysis_job(
+    let audit = run_job(
         base,
         token,
         "/v1/audits",
         serde_json::json!({ "recovery_job": rec.job_id, "captured": [captured] }),
+        "/v1/analyses",
     )
     .await?;
     eprintln!("demo: calibrating the dither of {} ...", rec.feeder_id);
     let body = serde_json::json!({
-        "recovery_job": rec.job_id, "event_f1_max": 0.3, "captured": 1, "daily_energy_error_max": 0.1, "publish": true
+        "recovery_job": rec.job_id, "event_f1_max": 0.3, "captured": 1, "daily_energy_error_max": 0.1,
+        "profile_nrmse_max": 0.6, "publish": true
     });
-    let calibration = analysis_job(base, token, "/v1/calibrations", body).await?;
+    let calibration = run_job(base, token, "/v1/calibrations", body, "/v1/analyses").await?;
     let mut reports = Vec::new();
     for (job, name) in [(&audit, "audit.html"), (&calibration, "calibration.html")] {
         let id = job["job_id"].as_str().unwrap_or_default();
@@ -319,9 +306,14 @@ async fn cluster_town(
 ) -> anyhow::Result<Vec<TownCluster>> {
     let http = reqwest::Client::new();
     let ids: Vec<&str> = recoveries.iter().map(|r| r.job_id.as_str()).collect();
-    let job =
-        analysis_job(base, token, "/v1/clusterings", serde_json::json!({ "recovery_jobs": ids, "clusters": "auto" }))
-            .await?;
+    let job = run_job(
+        base,
+        token,
+        "/v1/clusterings",
+        serde_json::json!({ "recovery_jobs": ids, "clusters": "auto" }),
+        "/v1/analyses",
+    )
+    .await?;
     let job_id = job["job_id"].as_str().context("job id")?.to_owned();
     let rows: Vec<serde_json::Value> = http
         .get(format!("{base}/v1/clusterings/{job_id}/assignments"))
@@ -512,7 +504,7 @@ fn render_privacy(o: &mut String, p: &PrivacyCheck) {
     let c = &p.calibration;
     let _ = writeln!(
         o,
-        "\n  Dither calibration of {} (targets: event F1 ≤ 0.3 for one captured meter, daily energy error ≤ 10%):",
+        "\n  Dither calibration of {} (targets: event F1 ≤ 0.3 for one captured meter, daily energy error ≤ 10%,\n  interval nRMSE ≤ 0.6):",
         p.feeder_id
     );
     let _ = writeln!(o, "  {}", c["message"].as_str().unwrap_or(""));

@@ -146,6 +146,8 @@ struct CalibrationWire {
     captured: usize,
     daily_energy_error_max: f64,
     #[serde(default)]
+    profile_nrmse_max: Option<f64>,
+    #[serde(default)]
     publish: bool,
     #[serde(default)]
     seed: Option<u64>,
@@ -167,6 +169,7 @@ async fn start_calibration(
         event_f1_max: w.event_f1_max,
         captured: w.captured,
         daily_energy_error_max: w.daily_energy_error_max,
+        profile_nrmse_max: w.profile_nrmse_max,
     };
     let population = job.diagnostics.as_ref().and_then(|d| d["meters"].as_u64()).unwrap_or(0) as usize;
     CalibrationConfig::new(targets.clone()).check(population).map_err(ApiError::Invalid)?;
@@ -187,21 +190,27 @@ async fn report(_: Operator, State(s): State<AppState>, Path(id): Path<String>) 
             format!("job {id} is {}; its report appears when it is done", job.state),
         )));
     }
-    let result = job.result.unwrap_or(Value::Null);
+    let html = report_html(&job)?;
+    Ok(([(header::CONTENT_TYPE, "text/html; charset=utf-8")], html).into_response())
+}
+
+/// The HTML report of a finished audit or calibration job.
+pub(crate) fn report_html(job: &AnalysisRecord) -> Result<String, ApiError> {
+    let id = &job.job_id;
+    let result = job.result.clone().unwrap_or(Value::Null);
     let feeder = result["feeder_id"].as_str().unwrap_or("?").to_owned();
     let bad = |e: serde_json::Error| ApiError::Internal(anyhow::anyhow!("stored result of {id} does not parse: {e}"));
-    let html = match job.kind.as_str() {
-        "audit" => {
-            let r: meterveil_shared::audit::AuditReport = serde_json::from_value(result).map_err(bad)?;
-            crate::report::audit_html(&format!("Privacy audit of feeder {feeder}"), &r)
-        }
-        "calibrate" => {
-            let c: meterveil_shared::calibrate::Calibration = serde_json::from_value(result).map_err(bad)?;
-            crate::report::calibration_html(&format!("Dither calibration of feeder {feeder}"), &c)
-        }
+    Ok(match job.kind.as_str() {
+        "audit" => crate::report::audit_html(
+            &format!("Privacy audit of feeder {feeder}"),
+            &serde_json::from_value(result).map_err(bad)?,
+        ),
+        "calibrate" => crate::report::calibration_html(
+            &format!("Dither calibration of feeder {feeder}"),
+            &serde_json::from_value(result).map_err(bad)?,
+        ),
         other => return Err(ApiError::invalid("job_id", format!("a {other} job has no report"))),
-    };
-    Ok(([(header::CONTENT_TYPE, "text/html; charset=utf-8")], html).into_response())
+    })
 }
 
 async fn find(s: &AppState, id: &str) -> Result<AnalysisRecord, ApiError> {

@@ -351,19 +351,6 @@ async fn analysis_page(_: Viewer, State(s): State<AppState>, Path(id): Path<Stri
     let job = s.store.analysis(&id).await?.ok_or_else(|| {
         ApiError::NotFound(meterveil_shared::FieldError::new("job_id", format!("no analysis job {id}")))
     })?;
-    let result = job.result.unwrap_or(Value::Null);
-    let feeder = result["feeder_id"].as_str().unwrap_or("?").to_owned();
-    let bad = |e: serde_json::Error| ApiError::Internal(anyhow::anyhow!("stored result of {id} does not parse: {e}"));
-    let html = match job.kind.as_str() {
-        "audit" => crate::report::audit_html(
-            &format!("Privacy audit of feeder {feeder}"),
-            &serde_json::from_value(result).map_err(bad)?,
-        ),
-        "calibrate" => crate::report::calibration_html(
-            &format!("Dither calibration of feeder {feeder}"),
-            &serde_json::from_value(result).map_err(bad)?,
-        ),
-        other => return Err(ApiError::invalid("job_id", format!("a {other} job has no report page"))),
-    };
+    let html = super::analyses::report_html(&job)?;
     Ok(Html(html.replacen("<body>", "<body><p><a href=\"/dashboard\">Meterveil dashboard</a></p>", 1)).into_response())
 }

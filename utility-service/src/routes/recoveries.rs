@@ -75,6 +75,18 @@ async fn start(_: Operator, State(s): State<AppState>, body: Bytes) -> Result<(S
     Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
 }
 
+/// A recovery job whose results may be served: 409 until it is done.
+async fn find_done(s: &AppState, id: &str) -> Result<JobRecord, ApiError> {
+    let job = find(s, id).await?;
+    if job.state != "done" {
+        return Err(ApiError::Conflict(FieldError::new(
+            "job_id",
+            format!("job {id} is {}; results appear when it is done", job.state),
+        )));
+    }
+    Ok(job)
+}
+
 async fn find(s: &AppState, id: &str) -> Result<JobRecord, ApiError> {
     s.store.job(id).await?.ok_or_else(|| ApiError::NotFound(FieldError::new("job_id", format!("no recovery job {id}"))))
 }
@@ -95,13 +107,7 @@ async fn intervals(
     Path(id): Path<String>,
     Query(q): Query<IntervalQuery>,
 ) -> Result<Response, ApiError> {
-    let job = find(&s, &id).await?;
-    if job.state != "done" {
-        return Err(ApiError::Conflict(FieldError::new(
-            "job_id",
-            format!("job {id} is {}; results appear when it is done", job.state),
-        )));
-    }
+    let job = find_done(&s, &id).await?;
     let rows = s.store.job_rows(&id, q.meter_id.as_deref()).await?;
     tracing::info!(job = %id, rows = rows.len(), meter = ?q.meter_id, format = ?q.format, "per-meter recovery export");
     let interval_s = job_interval(&rows, &job);
@@ -155,13 +161,7 @@ async fn daily(
     Path(id): Path<String>,
     Query(q): Query<IntervalQuery>,
 ) -> Result<Response, ApiError> {
-    let job = find(&s, &id).await?;
-    if job.state != "done" {
-        return Err(ApiError::Conflict(FieldError::new(
-            "job_id",
-            format!("job {id} is {}; results appear when it is done", job.state),
-        )));
-    }
+    let job = find_done(&s, &id).await?;
     let rows = s.store.job_rows(&id, q.meter_id.as_deref()).await?;
     let feeder = FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
     let mut reads = s.store.feeder_registers_between(&feeder, job.window_start, job.window_end + 1).await?;
