@@ -34,6 +34,8 @@ pub struct FeederRecovery {
     pub wall_s: f64,
     pub corrected: u64,
     pub register_days: u64,
+    /// The first meter of the recovery (in meter order), the one the demo audits.
+    pub first_meter: String,
     pub nrmse: f64,
     pub median_daily_energy_error: f64,
 }
@@ -195,6 +197,7 @@ async fn recover_feeder(
         wall_s: d["wall_s"].as_f64().unwrap_or(0.0),
         corrected: d["corrected"].as_u64().unwrap_or(0),
         register_days: d["register_days"].as_u64().unwrap_or(0),
+        first_meter: rows.first().and_then(|r| r["meter_id"].as_str()).unwrap_or_default().to_owned(),
         nrmse: (num / den.max(1e-300)).sqrt(),
         median_daily_energy_error: errs.get(errs.len() / 2).copied().unwrap_or(f64::NAN),
     })
@@ -248,15 +251,8 @@ async fn privacy_check(
     dir: &std::path::Path,
 ) -> anyhow::Result<PrivacyCheck> {
     let http = reqwest::Client::new();
-    let rows: Vec<serde_json::Value> = http
-        .get(format!("{base}/v1/recoveries/{}/intervals?format=json", rec.job_id))
-        .bearer_auth(token)
-        .send()
-        .await?
-        .error_for_status()?
-        .json()
-        .await?;
-    let captured = rows.first().and_then(|r| r["meter_id"].as_str()).context("a recovered meter")?.to_owned();
+    anyhow::ensure!(!rec.first_meter.is_empty(), "the recovery of {} holds no meter", rec.feeder_id);
+    let captured = rec.first_meter.clone();
     eprintln!("demo: auditing what an eavesdropper holding {captured} could learn ...");
     let audit = run_job(
         base,

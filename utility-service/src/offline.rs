@@ -253,15 +253,9 @@ pub fn run_recover(
     registers: Option<&Path>,
     params: RecoveryParams,
 ) -> anyhow::Result<serde_json::Value> {
-    let text = std::fs::read_to_string(profile).with_context(|| format!("reading {}", profile.display()))?;
-    let profile = DitherProfile::from_json(&text).map_err(|e| anyhow::anyhow!("{}: {e}", profile.display()))?;
     let alpha = params.alpha_kw;
     let params = params.check().map_err(|e| anyhow::anyhow!("--{}: {}", e.field.replace('_', "-"), e.reason))?;
-    let w = read_levels(levels, &profile)?;
-    let (constraints, skipped) = match registers {
-        Some(p) => read_registers(p, &w)?,
-        None => (Vec::new(), 0),
-    };
+    let (profile, w, constraints, skipped) = read_feeder(levels, profile, registers)?;
     let mut report = progress_reporter();
     let rec = recover(&w.levels, &profile, &constraints, w.layout(), &params, &mut report)?;
     write_recovery(output, &w, &rec, alpha)?;
@@ -434,6 +428,22 @@ fn read_profile_file(path: &Path) -> anyhow::Result<DitherProfile> {
     DitherProfile::from_json(&text).map_err(|e| anyhow::anyhow!("{}: {e}", path.display()))
 }
 
+/// A feeder's input files: the profile, the levels window, and the register
+/// days inside it (with the count of those outside it).
+fn read_feeder(
+    levels: &Path,
+    profile: &Path,
+    registers: Option<&Path>,
+) -> anyhow::Result<(DitherProfile, Window, Vec<SumConstraint>, usize)> {
+    let profile = read_profile_file(profile)?;
+    let w = read_levels(levels, &profile)?;
+    let (constraints, skipped) = match registers {
+        Some(p) => read_registers(p, &w)?,
+        None => (Vec::new(), 0),
+    };
+    Ok((profile, w, constraints, skipped))
+}
+
 /// The utility's full-population recovery of a levels file (automatic rank).
 fn recover_window(
     w: &Window,
@@ -465,13 +475,8 @@ pub struct AuditFiles<'a> {
 /// attackers on the stored levels (direct mode). Returns the JSON summary.
 pub fn run_audit(a: &AuditFiles<'_>) -> anyhow::Result<serde_json::Value> {
     use meterveil_shared::audit::{bootstrap, default_curve_counts, direct, AuditConfig};
-    let profile = read_profile_file(a.profile)?;
-    let w = read_levels(a.levels, &profile)?;
+    let (profile, w, constraints, _) = read_feeder(a.levels, a.profile, a.registers)?;
     let captured = read_captured(a.captured, &w)?;
-    let (constraints, _) = match a.registers {
-        Some(p) => read_registers(p, &w)?,
-        None => (Vec::new(), 0),
-    };
     let rec = recover_window(&w, &profile, &constraints, a.alpha_kw)?;
     let cfg = AuditConfig {
         alpha_kw: a.alpha_kw,
@@ -533,12 +538,7 @@ pub struct CalibrateFiles<'a> {
 /// writes the recommended profile (only when the targets are met) and the report.
 pub fn run_calibrate(a: &CalibrateFiles<'_>) -> anyhow::Result<serde_json::Value> {
     use meterveil_shared::calibrate::{calibrate, CalibrationConfig};
-    let profile = read_profile_file(a.profile)?;
-    let w = read_levels(a.levels, &profile)?;
-    let (constraints, _) = match a.registers {
-        Some(p) => read_registers(p, &w)?,
-        None => (Vec::new(), 0),
-    };
+    let (profile, w, constraints, _) = read_feeder(a.levels, a.profile, a.registers)?;
     let rec = recover_window(&w, &profile, &constraints, a.alpha_kw)?;
     let cfg = CalibrationConfig {
         alpha_kw: a.alpha_kw,

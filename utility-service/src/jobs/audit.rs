@@ -13,6 +13,7 @@ use meterveil_shared::{DitherProfile, FeederId};
 use nalgebra::DMatrix;
 
 use crate::routes::{now_s, AppState};
+use crate::store::queue::JobTable;
 
 /// A finished recovery, loaded back for analysis.
 struct Recovered {
@@ -74,12 +75,12 @@ pub struct AuditRequest {
 pub async fn run_audit(state: AppState, job_id: String, req: AuditRequest) {
     if let Err(e) = audit_inner(&state, &job_id, &req).await {
         tracing::warn!(job = %job_id, error = %format!("{e:#}"), "audit job failed");
-        let _ = state.store.fail_analysis(&job_id, &format!("{e:#}"), now_s()).await;
+        let _ = state.store.fail(JobTable::Analysis, &job_id, &format!("{e:#}"), now_s()).await;
     }
 }
 
 async fn audit_inner(s: &AppState, job_id: &str, req: &AuditRequest) -> anyhow::Result<()> {
-    s.store.analysis_progress(job_id, 0.0, "loading the recovery", now_s()).await?;
+    s.store.set_progress(JobTable::Analysis, job_id, 0.0, "loading the recovery", now_s()).await?;
     let r = load(s, &req.recovery_job).await?;
     let index: HashMap<String, usize> = r.meters.iter().enumerate().map(|(i, m)| (m.clone(), i)).collect();
     let captured: Vec<usize> = req
@@ -116,7 +117,7 @@ async fn audit_inner(s: &AppState, job_id: &str, req: &AuditRequest) -> anyhow::
         curve_captured: default_curve_counts(r.meters.len()),
         ..AuditConfig::default()
     };
-    let report = super::run_reporting(s, job_id, move |progress| {
+    let report = super::run_reporting(s, JobTable::Analysis, job_id, move |progress| {
         let mut out = bootstrap(&r.x, &captured, &r.profile, r.layout, &cfg, progress)
             .map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
         let lc = select_rows(&levels, &captured, 0..cols);
@@ -147,12 +148,12 @@ pub struct CalibrationRequest {
 pub async fn run_calibration(state: AppState, job_id: String, req: CalibrationRequest) {
     if let Err(e) = calibration_inner(&state, &job_id, &req).await {
         tracing::warn!(job = %job_id, error = %format!("{e:#}"), "calibration job failed");
-        let _ = state.store.fail_analysis(&job_id, &format!("{e:#}"), now_s()).await;
+        let _ = state.store.fail(JobTable::Analysis, &job_id, &format!("{e:#}"), now_s()).await;
     }
 }
 
 async fn calibration_inner(s: &AppState, job_id: &str, req: &CalibrationRequest) -> anyhow::Result<()> {
-    s.store.analysis_progress(job_id, 0.0, "loading the recovery", now_s()).await?;
+    s.store.set_progress(JobTable::Analysis, job_id, 0.0, "loading the recovery", now_s()).await?;
     let r = load(s, &req.recovery_job).await?;
     let cfg = CalibrationConfig {
         seed: req.seed,
@@ -161,7 +162,7 @@ async fn calibration_inner(s: &AppState, job_id: &str, req: &CalibrationRequest)
     };
     cfg.check(r.meters.len()).map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
     let (x, profile, layout) = (r.x.clone(), r.profile.clone(), r.layout);
-    let c = super::run_reporting(s, job_id, move |progress| {
+    let c = super::run_reporting(s, JobTable::Analysis, job_id, move |progress| {
         calibrate(&x, &profile, layout, &cfg, progress).map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))
     })
     .await?;

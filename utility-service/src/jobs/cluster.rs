@@ -6,6 +6,7 @@ use serde_json::json;
 
 use crate::routes::{now_s, AppState};
 use crate::store::analyses::Assignment;
+use crate::store::queue::JobTable;
 
 #[derive(Debug, Clone)]
 pub struct ClusterRequest {
@@ -18,12 +19,12 @@ pub struct ClusterRequest {
 pub async fn run(state: AppState, job_id: String, req: ClusterRequest) {
     if let Err(e) = run_inner(&state, &job_id, &req).await {
         tracing::warn!(job = %job_id, error = %format!("{e:#}"), "clustering job failed");
-        let _ = state.store.fail_analysis(&job_id, &format!("{e:#}"), now_s()).await;
+        let _ = state.store.fail(JobTable::Analysis, &job_id, &format!("{e:#}"), now_s()).await;
     }
 }
 
 async fn run_inner(s: &AppState, job_id: &str, req: &ClusterRequest) -> anyhow::Result<()> {
-    s.store.analysis_progress(job_id, 0.0, "loading recovered profiles", now_s()).await?;
+    s.store.set_progress(JobTable::Analysis, job_id, 0.0, "loading recovered profiles", now_s()).await?;
     let mut meters: Vec<(String, String)> = Vec::new();
     let mut values: Vec<f64> = Vec::new();
     let mut window: Option<(i64, i64)> = None;
@@ -61,7 +62,7 @@ async fn run_inner(s: &AppState, job_id: &str, req: &ClusterRequest) -> anyhow::
     let x = DMatrix::from_row_slice(meters.len(), cols, &values);
     let params = ClusterParams { clusters: req.clusters, ..ClusterParams::default() };
     let chosen_by = if req.clusters.is_some() { "operator" } else { "eigengap" };
-    let (c, reps) = super::run_reporting(s, job_id, move |progress| {
+    let (c, reps) = super::run_reporting(s, JobTable::Analysis, job_id, move |progress| {
         progress("clustering", 0.1);
         let c = cluster(&x, &params).map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
         let reps = representatives(&x, &c, from, interval_s);

@@ -11,10 +11,11 @@ use std::time::Duration;
 use anyhow::Context;
 
 use crate::routes::{now_s, AppState};
+use crate::store::queue::JobTable;
 
 /// Runs `work` on the blocking pool, copying the stage and fraction it reports
-/// into the analysis job's row every half second.
-pub async fn run_reporting<T, F>(s: &AppState, job_id: &str, work: F) -> anyhow::Result<T>
+/// into the job's row every half second.
+pub async fn run_reporting<T, F>(s: &AppState, table: JobTable, job_id: &str, work: F) -> anyhow::Result<T>
 where
     T: Send + 'static,
     F: FnOnce(&mut dyn FnMut(&str, f64)) -> anyhow::Result<T> + Send + 'static,
@@ -34,7 +35,7 @@ where
             r = &mut task => return r.context("job task")?,
             _ = tokio::time::sleep(Duration::from_millis(500)) => {
                 let (stage, f) = progress.lock().map(|p| p.clone()).unwrap_or_default();
-                s.store.analysis_progress(job_id, f, &stage, now_s()).await?;
+                s.store.set_progress(table, job_id, f, &stage, now_s()).await?;
             }
         }
     }

@@ -1,8 +1,6 @@
 //! Recovery of a feeder's stored levels over a window, as a background job.
 
 use std::collections::HashMap;
-use std::sync::{Arc, Mutex};
-use std::time::Duration;
 
 use anyhow::Context;
 use meterveil_shared::recovery::outage::DayLayout;
@@ -11,6 +9,7 @@ use meterveil_shared::FeederId;
 
 use crate::offline::band;
 use crate::routes::{now_s, AppState};
+use crate::store::queue::JobTable;
 use crate::store::recoveries::RecoveredRow;
 
 #[derive(Debug, Clone)]
@@ -36,19 +35,19 @@ pub fn day_constraints(
     let per_day = (86_400 / interval_s) as usize;
     let hours = f64::from(interval_s) / 3600.0;
     let mut out = Vec::new();
-    for w in reads.windows(2) {
-        let (a, b) = (&w[0], &w[1]);
-        if a.0 != b.0 || b.1 - a.1 != 86_400 || a.1.rem_euclid(86_400) != 0 || b.2 < a.2 || a.1 < from {
+    for ((meter, day), wh) in crate::settlement::register_advances(reads) {
+        if day < from {
             continue;
         }
-        let Some(&row) = meters.get(&a.0) else { continue };
-        let first = ((a.1 - from) / i64::from(interval_s)) as usize;
+        let Some(&row) = meters.get(&meter) else { continue };
+        let first = ((day - from) / i64::from(interval_s)) as usize;
         let cols = first..first + per_day;
         if cols.end > levels.cols() || cols.clone().any(|j| levels.get(row, j).is_none()) {
             continue;
         }
-        out.push(SumConstraint { row, cols, sum_kw: (b.2 - a.2) as f64 / (1000.0 * hours) });
+        out.push(SumConstraint { row, cols, sum_kw: wh as f64 / (1000.0 * hours) });
     }
+    out.sort_by_key(|c| (c.row, c.cols.start));
     out
 }
 
@@ -56,13 +55,13 @@ pub fn day_constraints(
 pub async fn run(state: AppState, job_id: String, req: RecoveryRequest) {
     if let Err(e) = run_inner(&state, &job_id, &req).await {
         tracing::warn!(job = %job_id, error = %format!("{e:#}"), "recovery job failed");
-        let _ = state.store.fail_job(&job_id, &format!("{e:#}"), now_s()).await;
+        let _ = state.store.fail(JobTable::Recovery, &job_id, &format!("{e:#}"), now_s()).await;
     }
 }
 
 async fn run_inner(s: &AppState, job_id: &str, req: &RecoveryRequest) -> anyhow::Result<()> {
     let store = &s.store;
-    store.job_progress(job_id, "running", 0.0, "loading levels", now_s()).await?;
+    store.set_progress(JobTable::Recovery, job_id, 0.0, "loading levels", now_s()).await?;
     let rows = store.feeder_levels_between(&req.feeder, req.from, req.to).await?;
     let mut versions: Vec<u32> = rows.iter().map(|r| r.3).collect();
     versions.sort_unstable();
@@ -100,29 +99,14 @@ async fn run_inner(s: &AppState, job_id: &str, req: &RecoveryRequest) -> anyhow:
         .check()
         .map_err(|e| anyhow::anyhow!("{e}"))?;
 
-    let progress = Arc::new(Mutex::new((String::from("choosing rank"), 0.0f64)));
-    let shared = progress.clone();
     let layout = DayLayout { window_start: req.from, interval_s: profile.interval().seconds() };
-    let work = tokio::task::spawn_blocking(move || {
+    let (rec, n_constraints) = super::run_reporting(s, JobTable::Recovery, job_id, move |progress| {
         let _span = tracing::info_span!("recovery").entered();
-        recover(&levels, &profile, &constraints, layout, &params, &mut |stage, f| {
-            if let Ok(mut p) = shared.lock() {
-                *p = (stage.to_owned(), f);
-            }
-        })
-        .map(|r| (r, constraints.len()))
-    });
-    tokio::pin!(work);
-    let result = loop {
-        tokio::select! {
-            r = &mut work => break r,
-            _ = tokio::time::sleep(Duration::from_millis(500)) => {
-                let (stage, f) = progress.lock().map(|p| p.clone()).unwrap_or_default();
-                store.job_progress(job_id, "running", f, &stage, now_s()).await?;
-            }
-        }
-    };
-    let (rec, n_constraints) = result.context("recovery task")?.map_err(|e| anyhow::anyhow!("{e}"))?;
+        recover(&levels, &profile, &constraints, layout, &params, &mut |stage, f| progress(stage, f))
+            .map(|r| (r, constraints.len()))
+            .map_err(|e| anyhow::anyhow!("{e}"))
+    })
+    .await?;
     let mut out = Vec::with_capacity(meters.len() * cols);
     for (i, m) in meters.iter().enumerate() {
         for j in 0..cols {

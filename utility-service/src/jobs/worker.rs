@@ -11,6 +11,7 @@ use serde_json::Value;
 
 use crate::routes::{now_s, AppState};
 use crate::store::queue::Claimed;
+use crate::store::queue::JobTable;
 
 /// Rebuilds a recovery request from its row.
 fn recovery_request(c: &Claimed) -> anyhow::Result<super::recover::RecoveryRequest> {
@@ -49,7 +50,7 @@ async fn execute(s: &AppState, c: Claimed) {
         "recover" => match recovery_request(&c) {
             Ok(req) => super::recover::run(s.clone(), id, req).await,
             Err(e) => {
-                let _ = s.store.fail_job(&id, &format!("{e:#}"), now_s()).await;
+                let _ = s.store.fail(JobTable::Recovery, &id, &format!("{e:#}"), now_s()).await;
             }
         },
         "cluster" => {
@@ -78,11 +79,12 @@ async fn execute(s: &AppState, c: Claimed) {
                 super::audit::run_calibration(s.clone(), id, req).await;
             }
             Err(e) => {
-                let _ = s.store.fail_analysis(&id, &format!("stored targets do not parse: {e}"), now_s()).await;
+                let _ =
+                    s.store.fail(JobTable::Analysis, &id, &format!("stored targets do not parse: {e}"), now_s()).await;
             }
         },
         other => {
-            let _ = s.store.fail_analysis(&id, &format!("unknown job kind {other}"), now_s()).await;
+            let _ = s.store.fail(JobTable::Analysis, &id, &format!("unknown job kind {other}"), now_s()).await;
         }
     }
     heartbeat.abort();

@@ -213,7 +213,7 @@ pub(crate) fn report_html(job: &AnalysisRecord) -> Result<String, ApiError> {
     })
 }
 
-async fn find(s: &AppState, id: &str) -> Result<AnalysisRecord, ApiError> {
+pub(crate) async fn find(s: &AppState, id: &str) -> Result<AnalysisRecord, ApiError> {
     s.store
         .analysis(id)
         .await?

@@ -257,9 +257,7 @@ async fn meter_page(
     Path(id): Path<String>,
     Query(q): Query<MeterQuery>,
 ) -> Result<Html<String>, ApiError> {
-    let job = s.store.job(&id).await?.ok_or_else(|| {
-        ApiError::NotFound(meterveil_shared::FieldError::new("job_id", format!("no recovery job {id}")))
-    })?;
+    let job = super::recoveries::find(&s, &id).await?;
     if job.state != "done" {
         return Ok(page(&format!("Recovery {id}"), &format!("<p>The job is {}.</p>", esc(&job.state)), true));
     }
@@ -310,9 +308,7 @@ async fn meter_page(
 }
 
 async fn clusters_page(_: Viewer, State(s): State<AppState>, Path(id): Path<String>) -> Result<Html<String>, ApiError> {
-    let job = s.store.analysis(&id).await?.ok_or_else(|| {
-        ApiError::NotFound(meterveil_shared::FieldError::new("job_id", format!("no clustering job {id}")))
-    })?;
+    let job = super::analyses::find(&s, &id).await?;
     let r = job.result.unwrap_or(Value::Null);
     let interval_s = r["interval_s"].as_u64().unwrap_or(900).max(1) as f64;
     let reps = r["representatives"].as_array().cloned().unwrap_or_default();
@@ -348,9 +344,7 @@ async fn clusters_page(_: Viewer, State(s): State<AppState>, Path(id): Path<Stri
 }
 
 async fn analysis_page(_: Viewer, State(s): State<AppState>, Path(id): Path<String>) -> Result<Response, ApiError> {
-    let job = s.store.analysis(&id).await?.ok_or_else(|| {
-        ApiError::NotFound(meterveil_shared::FieldError::new("job_id", format!("no analysis job {id}")))
-    })?;
+    let job = super::analyses::find(&s, &id).await?;
     let html = super::analyses::report_html(&job)?;
     Ok(Html(html.replacen("<body>", "<body><p><a href=\"/dashboard\">Meterveil dashboard</a></p>", 1)).into_response())
 }

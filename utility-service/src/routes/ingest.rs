@@ -200,9 +200,7 @@ async fn ingest(s: &AppState, headers: &HeaderMap, body: Body) -> Result<AckWire
         if let Some(prev) = s.store.find_batch(header.batch_id.as_str()).await? {
             return replay(s, prev, &hash);
         }
-        if !s.store.feeder_exists(&header.feeder_id).await? {
-            return Err(ApiError::invalid("feeder_id", format!("feeder {} is not registered", header.feeder_id)));
-        }
+        // The feeder is the signing gateway's own (checked above), so it exists.
         let profiles = s.store.profiles(&header.feeder_id).await?;
         let mut ids: Vec<&str> = batch
             .readings
@@ -212,13 +210,16 @@ async fn ingest(s: &AppState, headers: &HeaderMap, body: Body) -> Result<AckWire
             .collect();
         ids.sort_unstable();
         ids.dedup();
-        if let Some((m, f)) = s.store.meters_elsewhere(&header.feeder_id, &ids).await?.into_iter().next() {
-            return Err(ApiError::Forbidden(FieldError::new(
-                "meter_id",
-                format!("meter {m} is on feeder {f}, which gateway {} does not serve", signed.gateway_id),
-            )));
+        let mut known = std::collections::HashSet::new();
+        for (m, f) in s.store.meter_feeders(&ids).await? {
+            if f != header.feeder_id.as_str() {
+                return Err(ApiError::Forbidden(FieldError::new(
+                    "meter_id",
+                    format!("meter {m} is on feeder {f}, which gateway {} does not serve", signed.gateway_id),
+                )));
+            }
+            known.insert(m);
         }
-        let known = s.store.known_meters(&header.feeder_id, &ids).await?;
         let ctx = IngestContext {
             profiles: &profiles,
             known_meters: &known,

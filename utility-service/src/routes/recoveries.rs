@@ -87,7 +87,7 @@ async fn find_done(s: &AppState, id: &str) -> Result<JobRecord, ApiError> {
     Ok(job)
 }
 
-async fn find(s: &AppState, id: &str) -> Result<JobRecord, ApiError> {
+pub(crate) async fn find(s: &AppState, id: &str) -> Result<JobRecord, ApiError> {
     s.store.job(id).await?.ok_or_else(|| ApiError::NotFound(FieldError::new("job_id", format!("no recovery job {id}"))))
 }
 

@@ -51,37 +51,6 @@ impl Store {
         Ok(())
     }
 
-    pub async fn analysis_progress(&self, id: &str, progress: f64, message: &str, now: i64) -> Result<(), ApiError> {
-        let _w = self.writer.lock().await;
-        sqlx::query(
-            "UPDATE analysis_jobs SET state = 'running', progress = ?, message = ?, started_at = COALESCE(started_at, ?)
-             WHERE job_id = ? AND state IN ('queued', 'running') AND (worker IS NULL OR worker = ?)",
-        )
-        .bind(progress.clamp(0.0, 1.0))
-        .bind(message)
-        .bind(now)
-        .bind(id)
-        .bind(&self.worker_id)
-        .execute(&self.pool)
-        .await?;
-        Ok(())
-    }
-
-    pub async fn fail_analysis(&self, id: &str, error: &str, now: i64) -> Result<(), ApiError> {
-        let _w = self.writer.lock().await;
-        sqlx::query(
-            "UPDATE analysis_jobs SET state = 'failed', error = ?, finished_at = ?
-             WHERE job_id = ? AND state IN ('queued', 'running') AND (worker IS NULL OR worker = ?)",
-        )
-        .bind(error)
-        .bind(now)
-        .bind(id)
-        .bind(&self.worker_id)
-        .execute(&self.pool)
-        .await?;
-        Ok(())
-    }
-
     /// Stores the result (and any cluster assignments) and marks the job done in
     /// one transaction.
     pub async fn finish_analysis(

@@ -55,13 +55,12 @@ impl Store {
             .await?)
     }
 
-    /// Of `ids`, the meters registered on a feeder other than `feeder`, with theirs.
-    pub async fn meters_elsewhere(&self, feeder: &FeederId, ids: &[&str]) -> Result<Vec<(String, String)>, ApiError> {
+    /// The registered meters among `ids`, each with its feeder.
+    pub async fn meter_feeders(&self, ids: &[&str]) -> Result<Vec<(String, String)>, ApiError> {
         let mut out = Vec::new();
         for chunk in ids.chunks(500) {
             let mut qb =
-                sqlx::QueryBuilder::<sqlx::Sqlite>::new("SELECT meter_id, feeder_id FROM meters WHERE feeder_id <> ");
-            qb.push_bind(feeder.as_str()).push(" AND meter_id IN (");
+                sqlx::QueryBuilder::<sqlx::Sqlite>::new("SELECT meter_id, feeder_id FROM meters WHERE meter_id IN (");
             let mut sep = qb.separated(", ");
             for id in chunk {
                 sep.push_bind(*id);

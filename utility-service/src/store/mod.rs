@@ -5,7 +5,6 @@
 //! SQLite has a single writer anyway, and queuing in-process avoids `SQLITE_BUSY`
 //! on lock upgrades.
 
-use std::collections::HashSet;
 use std::str::FromStr;
 use std::time::Duration;
 
@@ -176,24 +175,6 @@ impl Store {
     }
 
     /// The subset of `ids` registered on `feeder`.
-    pub async fn known_meters(&self, feeder: &FeederId, ids: &[&str]) -> Result<HashSet<String>, ApiError> {
-        let mut known = HashSet::new();
-        for chunk in ids.chunks(INSERT_CHUNK) {
-            let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new("SELECT meter_id FROM meters WHERE feeder_id = ");
-            qb.push_bind(feeder.as_str()).push(" AND meter_id IN (");
-            let mut sep = qb.separated(", ");
-            for id in chunk {
-                sep.push_bind(*id);
-            }
-            sep.push_unseparated(")");
-            let rows = qb.build().fetch_all(&self.pool).await?;
-            for r in rows {
-                known.insert(r.try_get::<String, _>(0)?);
-            }
-        }
-        Ok(known)
-    }
-
     pub async fn meters_of(&self, feeder: &FeederId) -> Result<Vec<String>, ApiError> {
         Ok(sqlx::query_scalar("SELECT meter_id FROM meters WHERE feeder_id = ? ORDER BY meter_id")
             .bind(feeder.as_str())

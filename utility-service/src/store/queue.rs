@@ -62,6 +62,48 @@ pub struct JobLine {
 }
 
 impl Store {
+    /// Records a running job's progress (only while this worker may hold it).
+    pub async fn set_progress(
+        &self,
+        table: JobTable,
+        id: &str,
+        progress: f64,
+        message: &str,
+        now: i64,
+    ) -> Result<(), ApiError> {
+        let _w = self.writer.lock().await;
+        sqlx::query(&format!(
+            "UPDATE {} SET state = 'running', progress = ?, message = ?, started_at = COALESCE(started_at, ?)
+             WHERE job_id = ? AND state IN ('queued', 'running') AND (worker IS NULL OR worker = ?)",
+            table.name()
+        ))
+        .bind(progress.clamp(0.0, 1.0))
+        .bind(message)
+        .bind(now)
+        .bind(id)
+        .bind(&self.worker_id)
+        .execute(&self.pool)
+        .await?;
+        Ok(())
+    }
+
+    /// Ends a job as failed with `error` (only while this worker may hold it).
+    pub async fn fail(&self, table: JobTable, id: &str, error: &str, now: i64) -> Result<(), ApiError> {
+        let _w = self.writer.lock().await;
+        sqlx::query(&format!(
+            "UPDATE {} SET state = 'failed', error = ?, finished_at = ?
+             WHERE job_id = ? AND state IN ('queued', 'running') AND (worker IS NULL OR worker = ?)",
+            table.name()
+        ))
+        .bind(error)
+        .bind(now)
+        .bind(id)
+        .bind(&self.worker_id)
+        .execute(&self.pool)
+        .await?;
+        Ok(())
+    }
+
     /// This process's worker id (random per opened store).
     pub fn worker_id(&self) -> &str {
         &self.worker_id

@@ -61,45 +61,6 @@ impl Store {
         Ok(())
     }
 
-    pub async fn job_progress(
-        &self,
-        id: &str,
-        state: &str,
-        progress: f64,
-        message: &str,
-        now: i64,
-    ) -> Result<(), ApiError> {
-        let _w = self.writer.lock().await;
-        sqlx::query(
-            "UPDATE recovery_jobs SET state = ?, progress = ?, message = ?, started_at = COALESCE(started_at, ?)
-             WHERE job_id = ? AND state IN ('queued', 'running') AND (worker IS NULL OR worker = ?)",
-        )
-        .bind(state)
-        .bind(progress)
-        .bind(message)
-        .bind(now)
-        .bind(id)
-        .bind(&self.worker_id)
-        .execute(&self.pool)
-        .await?;
-        Ok(())
-    }
-
-    pub async fn fail_job(&self, id: &str, error: &str, now: i64) -> Result<(), ApiError> {
-        let _w = self.writer.lock().await;
-        sqlx::query(
-            "UPDATE recovery_jobs SET state = 'failed', error = ?, finished_at = ?
-             WHERE job_id = ? AND state IN ('queued', 'running') AND (worker IS NULL OR worker = ?)",
-        )
-        .bind(error)
-        .bind(now)
-        .bind(id)
-        .bind(&self.worker_id)
-        .execute(&self.pool)
-        .await?;
-        Ok(())
-    }
-
     /// Stores all results and marks the job done in one transaction.
     pub async fn finish_job(
         &self,
