@@ -1,5 +1,10 @@
-//! End-to-end tests: a real service on a free port with a fresh SQLite file, real
+//! End-to-end tests: a real service on a free port with a fresh database, real
 //! gateways with real outbox files, HTTP in between.
+//!
+//! The service database is a fresh SQLite file per test, or, with
+//! `METERVEIL_TEST_BACKEND=postgres`, a fresh PostgreSQL database per test on the
+//! server named by `METERVEIL_TEST_POSTGRES` (the README test command starts one
+//! and runs this whole file once per backend).
 
 use std::collections::HashSet;
 use std::sync::atomic::{AtomicU64, Ordering};
@@ -92,8 +97,7 @@ impl TestService {
 
 async fn spawn_service_with(tweak: impl FnOnce(&mut ServiceConfig)) -> TestService {
     let dir = tempfile::tempdir().expect("tempdir");
-    let mut config =
-        ServiceConfig::local(format!("sqlite:{}", dir.path().join("svc.sqlite").display()), Secret::new(TOKEN));
+    let mut config = ServiceConfig::local(test_database(dir.path()).await, Secret::new(TOKEN));
     tweak(&mut config);
     let svc = app::start(config).await.expect("service starts");
     TestService { svc, _dir: dir, http: reqwest::Client::new(), gw_key: Default::default(), seq: AtomicU64::new(0) }
@@ -101,6 +105,22 @@ async fn spawn_service_with(tweak: impl FnOnce(&mut ServiceConfig)) -> TestServi
 
 async fn spawn_service() -> TestService {
     spawn_service_with(|_| {}).await
+}
+
+/// A fresh, empty service database for one test (see the module comment).
+async fn test_database(dir: &std::path::Path) -> String {
+    if std::env::var("METERVEIL_TEST_BACKEND").as_deref() != Ok("postgres") {
+        return format!("sqlite:{}", dir.join("svc.sqlite").display());
+    }
+    use sqlx::Connection;
+    let admin = std::env::var("METERVEIL_TEST_POSTGRES")
+        .expect("METERVEIL_TEST_BACKEND=postgres needs METERVEIL_TEST_POSTGRES, an admin URL of a running server");
+    let name = format!("mvt_{:016x}", rand::random::<u64>());
+    let mut conn = sqlx::PgConnection::connect(&admin).await.expect("connect to the test PostgreSQL server");
+    sqlx::query(&format!("CREATE DATABASE {name}")).execute(&mut conn).await.expect("create test database");
+    conn.close().await.expect("close");
+    let base = admin.rsplit_once('/').map(|(b, _)| b).expect("admin URL ends with a database name");
+    format!("{base}/{name}")
 }
 
 fn now_s() -> i64 {
@@ -1119,13 +1139,12 @@ fn audit_and_calibrate_commands_on_files() {
 }
 
 /// A `utility-service serve` child process on a free port; returns it and its URL.
-fn serve_child(db: &std::path::Path, lease_s: u32) -> (std::process::Child, String) {
+fn serve_child(db: &str, lease_s: u32) -> (std::process::Child, String) {
     use std::io::BufRead;
     let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
         .args(["serve", "--bind", "127.0.0.1:0", "--operator-token", TOKEN, "--job-lease-s", &lease_s.to_string()])
         .args(["--gateway-master-key", "test-master-key-0123456789abcdef0123456789"])
-        .arg("--database-url")
-        .arg(format!("sqlite:{}", db.display()))
+        .args(["--database-url", db])
         .stdout(std::process::Stdio::piped())
         .stderr(std::process::Stdio::null())
         .spawn()
@@ -1139,12 +1158,12 @@ fn serve_child(db: &std::path::Path, lease_s: u32) -> (std::process::Child, Stri
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_job_whose_worker_is_killed_is_retried_by_another_and_never_half_served() {
     let dir = tempfile::tempdir().expect("tempdir");
-    let db = dir.path().join("shared.sqlite");
+    let db = test_database(dir.path()).await;
     // Fill the database through an in-process service that runs no worker.
     let feeder_meters;
     let (from, to);
     {
-        let mut config = ServiceConfig::local(format!("sqlite:{}", db.display()), Secret::new(TOKEN));
+        let mut config = ServiceConfig::local(db.clone(), Secret::new(TOKEN));
         config.run_worker = false;
         let svc = app::start(config).await.expect("service");
         let mut opts = SimulateOptions::new(svc.url(), dir.path().join("outboxes"));
@@ -1196,8 +1215,8 @@ async fn a_job_whose_worker_is_killed_is_retried_by_another_and_never_half_serve
     assert_eq!(seen["state"], "running", "{seen}");
     first.kill().expect("SIGKILL");
     first.wait().expect("reaped");
-    let store = meterveil_service::store::Store::open(&format!("sqlite:{}", db.display())).await.expect("open");
-    let partial: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM recovered_intervals WHERE job_id = ?")
+    let store = meterveil_service::store::Store::open(&db).await.expect("open");
+    let partial: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM recovered_intervals WHERE job_id = $1")
         .bind(&id)
         .fetch_one(store.pool())
         .await
@@ -1219,13 +1238,13 @@ async fn a_job_whose_worker_is_killed_is_retried_by_another_and_never_half_serve
     let _ = second.kill();
     let _ = second.wait();
     assert_eq!(done["state"], "done", "{done}");
-    let attempts: i64 = sqlx::query_scalar("SELECT attempts FROM recovery_jobs WHERE job_id = ?")
+    let attempts: i64 = sqlx::query_scalar("SELECT attempts FROM recovery_jobs WHERE job_id = $1")
         .bind(&id)
         .fetch_one(store.pool())
         .await
         .expect("attempts");
     assert_eq!(attempts, 2);
-    let rows: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM recovered_intervals WHERE job_id = ?")
+    let rows: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM recovered_intervals WHERE job_id = $1")
         .bind(&id)
         .fetch_one(store.pool())
         .await
@@ -1233,16 +1252,14 @@ async fn a_job_whose_worker_is_killed_is_retried_by_another_and_never_half_serve
     assert_eq!(rows as usize, feeder_meters * 7 * 96);
     // The operator's job list shows it, with its two attempts.
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
-        .args(["jobs", "--database-url"])
-        .arg(format!("sqlite:{}", db.display()))
+        .args(["jobs", "--database-url", &db])
         .output()
         .expect("jobs");
     let text = String::from_utf8_lossy(&out.stdout);
     let line = text.lines().find(|l| l.starts_with(&id)).unwrap_or_else(|| panic!("{text}"));
     assert!(line.contains(" done ") && line.contains("100%") && line.contains("  2  "), "{line}");
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
-        .args(["jobs", "--database-url"])
-        .arg(format!("sqlite:{}", db.display()))
+        .args(["jobs", "--database-url", &db])
         .args(["cancel", &id])
         .output()
         .expect("jobs cancel");
@@ -1549,12 +1566,11 @@ fn child_gateway_process() {
     rt.block_on(meterveil_gateway::run::run(config, rx)).expect("gateway run");
 }
 
-fn serve_on(db: &std::path::Path, port: u16) -> std::process::Child {
+fn serve_on(db: &str, port: u16) -> std::process::Child {
     let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
         .args(["serve", "--bind", &format!("127.0.0.1:{port}"), "--operator-token", TOKEN, "--no-worker"])
         .args(["--gateway-master-key", "test-master-key-0123456789abcdef0123456789"])
-        .arg("--database-url")
-        .arg(format!("sqlite:{}", db.display()))
+        .args(["--database-url", db])
         .stdout(std::process::Stdio::null())
         .stderr(std::process::Stdio::null())
         .spawn()
@@ -1585,7 +1601,7 @@ fn gateway_child(config: &std::path::Path) -> std::process::Child {
 async fn killed_gateways_and_a_killed_service_lose_and_repeat_nothing() {
     use rand::{Rng, SeedableRng};
     let dir = tempfile::tempdir().expect("tempdir");
-    let db = dir.path().join("svc.sqlite");
+    let db = test_database(dir.path()).await;
     let port = std::net::TcpListener::bind("127.0.0.1:0").expect("port").local_addr().expect("addr").port();
     let base = format!("http://127.0.0.1:{port}");
     let mut service = serve_on(&db, port);
@@ -1645,7 +1661,7 @@ async fn killed_gateways_and_a_killed_service_lose_and_repeat_nothing() {
     // Kill the gateway at random moments; once, kill the service too while it ingests.
     let mut kills = 0;
     let mut progress = Vec::new();
-    let watcher = meterveil_service::store::Store::open(&format!("sqlite:{}", db.display())).await.expect("open");
+    let watcher = meterveil_service::store::Store::open(&db).await.expect("open");
     for round in 0..12 {
         let mut gw = gateway_child(&config);
         tokio::time::sleep(std::time::Duration::from_millis(rng.random_range(30..250))).await;
@@ -1680,7 +1696,7 @@ async fn killed_gateways_and_a_killed_service_lose_and_repeat_nothing() {
     let _ = service.kill();
     let _ = service.wait();
 
-    let store = meterveil_service::store::Store::open(&format!("sqlite:{}", db.display())).await.expect("open");
+    let store = meterveil_service::store::Store::open(&db).await.expect("open");
     let stored: Vec<(String, i64)> =
         sqlx::query_as("SELECT meter_id, interval_start FROM readings ORDER BY meter_id, interval_start")
             .fetch_all(store.pool())

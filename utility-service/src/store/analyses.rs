@@ -1,7 +1,7 @@
 //! Analysis jobs (clustering, audit, calibration) and their stored results.
 
 use serde::Serialize;
-use sqlx::{QueryBuilder, Row, Sqlite};
+use sqlx::{Any, Row};
 
 use super::Store;
 use crate::error::ApiError;
@@ -38,9 +38,9 @@ impl Store {
         params: &serde_json::Value,
         now: i64,
     ) -> Result<(), ApiError> {
-        let _w = self.writer.lock().await;
+        let _w = self.write_lock().await;
         sqlx::query(
-            "INSERT INTO analysis_jobs (job_id, kind, params, state, created_at) VALUES (?, ?, ?, 'queued', ?)",
+            "INSERT INTO analysis_jobs (job_id, kind, params, state, created_at) VALUES ($1, $2, $3, 'queued', $4)",
         )
         .bind(id)
         .bind(kind)
@@ -60,21 +60,26 @@ impl Store {
         assignments: &[Assignment],
         now: i64,
     ) -> Result<(), ApiError> {
-        let _w = self.writer.lock().await;
+        let _w = self.write_lock().await;
         let mut tx = self.pool.begin().await?;
         Self::take_done(&mut tx, id, result, &self.worker_id, now).await?;
         for chunk in assignments.chunks(800) {
-            let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
-                "INSERT INTO cluster_assignments (job_id, meter_id, feeder_id, cluster, confidence) ",
+            let sql = super::values_sql(
+                "INSERT INTO cluster_assignments (job_id, meter_id, feeder_id, cluster, confidence)",
+                chunk.len(),
+                5,
+                "",
             );
-            qb.push_values(chunk, |mut b, a| {
-                b.push_bind(id)
-                    .push_bind(&a.meter_id)
-                    .push_bind(&a.feeder_id)
-                    .push_bind(a.cluster)
-                    .push_bind(a.confidence.clamp(0.0, 1.0));
-            });
-            qb.build().execute(&mut *tx).await?;
+            let mut q = sqlx::query(&sql);
+            for a in chunk {
+                q = q
+                    .bind(id)
+                    .bind(a.meter_id.as_str())
+                    .bind(a.feeder_id.as_str())
+                    .bind(a.cluster)
+                    .bind(a.confidence.clamp(0.0, 1.0));
+            }
+            q.execute(&mut *tx).await?;
         }
         tx.commit().await?;
         Ok(())
@@ -82,15 +87,15 @@ impl Store {
 
     /// Marks the job done with its result if this worker still holds it.
     async fn take_done(
-        tx: &mut sqlx::Transaction<'_, Sqlite>,
+        tx: &mut sqlx::Transaction<'_, Any>,
         id: &str,
         result: &serde_json::Value,
         worker: &str,
         now: i64,
     ) -> Result<(), ApiError> {
         let held = sqlx::query(
-            "UPDATE analysis_jobs SET state = 'done', progress = 1, message = 'done', result = ?, finished_at = ?
-             WHERE job_id = ? AND state = 'running' AND (worker IS NULL OR worker = ?)",
+            "UPDATE analysis_jobs SET state = 'done', progress = 1, message = 'done', result = $1, finished_at = $2
+             WHERE job_id = $3 AND state = 'running' AND (worker IS NULL OR worker = $4)",
         )
         .bind(result.to_string())
         .bind(now)
@@ -116,10 +121,10 @@ impl Store {
         publish: Option<(&meterveil_shared::FeederId, &meterveil_shared::DitherProfile)>,
         now: i64,
     ) -> Result<Option<i64>, ApiError> {
-        let _w = self.writer.lock().await;
+        let _w = self.write_lock().await;
         let mut tx = self.pool.begin().await?;
         let version = match publish {
-            Some((f, p)) => Some(super::insert_profile(&mut tx, f, p, now).await?),
+            Some((f, p)) => Some(super::insert_profile(self.backend, &mut tx, f, p, now).await?),
             None => None,
         };
         let mut result = result.clone();
@@ -131,7 +136,7 @@ impl Store {
 
     pub async fn analysis(&self, id: &str) -> Result<Option<AnalysisRecord>, ApiError> {
         let Some(r) =
-            sqlx::query("SELECT * FROM analysis_jobs WHERE job_id = ?").bind(id).fetch_optional(&self.pool).await?
+            sqlx::query("SELECT * FROM analysis_jobs WHERE job_id = $1").bind(id).fetch_optional(&self.pool).await?
         else {
             return Ok(None);
         };
@@ -153,7 +158,7 @@ impl Store {
 
     pub async fn assignments(&self, id: &str) -> Result<Vec<Assignment>, ApiError> {
         let rows = sqlx::query(
-            "SELECT meter_id, feeder_id, cluster, confidence FROM cluster_assignments WHERE job_id = ? ORDER BY meter_id",
+            "SELECT meter_id, feeder_id, cluster, confidence FROM cluster_assignments WHERE job_id = $1 ORDER BY meter_id",
         )
         .bind(id)
         .fetch_all(&self.pool)

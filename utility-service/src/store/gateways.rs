@@ -17,10 +17,10 @@ impl Store {
     /// Provisions a gateway on a feeder, or rotates an existing one's key (and
     /// moves it to `feeder`). Returns the new key generation.
     pub async fn provision_gateway(&self, id: &str, feeder: &FeederId, now: i64) -> Result<i64, ApiError> {
-        let _w = self.writer.lock().await;
+        let _w = self.write_lock().await;
         let generation: i64 = sqlx::query_scalar(
-            "INSERT INTO gateways (gateway_id, feeder_id, key_generation, created_at) VALUES (?1, ?2, 1, ?3)
-             ON CONFLICT (gateway_id) DO UPDATE SET key_generation = key_generation + 1, feeder_id = ?2
+            "INSERT INTO gateways (gateway_id, feeder_id, key_generation, created_at) VALUES ($1, $2, 1, $3)
+             ON CONFLICT (gateway_id) DO UPDATE SET key_generation = gateways.key_generation + 1, feeder_id = $2
              RETURNING key_generation",
         )
         .bind(id)
@@ -33,7 +33,7 @@ impl Store {
 
     pub async fn gateway(&self, id: &str) -> Result<Option<GatewayRecord>, ApiError> {
         let r: Option<(String, String, i64, i64)> = sqlx::query_as(
-            "SELECT gateway_id, feeder_id, key_generation, last_sequence FROM gateways WHERE gateway_id = ?",
+            "SELECT gateway_id, feeder_id, key_generation, last_sequence FROM gateways WHERE gateway_id = $1",
         )
         .bind(id)
         .fetch_optional(&self.pool)
@@ -48,25 +48,28 @@ impl Store {
 
     /// The body hash and batch id an accepted sequence number carried.
     pub async fn sequence_record(&self, gateway: &str, sequence: i64) -> Result<Option<(String, String)>, ApiError> {
-        Ok(sqlx::query_as("SELECT body_sha256, batch_id FROM gateway_sequences WHERE gateway_id = ? AND sequence = ?")
-            .bind(gateway)
-            .bind(sequence)
-            .fetch_optional(&self.pool)
-            .await?)
+        Ok(sqlx::query_as(
+            "SELECT body_sha256, batch_id FROM gateway_sequences WHERE gateway_id = $1 AND sequence = $2",
+        )
+        .bind(gateway)
+        .bind(sequence)
+        .fetch_optional(&self.pool)
+        .await?)
     }
 
     /// The registered meters among `ids`, each with its feeder.
     pub async fn meter_feeders(&self, ids: &[&str]) -> Result<Vec<(String, String)>, ApiError> {
         let mut out = Vec::new();
         for chunk in ids.chunks(500) {
-            let mut qb =
-                sqlx::QueryBuilder::<sqlx::Sqlite>::new("SELECT meter_id, feeder_id FROM meters WHERE meter_id IN (");
-            let mut sep = qb.separated(", ");
+            let sql = format!(
+                "SELECT meter_id, feeder_id FROM meters WHERE meter_id IN ({})",
+                super::placeholders(1, chunk.len())
+            );
+            let mut q = sqlx::query_as::<_, (String, String)>(&sql);
             for id in chunk {
-                sep.push_bind(*id);
+                q = q.bind(*id);
             }
-            qb.push(")");
-            out.extend(qb.build_query_as::<(String, String)>().fetch_all(&self.pool).await?);
+            out.extend(q.fetch_all(&self.pool).await?);
         }
         Ok(out)
     }

@@ -1,19 +1,24 @@
 //! Storage behind one type. SQL lives here and nowhere else.
 //!
-//! SQLite is the embedded default: one file, WAL journal, `synchronous = FULL`, so
-//! an acknowledged batch survives power loss. Writes go through one async mutex:
-//! SQLite has a single writer anyway, and queuing in-process avoids `SQLITE_BUSY`
-//! on lock upgrades.
+//! Two backends, chosen by the database URL, run the same statements through
+//! sqlx's `Any` driver (placeholders are written `$N`, which both accept):
+//! - SQLite, the embedded default: one file, WAL journal, `synchronous = FULL`, so
+//!   an acknowledged batch survives power loss. Writes go through one async mutex:
+//!   SQLite has a single writer anyway, and queuing in-process avoids `SQLITE_BUSY`
+//!   on lock upgrades.
+//! - PostgreSQL (`postgres://…`): writers run concurrently; the few statements
+//!   whose correctness depends on serialisation take row locks instead
+//!   (`FOR UPDATE`, and `FOR UPDATE SKIP LOCKED` when workers claim jobs), so
+//!   several service and worker processes can share one database.
 
-use std::str::FromStr;
 use std::time::Duration;
 
 use anyhow::Context;
 use meterveil_shared::wire::AckWire;
 use meterveil_shared::{DitherProfile, DitherProfileSpec, FeederId, FieldError, MeterId, ProfileVersion};
-use sqlx::sqlite::{SqliteConnectOptions, SqliteJournalMode, SqlitePoolOptions, SqliteSynchronous};
-use sqlx::{QueryBuilder, Row, Sqlite, SqlitePool};
-use tokio::sync::Mutex;
+use sqlx::any::{AnyPoolOptions, AnyRow};
+use sqlx::{Any, AnyPool, Executor, Row};
+use tokio::sync::{Mutex, MutexGuard};
 
 use crate::error::ApiError;
 use crate::ingest::ValidatedBatch;
@@ -25,9 +30,51 @@ pub mod queue;
 pub mod recoveries;
 
 /// Rows per multi-row INSERT; 1000 rows of 5 values stays far below SQLite's
-/// 32766 bound on statement parameters.
+/// 32766 and PostgreSQL's 65535 bounds on statement parameters.
 const INSERT_CHUNK: usize = 1000;
 
+/// Which database a store runs on.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Backend {
+    Sqlite,
+    Postgres,
+}
+
+impl Backend {
+    /// The backend a database URL names: `postgres://` or `postgresql://` is
+    /// PostgreSQL; `sqlite:PATH` or a plain path is SQLite.
+    pub fn of_url(url: &str) -> Self {
+        if url.starts_with("postgres://") || url.starts_with("postgresql://") {
+            Backend::Postgres
+        } else {
+            Backend::Sqlite
+        }
+    }
+}
+
+/// `INSERT … VALUES ($1, …), (…), …` for `rows` rows of `cols` values, then `suffix`.
+pub(crate) fn values_sql(prefix: &str, rows: usize, cols: usize, suffix: &str) -> String {
+    use std::fmt::Write;
+    let mut sql = String::with_capacity(prefix.len() + suffix.len() + rows * cols * 6 + 8);
+    sql.push_str(prefix);
+    sql.push_str(" VALUES ");
+    for r in 0..rows {
+        sql.push_str(if r == 0 { "(" } else { ", (" });
+        for c in 0..cols {
+            let _ = write!(sql, "{}${}", if c == 0 { "" } else { ", " }, r * cols + c + 1);
+        }
+        sql.push(')');
+    }
+    sql.push(' ');
+    sql.push_str(suffix);
+    sql
+}
+
+/// `$from, $from+1, …` for `n` placeholders (an `IN (…)` list).
+pub(crate) fn placeholders(from: usize, n: usize) -> String {
+    (from..from + n).map(|i| format!("${i}")).collect::<Vec<_>>().join(", ")
+}
 #[derive(Debug, Clone)]
 pub struct ProfileRecord {
     pub feeder_id: FeederId,
@@ -75,46 +122,105 @@ pub struct FeederSummary {
 
 #[derive(Clone)]
 pub struct Store {
-    pool: SqlitePool,
-    writer: std::sync::Arc<Mutex<()>>,
+    pool: AnyPool,
+    backend: Backend,
+    /// SQLite only: serialises writers within this process.
+    writer: Option<std::sync::Arc<Mutex<()>>>,
     /// Identifies this process as a job worker in lease columns.
     worker_id: String,
 }
 
 impl Store {
-    /// Opens (creating if missing) the database at `url` (`sqlite:PATH` or a path)
-    /// and applies the migrations in `migrations/sqlite`.
+    /// Opens the database at `url` and applies its backend's migrations
+    /// (`migrations/sqlite` or `migrations/postgres`). SQLite: `sqlite:PATH` or a
+    /// plain path, created if missing. PostgreSQL: `postgres://user@host:port/db`;
+    /// the database must exist.
     pub async fn open(url: &str) -> anyhow::Result<Self> {
-        let url = if url.starts_with("sqlite:") { url.to_owned() } else { format!("sqlite:{url}") };
-        let opts = SqliteConnectOptions::from_str(&url)
-            .with_context(|| format!("DATABASE_URL {url:?} is not a SQLite URL"))?
-            .create_if_missing(true)
-            .journal_mode(SqliteJournalMode::Wal)
-            .synchronous(SqliteSynchronous::Full)
-            .foreign_keys(true)
-            .busy_timeout(Duration::from_secs(10));
-        let pool = SqlitePoolOptions::new()
-            .max_connections(4)
-            .connect_with(opts)
-            .await
-            .with_context(|| format!("opening database {url}"))?;
-        sqlx::migrate!("../migrations/sqlite").run(&pool).await.context("applying migrations")?;
+        sqlx::any::install_default_drivers();
+        let backend = Backend::of_url(url);
+        let (url, pool) = match backend {
+            Backend::Sqlite => {
+                let mut url = if url.starts_with("sqlite:") { url.to_owned() } else { format!("sqlite:{url}") };
+                if !url.contains('?') && !url.contains(":memory:") {
+                    url.push_str("?mode=rwc");
+                }
+                let pool = AnyPoolOptions::new()
+                    .max_connections(4)
+                    .after_connect(|conn, _| {
+                        Box::pin(async move {
+                            conn.execute(
+                                "PRAGMA journal_mode = WAL; PRAGMA synchronous = FULL; \
+                                 PRAGMA foreign_keys = ON; PRAGMA busy_timeout = 10000;",
+                            )
+                            .await?;
+                            Ok(())
+                        })
+                    })
+                    .connect(&url)
+                    .await
+                    .with_context(|| format!("opening SQLite database {url}"))?;
+                sqlx::migrate!("../migrations/sqlite").run(&pool).await.context("applying migrations")?;
+                (url, pool)
+            }
+            Backend::Postgres => {
+                let pool = AnyPoolOptions::new()
+                    .max_connections(8)
+                    .acquire_timeout(Duration::from_secs(30))
+                    .connect(url)
+                    .await
+                    .with_context(|| format!("opening PostgreSQL database {}", redact_url(url)))?;
+                sqlx::migrate!("../migrations/postgres").run(&pool).await.context("applying migrations")?;
+                (url.to_owned(), pool)
+            }
+        };
+        tracing::debug!(backend = ?backend, url = %redact_url(&url), "store opened");
         let worker_id = {
             use rand::Rng;
             format!("w-{}-{:08x}", std::process::id(), rand::rng().random::<u32>())
         };
-        Ok(Self { pool, writer: std::sync::Arc::new(Mutex::new(())), worker_id })
+        let writer = (backend == Backend::Sqlite).then(|| std::sync::Arc::new(Mutex::new(())));
+        Ok(Self { pool, backend, writer, worker_id })
     }
 
-    pub fn pool(&self) -> &SqlitePool {
+    pub fn pool(&self) -> &AnyPool {
         &self.pool
+    }
+
+    pub fn backend(&self) -> Backend {
+        self.backend
+    }
+
+    /// Held across a write: the process-wide writer lock on SQLite, nothing on
+    /// PostgreSQL (which serialises by row locks).
+    async fn write_lock(&self) -> Option<MutexGuard<'_, ()>> {
+        match &self.writer {
+            Some(m) => Some(m.lock().await),
+            None => None,
+        }
+    }
+
+    /// On PostgreSQL, locks the feeder's row until `tx` ends, so statements that
+    /// read-then-write per feeder (the next profile version) do not race. SQLite's
+    /// writer lock already serialises them.
+    pub(crate) async fn lock_feeder(
+        backend: Backend,
+        tx: &mut sqlx::Transaction<'_, Any>,
+        feeder: &FeederId,
+    ) -> Result<(), ApiError> {
+        if backend == Backend::Postgres {
+            sqlx::query("SELECT feeder_id FROM feeders WHERE feeder_id = $1 FOR UPDATE")
+                .bind(feeder.as_str())
+                .fetch_optional(&mut **tx)
+                .await?;
+        }
+        Ok(())
     }
 
     /// Registers a feeder. Returns false when it already existed (same id).
     pub async fn create_feeder(&self, id: &FeederId, name: &str, time_zone: &str, now: i64) -> Result<bool, ApiError> {
-        let _w = self.writer.lock().await;
+        let _w = self.write_lock().await;
         let r =
-            sqlx::query("INSERT OR IGNORE INTO feeders (feeder_id, name, time_zone, created_at) VALUES (?, ?, ?, ?)")
+            sqlx::query("INSERT INTO feeders (feeder_id, name, time_zone, created_at) VALUES ($1, $2, $3, $4) ON CONFLICT DO NOTHING")
                 .bind(id.as_str())
                 .bind(name)
                 .bind(time_zone)
@@ -126,14 +232,14 @@ impl Store {
 
     /// The feeder's IANA time zone name, or None when it is not registered.
     pub async fn feeder_time_zone(&self, id: &FeederId) -> Result<Option<String>, ApiError> {
-        Ok(sqlx::query_scalar("SELECT time_zone FROM feeders WHERE feeder_id = ?")
+        Ok(sqlx::query_scalar("SELECT time_zone FROM feeders WHERE feeder_id = $1")
             .bind(id.as_str())
             .fetch_optional(&self.pool)
             .await?)
     }
 
     pub async fn feeder_exists(&self, id: &FeederId) -> Result<bool, ApiError> {
-        let row = sqlx::query("SELECT 1 FROM feeders WHERE feeder_id = ?")
+        let row = sqlx::query("SELECT 1 FROM feeders WHERE feeder_id = $1")
             .bind(id.as_str())
             .fetch_optional(&self.pool)
             .await?;
@@ -143,11 +249,11 @@ impl Store {
     /// Registers meters on a feeder. Meters already on this feeder are counted, not
     /// an error; a meter registered on another feeder is a 409 and nothing is added.
     pub async fn add_meters(&self, feeder: &FeederId, ids: &[MeterId], now: i64) -> Result<(u64, u64), ApiError> {
-        let _w = self.writer.lock().await;
+        let _w = self.write_lock().await;
         let mut tx = self.pool.begin().await?;
         let mut added = 0;
         for (i, id) in ids.iter().enumerate() {
-            let existing: Option<String> = sqlx::query_scalar("SELECT feeder_id FROM meters WHERE meter_id = ?")
+            let existing: Option<String> = sqlx::query_scalar("SELECT feeder_id FROM meters WHERE meter_id = $1")
                 .bind(id.as_str())
                 .fetch_optional(&mut *tx)
                 .await?;
@@ -160,7 +266,7 @@ impl Store {
                     )))
                 }
                 None => {
-                    sqlx::query("INSERT INTO meters (meter_id, feeder_id, created_at) VALUES (?, ?, ?)")
+                    sqlx::query("INSERT INTO meters (meter_id, feeder_id, created_at) VALUES ($1, $2, $3)")
                         .bind(id.as_str())
                         .bind(feeder.as_str())
                         .bind(now)
@@ -176,7 +282,7 @@ impl Store {
 
     /// The subset of `ids` registered on `feeder`.
     pub async fn meters_of(&self, feeder: &FeederId) -> Result<Vec<String>, ApiError> {
-        Ok(sqlx::query_scalar("SELECT meter_id FROM meters WHERE feeder_id = ? ORDER BY meter_id")
+        Ok(sqlx::query_scalar("SELECT meter_id FROM meters WHERE feeder_id = $1 ORDER BY meter_id")
             .bind(feeder.as_str())
             .fetch_all(&self.pool)
             .await?)
@@ -186,7 +292,7 @@ impl Store {
     pub async fn profiles(&self, feeder: &FeederId) -> Result<Vec<ProfileRecord>, ApiError> {
         let rows = sqlx::query(
             "SELECT version, noise, scale_kw, boundaries_kw, interval_s, send_registers, created_at, in_use
-             FROM dither_profiles WHERE feeder_id = ? ORDER BY version",
+             FROM dither_profiles WHERE feeder_id = $1 ORDER BY version",
         )
         .bind(feeder.as_str())
         .fetch_all(&self.pool)
@@ -205,9 +311,9 @@ impl Store {
         profile: &DitherProfile,
         now: i64,
     ) -> Result<ProfileRecord, ApiError> {
-        let _w = self.writer.lock().await;
+        let _w = self.write_lock().await;
         let mut tx = self.pool.begin().await?;
-        let next = insert_profile(&mut tx, feeder, profile, now).await?;
+        let next = insert_profile(self.backend, &mut tx, feeder, profile, now).await?;
         tx.commit().await?;
         Ok(ProfileRecord {
             feeder_id: feeder.clone(),
@@ -225,14 +331,15 @@ impl Store {
         version: ProfileVersion,
         profile: &DitherProfile,
     ) -> Result<(), ApiError> {
-        let _w = self.writer.lock().await;
+        let _w = self.write_lock().await;
         let spec = profile.to_spec();
-        let in_use: Option<bool> =
-            sqlx::query_scalar("SELECT in_use FROM dither_profiles WHERE feeder_id = ? AND version = ?")
+        let in_use: Option<i64> =
+            sqlx::query_scalar("SELECT in_use FROM dither_profiles WHERE feeder_id = $1 AND version = $2")
                 .bind(feeder.as_str())
                 .bind(i64::from(version.0))
                 .fetch_optional(&self.pool)
                 .await?;
+        let in_use = in_use.map(|v| v != 0);
         match in_use {
             None => Err(ApiError::NotFound(FieldError::new(
                 "version",
@@ -244,14 +351,14 @@ impl Store {
             ))),
             Some(false) => {
                 sqlx::query(
-                    "UPDATE dither_profiles SET noise = ?, scale_kw = ?, boundaries_kw = ?, interval_s = ?, send_registers = ?
-                     WHERE feeder_id = ? AND version = ? AND in_use = 0",
+                    "UPDATE dither_profiles SET noise = $1, scale_kw = $2, boundaries_kw = $3, interval_s = $4, send_registers = $5
+                     WHERE feeder_id = $6 AND version = $7 AND in_use = 0",
                 )
                 .bind(&spec.noise)
                 .bind(spec.scale_kw)
                 .bind(serde_json::to_string(&spec.boundaries_kw).map_err(anyhow::Error::from)?)
                 .bind(i64::from(spec.interval_s))
-                .bind(spec.send_registers)
+                .bind(i64::from(spec.send_registers))
                 .bind(feeder.as_str())
                 .bind(i64::from(version.0))
                 .execute(&self.pool)
@@ -262,7 +369,7 @@ impl Store {
     }
 
     pub async fn find_batch(&self, batch_id: &str) -> Result<Option<StoredBatch>, ApiError> {
-        let row = sqlx::query("SELECT body_sha256, ack FROM ingest_batches WHERE batch_id = ?")
+        let row = sqlx::query("SELECT body_sha256, ack FROM ingest_batches WHERE batch_id = $1")
             .bind(batch_id)
             .fetch_optional(&self.pool)
             .await?;
@@ -279,14 +386,14 @@ impl Store {
         sequence: Option<i64>,
         now: i64,
     ) -> Result<CommitOutcome, ApiError> {
-        let _w = self.writer.lock().await;
+        let _w = self.write_lock().await;
         if let Some(existing) = self.find_batch(&b.batch_id).await? {
             return Ok(CommitOutcome::AlreadyStored(existing));
         }
         let mut tx = self.pool.begin().await?;
         if let Some(seq) = sequence {
             let moved =
-                sqlx::query("UPDATE gateways SET last_sequence = ?1 WHERE gateway_id = ?2 AND last_sequence < ?1")
+                sqlx::query("UPDATE gateways SET last_sequence = $1 WHERE gateway_id = $2 AND last_sequence < $1")
                     .bind(seq)
                     .bind(b.gateway_id.as_str())
                     .execute(&mut *tx)
@@ -298,7 +405,7 @@ impl Store {
                 )));
             }
             sqlx::query(
-                "INSERT INTO gateway_sequences (gateway_id, sequence, body_sha256, batch_id) VALUES (?, ?, ?, ?)",
+                "INSERT INTO gateway_sequences (gateway_id, sequence, body_sha256, batch_id) VALUES ($1, $2, $3, $4)",
             )
             .bind(b.gateway_id.as_str())
             .bind(seq)
@@ -309,33 +416,40 @@ impl Store {
         }
         let mut stored_readings = 0;
         for chunk in b.readings.chunks(INSERT_CHUNK) {
-            let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
-                "INSERT OR IGNORE INTO readings (meter_id, interval_start, level, profile_version, batch_id) ",
+            let sql = values_sql(
+                "INSERT INTO readings (meter_id, interval_start, level, profile_version, batch_id)",
+                chunk.len(),
+                5,
+                "ON CONFLICT DO NOTHING",
             );
-            qb.push_values(chunk, |mut row, r| {
-                row.push_bind(r.meter_id.as_str())
-                    .push_bind(r.interval_start)
-                    .push_bind(i64::from(r.level))
-                    .push_bind(i64::from(r.profile_version))
-                    .push_bind(&b.batch_id);
-            });
-            stored_readings += qb.build().execute(&mut *tx).await?.rows_affected();
+            let mut q = sqlx::query(&sql);
+            for r in chunk {
+                q = q
+                    .bind(r.meter_id.as_str())
+                    .bind(r.interval_start)
+                    .bind(i64::from(r.level))
+                    .bind(i64::from(r.profile_version))
+                    .bind(b.batch_id.as_str());
+            }
+            stored_readings += q.execute(&mut *tx).await?.rows_affected();
         }
         let mut stored_registers = 0;
         for chunk in b.registers.chunks(INSERT_CHUNK) {
-            let mut qb: QueryBuilder<Sqlite> =
-                QueryBuilder::new("INSERT OR IGNORE INTO register_reads (meter_id, read_at, wh_total, batch_id) ");
-            qb.push_values(chunk, |mut row, r| {
+            let sql = values_sql(
+                "INSERT INTO register_reads (meter_id, read_at, wh_total, batch_id)",
+                chunk.len(),
+                4,
+                "ON CONFLICT DO NOTHING",
+            );
+            let mut q = sqlx::query(&sql);
+            for r in chunk {
                 // wh_total was checked to fit an i64 during validation.
-                row.push_bind(r.meter_id.as_str())
-                    .push_bind(r.read_at)
-                    .push_bind(r.wh_total as i64)
-                    .push_bind(&b.batch_id);
-            });
-            stored_registers += qb.build().execute(&mut *tx).await?.rows_affected();
+                q = q.bind(r.meter_id.as_str()).bind(r.read_at).bind(r.wh_total as i64).bind(b.batch_id.as_str());
+            }
+            stored_registers += q.execute(&mut *tx).await?.rows_affected();
         }
         for v in &b.versions_used {
-            sqlx::query("UPDATE dither_profiles SET in_use = 1 WHERE feeder_id = ? AND version = ? AND in_use = 0")
+            sqlx::query("UPDATE dither_profiles SET in_use = 1 WHERE feeder_id = $1 AND version = $2 AND in_use = 0")
                 .bind(b.feeder_id.as_str())
                 .bind(i64::from(*v))
                 .execute(&mut *tx)
@@ -348,8 +462,9 @@ impl Store {
             stored_registers,
             duplicate_registers: b.registers.len() as u64 - stored_registers,
         };
-        sqlx::query(
-            "INSERT INTO ingest_batches (batch_id, gateway_id, feeder_id, body_sha256, received_at, ack) VALUES (?, ?, ?, ?, ?, ?)",
+        let recorded = sqlx::query(
+            "INSERT INTO ingest_batches (batch_id, gateway_id, feeder_id, body_sha256, received_at, ack)
+             VALUES ($1, $2, $3, $4, $5, $6) ON CONFLICT DO NOTHING",
         )
         .bind(&b.batch_id)
         .bind(b.gateway_id.as_str())
@@ -359,6 +474,15 @@ impl Store {
         .bind(serde_json::to_string(&ack).map_err(anyhow::Error::from)?)
         .execute(&mut *tx)
         .await?;
+        if recorded.rows_affected() != 1 {
+            // A concurrent request (PostgreSQL) stored the same batch id first:
+            // nothing of this attempt stays, and the stored acknowledgement answers.
+            tx.rollback().await?;
+            if let Some(existing) = self.find_batch(&b.batch_id).await? {
+                return Ok(CommitOutcome::AlreadyStored(existing));
+            }
+            return Err(ApiError::Internal(anyhow::anyhow!("batch {} conflicted but is not stored", b.batch_id)));
+        }
         tx.commit().await?;
         Ok(CommitOutcome::Stored(ack))
     }
@@ -395,7 +519,7 @@ impl Store {
         let rows = sqlx::query(
             "SELECT r.meter_id, r.interval_start, r.level, r.profile_version
              FROM readings r JOIN meters m ON m.meter_id = r.meter_id
-             WHERE m.feeder_id = ? ORDER BY r.meter_id, r.interval_start",
+             WHERE m.feeder_id = $1 ORDER BY r.meter_id, r.interval_start",
         )
         .bind(feeder.as_str())
         .fetch_all(&self.pool)
@@ -407,6 +531,16 @@ impl Store {
 
     /// Names of every column of every table, for the audit that no raw value is stored.
     pub async fn schema_columns(&self) -> Result<Vec<(String, String, String)>, ApiError> {
+        if self.backend == Backend::Postgres {
+            let rows: Vec<(String, String, String)> = sqlx::query_as(
+                "SELECT table_name::text, column_name::text, data_type::text FROM information_schema.columns
+                 WHERE table_schema = current_schema() AND table_name NOT LIKE '\\_sqlx%'
+                 ORDER BY table_name, ordinal_position",
+            )
+            .fetch_all(&self.pool)
+            .await?;
+            return Ok(rows);
+        }
         let tables: Vec<String> =
             sqlx::query_scalar("SELECT name FROM sqlite_master WHERE type = 'table' AND name NOT LIKE 'sqlite_%' AND name NOT LIKE '_sqlx%'")
                 .fetch_all(&self.pool)
@@ -423,14 +557,14 @@ impl Store {
     }
 }
 
-fn profile_from_row(feeder: &FeederId, r: &sqlx::sqlite::SqliteRow) -> Result<ProfileRecord, ApiError> {
+fn profile_from_row(feeder: &FeederId, r: &AnyRow) -> Result<ProfileRecord, ApiError> {
     let boundaries: String = r.try_get("boundaries_kw")?;
     let spec = DitherProfileSpec {
         noise: r.try_get("noise")?,
         scale_kw: r.try_get("scale_kw")?,
         boundaries_kw: serde_json::from_str(&boundaries).map_err(anyhow::Error::from)?,
         interval_s: r.try_get::<i64, _>("interval_s")? as u32,
-        send_registers: r.try_get("send_registers")?,
+        send_registers: r.try_get::<i64, _>("send_registers")? != 0,
     };
     let profile = DitherProfile::try_from(spec).map_err(|e| anyhow::anyhow!("stored profile is invalid: {e}"))?;
     Ok(ProfileRecord {
@@ -438,11 +572,11 @@ fn profile_from_row(feeder: &FeederId, r: &sqlx::sqlite::SqliteRow) -> Result<Pr
         version: ProfileVersion(r.try_get::<i64, _>("version")? as u32),
         created_at: r.try_get("created_at")?,
         profile,
-        in_use: r.try_get("in_use")?,
+        in_use: r.try_get::<i64, _>("in_use")? != 0,
     })
 }
 
-fn stored_batch_from_row(r: &sqlx::sqlite::SqliteRow) -> Result<StoredBatch, ApiError> {
+fn stored_batch_from_row(r: &AnyRow) -> Result<StoredBatch, ApiError> {
     let ack: String = r.try_get("ack")?;
     Ok(StoredBatch {
         body_sha256: r.try_get("body_sha256")?,
@@ -452,19 +586,22 @@ fn stored_batch_from_row(r: &sqlx::sqlite::SqliteRow) -> Result<StoredBatch, Api
 
 /// Inserts `profile` as the feeder's next version inside `tx`; returns the version.
 pub(crate) async fn insert_profile(
-    tx: &mut sqlx::Transaction<'_, Sqlite>,
+    backend: Backend,
+    tx: &mut sqlx::Transaction<'_, Any>,
     feeder: &FeederId,
     profile: &DitherProfile,
     now: i64,
 ) -> Result<i64, ApiError> {
-    let next: i64 = sqlx::query_scalar("SELECT COALESCE(MAX(version), 0) + 1 FROM dither_profiles WHERE feeder_id = ?")
-        .bind(feeder.as_str())
-        .fetch_one(&mut **tx)
-        .await?;
+    Store::lock_feeder(backend, tx, feeder).await?;
+    let next: i64 =
+        sqlx::query_scalar("SELECT COALESCE(MAX(version), 0) + 1 FROM dither_profiles WHERE feeder_id = $1")
+            .bind(feeder.as_str())
+            .fetch_one(&mut **tx)
+            .await?;
     let spec = profile.to_spec();
     sqlx::query(
         "INSERT INTO dither_profiles (feeder_id, version, noise, scale_kw, boundaries_kw, interval_s, send_registers, created_at)
-         VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+         VALUES ($1, $2, $3, $4, $5, $6, $7, $8)",
     )
     .bind(feeder.as_str())
     .bind(next)
@@ -472,9 +609,23 @@ pub(crate) async fn insert_profile(
     .bind(spec.scale_kw)
     .bind(serde_json::to_string(&spec.boundaries_kw).map_err(anyhow::Error::from)?)
     .bind(i64::from(spec.interval_s))
-    .bind(spec.send_registers)
+    .bind(i64::from(spec.send_registers))
     .bind(now)
     .execute(&mut **tx)
     .await?;
     Ok(next)
+}
+
+/// The URL with any password replaced, for messages and logs.
+pub fn redact_url(url: &str) -> String {
+    match (url.find("://"), url.rfind('@')) {
+        (Some(s), Some(at)) if at > s => {
+            let cred = &url[s + 3..at];
+            match cred.find(':') {
+                Some(c) => format!("{}{}:***{}", &url[..s + 3], &cred[..c], &url[at..]),
+                None => url.to_owned(),
+            }
+        }
+        _ => url.to_owned(),
+    }
 }

@@ -71,10 +71,10 @@ impl Store {
         message: &str,
         now: i64,
     ) -> Result<(), ApiError> {
-        let _w = self.writer.lock().await;
+        let _w = self.write_lock().await;
         sqlx::query(&format!(
-            "UPDATE {} SET state = 'running', progress = ?, message = ?, started_at = COALESCE(started_at, ?)
-             WHERE job_id = ? AND state IN ('queued', 'running') AND (worker IS NULL OR worker = ?)",
+            "UPDATE {} SET state = 'running', progress = $1, message = $2, started_at = COALESCE(started_at, $3)
+             WHERE job_id = $4 AND state IN ('queued', 'running') AND (worker IS NULL OR worker = $5)",
             table.name()
         ))
         .bind(progress.clamp(0.0, 1.0))
@@ -89,10 +89,10 @@ impl Store {
 
     /// Ends a job as failed with `error` (only while this worker may hold it).
     pub async fn fail(&self, table: JobTable, id: &str, error: &str, now: i64) -> Result<(), ApiError> {
-        let _w = self.writer.lock().await;
+        let _w = self.write_lock().await;
         sqlx::query(&format!(
-            "UPDATE {} SET state = 'failed', error = ?, finished_at = ?
-             WHERE job_id = ? AND state IN ('queued', 'running') AND (worker IS NULL OR worker = ?)",
+            "UPDATE {} SET state = 'failed', error = $1, finished_at = $2
+             WHERE job_id = $3 AND state IN ('queued', 'running') AND (worker IS NULL OR worker = $4)",
             table.name()
         ))
         .bind(error)
@@ -112,13 +112,13 @@ impl Store {
     /// Fails jobs whose lease ran out `max_attempts` times, then claims the oldest
     /// queued (or lease-expired) job, recoveries first since analyses build on them.
     pub async fn claim_next(&self, now: i64, lease_s: i64, max_attempts: i64) -> Result<Option<Claimed>, ApiError> {
-        let _w = self.writer.lock().await;
+        let _w = self.write_lock().await;
         for table in [JobTable::Recovery, JobTable::Analysis] {
             let t = table.name();
             sqlx::query(&format!(
-                "UPDATE {t} SET state = 'failed', finished_at = ?1,
+                "UPDATE {t} SET state = 'failed', finished_at = $1,
                         error = 'its worker stopped ' || attempts || ' times before finishing (lease expired)'
-                 WHERE state = 'running' AND lease_until < ?1 AND attempts >= ?2"
+                 WHERE state = 'running' AND lease_until < $1 AND attempts >= $2"
             ))
             .bind(now)
             .bind(max_attempts)
@@ -132,12 +132,14 @@ impl Store {
             } else {
                 "kind, NULL AS feeder_id, NULL AS window_start, NULL AS window_end"
             };
+            // PostgreSQL: concurrent workers skip a row another is claiming.
+            let lock = if self.backend == super::Backend::Postgres { " FOR UPDATE SKIP LOCKED" } else { "" };
             let row = sqlx::query(&format!(
-                "UPDATE {t} SET state = 'running', worker = ?1, lease_until = ?2 + ?3, attempts = attempts + 1,
-                        started_at = COALESCE(started_at, ?2), message = 'claimed'
+                "UPDATE {t} SET state = 'running', worker = $1, lease_until = $2 + $3, attempts = attempts + 1,
+                        started_at = COALESCE(started_at, $2), message = 'claimed'
                  WHERE job_id = (SELECT job_id FROM {t}
-                                 WHERE state = 'queued' OR (state = 'running' AND lease_until < ?2)
-                                 ORDER BY created_at, job_id LIMIT 1)
+                                 WHERE state = 'queued' OR (state = 'running' AND lease_until < $2)
+                                 ORDER BY created_at, job_id LIMIT 1{lock})
                  RETURNING job_id, params, attempts, {extra}"
             ))
             .bind(&self.worker_id)
@@ -166,9 +168,9 @@ impl Store {
     /// Extends this worker's lease; false when the job is no longer ours (taken
     /// over after our lease ran out, or cancelled).
     pub async fn renew_lease(&self, table: JobTable, id: &str, until: i64) -> Result<bool, ApiError> {
-        let _w = self.writer.lock().await;
+        let _w = self.write_lock().await;
         let r = sqlx::query(&format!(
-            "UPDATE {} SET lease_until = ? WHERE job_id = ? AND worker = ? AND state = 'running'",
+            "UPDATE {} SET lease_until = $1 WHERE job_id = $2 AND worker = $3 AND state = 'running'",
             table.name()
         ))
         .bind(until)
@@ -182,10 +184,10 @@ impl Store {
     /// Cancels a queued or running job (it ends as failed, "cancelled by the
     /// operator"); false when it had already ended or does not exist.
     pub async fn cancel_job(&self, id: &str, now: i64) -> Result<bool, ApiError> {
-        let _w = self.writer.lock().await;
+        let _w = self.write_lock().await;
         let r = sqlx::query(&format!(
-            "UPDATE {} SET state = 'failed', error = 'cancelled by the operator', finished_at = ?
-             WHERE job_id = ? AND state IN ('queued', 'running')",
+            "UPDATE {} SET state = 'failed', error = 'cancelled by the operator', finished_at = $1
+             WHERE job_id = $2 AND state IN ('queued', 'running')",
             JobTable::of(id).name()
         ))
         .bind(now)
@@ -201,7 +203,7 @@ impl Store {
             "SELECT job_id, 'recover' AS kind, state, progress, message, attempts, worker, created_at, started_at, finished_at, error FROM recovery_jobs
              UNION ALL
              SELECT job_id, kind, state, progress, message, attempts, worker, created_at, started_at, finished_at, error FROM analysis_jobs
-             ORDER BY created_at DESC, job_id LIMIT ?",
+             ORDER BY created_at DESC, job_id LIMIT $1",
         )
         .bind(limit)
         .fetch_all(&self.pool)

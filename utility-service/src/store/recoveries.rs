@@ -2,7 +2,7 @@
 
 use meterveil_shared::FeederId;
 use serde::Serialize;
-use sqlx::{QueryBuilder, Row, Sqlite};
+use sqlx::Row;
 
 use super::Store;
 use crate::error::ApiError;
@@ -46,9 +46,9 @@ impl Store {
         params: &serde_json::Value,
         now: i64,
     ) -> Result<(), ApiError> {
-        let _w = self.writer.lock().await;
+        let _w = self.write_lock().await;
         sqlx::query(
-            "INSERT INTO recovery_jobs (job_id, feeder_id, window_start, window_end, params, state, created_at) VALUES (?, ?, ?, ?, ?, 'queued', ?)",
+            "INSERT INTO recovery_jobs (job_id, feeder_id, window_start, window_end, params, state, created_at) VALUES ($1, $2, $3, $4, $5, 'queued', $6)",
         )
         .bind(id)
         .bind(feeder.as_str())
@@ -70,13 +70,13 @@ impl Store {
         diagnostics: &serde_json::Value,
         now: i64,
     ) -> Result<(), ApiError> {
-        let _w = self.writer.lock().await;
+        let _w = self.write_lock().await;
         let mut tx = self.pool.begin().await?;
         // Only the lease holder may finish: a worker whose lease ran out (and whose
         // job another worker took over) or whose job was cancelled writes nothing.
         let held = sqlx::query(
-            "UPDATE recovery_jobs SET state = 'done', progress = 1, message = 'done', profile_version = ?, diagnostics = ?, finished_at = ?
-             WHERE job_id = ? AND state = 'running' AND (worker IS NULL OR worker = ?)",
+            "UPDATE recovery_jobs SET state = 'done', progress = 1, message = 'done', profile_version = $1, diagnostics = $2, finished_at = $3
+             WHERE job_id = $4 AND state = 'running' AND (worker IS NULL OR worker = $5)",
         )
         .bind(i64::from(profile_version))
         .bind(diagnostics.to_string())
@@ -92,19 +92,24 @@ impl Store {
             )));
         }
         for chunk in rows.chunks(700) {
-            let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
-                "INSERT INTO recovered_intervals (job_id, meter_id, interval_start, estimate_kw, flag, band_low_kw, band_high_kw) ",
+            let sql = super::values_sql(
+                "INSERT INTO recovered_intervals (job_id, meter_id, interval_start, estimate_kw, flag, band_low_kw, band_high_kw)",
+                chunk.len(),
+                7,
+                "",
             );
-            qb.push_values(chunk, |mut b, r| {
-                b.push_bind(id)
-                    .push_bind(&r.meter_id)
-                    .push_bind(r.interval_start)
-                    .push_bind(r.kw)
-                    .push_bind(r.flag)
-                    .push_bind(r.kw_low)
-                    .push_bind(r.kw_high);
-            });
-            qb.build().execute(&mut *tx).await?;
+            let mut q = sqlx::query(&sql);
+            for r in chunk {
+                q = q
+                    .bind(id)
+                    .bind(r.meter_id.as_str())
+                    .bind(r.interval_start)
+                    .bind(r.kw)
+                    .bind(r.flag)
+                    .bind(r.kw_low)
+                    .bind(r.kw_high);
+            }
+            q.execute(&mut *tx).await?;
         }
         tx.commit().await?;
         Ok(())
@@ -112,7 +117,7 @@ impl Store {
 
     pub async fn job(&self, id: &str) -> Result<Option<JobRecord>, ApiError> {
         let Some(r) =
-            sqlx::query("SELECT * FROM recovery_jobs WHERE job_id = ?").bind(id).fetch_optional(&self.pool).await?
+            sqlx::query("SELECT * FROM recovery_jobs WHERE job_id = $1").bind(id).fetch_optional(&self.pool).await?
         else {
             return Ok(None);
         };
@@ -138,7 +143,7 @@ impl Store {
     pub async fn job_rows(&self, id: &str, meter: Option<&str>) -> Result<Vec<RecoveredRow>, ApiError> {
         let rows = sqlx::query(
             "SELECT meter_id, interval_start, estimate_kw, flag, band_low_kw, band_high_kw FROM recovered_intervals
-             WHERE job_id = ?1 AND (?2 IS NULL OR meter_id = ?2) ORDER BY meter_id, interval_start",
+             WHERE job_id = $1 AND ($2 IS NULL OR meter_id = $2) ORDER BY meter_id, interval_start",
         )
         .bind(id)
         .bind(meter)
@@ -166,7 +171,7 @@ impl Store {
     /// One meter's levels in [from, to) as (interval_start, level), in time order.
     pub async fn meter_levels_between(&self, meter: &str, from: i64, to: i64) -> Result<Vec<(i64, u8)>, ApiError> {
         let rows: Vec<(i64, i64)> = sqlx::query_as(
-            "SELECT interval_start, level FROM readings WHERE meter_id = ? AND interval_start >= ? AND interval_start < ?
+            "SELECT interval_start, level FROM readings WHERE meter_id = $1 AND interval_start >= $2 AND interval_start < $3
              ORDER BY interval_start",
         )
         .bind(meter)
@@ -181,7 +186,7 @@ impl Store {
     pub async fn feeder_span(&self, feeder: &FeederId) -> Result<Option<(i64, i64)>, ApiError> {
         let r: (Option<i64>, Option<i64>) = sqlx::query_as(
             "SELECT MIN(r.interval_start), MAX(r.interval_start) FROM readings r JOIN meters m ON m.meter_id = r.meter_id
-             WHERE m.feeder_id = ?",
+             WHERE m.feeder_id = $1",
         )
         .bind(feeder.as_str())
         .fetch_one(&self.pool)
@@ -199,7 +204,7 @@ impl Store {
         let rows = sqlx::query(
             "SELECT r.meter_id, r.interval_start, r.level, r.profile_version
              FROM readings r JOIN meters m ON m.meter_id = r.meter_id
-             WHERE m.feeder_id = ? AND r.interval_start >= ? AND r.interval_start < ?",
+             WHERE m.feeder_id = $1 AND r.interval_start >= $2 AND r.interval_start < $3",
         )
         .bind(feeder.as_str())
         .bind(from)
@@ -220,7 +225,7 @@ impl Store {
     ) -> Result<Vec<(String, i64, i64)>, ApiError> {
         let rows: Vec<(String, i64, i64)> = sqlx::query_as(
             "SELECT g.meter_id, g.read_at, g.wh_total FROM register_reads g JOIN meters m ON m.meter_id = g.meter_id
-             WHERE m.feeder_id = ? AND g.read_at >= ? AND g.read_at <= ? ORDER BY g.meter_id, g.read_at",
+             WHERE m.feeder_id = $1 AND g.read_at >= $2 AND g.read_at <= $3 ORDER BY g.meter_id, g.read_at",
         )
         .bind(feeder.as_str())
         .bind(from)
