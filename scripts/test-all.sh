@@ -1,6 +1,8 @@
 #!/usr/bin/env bash
 # The full test suite, runnable on a fresh machine with only the Rust toolchain
-# and CPython: it installs the Python reference packages it needs itself.
+# and CPython: it installs what its tests need itself (Debian's chromium and
+# postgresql, the Python reference packages), starts a private PostgreSQL server,
+# and runs the end-to-end tests once per database backend.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 
@@ -18,6 +20,12 @@ fi
 "$venv/bin/python" -m pip install --quiet --disable-pip-version-check -r tests/reference/requirements.txt
 export METERVEIL_PYTHON="$PWD/$venv/bin/python"
 
+# A private PostgreSQL server (stopped when this script exits).
+source scripts/test-postgres.sh
+
 cargo fmt --all --check
 cargo clippy --workspace --all-targets -- -D warnings
+# Every test, the end-to-end ones on SQLite...
 cargo test --workspace
+# ...then the end-to-end tests (store, jobs, crash and SIGKILL tests) again on PostgreSQL.
+METERVEIL_TEST_BACKEND=postgres cargo test -p meterveil-service --test end_to_end

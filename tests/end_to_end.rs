@@ -1728,3 +1728,87 @@ async fn killed_gateways_and_a_killed_service_lose_and_repeat_nothing() {
     }
     assert_eq!(days, 12 * 7, "every day of the week, per meter, between its two midnight reads");
 }
+
+/// Four worker stores on one database claim concurrently (each its own connection
+/// pool, as separate processes would): two sharded by feeder, two unsharded.
+/// Every job is claimed exactly once, a sharded worker only takes its feeder's
+/// jobs, and town-wide analyses go only to unsharded workers.
+#[tokio::test(flavor = "multi_thread", worker_threads = 4)]
+async fn several_workers_share_one_queue_and_claim_each_job_once() {
+    use meterveil_service::store::Store;
+    let dir = tempfile::tempdir().expect("tempdir");
+    let db = test_database(dir.path()).await;
+    let setup = Store::open(&db).await.expect("open");
+    let now = now_s();
+    let mut want: std::collections::BTreeMap<String, Option<String>> = Default::default();
+    for f in ["F1", "F2"] {
+        let fid = FeederId::parse(f).expect("id");
+        setup.create_feeder(&fid, f, "UTC", now).await.expect("feeder");
+        for i in 0..15 {
+            let id = format!("rec-{f}-{i:02}");
+            setup.create_job(&id, &fid, 0, 86_400, &json!({}), now - 100 + i).await.expect("job");
+            want.insert(id, Some(f.to_owned()));
+        }
+        let id = format!("aud-{f}");
+        setup.create_analysis(&id, "audit", Some(f), &json!({}), now).await.expect("audit");
+        want.insert(id, Some(f.to_owned()));
+    }
+    for i in 0..4 {
+        let id = format!("clu-town-{i}");
+        setup.create_analysis(&id, "cluster", None, &json!({}), now).await.expect("cluster");
+        want.insert(id, None);
+    }
+    let shards: [Option<Vec<String>>; 4] = [Some(vec!["F1".into()]), Some(vec!["F2".into()]), None, None];
+    let mut tasks = Vec::new();
+    for shard in shards.clone() {
+        let db = db.clone();
+        tasks.push(tokio::spawn(async move {
+            let store = Store::open(&db).await.expect("open worker store");
+            let mut got = Vec::new();
+            while let Some(c) = store.claim_next(now_s(), 600, 3, shard.as_deref()).await.expect("claim") {
+                got.push(c.job_id);
+                tokio::task::yield_now().await;
+            }
+            (store.worker_id().to_owned(), got)
+        }));
+    }
+    let mut claimed: std::collections::BTreeMap<String, usize> = Default::default();
+    let mut per_worker = Vec::new();
+    for t in tasks {
+        per_worker.push(t.await.expect("worker task"));
+    }
+    for ((worker, got), shard) in per_worker.iter().zip(&shards) {
+        for id in got {
+            *claimed.entry(id.clone()).or_default() += 1;
+            let feeder = &want[id];
+            match shard {
+                Some(s) => assert!(feeder.as_ref().is_some_and(|f| s.contains(f)), "{worker} ({s:?}) took {id}"),
+                None => {}
+            }
+            let holder: String = sqlx::query_scalar(if id.starts_with("rec-") {
+                "SELECT worker FROM recovery_jobs WHERE job_id = $1"
+            } else {
+                "SELECT worker FROM analysis_jobs WHERE job_id = $1"
+            })
+            .bind(id)
+            .fetch_one(setup.pool())
+            .await
+            .expect("holder");
+            assert_eq!(&holder, worker, "{id} is held by the worker that claimed it");
+        }
+    }
+    let counts: Vec<usize> = per_worker.iter().map(|(_, g)| g.len()).collect();
+    eprintln!("{:?} backend: claims per worker (F1, F2, any, any) {counts:?}", setup.backend());
+    assert_eq!(
+        claimed.keys().cloned().collect::<Vec<_>>(),
+        want.keys().cloned().collect::<Vec<_>>(),
+        "every job claimed"
+    );
+    assert!(claimed.values().all(|&n| n == 1), "a job was claimed twice: {claimed:?}");
+    for (id, f) in &want {
+        if f.is_none() {
+            let holder = per_worker.iter().position(|(_, g)| g.contains(id)).expect("claimed");
+            assert!(holder >= 2, "town-wide {id} went to a sharded worker");
+        }
+    }
+}

@@ -27,7 +27,9 @@ pub enum Command {
     Serve {
         #[arg(long, default_value = "127.0.0.1:8080")]
         bind: SocketAddr,
-        /// SQLite file (`sqlite:PATH` or a path); created and migrated at start.
+        /// Database: a SQLite file (`sqlite:PATH` or a path, created if missing) or
+        /// PostgreSQL (`postgres://user@host:port/db`, the database must exist);
+        /// migrated at start.
         #[arg(long, env = "DATABASE_URL", default_value = "sqlite:meterveil.sqlite")]
         database_url: String,
         /// Token operators send as `Authorization: Bearer <token>`.
@@ -53,6 +55,10 @@ pub enum Command {
         database_url: String,
         #[arg(long, default_value_t = 30)]
         job_lease_s: i64,
+        /// Claim only this feeder's jobs (repeat for several): a worker sharded by
+        /// feeder. Without it the worker takes every job, town-wide analyses included.
+        #[arg(long = "feeder", value_name = "FEEDER_ID")]
+        feeders: Vec<String>,
     },
     /// List, inspect or cancel jobs in the database.
     Jobs {
@@ -232,10 +238,14 @@ async fn jobs_command(database_url: &str, action: Option<JobsAction>) -> anyhow:
 
 pub async fn execute(cli: Cli) -> anyhow::Result<()> {
     match cli.command {
-        Command::Work { database_url, job_lease_s } => {
+        Command::Work { database_url, job_lease_s, feeders } => {
+            for (i, f) in feeders.iter().enumerate() {
+                meterveil_shared::FeederId::parse(f).map_err(|e| anyhow::anyhow!("--feeder #{}: {e}", i + 1))?;
+            }
             let store = crate::store::Store::open(&database_url).await?;
             let mut config = ServiceConfig::local(database_url, Secret::new(""));
             config.job_lease_s = job_lease_s;
+            config.job_feeders = (!feeders.is_empty()).then_some(feeders);
             let state = crate::routes::AppState {
                 store,
                 config: std::sync::Arc::new(config),
@@ -244,7 +254,10 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
                 dashboard: Default::default(),
                 buckets: Default::default(),
             };
-            println!("worker {} started", state.store.worker_id());
+            match &state.config.job_feeders {
+                Some(f) => println!("worker {} started for feeders {}", state.store.worker_id(), f.join(", ")),
+                None => println!("worker {} started for every feeder", state.store.worker_id()),
+            }
             tokio::select! {
                 _ = crate::jobs::worker::run(state) => {}
                 _ = tokio::signal::ctrl_c() => tracing::info!("Ctrl-C: the running job's lease will expire and another worker retries it"),

@@ -46,6 +46,9 @@ pub struct ServiceConfig {
     pub job_lease_s: i64,
     /// A job whose worker died this many times fails instead of running again.
     pub job_max_attempts: i64,
+    /// A worker sharded by feeder claims only these feeders' jobs (None: all jobs,
+    /// including town-wide analyses).
+    pub job_feeders: Option<Vec<String>>,
     /// Master key the gateways' keys are derived from (never stored in the database).
     pub gateway_master_key: Secret,
     /// How far (seconds) a signed upload's timestamp may be from the service's clock.
@@ -68,6 +71,7 @@ impl ServiceConfig {
             run_worker: true,
             job_lease_s: 30,
             job_max_attempts: 3,
+            job_feeders: None,
             gateway_master_key: Secret::new(random_key()),
             signature_window_s: 300,
             gateway_batches_per_s: 20.0,

@@ -93,7 +93,16 @@ async fn execute(s: &AppState, c: Claimed) {
 /// Claims and runs jobs until the task is aborted.
 pub async fn run(s: AppState) {
     loop {
-        match s.store.claim_next(now_s(), s.config.job_lease_s.max(3), s.config.job_max_attempts).await {
+        match s
+            .store
+            .claim_next(
+                now_s(),
+                s.config.job_lease_s.max(3),
+                s.config.job_max_attempts,
+                s.config.job_feeders.as_deref(),
+            )
+            .await
+        {
             Ok(Some(c)) => execute(&s, c).await,
             Ok(None) => {
                 tokio::select! {

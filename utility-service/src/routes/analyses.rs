@@ -59,6 +59,7 @@ async fn start_clustering(
     }
     let clusters = parse_cluster_count(&w.clusters)?;
     let mut window = None;
+    let mut feeders = std::collections::BTreeSet::new();
     for id in &w.recovery_jobs {
         let Some(job) = s.store.job(id).await? else {
             return Err(ApiError::invalid("recovery_jobs", format!("no recovery job {id}")));
@@ -77,10 +78,13 @@ async fn start_clustering(
             ));
         }
         window = Some(jw);
+        feeders.insert(job.feeder_id);
     }
+    // One feeder's clustering goes to that feeder's shard; a town-wide one to an unsharded worker.
+    let feeder = if feeders.len() == 1 { feeders.into_iter().next() } else { None };
     let job_id = new_job_id("clu");
     let params = json!({ "recovery_jobs": w.recovery_jobs, "clusters": clusters });
-    s.store.create_analysis(&job_id, "cluster", &params, now_s()).await?;
+    s.store.create_analysis(&job_id, "cluster", feeder.as_deref(), &params, now_s()).await?;
     s.wake.notify_one();
     Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
 }
@@ -132,7 +136,7 @@ async fn start_audit(
     let seed = w.seed.unwrap_or(11);
     let job_id = new_job_id("aud");
     let params = json!({ "recovery_job": w.recovery_job, "captured": w.captured, "seed": seed });
-    s.store.create_analysis(&job_id, "audit", &params, now_s()).await?;
+    s.store.create_analysis(&job_id, "audit", Some(&job.feeder_id), &params, now_s()).await?;
     s.wake.notify_one();
     Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
 }
@@ -176,7 +180,7 @@ async fn start_calibration(
     let seed = w.seed.unwrap_or(5);
     let job_id = new_job_id("cal");
     let params = json!({ "recovery_job": w.recovery_job, "targets": targets, "publish": w.publish, "seed": seed });
-    s.store.create_analysis(&job_id, "calibrate", &params, now_s()).await?;
+    s.store.create_analysis(&job_id, "calibrate", Some(&job.feeder_id), &params, now_s()).await?;
     s.wake.notify_one();
     Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
 }

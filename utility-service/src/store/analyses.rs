@@ -35,15 +35,17 @@ impl Store {
         &self,
         id: &str,
         kind: &str,
+        feeder: Option<&str>,
         params: &serde_json::Value,
         now: i64,
     ) -> Result<(), ApiError> {
         let _w = self.write_lock().await;
         sqlx::query(
-            "INSERT INTO analysis_jobs (job_id, kind, params, state, created_at) VALUES ($1, $2, $3, 'queued', $4)",
+            "INSERT INTO analysis_jobs (job_id, kind, feeder_id, params, state, created_at) VALUES ($1, $2, $3, $4, 'queued', $5)",
         )
         .bind(id)
         .bind(kind)
+        .bind(feeder)
         .bind(params.to_string())
         .bind(now)
         .execute(&self.pool)

@@ -111,7 +111,15 @@ impl Store {
 
     /// Fails jobs whose lease ran out `max_attempts` times, then claims the oldest
     /// queued (or lease-expired) job, recoveries first since analyses build on them.
-    pub async fn claim_next(&self, now: i64, lease_s: i64, max_attempts: i64) -> Result<Option<Claimed>, ApiError> {
+    /// With `feeders`, only jobs of those feeders are claimed (a worker sharded by
+    /// feeder); town-wide analyses are left to workers without a shard.
+    pub async fn claim_next(
+        &self,
+        now: i64,
+        lease_s: i64,
+        max_attempts: i64,
+        feeders: Option<&[String]>,
+    ) -> Result<Option<Claimed>, ApiError> {
         let _w = self.write_lock().await;
         for table in [JobTable::Recovery, JobTable::Analysis] {
             let t = table.name();
@@ -130,23 +138,27 @@ impl Store {
             let extra = if table == JobTable::Recovery {
                 "'recover' AS kind, feeder_id, window_start, window_end"
             } else {
-                "kind, NULL AS feeder_id, NULL AS window_start, NULL AS window_end"
+                "kind, feeder_id, NULL AS window_start, NULL AS window_end"
             };
             // PostgreSQL: concurrent workers skip a row another is claiming.
             let lock = if self.backend == super::Backend::Postgres { " FOR UPDATE SKIP LOCKED" } else { "" };
-            let row = sqlx::query(&format!(
+            let shard = match feeders {
+                Some(f) if !f.is_empty() => format!(" AND feeder_id IN ({})", super::placeholders(4, f.len())),
+                _ => String::new(),
+            };
+            let sql = format!(
                 "UPDATE {t} SET state = 'running', worker = $1, lease_until = $2 + $3, attempts = attempts + 1,
                         started_at = COALESCE(started_at, $2), message = 'claimed'
                  WHERE job_id = (SELECT job_id FROM {t}
-                                 WHERE state = 'queued' OR (state = 'running' AND lease_until < $2)
+                                 WHERE (state = 'queued' OR (state = 'running' AND lease_until < $2)){shard}
                                  ORDER BY created_at, job_id LIMIT 1{lock})
                  RETURNING job_id, params, attempts, {extra}"
-            ))
-            .bind(&self.worker_id)
-            .bind(now)
-            .bind(lease_s)
-            .fetch_optional(&self.pool)
-            .await?;
+            );
+            let mut q = sqlx::query(&sql).bind(&self.worker_id).bind(now).bind(lease_s);
+            for f in feeders.unwrap_or_default() {
+                q = q.bind(f.as_str());
+            }
+            let row = q.fetch_optional(&self.pool).await?;
             if let Some(r) = row {
                 let params: String = r.try_get("params")?;
                 let from: Option<i64> = r.try_get("window_start")?;
