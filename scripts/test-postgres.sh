@@ -1,6 +1,6 @@
 #!/usr/bin/env bash
 # Starts a private PostgreSQL server for the test suite (Debian's packages,
-# installed when missing), on 127.0.0.1:$METERVEIL_PG_PORT with trust
+# installed when missing), on 127.0.0.1:$METERVEIL_PG_PORT (a free port by default) with trust
 # authentication, its data in a fresh temporary folder. Sourced by test-all.sh:
 # sets METERVEIL_TEST_POSTGRES to the admin URL and stops the server on exit.
 # Also usable alone: `source scripts/test-postgres.sh`, then run the tests with
@@ -17,7 +17,8 @@ fi
 # PostgreSQL refuses to run as root: as root, the server runs as the package's
 # `postgres` user.
 if [ "$(id -u)" = 0 ]; then as_pg="runuser -u postgres --"; else as_pg=""; fi
-METERVEIL_PG_PORT=${METERVEIL_PG_PORT:-55432}
+# A free loopback port unless one is given.
+METERVEIL_PG_PORT=${METERVEIL_PG_PORT:-$(python3 -c 'import socket; s = socket.socket(); s.bind(("127.0.0.1", 0)); print(s.getsockname()[1])')}
 pg_dir=$(mktemp -d /tmp/meterveil-pg.XXXXXX)
 chmod 755 "$pg_dir"
 [ "$(id -u)" = 0 ] && chown postgres "$pg_dir"

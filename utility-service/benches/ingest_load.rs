@@ -6,7 +6,8 @@
 //! after every gateway has sent its day, or after the time limit.
 //!
 //! `cargo bench -p meterveil-service --bench ingest_load -- [GATEWAYS] [METERS_PER_GATEWAY]`
-//! (default 1000 4).
+//! (default 1000 4). `METERVEIL_BENCH_DATABASE_URL=postgres://…` runs it against
+//! an (empty) PostgreSQL database instead.
 
 use std::io::BufRead;
 use std::time::{Duration, Instant};
@@ -42,7 +43,10 @@ async fn main() -> anyhow::Result<()> {
         .args(["serve", "--bind", "127.0.0.1:0", "--operator-token", TOKEN, "--no-worker"])
         .args(["--gateway-master-key", "load-master-key-0123456789abcdef0123456789"])
         .arg("--database-url")
-        .arg(format!("sqlite:{}", dir.path().join("load.sqlite").display()))
+        .arg(
+            std::env::var("METERVEIL_BENCH_DATABASE_URL")
+                .unwrap_or_else(|_| format!("sqlite:{}", dir.path().join("load.sqlite").display())),
+        )
         .stdout(std::process::Stdio::piped())
         .stderr(std::process::Stdio::null())
         .spawn()?;
