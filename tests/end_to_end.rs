@@ -1781,9 +1781,8 @@ async fn several_workers_share_one_queue_and_claim_each_job_once() {
         for id in got {
             *claimed.entry(id.clone()).or_default() += 1;
             let feeder = &want[id];
-            match shard {
-                Some(s) => assert!(feeder.as_ref().is_some_and(|f| s.contains(f)), "{worker} ({s:?}) took {id}"),
-                None => {}
+            if let Some(s) = shard {
+                assert!(feeder.as_ref().is_some_and(|f| s.contains(f)), "{worker} ({s:?}) took {id}");
             }
             let holder: String = sqlx::query_scalar(if id.starts_with("rec-") {
                 "SELECT worker FROM recovery_jobs WHERE job_id = $1"
