@@ -63,7 +63,7 @@ fn run(body: &[u8]) {
         clock_tolerance_s: 300,
         stale_grace_s: 86_400,
     };
-    match validate(header, batch.clone(), body_sha256(body), &ctx) {
+    match validate(header, &batch, body_sha256(body), &ctx) {
         Ok(v) => {
             assert!(!v.readings.is_empty() || !v.registers.is_empty());
             for r in &v.readings {

@@ -5,8 +5,10 @@
 //! the service's peak resident memory (VmHWM of the child). Bounded: it stops
 //! after every gateway has sent its day, or after the time limit.
 //!
-//! `cargo bench -p meterveil-service --bench ingest_load -- [GATEWAYS] [METERS_PER_GATEWAY]`
-//! (default 1000 4). `METERVEIL_BENCH_DATABASE_URL=postgres://…` runs it against
+//! `cargo bench -p meterveil-service --bench ingest_load -- [GATEWAYS] [METERS_PER_GATEWAY] [DAYS]`
+//! (default 1000 4 1; more days keep the same gateways uploading for longer, to
+//! show the rate is sustained). At the end the service's own count of stored
+//! readings must equal the acknowledged ones. `METERVEIL_BENCH_DATABASE_URL=postgres://…` runs it against
 //! an (empty) PostgreSQL database instead.
 
 use std::io::BufRead;
@@ -48,6 +50,7 @@ async fn main() -> anyhow::Result<()> {
     let args: Vec<String> = std::env::args().skip(1).filter(|a| !a.starts_with("--")).collect();
     let gateways: usize = args.first().and_then(|a| a.parse().ok()).unwrap_or(1000);
     let per_gateway: usize = args.get(1).and_then(|a| a.parse().ok()).unwrap_or(4);
+    let days: i64 = args.get(2).and_then(|a| a.parse().ok()).unwrap_or(1).max(1);
     let dir = tempfile::tempdir()?;
     let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
         .args(["serve", "--bind", "127.0.0.1:0", "--operator-token", TOKEN, "--no-worker"])
@@ -107,7 +110,7 @@ async fn main() -> anyhow::Result<()> {
             keys.push((gid, feeder.clone(), hex::decode(r["secret"].as_str().unwrap_or(""))?, g));
         }
     }
-    let day = now_s() - now_s().rem_euclid(86_400) - 86_400;
+    let first_day = now_s() - now_s().rem_euclid(86_400) - 86_400 * days;
     let started = Instant::now();
     let (service_cpu0, load_cpu0) = (cpu_s(&child.id().to_string()), cpu_s("self"));
     let mut tasks = Vec::with_capacity(gateways);
@@ -115,8 +118,10 @@ async fn main() -> anyhow::Result<()> {
         let (http, base) = (http.clone(), base.clone());
         tasks.push(tokio::spawn(async move {
             let mut out: Vec<(Duration, bool, usize)> = Vec::new();
-            let readings: Vec<Value> = (0..per_gateway)
-                .flat_map(|m| {
+            // Day by day, one 96-reading batch per meter and day.
+            let readings: Vec<Value> = (0..days)
+                .flat_map(|d| (0..per_gateway).map(move |m| (first_day + 86_400 * d, m)))
+                .flat_map(|(day, m)| {
                     (0..96).map(move |i| {
                         json!({"meter_id": format!("LD-M-{g:05}-{m}"), "interval_start": day + 900 * i, "level": (i % 3), "profile_version": 1})
                     })
@@ -164,13 +169,17 @@ async fn main() -> anyhow::Result<()> {
     let peak = peak_rss_mib(child.id());
     let service_cpu = cpu_s(&child.id().to_string()) - service_cpu0;
     let load_cpu = cpu_s("self") - load_cpu0;
+    // The service's own count, so an acknowledgement without a stored row shows.
+    let listed: Value =
+        http.get(format!("{base}/v1/feeders")).bearer_auth(TOKEN).send().await?.error_for_status()?.json().await?;
+    let stored: i64 = listed.as_array().map_or(0, |fs| fs.iter().filter_map(|f| f["readings"].as_i64()).sum());
     let _ = child.kill();
     let _ = child.wait();
     println!(
         "{}",
         json!({
-            "gateways": gateways, "meters_per_gateway": per_gateway, "batches": lat.len(), "errors": errors,
-            "readings_accepted": accepted, "wall_s": wall, "readings_per_s": accepted as f64 / wall,
+            "gateways": gateways, "meters_per_gateway": per_gateway, "days": days, "batches": lat.len(), "errors": errors,
+            "readings_accepted": accepted, "readings_stored_by_service": stored, "wall_s": wall, "readings_per_s": accepted as f64 / wall,
             "latency_ms": {"p50": pct(0.5), "p99": pct(0.99), "max": pct(1.0)},
             "service_peak_rss_mib": peak,
             // Both share the machine's cores: the load generator's CPU is not the service's.
@@ -178,5 +187,6 @@ async fn main() -> anyhow::Result<()> {
             "service_cpu_us_per_reading": service_cpu * 1e6 / accepted.max(1) as f64,
         })
     );
+    anyhow::ensure!(stored == accepted as i64, "the service stored {stored} readings but acknowledged {accepted}");
     Ok(())
 }

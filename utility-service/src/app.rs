@@ -66,6 +66,7 @@ pub async fn start_with_store(
     let listener =
         tokio::net::TcpListener::bind(config.bind).await.with_context(|| format!("binding {}", config.bind))?;
     let addr = listener.local_addr()?;
+    let committer = crate::committer::Committer::start(store.clone(), config.ingest_limits());
     let state = AppState {
         store: store.clone(),
         config: Arc::new(config),
@@ -73,6 +74,7 @@ pub async fn start_with_store(
         wake: Arc::new(tokio::sync::Notify::new()),
         dashboard: Default::default(),
         buckets: Default::default(),
+        committer,
     };
     let dashboard = state.dashboard.clone();
     let worker = state.config.run_worker.then(|| tokio::spawn(crate::jobs::worker::run(state.clone())));

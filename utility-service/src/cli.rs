@@ -246,6 +246,7 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
             let mut config = ServiceConfig::local(database_url, Secret::new(""));
             config.job_lease_s = job_lease_s;
             config.job_feeders = (!feeders.is_empty()).then_some(feeders);
+            let committer = crate::committer::Committer::start(store.clone(), config.ingest_limits());
             let state = crate::routes::AppState {
                 store,
                 config: std::sync::Arc::new(config),
@@ -253,6 +254,7 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
                 wake: Default::default(),
                 dashboard: Default::default(),
                 buckets: Default::default(),
+                committer,
             };
             match &state.config.job_feeders {
                 Some(f) => println!("worker {} started for feeders {}", state.store.worker_id(), f.join(", ")),

@@ -59,6 +59,10 @@ pub struct ServiceConfig {
 }
 
 impl ServiceConfig {
+    pub fn ingest_limits(&self) -> crate::ingest::IngestLimits {
+        crate::ingest::IngestLimits { clock_tolerance_s: self.clock_tolerance_s, stale_grace_s: self.stale_grace_s }
+    }
+
     /// Defaults for a local service on `database_url`.
     pub fn local(database_url: impl Into<String>, operator_token: Secret) -> Self {
         Self {

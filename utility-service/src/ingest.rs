@@ -4,11 +4,13 @@
 use std::collections::{HashMap, HashSet};
 
 use meterveil_shared::wire::BatchWire;
-use meterveil_shared::{BatchId, FeederId, GatewayId, IntervalStart, MeterId};
+use meterveil_shared::{BatchId, FeederId, FieldError, GatewayId, IntervalStart, MeterId};
 use sha2::{Digest, Sha256};
 
+use crate::committer::Upload;
 use crate::error::ApiError;
-use crate::store::ProfileRecord;
+use crate::store::batches::GroupState;
+use crate::store::{ProfileRecord, StoredBatch};
 
 #[derive(Debug, Clone)]
 pub struct ValidReading {
@@ -78,7 +80,7 @@ pub struct IngestContext<'a> {
 /// Checks every row; the first problem rejects the whole batch (nothing is stored).
 pub fn validate(
     header: BatchHeader,
-    batch: BatchWire,
+    batch: &BatchWire,
     body_sha256: String,
     ctx: &IngestContext<'_>,
 ) -> Result<ValidatedBatch, ApiError> {
@@ -210,4 +212,89 @@ pub fn validate(
         registers,
         versions_used,
     })
+}
+
+/// The clock rules validation applies (from the service configuration).
+#[derive(Debug, Clone, Copy)]
+pub struct IngestLimits {
+    pub clock_tolerance_s: i64,
+    pub stale_grace_s: i64,
+}
+
+/// What to do with a signed upload, given the stored state.
+#[derive(Debug)]
+pub enum Decision {
+    /// Valid and new: store it.
+    Write(ValidatedBatch),
+    /// Stored before (same batch id, or the same sequence number and body).
+    Earlier(StoredBatch),
+}
+
+/// Decides one signed, parsed upload against a snapshot of stored state, in the
+/// order a gateway's mistakes are reported: a rotated key (401), a sequence
+/// number reused with another body (409), a replay (the earlier answer), a meter
+/// of another feeder (403), the batch's own rows (422), then a sequence number
+/// that is not above the gateway's last (409).
+pub fn decide(u: &Upload, st: &GroupState, now: i64, limits: &IngestLimits) -> Result<Decision, ApiError> {
+    let gw = u.gateway_id.as_str();
+    let last_sequence = match st.gateways.get(gw) {
+        Some((_, generation, last)) if *generation == u.key_generation => *last,
+        // Re-provisioned (or removed) since the signature was checked.
+        _ => return Err(ApiError::Unauthorized(FieldError::new(meterveil_shared::auth::HEADER_SIGNATURE, KEY_MISMATCH))),
+    };
+    if let Some((hash, batch_id)) = st.sequences.get(&(gw.to_owned(), u.sequence)) {
+        if *hash != u.body_sha256 {
+            return Err(sequence_reused(u.sequence, batch_id));
+        }
+        if let Some(prev) = st.batches.get(batch_id) {
+            return Ok(Decision::Earlier(prev.clone()));
+        }
+    }
+    if let Some(prev) = st.batches.get(u.header.batch_id.as_str()) {
+        return Ok(Decision::Earlier(prev.clone()));
+    }
+    let feeder = u.header.feeder_id.as_str();
+    let mut known = HashSet::new();
+    let ids = u.batch.readings.iter().map(|r| r.meter_id.as_str()).chain(u.batch.registers.iter().map(|g| g.meter_id.as_str()));
+    for m in ids {
+        match st.meter_feeders.get(m) {
+            Some(f) if f != feeder => {
+                return Err(ApiError::Forbidden(FieldError::new(
+                    "meter_id",
+                    format!("meter {m} is on feeder {f}, which gateway {gw} does not serve"),
+                )))
+            }
+            Some(_) => {
+                known.insert(m.to_owned());
+            }
+            None => {}
+        }
+    }
+    let profiles = st.profiles.get(feeder).map_or(&[][..], Vec::as_slice);
+    let ctx = IngestContext {
+        profiles,
+        known_meters: &known,
+        now,
+        clock_tolerance_s: limits.clock_tolerance_s,
+        stale_grace_s: limits.stale_grace_s,
+    };
+    let valid = validate(u.header.clone(), &u.batch, u.body_sha256.clone(), &ctx)?;
+    if u.sequence <= last_sequence {
+        return Err(ApiError::Conflict(FieldError::new(
+            meterveil_shared::auth::HEADER_SEQUENCE,
+            format!("sequence {} is not above the last one this gateway had accepted", u.sequence),
+        )));
+    }
+    Ok(Decision::Write(valid))
+}
+
+/// Why a signature fails to match.
+pub const KEY_MISMATCH: &str = "does not match: the key is wrong (rotated?) or the request was altered";
+
+/// The 409 for a sequence number already accepted with another body.
+pub fn sequence_reused(sequence: i64, batch_id: &str) -> ApiError {
+    ApiError::Conflict(FieldError::new(
+        meterveil_shared::auth::HEADER_SEQUENCE,
+        format!("sequence {sequence} was already used with another body (batch {batch_id})"),
+    ))
 }

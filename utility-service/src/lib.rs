@@ -6,6 +6,7 @@
 
 pub mod app;
 pub mod cli;
+pub mod committer;
 pub mod config;
 pub mod demo;
 pub mod error;

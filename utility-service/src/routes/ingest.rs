@@ -10,13 +10,13 @@ use axum::{Json, Router};
 use meterveil_shared::auth::{
     derive_gateway_key, signing_text, verify, HEADER_GATEWAY, HEADER_SEQUENCE, HEADER_SIGNATURE, HEADER_TIMESTAMP,
 };
-use meterveil_shared::wire::AckWire;
+use meterveil_shared::wire::{AckWire, BatchWire};
 use meterveil_shared::FieldError;
 
 use super::{now_s, AppState};
+use crate::committer::{Committed, Upload};
 use crate::error::ApiError;
-use crate::ingest::{body_sha256, check_header, parse_batch, validate, IngestContext};
-use crate::store::CommitOutcome;
+use crate::ingest::{body_sha256, check_header, parse_batch, sequence_reused, BatchHeader, KEY_MISMATCH};
 
 pub fn router() -> Router<AppState> {
     // Bodies may come gzip-compressed; the size limit applies to the decompressed
@@ -56,6 +56,7 @@ impl Buckets {
 struct Signed {
     gateway_id: String,
     feeder_id: String,
+    key_generation: i64,
     sequence: i64,
 }
 
@@ -85,10 +86,7 @@ async fn authenticate(s: &AppState, h: &HeaderMap, body_hash: &str) -> Result<Si
     let key = derive_gateway_key(s.config.gateway_master_key.expose().as_bytes(), gateway, rec.key_generation);
     let text = signing_text("POST", INGEST_PATH, gateway, sequence as u64, timestamp, body_hash);
     if !verify(&key, &text, signature) {
-        return Err(ApiError::Unauthorized(FieldError::new(
-            HEADER_SIGNATURE,
-            "does not match: the key is wrong (rotated?) or the request was altered",
-        )));
+        return Err(ApiError::Unauthorized(FieldError::new(HEADER_SIGNATURE, KEY_MISMATCH)));
     }
     let now = now_s();
     if (timestamp - now).abs() > s.config.signature_window_s {
@@ -100,7 +98,7 @@ async fn authenticate(s: &AppState, h: &HeaderMap, body_hash: &str) -> Result<Si
             ),
         )));
     }
-    Ok(Signed { gateway_id: rec.gateway_id, feeder_id: rec.feeder_id, sequence })
+    Ok(Signed { gateway_id: rec.gateway_id, feeder_id: rec.feeder_id, key_generation: rec.key_generation, sequence })
 }
 
 #[derive(serde::Deserialize)]
@@ -170,80 +168,69 @@ async fn ingest(s: &AppState, headers: &HeaderMap, body: Body) -> Result<AckWire
             wait,
         )
     })?;
-    if let Some((prev_hash, batch_id)) = s.store.sequence_record(&signed.gateway_id, signed.sequence).await? {
-        if prev_hash != hash {
-            return Err(ApiError::Conflict(FieldError::new(
-                HEADER_SEQUENCE,
-                format!("sequence {} was already used with another body (batch {batch_id})", signed.sequence),
-            )));
-        }
-        if let Some(prev) = s.store.find_batch(&batch_id).await? {
-            return replay(s, prev, &hash);
-        }
-    }
-    let batch = parse_batch(&bytes)?;
+    let (header, batch) = match parse_signed(&bytes, &signed) {
+        Ok(parsed) => parsed,
+        // A sequence number used before outranks what is wrong with this body.
+        Err(e) => return earlier_sequence(s, &signed, &hash).await?.ok_or(e),
+    };
     let n_readings = batch.readings.len() as u64;
-    let outcome = async {
-        let header = check_header(&batch)?;
-        if header.gateway_id.as_str() != signed.gateway_id {
-            return Err(ApiError::Forbidden(FieldError::new(
-                "gateway_id",
-                format!("the batch names gateway {} but is signed by {}", header.gateway_id, signed.gateway_id),
-            )));
+    let upload = Upload {
+        gateway_id: signed.gateway_id,
+        key_generation: signed.key_generation,
+        sequence: signed.sequence,
+        body_sha256: hash.clone(),
+        header,
+        batch,
+    };
+    let outcome = match s.committer.submit(upload).await {
+        Ok(Committed::Stored(ack)) => {
+            s.metrics.batch("stored");
+            s.metrics.readings_stored.inc_by(ack.stored_readings);
+            s.metrics.readings_duplicate.inc_by(ack.duplicate_readings);
+            s.metrics.registers_stored.inc_by(ack.stored_registers);
+            Ok(ack)
         }
-        if header.feeder_id.as_str() != signed.feeder_id {
-            return Err(ApiError::Forbidden(FieldError::new(
-                "feeder_id",
-                format!("gateway {} serves feeder {}, not {}", signed.gateway_id, signed.feeder_id, header.feeder_id),
-            )));
-        }
-        if let Some(prev) = s.store.find_batch(header.batch_id.as_str()).await? {
-            return replay(s, prev, &hash);
-        }
-        // The feeder is the signing gateway's own (checked above), so it exists.
-        let profiles = s.store.profiles(&header.feeder_id).await?;
-        let mut ids: Vec<&str> = batch
-            .readings
-            .iter()
-            .map(|r| r.meter_id.as_str())
-            .chain(batch.registers.iter().map(|g| g.meter_id.as_str()))
-            .collect();
-        ids.sort_unstable();
-        ids.dedup();
-        let mut known = std::collections::HashSet::new();
-        for (m, f) in s.store.meter_feeders(&ids).await? {
-            if f != header.feeder_id.as_str() {
-                return Err(ApiError::Forbidden(FieldError::new(
-                    "meter_id",
-                    format!("meter {m} is on feeder {f}, which gateway {} does not serve", signed.gateway_id),
-                )));
-            }
-            known.insert(m);
-        }
-        let ctx = IngestContext {
-            profiles: &profiles,
-            known_meters: &known,
-            now: now_s(),
-            clock_tolerance_s: s.config.clock_tolerance_s,
-            stale_grace_s: s.config.stale_grace_s,
-        };
-        let valid = validate(header, batch.clone(), hash.clone(), &ctx)?;
-        match s.store.commit_batch(&valid, Some(signed.sequence), ctx.now).await? {
-            CommitOutcome::Stored(ack) => {
-                s.metrics.batch("stored");
-                s.metrics.readings_stored.inc_by(ack.stored_readings);
-                s.metrics.readings_duplicate.inc_by(ack.duplicate_readings);
-                s.metrics.registers_stored.inc_by(ack.stored_registers);
-                Ok(ack)
-            }
-            CommitOutcome::AlreadyStored(prev) => replay(s, prev, &hash),
-        }
-    }
-    .await;
+        Ok(Committed::Earlier(prev)) => replay(s, prev, &hash),
+        Err(e) => Err(e),
+    };
     if outcome.is_err() {
         s.metrics.readings_rejected.inc_by(n_readings);
     }
     outcome
+}
+
+/// Parses the body and checks that it names the signing gateway and its feeder.
+fn parse_signed(bytes: &[u8], signed: &Signed) -> Result<(BatchHeader, BatchWire), ApiError> {
+    let batch = parse_batch(bytes)?;
+    let header = check_header(&batch)?;
+    if header.gateway_id.as_str() != signed.gateway_id {
+        return Err(ApiError::Forbidden(FieldError::new(
+            "gateway_id",
+            format!("the batch names gateway {} but is signed by {}", header.gateway_id, signed.gateway_id),
+        )));
+    }
+    if header.feeder_id.as_str() != signed.feeder_id {
+        return Err(ApiError::Forbidden(FieldError::new(
+            "feeder_id",
+            format!("gateway {} serves feeder {}, not {}", signed.gateway_id, signed.feeder_id, header.feeder_id),
+        )));
+    }
+    Ok((header, batch))
+}
+
+/// For a body that will be refused: the answer its sequence number already has
+/// (the stored acknowledgement, or a 409 for another body), if it was used before.
+async fn earlier_sequence(s: &AppState, signed: &Signed, hash: &str) -> Result<Option<AckWire>, ApiError> {
+    let Some((prev_hash, batch_id)) = s.store.sequence_record(&signed.gateway_id, signed.sequence).await? else {
+        return Ok(None);
+    };
+    if prev_hash != hash {
+        return Err(sequence_reused(signed.sequence, &batch_id));
+    }
+    match s.store.find_batch(&batch_id).await? {
+        Some(prev) => replay(s, prev, hash).map(Some),
+        None => Ok(None),
+    }
 }
 
 /// A batch id seen before: the same body gets the same acknowledgement, a different one a 409.

@@ -32,6 +32,8 @@ pub struct AppState {
     pub dashboard: Arc<dashboard::Sessions>,
     /// Per-gateway upload rate buckets.
     pub buckets: Arc<ingest::Buckets>,
+    /// Checks and writes uploads in groups.
+    pub committer: crate::committer::Committer,
 }
 
 pub fn router(state: AppState) -> Router {

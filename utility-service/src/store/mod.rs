@@ -21,9 +21,9 @@ use sqlx::{Any, AnyPool, Executor, Row};
 use tokio::sync::{Mutex, MutexGuard};
 
 use crate::error::ApiError;
-use crate::ingest::ValidatedBatch;
 
 pub mod analyses;
+pub mod batches;
 pub mod gateways;
 pub mod queue;
 
@@ -107,14 +107,6 @@ impl ProfileRecord {
 pub struct StoredBatch {
     pub body_sha256: String,
     pub ack: AckWire,
-}
-
-/// What happened to a batch at commit.
-#[derive(Debug)]
-pub enum CommitOutcome {
-    Stored(AckWire),
-    /// The batch id was stored before (possibly by a concurrent request).
-    AlreadyStored(StoredBatch),
 }
 
 #[derive(Debug, Clone, serde::Serialize)]
@@ -381,116 +373,6 @@ impl Store {
             .fetch_optional(&self.pool)
             .await?;
         row.map(|r| stored_batch_from_row(&r)).transpose()
-    }
-
-    /// Stores a validated batch atomically: all of its rows or none.
-    /// Stores a validated batch in one transaction; with `sequence`, the signed
-    /// upload's (gateway, sequence) is recorded in the same transaction, and a
-    /// number that is not above the gateway's last accepted one is refused (409).
-    pub async fn commit_batch(
-        &self,
-        b: &ValidatedBatch,
-        sequence: Option<i64>,
-        now: i64,
-    ) -> Result<CommitOutcome, ApiError> {
-        let _w = self.write_lock().await;
-        let mut tx = self.pool.begin().await?;
-        if let Some(seq) = sequence {
-            let moved =
-                sqlx::query("UPDATE gateways SET last_sequence = $1 WHERE gateway_id = $2 AND last_sequence < $1")
-                    .bind(seq)
-                    .bind(b.gateway_id.as_str())
-                    .execute(&mut *tx)
-                    .await?;
-            if moved.rows_affected() != 1 {
-                return Err(ApiError::Conflict(meterveil_shared::FieldError::new(
-                    "x-meterveil-sequence",
-                    format!("sequence {seq} is not above the last one this gateway had accepted"),
-                )));
-            }
-            sqlx::query(
-                "INSERT INTO gateway_sequences (gateway_id, sequence, body_sha256, batch_id) VALUES ($1, $2, $3, $4)",
-            )
-            .bind(b.gateway_id.as_str())
-            .bind(seq)
-            .bind(&b.body_sha256)
-            .bind(&b.batch_id)
-            .execute(&mut *tx)
-            .await?;
-        }
-        let mut stored_readings = 0;
-        for chunk in b.readings.chunks(INSERT_CHUNK) {
-            let sql = values_sql(
-                self.backend,
-                "INSERT INTO readings (meter_id, interval_start, level, profile_version, batch_id)",
-                chunk.len(),
-                5,
-                "ON CONFLICT DO NOTHING",
-            );
-            let mut q = sqlx::query(&sql);
-            for r in chunk {
-                q = q
-                    .bind(r.meter_id.as_str())
-                    .bind(r.interval_start)
-                    .bind(i64::from(r.level))
-                    .bind(i64::from(r.profile_version))
-                    .bind(b.batch_id.as_str());
-            }
-            stored_readings += q.execute(&mut *tx).await?.rows_affected();
-        }
-        let mut stored_registers = 0;
-        for chunk in b.registers.chunks(INSERT_CHUNK) {
-            let sql = values_sql(
-                self.backend,
-                "INSERT INTO register_reads (meter_id, read_at, wh_total, batch_id)",
-                chunk.len(),
-                4,
-                "ON CONFLICT DO NOTHING",
-            );
-            let mut q = sqlx::query(&sql);
-            for r in chunk {
-                // wh_total was checked to fit an i64 during validation.
-                q = q.bind(r.meter_id.as_str()).bind(r.read_at).bind(r.wh_total as i64).bind(b.batch_id.as_str());
-            }
-            stored_registers += q.execute(&mut *tx).await?.rows_affected();
-        }
-        for v in &b.versions_used {
-            sqlx::query("UPDATE dither_profiles SET in_use = 1 WHERE feeder_id = $1 AND version = $2 AND in_use = 0")
-                .bind(b.feeder_id.as_str())
-                .bind(i64::from(*v))
-                .execute(&mut *tx)
-                .await?;
-        }
-        let ack = AckWire {
-            batch_id: b.batch_id.clone(),
-            stored_readings,
-            duplicate_readings: b.readings.len() as u64 - stored_readings,
-            stored_registers,
-            duplicate_registers: b.registers.len() as u64 - stored_registers,
-        };
-        let recorded = sqlx::query(
-            "INSERT INTO ingest_batches (batch_id, gateway_id, feeder_id, body_sha256, received_at, ack)
-             VALUES ($1, $2, $3, $4, $5, $6) ON CONFLICT DO NOTHING",
-        )
-        .bind(&b.batch_id)
-        .bind(b.gateway_id.as_str())
-        .bind(b.feeder_id.as_str())
-        .bind(&b.body_sha256)
-        .bind(now)
-        .bind(serde_json::to_string(&ack).map_err(anyhow::Error::from)?)
-        .execute(&mut *tx)
-        .await?;
-        if recorded.rows_affected() != 1 {
-            // A concurrent request (PostgreSQL) stored the same batch id first:
-            // nothing of this attempt stays, and the stored acknowledgement answers.
-            tx.rollback().await?;
-            if let Some(existing) = self.find_batch(&b.batch_id).await? {
-                return Ok(CommitOutcome::AlreadyStored(existing));
-            }
-            return Err(ApiError::Internal(anyhow::anyhow!("batch {} conflicted but is not stored", b.batch_id)));
-        }
-        tx.commit().await?;
-        Ok(CommitOutcome::Stored(ack))
     }
 
     pub async fn feeder_summaries(&self) -> Result<Vec<FeederSummary>, ApiError> {
