@@ -60,27 +60,7 @@ impl TestService {
 
     /// Uploads raw `body` with explicit signing fields.
     async fn post_signed(&self, body: &[u8], gateway: &str, seq: u64, ts: i64, key: &[u8]) -> (StatusCode, Value) {
-        use meterveil_shared::auth::*;
-        let text = signing_text("POST", "/v1/ingest/batches", gateway, seq, ts, &body_sha256(body));
-        let resp = self
-            .http
-            .post(format!("{}/v1/ingest/batches", self.url()))
-            .header("content-type", "application/json")
-            .header(HEADER_GATEWAY, gateway)
-            .header(HEADER_SEQUENCE, seq.to_string())
-            .header(HEADER_TIMESTAMP, ts.to_string())
-            .header(HEADER_SIGNATURE, sign(key, &text))
-            .body(body.to_vec())
-            .send()
-            .await
-            .expect("request");
-        let status = StatusCode::from_u16(resp.status().as_u16()).expect("status");
-        let retry = resp.headers().get("retry-after").and_then(|v| v.to_str().ok()).map(str::to_owned);
-        let mut body = resp.json::<Value>().await.unwrap_or(Value::Null);
-        if let Some(r) = retry {
-            body["retry_after_header"] = r.into();
-        }
-        (status, body)
+        signed_upload(self.http.clone(), self.url(), body.to_vec(), gateway.to_owned(), seq, ts, key.to_vec()).await
     }
 
     async fn post_json(&self, path: &str, body: &Value, operator: bool) -> (StatusCode, Value) {
@@ -93,6 +73,39 @@ impl TestService {
         let body = resp.json::<Value>().await.unwrap_or(Value::Null);
         (status, body)
     }
+}
+
+/// Uploads `body` to the service at `url`, signed as `gateway` with `key`; owns
+/// its arguments so that many can run at once as spawned tasks.
+async fn signed_upload(
+    http: reqwest::Client,
+    url: String,
+    body: Vec<u8>,
+    gateway: String,
+    seq: u64,
+    ts: i64,
+    key: Vec<u8>,
+) -> (StatusCode, Value) {
+    use meterveil_shared::auth::*;
+    let text = signing_text("POST", "/v1/ingest/batches", &gateway, seq, ts, &body_sha256(&body));
+    let resp = http
+        .post(format!("{url}/v1/ingest/batches"))
+        .header("content-type", "application/json")
+        .header(HEADER_GATEWAY, &gateway)
+        .header(HEADER_SEQUENCE, seq.to_string())
+        .header(HEADER_TIMESTAMP, ts.to_string())
+        .header(HEADER_SIGNATURE, sign(&key, &text))
+        .body(body)
+        .send()
+        .await
+        .expect("request");
+    let status = StatusCode::from_u16(resp.status().as_u16()).expect("status");
+    let retry = resp.headers().get("retry-after").and_then(|v| v.to_str().ok()).map(str::to_owned);
+    let mut body = resp.json::<Value>().await.unwrap_or(Value::Null);
+    if let Some(r) = retry {
+        body["retry_after_header"] = r.into();
+    }
+    (status, body)
 }
 
 async fn spawn_service_with(tweak: impl FnOnce(&mut ServiceConfig)) -> TestService {
@@ -1507,6 +1520,108 @@ async fn unsigned_forged_stale_reused_and_foreign_uploads_are_refused() {
     assert_ne!(new_key, key);
     let (s, r) = t.post_signed(other.as_bytes(), "gw-1", 200, now_s(), &key).await;
     refused(s, &r, StatusCode::UNAUTHORIZED, "x-meterveil-signature", "does not match");
+}
+
+/// One wave of uploads sent at once, each `(gateway, key, sequence, body)`; the
+/// answers in the same order.
+async fn upload_wave(t: &TestService, wave: Vec<(String, Vec<u8>, u64, String)>) -> Vec<(StatusCode, Value)> {
+    let tasks: Vec<_> = wave
+        .into_iter()
+        .map(|(gw, key, seq, body)| {
+            tokio::spawn(signed_upload(t.http.clone(), t.url(), body.into_bytes(), gw, seq, now_s(), key))
+        })
+        .collect();
+    let mut out = Vec::new();
+    for task in tasks {
+        out.push(task.await.expect("upload task"));
+    }
+    out
+}
+
+/// A counter from the service's /metrics page.
+async fn metric(t: &TestService, name: &str) -> u64 {
+    let text = t.http.get(format!("{}/metrics", t.url())).send().await.expect("metrics").text().await.expect("text");
+    text.lines()
+        .find_map(|l| l.strip_prefix(name).and_then(|rest| rest.trim().parse().ok()))
+        .unwrap_or_else(|| panic!("{name} missing from /metrics:\n{text}"))
+}
+
+/// Uploads that arrive together are checked and written as one group (the
+/// service lingers 400 ms for them here), yet each gets exactly the answer it
+/// would get alone: its own stored and duplicate counts, a replay its first
+/// acknowledgement, a reused sequence number or batch id a 409, a bad row a 422
+/// that stores nothing. A group holding readings stored before is rolled back and
+/// settled upload by upload. A retry racing its original gets the same answer.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn uploads_committed_together_get_the_answers_they_would_get_alone() {
+    let t = spawn_service_with(|c| c.ingest_group_linger = std::time::Duration::from_millis(400)).await;
+    small_feeder(&t).await;
+    let meters: Vec<String> = (0..12).map(|i| format!("gm{i:02}")).collect();
+    let (s, r) = t.post_json("/v1/feeders/F1/meters", &json!({ "meter_ids": meters }), true).await;
+    assert_eq!(s, StatusCode::OK, "{r}");
+    let mut keys = Vec::new();
+    for i in 0..12 {
+        keys.push(t.provision(&format!("gw-g{i:02}"), "F1").await);
+    }
+    let first = aligned_past(200);
+    // `n` readings of meter gm{i} from interval `from` on (counted from `first`).
+    let readings = |i: usize, from: i64, n: i64, level: u8| -> Vec<Value> {
+        (from..from + n)
+            .map(|k| json!({"meter_id": format!("gm{i:02}"), "interval_start": first + 900 * k, "level": level, "profile_version": 1}))
+            .collect()
+    };
+    let body = |gw: usize, id: &str, rows: Vec<Value>| {
+        json!({"batch_id": id, "gateway_id": format!("gw-g{gw:02}"), "feeder_id": "F1", "readings": rows}).to_string()
+    };
+    let up = |gw: usize, seq: u64, body: String| (format!("gw-g{gw:02}"), keys[gw].clone(), seq, body);
+
+    // Wave 1: each gateway a day of new readings.
+    let wave1: Vec<_> = (0..12).map(|i| up(i, 1, body(i, &format!("w1-{i}"), readings(i, 0, 96, 1)))).collect();
+    let answers1 = upload_wave(&t, wave1.clone()).await;
+    for (i, (s, a)) in answers1.iter().enumerate() {
+        assert_eq!(*s, StatusCode::OK, "gateway {i}: {a}");
+        assert_eq!((a["stored_readings"].as_u64(), a["duplicate_readings"].as_u64()), (Some(96), Some(0)), "{a}");
+    }
+    let groups1 = metric(&t, "meterveil_ingest_groups_total").await;
+    assert!(groups1 <= 6, "12 uploads sent together took {groups1} group commits");
+    assert_eq!(metric(&t, "meterveil_ingest_group_retries_total").await, 0);
+
+    // Wave 2, sent together.
+    let mut wave2: Vec<_> = (0..4).map(|i| up(i, 2, body(i, &format!("w2-{i}"), readings(i, 48, 96, 2)))).collect();
+    wave2.push(wave1[4].clone()); // a replay
+    wave2.push(wave1[5].clone()); // a replay
+    wave2.push(up(6, 1, body(6, "w2-6", readings(6, 96, 4, 1)))); // sequence 1 again, another body
+    wave2.push(up(7, 2, body(7, "w2-7", readings(7, 96, 4, 9)))); // level 9 of 3
+    let retried = up(8, 2, body(8, "w2-8", readings(8, 96, 10, 0))); // a retry racing its original
+    wave2.push(retried.clone());
+    wave2.push(retried);
+    wave2.push(up(9, 2, body(9, "shared-id", readings(9, 96, 10, 0)))); // one batch id, two bodies
+    wave2.push(up(10, 2, body(10, "shared-id", readings(10, 96, 10, 0))));
+    let a = upload_wave(&t, wave2).await;
+    for (i, (s, r)) in a[..4].iter().enumerate() {
+        assert_eq!(*s, StatusCode::OK, "gateway {i}: {r}");
+        assert_eq!((r["stored_readings"].as_u64(), r["duplicate_readings"].as_u64()), (Some(48), Some(48)), "{r}");
+    }
+    assert_eq!(a[4], answers1[4], "a replay gets the first acknowledgement");
+    assert_eq!(a[5], answers1[5]);
+    refused(a[6].0, &a[6].1, StatusCode::CONFLICT, "x-meterveil-sequence", "already used with another body");
+    refused(a[7].0, &a[7].1, StatusCode::UNPROCESSABLE_ENTITY, "readings[0].level", "out of range");
+    assert_eq!((a[8].0, a[8].1["stored_readings"].as_u64()), (StatusCode::OK, Some(10)), "{}", a[8].1);
+    assert_eq!(a[8], a[9], "both copies get the one acknowledgement");
+    let (won, lost) = if a[10].0 == StatusCode::OK { (&a[10], &a[11]) } else { (&a[11], &a[10]) };
+    assert_eq!(won.1["stored_readings"].as_u64(), Some(10), "{}", won.1);
+    refused(lost.0, &lost.1, StatusCode::CONFLICT, "batch_id", "already stored with a different body");
+    assert!(metric(&t, "meterveil_ingest_group_retries_total").await >= 1, "the duplicates forced a retry alone");
+
+    // Stored: every row exactly once, and nothing of the refused uploads.
+    assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 12 * 96 + 4 * 48 + 10 + 10);
+    assert_eq!(t.count("SELECT COUNT(*) FROM readings WHERE batch_id IN ('w2-6', 'w2-7')").await, 0);
+    assert_eq!(t.count("SELECT COUNT(*) FROM ingest_batches").await, 12 + 4 + 1 + 1);
+    assert_eq!(t.count("SELECT COUNT(*) FROM gateway_sequences").await, 12 + 4 + 1 + 1);
+    // Wave 1 left every gateway at sequence 1; wave 2 moved 0-3, 8 and the winner
+    // of the shared id to 2.
+    let sequences = t.count("SELECT COALESCE(SUM(last_sequence), 0) FROM gateways WHERE gateway_id LIKE 'gw-g%'");
+    assert_eq!(sequences.await, 12 + 4 + 1 + 1);
 }
 
 #[tokio::test]

@@ -66,7 +66,12 @@ pub async fn start_with_store(
     let listener =
         tokio::net::TcpListener::bind(config.bind).await.with_context(|| format!("binding {}", config.bind))?;
     let addr = listener.local_addr()?;
-    let committer = crate::committer::Committer::start(store.clone(), config.ingest_limits());
+    let committer = crate::committer::Committer::start(
+        store.clone(),
+        config.ingest_limits(),
+        config.ingest_group_linger,
+        metrics.clone(),
+    );
     let state = AppState {
         store: store.clone(),
         config: Arc::new(config),

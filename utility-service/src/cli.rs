@@ -246,11 +246,17 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
             let mut config = ServiceConfig::local(database_url, Secret::new(""));
             config.job_lease_s = job_lease_s;
             config.job_feeders = (!feeders.is_empty()).then_some(feeders);
-            let committer = crate::committer::Committer::start(store.clone(), config.ingest_limits());
+            let metrics: std::sync::Arc<crate::metrics::Metrics> = Default::default();
+            let committer = crate::committer::Committer::start(
+                store.clone(),
+                config.ingest_limits(),
+                config.ingest_group_linger,
+                metrics.clone(),
+            );
             let state = crate::routes::AppState {
                 store,
                 config: std::sync::Arc::new(config),
-                metrics: Default::default(),
+                metrics,
                 wake: Default::default(),
                 dashboard: Default::default(),
                 buckets: Default::default(),

@@ -14,12 +14,15 @@
 //! uploads are settled one by one.
 
 use std::collections::{HashSet, VecDeque};
+use std::sync::Arc;
+use std::time::Duration;
 
 use meterveil_shared::wire::{AckWire, BatchWire};
 use tokio::sync::{mpsc, oneshot};
 
 use crate::error::ApiError;
 use crate::ingest::{decide, BatchHeader, Decision, IngestLimits};
+use crate::metrics::Metrics;
 use crate::store::batches::{Accepted, GroupKeys};
 use crate::store::{Store, StoredBatch};
 
@@ -62,10 +65,12 @@ pub struct Committer {
 }
 
 impl Committer {
-    /// Starts the task; it ends when every handle is dropped and the queue is empty.
-    pub fn start(store: Store, limits: IngestLimits) -> Self {
+    /// Starts the task; it ends when every handle is dropped and the queue is
+    /// empty. With a `linger` above zero, a group waits up to that long for more
+    /// uploads once its first has arrived (larger groups, later answers).
+    pub fn start(store: Store, limits: IngestLimits, linger: Duration, metrics: Arc<Metrics>) -> Self {
         let (tx, rx) = mpsc::channel(QUEUE);
-        tokio::spawn(run(store, limits, rx));
+        tokio::spawn(run(Task { store, limits, metrics }, linger, rx));
         Self { tx }
     }
 
@@ -77,13 +82,29 @@ impl Committer {
     }
 }
 
-async fn run(store: Store, limits: IngestLimits, mut rx: mpsc::Receiver<(Upload, Reply)>) {
+/// What the committer works with.
+struct Task {
+    store: Store,
+    limits: IngestLimits,
+    metrics: Arc<Metrics>,
+}
+
+async fn run(task: Task, linger: Duration, mut rx: mpsc::Receiver<(Upload, Reply)>) {
     let mut waiting: VecDeque<(Upload, Reply)> = VecDeque::new();
     loop {
         if waiting.is_empty() {
             match rx.recv().await {
                 Some(job) => waiting.push_back(job),
                 None => return,
+            }
+            if !linger.is_zero() {
+                let until = tokio::time::Instant::now() + linger;
+                while waiting.len() < MAX_GROUP_UPLOADS {
+                    match tokio::time::timeout_at(until, rx.recv()).await {
+                        Ok(Some(job)) => waiting.push_back(job),
+                        _ => break,
+                    }
+                }
             }
         }
         while waiting.len() < QUEUE {
@@ -93,7 +114,7 @@ async fn run(store: Store, limits: IngestLimits, mut rx: mpsc::Receiver<(Upload,
             }
         }
         let (uploads, replies): (Vec<Upload>, Vec<Reply>) = next_group(&mut waiting).into_iter().unzip();
-        let results = settle(&store, &limits, &uploads).await;
+        let results = task.settle(&uploads).await;
         for (reply, result) in replies.into_iter().zip(results) {
             // A caller that gave up (timeout, closed connection) no longer listens;
             // its batch is stored all the same and a retry gets the stored ack.
@@ -127,78 +148,84 @@ fn next_group(waiting: &mut VecDeque<(Upload, Reply)>) -> Vec<(Upload, Reply)> {
     group
 }
 
-/// Settles every upload of a group, in order.
-async fn settle(store: &Store, limits: &IngestLimits, uploads: &[Upload]) -> Vec<Result<Committed, ApiError>> {
-    match attempt(store, limits, uploads).await {
-        Ok(Some(results)) => results,
-        Ok(None) => {
-            tracing::debug!(uploads = uploads.len(), "group raced with another writer; settling its uploads alone");
-            let mut out = Vec::with_capacity(uploads.len());
-            for u in uploads {
-                out.push(settle_alone(store, limits, u).await);
+impl Task {
+    /// Settles every upload of a group, in order.
+    async fn settle(&self, uploads: &[Upload]) -> Vec<Result<Committed, ApiError>> {
+        self.metrics.ingest_groups.inc();
+        match self.attempt(uploads).await {
+            Ok(Some(results)) => results,
+            Ok(None) => {
+                self.metrics.ingest_group_retries.inc();
+                tracing::debug!(uploads = uploads.len(), "group raced with another writer; settling its uploads alone");
+                let mut out = Vec::with_capacity(uploads.len());
+                for u in uploads {
+                    out.push(self.settle_alone(u).await);
+                }
+                out
             }
-            out
-        }
-        Err(e) => {
-            tracing::error!(error = ?e, uploads = uploads.len(), "group commit failed");
-            uploads.iter().map(|_| Err(ApiError::Internal(anyhow::anyhow!("group commit failed: {e}")))).collect()
-        }
-    }
-}
-
-async fn settle_alone(store: &Store, limits: &IngestLimits, u: &Upload) -> Result<Committed, ApiError> {
-    for _ in 0..ALONE_ATTEMPTS {
-        if let Some(mut r) = attempt(store, limits, std::slice::from_ref(u)).await? {
-            if let Some(result) = r.pop() {
-                return result;
+            Err(e) => {
+                tracing::error!(error = ?e, uploads = uploads.len(), "group commit failed");
+                uploads.iter().map(|_| Err(ApiError::Internal(anyhow::anyhow!("group commit failed: {e}")))).collect()
             }
         }
     }
-    Err(ApiError::Internal(anyhow::anyhow!(
-        "batch {} kept racing with other writers ({ALONE_ATTEMPTS} attempts)",
-        u.header.batch_id
-    )))
-}
 
-/// Reads the group's state, decides each upload and writes the accepted ones.
-/// `Ok(None)`: another writer got in first and nothing was written.
-async fn attempt(
-    store: &Store,
-    limits: &IngestLimits,
-    uploads: &[Upload],
-) -> Result<Option<Vec<Result<Committed, ApiError>>>, ApiError> {
-    let mut keys = GroupKeys::default();
-    for u in uploads {
-        keys.gateways.push(&u.gateway_id);
-        keys.sequences.push((&u.gateway_id, u.sequence));
-        keys.batch_ids.push(u.header.batch_id.as_str());
-        keys.feeders.push(u.header.feeder_id.as_str());
-        keys.meters.extend(u.batch.readings.iter().map(|r| r.meter_id.as_str()));
-        keys.meters.extend(u.batch.registers.iter().map(|g| g.meter_id.as_str()));
-    }
-    keys.feeders.sort_unstable();
-    keys.feeders.dedup();
-    keys.meters.sort_unstable();
-    keys.meters.dedup();
-    let state = store.group_state(&keys).await?;
-    let now = crate::routes::now_s();
-
-    let mut results: Vec<Option<Result<Committed, ApiError>>> = Vec::with_capacity(uploads.len());
-    let (mut accepted, mut slots) = (Vec::new(), Vec::new());
-    for (i, u) in uploads.iter().enumerate() {
-        match decide(u, &state, now, limits) {
-            Ok(Decision::Write(batch)) => {
-                accepted.push(Accepted { batch, sequence: u.sequence, key_generation: u.key_generation });
-                slots.push(i);
-                results.push(None);
+    async fn settle_alone(&self, u: &Upload) -> Result<Committed, ApiError> {
+        for _ in 0..ALONE_ATTEMPTS {
+            self.metrics.ingest_groups.inc();
+            if let Some(mut r) = self.attempt(std::slice::from_ref(u)).await? {
+                if let Some(result) = r.pop() {
+                    return result;
+                }
             }
-            Ok(Decision::Earlier(prev)) => results.push(Some(Ok(Committed::Earlier(prev)))),
-            Err(e) => results.push(Some(Err(e))),
         }
+        Err(ApiError::Internal(anyhow::anyhow!(
+            "batch {} kept racing with other writers ({ALONE_ATTEMPTS} attempts)",
+            u.header.batch_id
+        )))
     }
-    let Some(acks) = store.write_group(&accepted, now).await? else { return Ok(None) };
-    for (slot, ack) in slots.into_iter().zip(acks) {
-        results[slot] = Some(Ok(Committed::Stored(ack)));
+
+    /// Reads the group's state, decides each upload and writes the accepted ones.
+    /// `Ok(None)`: another writer got in first and nothing was written.
+    async fn attempt(&self, uploads: &[Upload]) -> Result<Option<Vec<Result<Committed, ApiError>>>, ApiError> {
+        let mut keys = GroupKeys::default();
+        for u in uploads {
+            keys.gateways.push(&u.gateway_id);
+            keys.sequences.push((&u.gateway_id, u.sequence));
+            keys.batch_ids.push(u.header.batch_id.as_str());
+            keys.feeders.push(u.header.feeder_id.as_str());
+            keys.meters.extend(u.batch.readings.iter().map(|r| r.meter_id.as_str()));
+            keys.meters.extend(u.batch.registers.iter().map(|g| g.meter_id.as_str()));
+        }
+        keys.feeders.sort_unstable();
+        keys.feeders.dedup();
+        keys.meters.sort_unstable();
+        keys.meters.dedup();
+        let state = self.store.group_state(&keys).await?;
+        let now = crate::routes::now_s();
+
+        let mut results: Vec<Option<Result<Committed, ApiError>>> = Vec::with_capacity(uploads.len());
+        let (mut accepted, mut slots) = (Vec::new(), Vec::new());
+        for (i, u) in uploads.iter().enumerate() {
+            match decide(u, &state, now, &self.limits) {
+                Ok(Decision::Write(batch)) => {
+                    accepted.push(Accepted { batch, sequence: u.sequence, key_generation: u.key_generation });
+                    slots.push(i);
+                    results.push(None);
+                }
+                Ok(Decision::Earlier(prev)) => results.push(Some(Ok(Committed::Earlier(prev)))),
+                Err(e) => results.push(Some(Err(e))),
+            }
+        }
+        let Some(acks) = self.store.write_group(&accepted, now).await? else { return Ok(None) };
+        for (slot, ack) in slots.into_iter().zip(acks) {
+            results[slot] = Some(Ok(Committed::Stored(ack)));
+        }
+        Ok(Some(
+            results
+                .into_iter()
+                .map(|r| r.unwrap_or_else(|| Err(anyhow::anyhow!("upload left unsettled").into())))
+                .collect(),
+        ))
     }
-    Ok(Some(results.into_iter().map(|r| r.unwrap_or_else(|| Err(anyhow::anyhow!("upload left unsettled").into()))).collect()))
 }

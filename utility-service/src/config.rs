@@ -56,6 +56,10 @@ pub struct ServiceConfig {
     /// Per-gateway upload rate: batches per second sustained, and the burst allowed.
     pub gateway_batches_per_s: f64,
     pub gateway_burst: f64,
+    /// How long the ingest group commit waits for more uploads once a group's
+    /// first has arrived. Zero (the default) commits at once: under load the
+    /// uploads that arrive during one commit form the next group anyway.
+    pub ingest_group_linger: std::time::Duration,
 }
 
 impl ServiceConfig {
@@ -80,6 +84,7 @@ impl ServiceConfig {
             signature_window_s: 300,
             gateway_batches_per_s: 20.0,
             gateway_burst: 40.0,
+            ingest_group_linger: std::time::Duration::ZERO,
         }
     }
 }

@@ -240,7 +240,9 @@ pub fn decide(u: &Upload, st: &GroupState, now: i64, limits: &IngestLimits) -> R
     let last_sequence = match st.gateways.get(gw) {
         Some((_, generation, last)) if *generation == u.key_generation => *last,
         // Re-provisioned (or removed) since the signature was checked.
-        _ => return Err(ApiError::Unauthorized(FieldError::new(meterveil_shared::auth::HEADER_SIGNATURE, KEY_MISMATCH))),
+        _ => {
+            return Err(ApiError::Unauthorized(FieldError::new(meterveil_shared::auth::HEADER_SIGNATURE, KEY_MISMATCH)))
+        }
     };
     if let Some((hash, batch_id)) = st.sequences.get(&(gw.to_owned(), u.sequence)) {
         if *hash != u.body_sha256 {
@@ -255,7 +257,12 @@ pub fn decide(u: &Upload, st: &GroupState, now: i64, limits: &IngestLimits) -> R
     }
     let feeder = u.header.feeder_id.as_str();
     let mut known = HashSet::new();
-    let ids = u.batch.readings.iter().map(|r| r.meter_id.as_str()).chain(u.batch.registers.iter().map(|g| g.meter_id.as_str()));
+    let ids = u
+        .batch
+        .readings
+        .iter()
+        .map(|r| r.meter_id.as_str())
+        .chain(u.batch.registers.iter().map(|g| g.meter_id.as_str()));
     for m in ids {
         match st.meter_feeders.get(m) {
             Some(f) if f != feeder => {

@@ -19,6 +19,10 @@ pub struct Metrics {
     /// Readings inside rejected batches (none of them stored).
     pub readings_rejected: Counter,
     pub registers_stored: Counter,
+    /// Transactions of the ingest group commit, and those rolled back because
+    /// another writer got in first (their uploads were then settled one by one).
+    pub ingest_groups: Counter,
+    pub ingest_group_retries: Counter,
 }
 
 impl Default for Metrics {
@@ -29,6 +33,8 @@ impl Default for Metrics {
         let readings_duplicate = Counter::default();
         let readings_rejected = Counter::default();
         let registers_stored = Counter::default();
+        let ingest_groups = Counter::default();
+        let ingest_group_retries = Counter::default();
         registry.register("ingest_batches", "Upload batches by outcome", batches.clone());
         registry.register("readings_stored", "Quantized readings newly stored", readings_stored.clone());
         registry.register(
@@ -38,7 +44,22 @@ impl Default for Metrics {
         );
         registry.register("readings_rejected", "Readings in rejected batches", readings_rejected.clone());
         registry.register("register_reads_stored", "Register reads newly stored", registers_stored.clone());
-        Self { registry, batches, readings_stored, readings_duplicate, readings_rejected, registers_stored }
+        registry.register("ingest_groups", "Group commits of checked upload batches", ingest_groups.clone());
+        registry.register(
+            "ingest_group_retries",
+            "Group commits rolled back because another writer got in first; their uploads were settled one by one",
+            ingest_group_retries.clone(),
+        );
+        Self {
+            registry,
+            batches,
+            readings_stored,
+            readings_duplicate,
+            readings_rejected,
+            registers_stored,
+            ingest_groups,
+            ingest_group_retries,
+        }
     }
 }
 

@@ -13,8 +13,8 @@ use meterveil_shared::wire::AckWire;
 use meterveil_shared::FeederId;
 use sqlx::Row;
 
-use super::{placeholders, profile_from_row, stored_batch_from_row, values_sql, ProfileRecord, Store, StoredBatch};
 use super::INSERT_CHUNK;
+use super::{placeholders, profile_from_row, stored_batch_from_row, values_sql, ProfileRecord, Store, StoredBatch};
 use crate::error::ApiError;
 use crate::ingest::ValidatedBatch;
 
@@ -177,9 +177,7 @@ impl Store {
             }
             stored_registers += q.execute(&mut *tx).await?.rows_affected();
         }
-        if group.len() > 1
-            && (stored_readings != readings.len() as u64 || stored_registers != registers.len() as u64)
-        {
+        if group.len() > 1 && (stored_readings != readings.len() as u64 || stored_registers != registers.len() as u64) {
             tx.rollback().await?;
             return Ok(None);
         }
