@@ -1620,7 +1620,8 @@ async fn uploads_committed_together_get_the_answers_they_would_get_alone() {
     assert_eq!(t.count("SELECT COUNT(*) FROM gateway_sequences").await, 12 + 4 + 1 + 1);
     // Wave 1 left every gateway at sequence 1; wave 2 moved 0-3, 8 and the winner
     // of the shared id to 2.
-    let sequences = t.count("SELECT COALESCE(SUM(last_sequence), 0) FROM gateways WHERE gateway_id LIKE 'gw-g%'");
+    let sequences =
+        t.count("SELECT CAST(COALESCE(SUM(last_sequence), 0) AS BIGINT) FROM gateways WHERE gateway_id LIKE 'gw-g%'");
     assert_eq!(sequences.await, 12 + 4 + 1 + 1);
 }
 
