@@ -18,6 +18,8 @@ use std::sync::Arc;
 use std::time::Duration;
 
 use meterveil_shared::wire::{AckWire, BatchWire};
+use sqlx::pool::PoolConnection;
+use sqlx::{Any, AnyConnection};
 use tokio::sync::{mpsc, oneshot};
 
 use crate::error::ApiError;
@@ -70,7 +72,7 @@ impl Committer {
     /// uploads once its first has arrived (larger groups, later answers).
     pub fn start(store: Store, limits: IngestLimits, linger: Duration, metrics: Arc<Metrics>) -> Self {
         let (tx, rx) = mpsc::channel(QUEUE);
-        tokio::spawn(run(Task { store, limits, metrics }, linger, rx));
+        tokio::spawn(run(Task { store, limits, metrics, conn: None }, linger, rx));
         Self { tx }
     }
 
@@ -87,9 +89,12 @@ struct Task {
     store: Store,
     limits: IngestLimits,
     metrics: Arc<Metrics>,
+    /// Its own connection, so its reads never queue behind the requests' reads
+    /// for the pool; taken again after an error.
+    conn: Option<PoolConnection<Any>>,
 }
 
-async fn run(task: Task, linger: Duration, mut rx: mpsc::Receiver<(Upload, Reply)>) {
+async fn run(mut task: Task, linger: Duration, mut rx: mpsc::Receiver<(Upload, Reply)>) {
     let mut waiting: VecDeque<(Upload, Reply)> = VecDeque::new();
     loop {
         if waiting.is_empty() {
@@ -150,7 +155,7 @@ fn next_group(waiting: &mut VecDeque<(Upload, Reply)>) -> Vec<(Upload, Reply)> {
 
 impl Task {
     /// Settles every upload of a group, in order.
-    async fn settle(&self, uploads: &[Upload]) -> Vec<Result<Committed, ApiError>> {
+    async fn settle(&mut self, uploads: &[Upload]) -> Vec<Result<Committed, ApiError>> {
         self.metrics.ingest_groups.inc();
         match self.attempt(uploads).await {
             Ok(Some(results)) => results,
@@ -170,7 +175,7 @@ impl Task {
         }
     }
 
-    async fn settle_alone(&self, u: &Upload) -> Result<Committed, ApiError> {
+    async fn settle_alone(&mut self, u: &Upload) -> Result<Committed, ApiError> {
         for _ in 0..ALONE_ATTEMPTS {
             self.metrics.ingest_groups.inc();
             if let Some(mut r) = self.attempt(std::slice::from_ref(u)).await? {
@@ -187,45 +192,63 @@ impl Task {
 
     /// Reads the group's state, decides each upload and writes the accepted ones.
     /// `Ok(None)`: another writer got in first and nothing was written.
-    async fn attempt(&self, uploads: &[Upload]) -> Result<Option<Vec<Result<Committed, ApiError>>>, ApiError> {
-        let mut keys = GroupKeys::default();
-        for u in uploads {
-            keys.gateways.push(&u.gateway_id);
-            keys.sequences.push((&u.gateway_id, u.sequence));
-            keys.batch_ids.push(u.header.batch_id.as_str());
-            keys.feeders.push(u.header.feeder_id.as_str());
-            keys.meters.extend(u.batch.readings.iter().map(|r| r.meter_id.as_str()));
-            keys.meters.extend(u.batch.registers.iter().map(|g| g.meter_id.as_str()));
+    async fn attempt(&mut self, uploads: &[Upload]) -> Result<Option<Vec<Result<Committed, ApiError>>>, ApiError> {
+        let mut conn = match self.conn.take() {
+            Some(c) => c,
+            None => self.store.pool().acquire().await?,
+        };
+        let result = attempt_on(&self.store, &self.limits, &mut conn, uploads).await;
+        if result.is_ok() {
+            self.conn = Some(conn);
         }
-        keys.feeders.sort_unstable();
-        keys.feeders.dedup();
-        keys.meters.sort_unstable();
-        keys.meters.dedup();
-        let state = self.store.group_state(&keys).await?;
-        let now = crate::routes::now_s();
-
-        let mut results: Vec<Option<Result<Committed, ApiError>>> = Vec::with_capacity(uploads.len());
-        let (mut accepted, mut slots) = (Vec::new(), Vec::new());
-        for (i, u) in uploads.iter().enumerate() {
-            match decide(u, &state, now, &self.limits) {
-                Ok(Decision::Write(batch)) => {
-                    accepted.push(Accepted { batch, sequence: u.sequence, key_generation: u.key_generation });
-                    slots.push(i);
-                    results.push(None);
-                }
-                Ok(Decision::Earlier(prev)) => results.push(Some(Ok(Committed::Earlier(prev)))),
-                Err(e) => results.push(Some(Err(e))),
-            }
-        }
-        let Some(acks) = self.store.write_group(&accepted, now).await? else { return Ok(None) };
-        for (slot, ack) in slots.into_iter().zip(acks) {
-            results[slot] = Some(Ok(Committed::Stored(ack)));
-        }
-        Ok(Some(
-            results
-                .into_iter()
-                .map(|r| r.unwrap_or_else(|| Err(anyhow::anyhow!("upload left unsettled").into())))
-                .collect(),
-        ))
+        result
     }
+}
+
+/// [`Task::attempt`] on the committer's connection.
+async fn attempt_on(
+    store: &Store,
+    limits: &IngestLimits,
+    conn: &mut AnyConnection,
+    uploads: &[Upload],
+) -> Result<Option<Vec<Result<Committed, ApiError>>>, ApiError> {
+    let mut keys = GroupKeys::default();
+    for u in uploads {
+        keys.gateways.push(&u.gateway_id);
+        keys.sequences.push((&u.gateway_id, u.sequence));
+        keys.batch_ids.push(u.header.batch_id.as_str());
+        keys.feeders.push(u.header.feeder_id.as_str());
+        keys.meters.extend(u.batch.readings.iter().map(|r| r.meter_id.as_str()));
+        keys.meters.extend(u.batch.registers.iter().map(|g| g.meter_id.as_str()));
+    }
+    keys.feeders.sort_unstable();
+    keys.feeders.dedup();
+    keys.meters.sort_unstable();
+    keys.meters.dedup();
+    let state = store.group_state(conn, &keys).await?;
+    let now = crate::routes::now_s();
+
+    let mut results: Vec<Option<Result<Committed, ApiError>>> = Vec::with_capacity(uploads.len());
+    let (mut accepted, mut slots) = (Vec::new(), Vec::new());
+    for (i, u) in uploads.iter().enumerate() {
+        match decide(u, &state, now, limits) {
+            Ok(Decision::Write(batch)) => {
+                accepted.push(Accepted { batch, sequence: u.sequence, key_generation: u.key_generation });
+                slots.push(i);
+                results.push(None);
+            }
+            Ok(Decision::Earlier(prev)) => results.push(Some(Ok(Committed::Earlier(prev)))),
+            Err(e) => results.push(Some(Err(e))),
+        }
+    }
+    let Some(acks) = store.write_group(conn, &accepted, now).await? else { return Ok(None) };
+    for (slot, ack) in slots.into_iter().zip(acks) {
+        results[slot] = Some(Ok(Committed::Stored(ack)));
+    }
+    Ok(Some(
+        results
+            .into_iter()
+            .map(|r| r.unwrap_or_else(|| Err(anyhow::anyhow!("upload left unsettled").into())))
+            .collect(),
+    ))
 }

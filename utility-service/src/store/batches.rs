@@ -11,7 +11,7 @@ use std::collections::HashMap;
 
 use meterveil_shared::wire::AckWire;
 use meterveil_shared::FeederId;
-use sqlx::Row;
+use sqlx::{AnyConnection, Connection, Row};
 
 use super::INSERT_CHUNK;
 use super::{placeholders, profile_from_row, stored_batch_from_row, values_sql, ProfileRecord, Store, StoredBatch};
@@ -58,7 +58,7 @@ pub struct Accepted {
 
 impl Store {
     /// Reads what `keys` names; ids that are not stored are simply absent.
-    pub async fn group_state(&self, keys: &GroupKeys<'_>) -> Result<GroupState, ApiError> {
+    pub async fn group_state(&self, conn: &mut AnyConnection, keys: &GroupKeys<'_>) -> Result<GroupState, ApiError> {
         let mut st = GroupState::default();
         for chunk in keys.gateways.chunks(IN_CHUNK) {
             let sql = format!(
@@ -69,7 +69,7 @@ impl Store {
             for id in chunk {
                 q = q.bind(*id);
             }
-            for (g, f, k, s) in q.fetch_all(&self.pool).await? {
+            for (g, f, k, s) in q.fetch_all(&mut *conn).await? {
                 st.gateways.insert(g, (f, k, s));
             }
         }
@@ -86,7 +86,7 @@ impl Store {
             for (g, s) in chunk {
                 q = q.bind(*g).bind(*s);
             }
-            for (g, s, h, b) in q.fetch_all(&self.pool).await? {
+            for (g, s, h, b) in q.fetch_all(&mut *conn).await? {
                 st.sequences.insert((g, s), (h, b));
             }
         }
@@ -99,7 +99,7 @@ impl Store {
             for id in chunk {
                 q = q.bind(*id);
             }
-            for r in q.fetch_all(&self.pool).await? {
+            for r in q.fetch_all(&mut *conn).await? {
                 st.batches.insert(r.try_get("batch_id")?, stored_batch_from_row(&r)?);
             }
         }
@@ -113,14 +113,22 @@ impl Store {
             for id in chunk {
                 q = q.bind(*id);
             }
-            for r in q.fetch_all(&self.pool).await? {
+            for r in q.fetch_all(&mut *conn).await? {
                 let id: String = r.try_get("feeder_id")?;
                 let feeder = FeederId::parse(&id).map_err(|e| anyhow::anyhow!("stored feeder id: {e}"))?;
                 let rec = profile_from_row(&feeder, &r)?;
                 st.profiles.entry(id).or_default().push(rec);
             }
         }
-        st.meter_feeders = self.meter_feeders(&keys.meters).await?.into_iter().collect();
+        for chunk in keys.meters.chunks(IN_CHUNK) {
+            let sql =
+                format!("SELECT meter_id, feeder_id FROM meters WHERE meter_id IN ({})", placeholders(1, chunk.len()));
+            let mut q = sqlx::query_as::<_, (String, String)>(&sql).persistent(chunk.len() == IN_CHUNK);
+            for id in chunk {
+                q = q.bind(*id);
+            }
+            st.meter_feeders.extend(q.fetch_all(&mut *conn).await?);
+        }
         Ok(st)
     }
 
@@ -130,12 +138,17 @@ impl Store {
     /// than one, a reading was already stored, so the per-batch counts are not
     /// known); nothing was written and each batch should be retried alone, where
     /// the stored state then decides it.
-    pub async fn write_group(&self, group: &[Accepted], now: i64) -> Result<Option<Vec<AckWire>>, ApiError> {
+    pub async fn write_group(
+        &self,
+        conn: &mut AnyConnection,
+        group: &[Accepted],
+        now: i64,
+    ) -> Result<Option<Vec<AckWire>>, ApiError> {
         if group.is_empty() {
             return Ok(Some(Vec::new()));
         }
         let _w = self.write_lock().await;
-        let mut tx = self.pool.begin().await?;
+        let mut tx = conn.begin().await?;
 
         let readings: Vec<_> =
             group.iter().flat_map(|a| a.batch.readings.iter().map(move |r| (r, a.batch.batch_id.as_str()))).collect();

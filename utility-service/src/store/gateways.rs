@@ -56,21 +56,4 @@ impl Store {
         .fetch_optional(&self.pool)
         .await?)
     }
-
-    /// The registered meters among `ids`, each with its feeder.
-    pub async fn meter_feeders(&self, ids: &[&str]) -> Result<Vec<(String, String)>, ApiError> {
-        let mut out = Vec::new();
-        for chunk in ids.chunks(500) {
-            let sql = format!(
-                "SELECT meter_id, feeder_id FROM meters WHERE meter_id IN ({})",
-                super::placeholders(1, chunk.len())
-            );
-            let mut q = sqlx::query_as::<_, (String, String)>(&sql);
-            for id in chunk {
-                q = q.bind(*id);
-            }
-            out.extend(q.fetch_all(&self.pool).await?);
-        }
-        Ok(out)
-    }
 }

@@ -143,8 +143,9 @@ impl Store {
                 if !url.contains('?') && !url.contains(":memory:") {
                     url.push_str("?mode=rwc");
                 }
+                // One connection is the ingest committer's, held for its lifetime.
                 let pool = AnyPoolOptions::new()
-                    .max_connections(4)
+                    .max_connections(5)
                     .after_connect(|conn, _| {
                         Box::pin(async move {
                             conn.execute(
