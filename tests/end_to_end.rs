@@ -1766,6 +1766,107 @@ fn serve_on(db: &str, port: u16) -> std::process::Child {
     panic!("the service did not come up on port {port}");
 }
 
+/// A service told to stop (SIGTERM, as a service manager does) while a hundred
+/// gateways upload: it stops taking connections, answers the uploads it had
+/// taken (some answers arrive after the signal), exits 0, and every
+/// acknowledged batch is stored whole. No upload is answered with a 5xx.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_terminated_service_finishes_the_uploads_it_took() {
+    use meterveil_shared::auth::*;
+    let dir = tempfile::tempdir().expect("tempdir");
+    let db = test_database(dir.path()).await;
+    let port = std::net::TcpListener::bind("127.0.0.1:0").expect("port").local_addr().expect("addr").port();
+    let base = format!("http://127.0.0.1:{port}");
+    let mut service = serve_on(&db, port);
+    let http = reqwest::Client::new();
+    let op = |path: &str, body: Value| {
+        let req = http.post(format!("{base}{path}")).bearer_auth(TOKEN).json(&body);
+        async move { req.send().await.expect("post").json::<Value>().await.expect("json") }
+    };
+    let gateways = 100;
+    op("/v1/feeders", json!({"feeder_id": "F1"})).await;
+    let meters: Vec<String> = (0..gateways).map(|i| format!("t{i:03}")).collect();
+    op("/v1/feeders/F1/meters", json!({ "meter_ids": meters })).await;
+    op("/v1/feeders/F1/profiles", json!({"noise": "gaussian", "scale_kw": 0.3, "boundaries_kw": [1.0, 2.0]})).await;
+    let mut keys = Vec::new();
+    for i in 0..gateways {
+        let r = op("/v1/gateways", json!({"gateway_id": format!("gt{i:03}"), "feeder_id": "F1"})).await;
+        keys.push(hex::decode(r["secret"].as_str().expect("secret")).expect("hex"));
+    }
+
+    // Each gateway uploads one day of its meter after another until the service is gone.
+    let first_day = aligned_past(0) - aligned_past(0).rem_euclid(86_400) - 60 * 86_400;
+    let started = std::time::Instant::now();
+    let tasks: Vec<_> = keys
+        .into_iter()
+        .enumerate()
+        .map(|(i, key)| {
+            let (http, base) = (http.clone(), base.clone());
+            tokio::spawn(async move {
+                let mut answers = Vec::new(); // (batch id, status, answered after start)
+                for day in 0..60i64 {
+                    let rows: Vec<Value> = (0..96)
+                        .map(|k| json!({"meter_id": format!("t{i:03}"), "interval_start": first_day + 86_400 * day + 900 * k, "level": k % 3, "profile_version": 1}))
+                        .collect();
+                    let id = format!("gt{i:03}-d{day}");
+                    let body = json!({"batch_id": id, "gateway_id": format!("gt{i:03}"), "feeder_id": "F1", "readings": rows}).to_string();
+                    let gw = format!("gt{i:03}");
+                    let text = signing_text("POST", "/v1/ingest/batches", &gw, day as u64 + 1, now_s(), &body_sha256(body.as_bytes()));
+                    let sent = http
+                        .post(format!("{base}/v1/ingest/batches"))
+                        .header(HEADER_GATEWAY, &gw)
+                        .header(HEADER_SEQUENCE, (day + 1).to_string())
+                        .header(HEADER_TIMESTAMP, now_s().to_string())
+                        .header(HEADER_SIGNATURE, sign(&key, &text))
+                        .body(body)
+                        .send()
+                        .await;
+                    match sent {
+                        Ok(resp) => answers.push((id, resp.status().as_u16(), started.elapsed())),
+                        Err(_) => break, // the service is gone
+                    }
+                }
+                answers
+            })
+        })
+        .collect();
+    tokio::time::sleep(std::time::Duration::from_millis(700)).await;
+    let signalled = started.elapsed();
+    let killed = std::process::Command::new("kill").args(["-TERM", &service.id().to_string()]).status().expect("kill");
+    assert!(killed.success());
+    let exit = tokio::task::spawn_blocking(move || service.wait()).await.expect("join").expect("wait");
+    let stopped = started.elapsed();
+    assert!(exit.success(), "the service exits cleanly on SIGTERM: {exit:?}");
+    assert!(stopped - signalled < std::time::Duration::from_secs(15), "stopping took {:?}", stopped - signalled);
+
+    let mut acked = HashSet::new();
+    let mut after_signal = 0;
+    for t in tasks {
+        for (id, status, at) in t.await.expect("gateway task") {
+            assert_eq!(status, 200, "batch {id} was answered {status}");
+            if at > signalled {
+                after_signal += 1;
+            }
+            acked.insert(id);
+        }
+    }
+    assert!(after_signal > 0, "no upload taken before the signal was answered after it");
+    let store = meterveil_service::store::Store::open(&db).await.expect("store");
+    let stored: Vec<String> =
+        sqlx::query_scalar("SELECT batch_id FROM ingest_batches").fetch_all(store.pool()).await.expect("batches");
+    let stored: HashSet<String> = stored.into_iter().collect();
+    assert!(acked.is_subset(&stored), "{} acknowledged batches are not stored", acked.difference(&stored).count());
+    let readings: i64 =
+        sqlx::query_scalar("SELECT COUNT(*) FROM readings").fetch_one(store.pool()).await.expect("count");
+    assert_eq!(readings, 96 * stored.len() as i64, "every stored batch is whole");
+    eprintln!(
+        "{} batches acknowledged, {} stored, {after_signal} answered after SIGTERM, stopped {:?} after it",
+        acked.len(),
+        stored.len(),
+        stopped - signalled
+    );
+}
+
 fn gateway_child(config: &std::path::Path) -> std::process::Child {
     std::process::Command::new(std::env::current_exe().expect("test binary"))
         .args(["child_gateway_process", "--exact", "--ignored", "--nocapture"])

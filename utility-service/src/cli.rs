@@ -236,6 +236,25 @@ async fn jobs_command(database_url: &str, action: Option<JobsAction>) -> anyhow:
     Ok(())
 }
 
+/// Resolves on Ctrl-C (SIGINT) or, on Unix, SIGTERM (what service managers send).
+async fn shutdown_signal() {
+    #[cfg(unix)]
+    {
+        use tokio::signal::unix::{signal, SignalKind};
+        match signal(SignalKind::terminate()) {
+            Ok(mut term) => {
+                tokio::select! {
+                    _ = tokio::signal::ctrl_c() => {}
+                    _ = term.recv() => {}
+                }
+                return;
+            }
+            Err(e) => tracing::warn!(error = %e, "cannot listen for SIGTERM; only Ctrl-C stops the service"),
+        }
+    }
+    let _ = tokio::signal::ctrl_c().await;
+}
+
 pub async fn execute(cli: Cli) -> anyhow::Result<()> {
     match cli.command {
         Command::Work { database_url, job_lease_s, feeders } => {
@@ -296,8 +315,8 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
             config.job_lease_s = job_lease_s;
             let store = crate::store::Store::open(&config.database_url).await?;
             let until = Box::pin(async {
-                let _ = tokio::signal::ctrl_c().await;
-                tracing::info!("Ctrl-C: finishing in-flight requests");
+                shutdown_signal().await;
+                tracing::info!("finishing in-flight requests, then stopping");
             });
             let svc = crate::app::start_with_store(config, store, Some(until)).await?;
             println!("listening on {}", svc.url());
