@@ -134,3 +134,124 @@ pub fn median_daily_energy_error(a: &DMatrix<f64>, truth: &DMatrix<f64>, per_day
     per_meter.sort_by(f64::total_cmp);
     per_meter[per_meter.len() / 2]
 }
+
+/// A test population written by `tests/reference/populations.py` (cached under
+/// `target/reference-data/`): 15-minute kW per meter and the generator's metadata.
+pub struct ReferencePopulation {
+    /// (meters, intervals), kW.
+    pub x: DMatrix<f64>,
+    pub meta: Value,
+}
+
+impl ReferencePopulation {
+    /// `kind` is `crest`, `mixed` or `uci`; see the script's docstring.
+    pub fn load(kind: &str, seed: u64, meters: usize, days: usize) -> Self {
+        let target = std::env::var("CARGO_TARGET_DIR")
+            .unwrap_or_else(|_| format!("{}/../target", env!("CARGO_MANIFEST_DIR")));
+        let cache = format!("{target}/reference-data");
+        let out = python_json(
+            "populations.py",
+            &[
+                kind,
+                "--seed",
+                &seed.to_string(),
+                "--meters",
+                &meters.to_string(),
+                "--days",
+                &days.to_string(),
+                "--cache",
+                &cache,
+            ],
+        );
+        let dir = out["dir"].as_str().expect("dir").to_owned();
+        let meta: Value = serde_json::from_slice(&std::fs::read(format!("{dir}/meta.json")).expect("meta.json"))
+            .expect("meta.json is JSON");
+        let bytes = std::fs::read(format!("{dir}/kw.f64")).expect("kw.f64");
+        let (m, n) = (meta["meters_count"].as_u64().unwrap() as usize, meta["intervals"].as_u64().unwrap() as usize);
+        assert_eq!(bytes.len(), m * n * 8, "kw.f64 holds {m} x {n} doubles");
+        let vals: Vec<f64> = bytes.chunks_exact(8).map(|c| f64::from_le_bytes(c.try_into().unwrap())).collect();
+        Self { x: DMatrix::from_row_slice(m, n, &vals), meta }
+    }
+
+    pub fn meters(&self) -> &Vec<Value> {
+        self.meta["meters"].as_array().expect("meters")
+    }
+
+    /// Row indices of meters whose `source` is `source` (CREST, BDEW, UCI).
+    pub fn rows_from(&self, source: &str) -> Vec<usize> {
+        self.meters().iter().enumerate().filter(|(_, m)| m["source"] == source).map(|(i, _)| i).collect()
+    }
+
+    /// The true class of every meter, as an index into the sorted class names.
+    pub fn class_indices(&self) -> (Vec<String>, Vec<usize>) {
+        let mut names: Vec<String> =
+            self.meters().iter().map(|m| m["class"].as_str().unwrap().to_owned()).collect();
+        let labels = names.clone();
+        names.sort();
+        names.dedup();
+        let idx = labels.iter().map(|l| names.binary_search(l).unwrap()).collect();
+        (names, idx)
+    }
+}
+
+/// The p-quantile (nearest rank) of `v`.
+pub fn quantile(v: &[f64], p: f64) -> f64 {
+    let mut s = v.to_vec();
+    s.sort_by(f64::total_cmp);
+    s[((s.len() - 1) as f64 * p).round() as usize]
+}
+
+/// Energy errors of an estimate on the given rows, relative to the truth.
+#[derive(Debug, Clone, Copy)]
+pub struct EnergyErrors {
+    /// Per meter, mean over days of |E_est − E_true| / E_true: median and 90th percentile over meters.
+    pub daily_median: f64,
+    pub daily_p90: f64,
+    /// Per meter, |window energy error| / window energy: median and 90th percentile over meters.
+    pub window_median: f64,
+    pub window_p90: f64,
+    /// Median over meters of the signed window energy error (E_est − E_true) / E_true.
+    pub window_bias: f64,
+}
+
+pub fn energy_errors(a: &DMatrix<f64>, truth: &DMatrix<f64>, rows: &[usize], per_day: usize) -> EnergyErrors {
+    let days = a.ncols() / per_day;
+    let mut daily = Vec::with_capacity(rows.len());
+    let mut window = Vec::with_capacity(rows.len());
+    let mut signed = Vec::with_capacity(rows.len());
+    for &i in rows {
+        let (mut we, mut wt, mut sum_rel) = (0.0, 0.0, 0.0);
+        for d in 0..days {
+            let (mut e, mut t) = (0.0, 0.0);
+            for j in d * per_day..(d + 1) * per_day {
+                e += a[(i, j)];
+                t += truth[(i, j)];
+            }
+            sum_rel += (e - t).abs() / t.max(1e-9);
+            we += e;
+            wt += t;
+        }
+        daily.push(sum_rel / days as f64);
+        window.push((we - wt).abs() / wt.max(1e-9));
+        signed.push((we - wt) / wt.max(1e-9));
+    }
+    EnergyErrors {
+        daily_median: quantile(&daily, 0.5),
+        daily_p90: quantile(&daily, 0.9),
+        window_median: quantile(&window, 0.5),
+        window_p90: quantile(&window, 0.9),
+        window_bias: quantile(&signed, 0.5),
+    }
+}
+
+/// nRMSE over the given rows.
+pub fn nrmse_rows(a: &DMatrix<f64>, truth: &DMatrix<f64>, rows: &[usize]) -> f64 {
+    let (mut num, mut den) = (0.0, 0.0);
+    for j in 0..a.ncols() {
+        for &i in rows {
+            num += (a[(i, j)] - truth[(i, j)]).powi(2);
+            den += truth[(i, j)].powi(2);
+        }
+    }
+    (num / den).sqrt()
+}
