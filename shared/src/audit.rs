@@ -7,6 +7,9 @@
 //! - `posterior_mean`: each reading's conditional mean under a flat prior fitted
 //!   to the meter's own level counts;
 //! - `level_midpoint`: the middle of each level's band;
+//! - `event_posterior`: the Bayesian event-posterior attacker
+//!   (`crate::event_posterior`), which knows the event mix and reads each
+//!   event's whole duration: its reconstruction is the posterior mean load;
 //! - `captured_low_rank`: the quantized low-rank recovery over the captured meters;
 //! - `day_folding`: each meter's history folded to days × intervals (low rank
 //!   because households repeat their days) and recovered with the same likelihood;
@@ -313,6 +316,7 @@ pub fn attack(
     profile: &DitherProfile,
     constraints: &[SumConstraint],
     layout: DayLayout,
+    mix: &[EventKind],
     alpha: f64,
 ) -> Result<Vec<Reconstruction>, FieldError> {
     let (k, n) = (levels.rows(), levels.cols());
@@ -346,6 +350,10 @@ pub fn attack(
     let mut out = vec![
         Reconstruction { strategy: "posterior_mean", x: pm.clone() },
         Reconstruction { strategy: "level_midpoint", x: midpoint },
+        Reconstruction {
+            strategy: "event_posterior",
+            x: crate::event_posterior::posterior_event_load(levels, profile, layout, mix, alpha),
+        },
     ];
     let quiet = &mut |_: &str, _: f64| {};
     let lr = recover(
@@ -784,6 +792,7 @@ struct Simulated<'a> {
     truth: &'a DMatrix<f64>,
     utility: &'a DMatrix<f64>,
     events: &'a [InjectedEvent],
+    mix: &'a [EventKind],
     profile: &'a DitherProfile,
     alpha: f64,
 }
@@ -794,14 +803,14 @@ fn curve_point(
     cols: std::ops::Range<usize>,
     layout: DayLayout,
 ) -> Result<CurvePoint, FieldError> {
-    let Simulated { levels, truth, utility, events, profile, alpha } = *sim;
+    let Simulated { levels, truth, utility, events, profile, alpha, .. } = *sim;
     let lc = select_rows(levels, rows, cols.clone());
     let xc = figures_on(truth, rows, cols.clone());
     let uc = figures_on(utility, rows, cols.clone());
     let ev = events_on(events, rows, cols.clone());
     let cons =
         if profile.send_registers() { day_sums(&xc, &(0..rows.len()).collect::<Vec<_>>(), layout) } else { Vec::new() };
-    let recs = attack(&lc, profile, &cons, layout, alpha)?;
+    let recs = attack(&lc, profile, &cons, layout, sim.mix, alpha)?;
     let figs = score(&recs, &xc, None, Some(&ev), layout);
     let st = strongest(&figs);
     Ok(CurvePoint {
@@ -883,7 +892,7 @@ pub fn bootstrap(
     } else {
         Vec::new()
     };
-    let recs = attack(&lc, profile, &ccons, layout, cfg.alpha_kw)?;
+    let recs = attack(&lc, profile, &ccons, layout, &cfg.events, cfg.alpha_kw)?;
     let hc = figures_on(&habit, captured, full.clone());
     let strategies = score(&recs, &xc, Some(&hc), Some(&ev), layout);
     let st = strongest(&strategies);
@@ -898,8 +907,15 @@ pub fn bootstrap(
         rank: util.diagnostics.rank,
     };
     progress("curves", 0.7);
-    let sim =
-        Simulated { levels: &levels, truth: &truth, utility: &util.x, events: &events, profile, alpha: cfg.alpha_kw };
+    let sim = Simulated {
+        levels: &levels,
+        truth: &truth,
+        utility: &util.x,
+        events: &events,
+        mix: &cfg.events,
+        profile,
+        alpha: cfg.alpha_kw,
+    };
     let mut curve_captured = Vec::new();
     for c in counts.into_iter().filter(|c| *c <= curve_rows.len()) {
         curve_captured.push(curve_point(&sim, &curve_rows[..c], full.clone(), layout)?);
@@ -972,7 +988,7 @@ pub fn direct(
     layout: DayLayout,
     alpha: f64,
 ) -> Result<DirectFigures, FieldError> {
-    let recs = attack(captured_levels, profile, constraints, layout, alpha)?;
+    let recs = attack(captured_levels, profile, constraints, layout, &standard_event_mix(), alpha)?;
     let strategies = score(&recs, utility, None, None, layout);
     let strongest = strongest(&strategies);
     Ok(DirectFigures {

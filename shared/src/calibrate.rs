@@ -147,6 +147,8 @@ pub struct Simulation {
     z: DMatrix<f64>,
     sets: Vec<Vec<usize>>,
     events: Vec<Vec<InjectedEvent>>,
+    /// The event mix, which the event-aware attackers know.
+    mix: Vec<EventKind>,
     layout: DayLayout,
     alpha: f64,
     rank: RankChoice,
@@ -197,6 +199,7 @@ impl Simulation {
             z,
             sets,
             events,
+            mix: cfg.events.clone(),
             layout,
             alpha: cfg.alpha_kw,
             rank: cfg.utility_rank.clone(),
@@ -229,7 +232,7 @@ impl Simulation {
             let xc = DMatrix::from_fn(set.len(), self.truth.ncols(), |r, j| self.truth[(set[r], j)]);
             let own: Vec<usize> = (0..set.len()).collect();
             let cc = if p.send_registers() { day_sums(&xc, &own, self.layout) } else { Vec::new() };
-            for r in attack(&lc, &p, &cc, self.layout, self.alpha)? {
+            for r in attack(&lc, &p, &cc, self.layout, &self.mix, self.alpha)? {
                 let counts = score_all_thresholds(&r.x, ev, self.layout);
                 let slot =
                     pooled.entry(r.strategy).or_insert_with(|| vec![EventCounts::default(); THRESHOLDS_KW.len()]);

@@ -38,7 +38,9 @@ fn config(f1: f64, energy: f64) -> CalibrationConfig {
 fn calibration_is_repeatable_and_its_recommendation_holds_with_fresh_random_numbers() {
     let x = base(80, 28);
     let current = gaussian_profile(0.3, &[1.0, 2.0]);
-    let cfg = config(0.4, 0.15);
+    // With the event-posterior attacker in the audit, F1 ≤ 0.4 at 15% daily energy
+    // error is out of reach on this population (σ 1.7 kW still leaves 0.41-0.45).
+    let cfg = config(0.6, 0.15);
     let a = calibrate(&x, &current, LAYOUT, &cfg, &mut |_, _| {}).unwrap();
     let b = calibrate(&x, &current, LAYOUT, &cfg, &mut |_, _| {}).unwrap();
     eprintln!("{}", a.message);

@@ -146,8 +146,8 @@ pub struct ReferencePopulation {
 impl ReferencePopulation {
     /// `kind` is `crest`, `mixed` or `uci`; see the script's docstring.
     pub fn load(kind: &str, seed: u64, meters: usize, days: usize) -> Self {
-        let target = std::env::var("CARGO_TARGET_DIR")
-            .unwrap_or_else(|_| format!("{}/../target", env!("CARGO_MANIFEST_DIR")));
+        let target =
+            std::env::var("CARGO_TARGET_DIR").unwrap_or_else(|_| format!("{}/../target", env!("CARGO_MANIFEST_DIR")));
         let cache = format!("{target}/reference-data");
         let out = python_json(
             "populations.py",
@@ -184,8 +184,7 @@ impl ReferencePopulation {
 
     /// The true class of every meter, as an index into the sorted class names.
     pub fn class_indices(&self) -> (Vec<String>, Vec<usize>) {
-        let mut names: Vec<String> =
-            self.meters().iter().map(|m| m["class"].as_str().unwrap().to_owned()).collect();
+        let mut names: Vec<String> = self.meters().iter().map(|m| m["class"].as_str().unwrap().to_owned()).collect();
         let labels = names.clone();
         names.sort();
         names.dedup();
