@@ -1704,13 +1704,15 @@ async fn a_compressed_body_is_limited_after_decompression() {
         async move {
             use meterveil_shared::auth::*;
             // The signature covers the decompressed body.
-            let text = signing_text("POST", "/v1/ingest/batches", "gw-1", seq, now_s(), &body_sha256(&plain));
+            // One timestamp for the signature and its header (two calls may straddle a second).
+            let ts = now_s();
+            let text = signing_text("POST", "/v1/ingest/batches", "gw-1", seq, ts, &body_sha256(&plain));
             http.post(format!("{url}/v1/ingest/batches"))
                 .header("content-type", "application/json")
                 .header("content-encoding", "gzip")
                 .header(HEADER_GATEWAY, "gw-1")
                 .header(HEADER_SEQUENCE, seq.to_string())
-                .header(HEADER_TIMESTAMP, now_s().to_string())
+                .header(HEADER_TIMESTAMP, ts.to_string())
                 .header(HEADER_SIGNATURE, sign(&key, &text))
                 .body(gzip(&plain))
                 .send()
@@ -1811,12 +1813,14 @@ async fn a_terminated_service_finishes_the_uploads_it_took() {
                     let id = format!("gt{i:03}-d{day}");
                     let body = json!({"batch_id": id, "gateway_id": format!("gt{i:03}"), "feeder_id": "F1", "readings": rows}).to_string();
                     let gw = format!("gt{i:03}");
-                    let text = signing_text("POST", "/v1/ingest/batches", &gw, day as u64 + 1, now_s(), &body_sha256(body.as_bytes()));
+                    // One timestamp for the signature and its header (two calls may straddle a second).
+                    let ts = now_s();
+                    let text = signing_text("POST", "/v1/ingest/batches", &gw, day as u64 + 1, ts, &body_sha256(body.as_bytes()));
                     let sent = http
                         .post(format!("{base}/v1/ingest/batches"))
                         .header(HEADER_GATEWAY, &gw)
                         .header(HEADER_SEQUENCE, (day + 1).to_string())
-                        .header(HEADER_TIMESTAMP, now_s().to_string())
+                        .header(HEADER_TIMESTAMP, ts.to_string())
                         .header(HEADER_SIGNATURE, sign(&key, &text))
                         .body(body)
                         .send()
