@@ -8,7 +8,7 @@
 //!   to the meter's own level counts;
 //! - `level_midpoint`: the middle of each level's band;
 //! - `event_posterior`: the Bayesian event-posterior attacker
-//!   (`crate::event_posterior`), which knows the event mix and reads each
+//!   ([`event_posterior`]), which knows the event mix and reads each
 //!   event's whole duration: its reconstruction is the posterior mean load;
 //! - `captured_low_rank`: the quantized low-rank recovery over the captured meters;
 //! - `day_folding`: each meter's history folded to days × intervals (low rank
@@ -39,6 +39,8 @@ use crate::recovery::outage::DayLayout;
 use crate::recovery::solver::{conditional_means, level_counts};
 use crate::recovery::table::LikelihoodTable;
 use crate::recovery::{recover, LevelMatrix, RankChoice, RecoveryParams, SumConstraint};
+
+pub mod event_posterior;
 
 /// One kind of appliance event injected in the parametric bootstrap.
 #[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
@@ -352,7 +354,7 @@ pub fn attack(
         Reconstruction { strategy: "level_midpoint", x: midpoint },
         Reconstruction {
             strategy: "event_posterior",
-            x: crate::event_posterior::posterior_event_load(levels, profile, layout, mix, alpha),
+            x: event_posterior::posterior_event_load(levels, profile, layout, mix, alpha),
         },
     ];
     let quiet = &mut |_: &str, _: f64| {};
@@ -1003,18 +1005,10 @@ pub fn direct(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::DitherProfileSpec;
     use rand::SeedableRng;
 
     fn profile(scale: f64, b: &[f64]) -> DitherProfile {
-        DitherProfile::try_from(DitherProfileSpec {
-            noise: "gaussian".into(),
-            scale_kw: scale,
-            boundaries_kw: b.to_vec(),
-            interval_s: 900,
-            send_registers: false,
-        })
-        .unwrap()
+        crate::profile::test_profile("gaussian", scale, b)
     }
 
     #[test]

@@ -8,7 +8,6 @@ pub mod calibrate;
 pub mod cluster;
 pub mod domain;
 pub mod error;
-pub mod event_posterior;
 pub mod mechanism;
 pub mod profile;
 pub mod recovery;

@@ -147,20 +147,10 @@ impl Family {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::profile::DitherProfileSpec;
     use proptest::prelude::*;
     use rand::SeedableRng;
 
-    fn profile(noise: &str, scale: f64, b: &[f64]) -> DitherProfile {
-        DitherProfile::try_from(DitherProfileSpec {
-            noise: noise.into(),
-            scale_kw: scale,
-            boundaries_kw: b.to_vec(),
-            interval_s: 900,
-            send_registers: false,
-        })
-        .unwrap()
-    }
+    use crate::profile::test_profile as profile;
 
     #[test]
     fn probabilities_sum_to_one() {

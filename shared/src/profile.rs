@@ -173,6 +173,19 @@ impl DitherProfile {
     }
 }
 
+/// A valid profile on 15-minute intervals without register reads, for unit tests.
+#[cfg(test)]
+pub(crate) fn test_profile(noise: &str, scale_kw: f64, boundaries_kw: &[f64]) -> DitherProfile {
+    DitherProfile::try_from(DitherProfileSpec {
+        noise: noise.into(),
+        scale_kw,
+        boundaries_kw: boundaries_kw.to_vec(),
+        interval_s: 900,
+        send_registers: false,
+    })
+    .expect("valid test profile")
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -115,24 +115,7 @@ pub fn nrmse_cols(a: &DMatrix<f64>, truth: &DMatrix<f64>, cols: &[usize]) -> f64
 
 /// Per meter, the mean over days of |E_est - E_true| / E_true; then the median over meters.
 pub fn median_daily_energy_error(a: &DMatrix<f64>, truth: &DMatrix<f64>, per_day: usize) -> f64 {
-    let days = a.ncols() / per_day;
-    let mut per_meter: Vec<f64> = (0..a.nrows())
-        .map(|i| {
-            (0..days)
-                .map(|d| {
-                    let (mut e, mut t) = (0.0, 0.0);
-                    for j in d * per_day..(d + 1) * per_day {
-                        e += a[(i, j)];
-                        t += truth[(i, j)];
-                    }
-                    (e - t).abs() / t.max(1e-9)
-                })
-                .sum::<f64>()
-                / days as f64
-        })
-        .collect();
-    per_meter.sort_by(f64::total_cmp);
-    per_meter[per_meter.len() / 2]
+    energy_errors(a, truth, &(0..a.nrows()).collect::<Vec<_>>(), per_day).daily_median
 }
 
 /// A test population written by `tests/reference/populations.py` (cached under

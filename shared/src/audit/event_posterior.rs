@@ -21,7 +21,7 @@
 
 use nalgebra::DMatrix;
 
-use crate::audit::{whole_days, EventKind};
+use super::{whole_days, EventKind};
 use crate::mechanism::log_likelihood;
 use crate::profile::DitherProfile;
 use crate::recovery::outage::DayLayout;
@@ -87,39 +87,50 @@ pub fn slot_habit(
         .collect()
 }
 
-/// For one meter (`row` of `levels`): the probability that each interval lies in
-/// an event of `mix`, and the habit (kW per interval) it was measured against.
-pub fn coverage(
-    levels: &LevelMatrix,
-    row: usize,
-    profile: &DitherProfile,
-    layout: DayLayout,
-    mix: &[EventKind],
-    alpha: f64,
-) -> (Vec<f64>, Vec<f64>) {
-    let n = levels.cols();
-    let per_day = layout.per_day();
-    let phase = layout.phase() % per_day;
-    let per_hour = 3600.0 / f64::from(layout.interval_s);
-    let slots = slot_habit(levels, row, profile, layout, alpha);
-    let habit: Vec<f64> = (0..n).map(|j| slots[(j + phase) % per_day]).collect();
-    let base: Vec<f64> =
-        (0..n).map(|j| levels.get(row, j).map_or(0.0, |l| log_likelihood(profile, l, habit[j]).0)).collect();
-    let mut miss = vec![1.0f64; n]; // Π over kinds of (1 − coverage)
-    for e in mix {
+/// One meter's habit (kW per interval) and the log-likelihood of each of its
+/// readings under it (0 where a reading is missing).
+struct MeterHabit {
+    habit: Vec<f64>,
+    base: Vec<f64>,
+}
+
+impl MeterHabit {
+    fn new(levels: &LevelMatrix, row: usize, profile: &DitherProfile, layout: DayLayout, alpha: f64) -> Self {
+        let per_day = layout.per_day();
+        let phase = layout.phase() % per_day;
+        let slots = slot_habit(levels, row, profile, layout, alpha);
+        let habit: Vec<f64> = (0..levels.cols()).map(|j| slots[(j + phase) % per_day]).collect();
+        let base = (0..levels.cols())
+            .map(|j| levels.get(row, j).map_or(0.0, |l| log_likelihood(profile, l, habit[j]).0))
+            .collect();
+        Self { habit, base }
+    }
+
+    /// Per interval, the posterior probability that it lies in an event of kind `e`.
+    fn kind_coverage(
+        &self,
+        levels: &LevelMatrix,
+        row: usize,
+        profile: &DitherProfile,
+        layout: DayLayout,
+        e: &EventKind,
+        alpha: f64,
+    ) -> Vec<f64> {
+        let n = levels.cols();
+        let per_hour = 3600.0 / f64::from(layout.interval_s);
         let len = ((f64::from(e.minutes) / 60.0 * per_hour).round() as usize).max(1);
         let lo = (e.earliest_h * per_hour) as usize;
         let hi = ((e.latest_h * per_hour) as usize).max(lo + 1);
         let p = e.daily_probability.clamp(0.0, 1.0);
         if p <= 0.0 {
-            continue;
+            return vec![0.0; n];
         }
         // Prefix sums of the per-interval log-likelihood ratio of "event" against "habit".
         let mut prefix = vec![0.0f64; n + 1];
         for j in 0..n {
             let llr = levels
                 .get(row, j)
-                .map_or(0.0, |l| log_likelihood(profile, l, (habit[j] + e.kw).min(alpha)).0 - base[j]);
+                .map_or(0.0, |l| log_likelihood(profile, l, (self.habit[j] + e.kw).min(alpha)).0 - self.base[j]);
             prefix[j + 1] = prefix[j] + llr;
         }
         let mut cover = vec![0.0f64; n + 1]; // difference array of posterior mass
@@ -141,12 +152,35 @@ pub fn coverage(
             }
         }
         let mut run = 0.0;
-        for j in 0..n {
-            run += cover[j];
-            miss[j] *= 1.0 - run.clamp(0.0, 1.0);
+        cover[..n]
+            .iter()
+            .map(|c| {
+                run += c;
+                run.clamp(0.0, 1.0)
+            })
+            .collect()
+    }
+}
+
+/// For one meter (`row` of `levels`): the probability that each interval lies in
+/// an event of `mix` (1 − Π over kinds of 1 − coverage), and the habit (kW per
+/// interval) it was measured against.
+pub fn coverage(
+    levels: &LevelMatrix,
+    row: usize,
+    profile: &DitherProfile,
+    layout: DayLayout,
+    mix: &[EventKind],
+    alpha: f64,
+) -> (Vec<f64>, Vec<f64>) {
+    let m = MeterHabit::new(levels, row, profile, layout, alpha);
+    let mut miss = vec![1.0f64; levels.cols()];
+    for e in mix {
+        for (q, c) in miss.iter_mut().zip(m.kind_coverage(levels, row, profile, layout, e, alpha)) {
+            *q *= 1.0 - c;
         }
     }
-    (miss.iter().map(|m| 1.0 - m).collect(), habit)
+    (miss.iter().map(|q| 1.0 - q).collect(), m.habit)
 }
 
 /// The posterior mean load (kW) of the captured meters under habit plus events:
@@ -161,16 +195,15 @@ pub fn posterior_event_load(
     let (k, n) = (levels.rows(), levels.cols());
     let mut out = DMatrix::zeros(k, n);
     for i in 0..k {
-        let (_, habit) = coverage(levels, i, profile, layout, &[], alpha);
-        let mut load = habit.clone();
+        let m = MeterHabit::new(levels, i, profile, layout, alpha);
+        let mut load = m.habit.clone();
         for e in mix {
-            let (c, _) = coverage(levels, i, profile, layout, std::slice::from_ref(e), alpha);
-            for j in 0..n {
-                load[j] = (load[j] + e.kw * c[j]).min(alpha);
+            for (x, c) in load.iter_mut().zip(m.kind_coverage(levels, i, profile, layout, e, alpha)) {
+                *x = (*x + e.kw * c).min(alpha);
             }
         }
-        for j in 0..n {
-            out[(i, j)] = load[j];
+        for (j, x) in load.into_iter().enumerate() {
+            out[(i, j)] = x;
         }
     }
     out
@@ -183,14 +216,7 @@ mod tests {
     use rand::SeedableRng;
 
     fn profile(scale: f64, b: &[f64]) -> DitherProfile {
-        DitherProfile::try_from(crate::DitherProfileSpec {
-            noise: "gaussian".into(),
-            scale_kw: scale,
-            boundaries_kw: b.to_vec(),
-            interval_s: 900,
-            send_registers: false,
-        })
-        .unwrap()
+        crate::profile::test_profile("gaussian", scale, b)
     }
 
     #[test]
