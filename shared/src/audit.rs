@@ -41,6 +41,14 @@ use crate::recovery::table::LikelihoodTable;
 use crate::recovery::{recover, LevelMatrix, RankChoice, RecoveryParams, SumConstraint};
 
 pub mod event_posterior;
+pub mod level_runs;
+pub mod scoring;
+
+pub use scoring::{
+    best_index, event_figures, median_daily_energy_error, nrmse, score_all_thresholds, score_detector, score_events,
+    strongest, typical_day, Detector, EventCounts, EventFigures, KindCounts, KindFigures, StrategyFigures, Strongest,
+    DOCUMENTED_THRESHOLD_KW, THRESHOLDS_KW,
+};
 
 /// One kind of appliance event injected in the parametric bootstrap.
 #[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
@@ -126,137 +134,69 @@ pub fn inject_events(
     out
 }
 
-/// Counts behind an event score, so that scores pool over meters and sets.
-#[derive(Debug, Clone, Copy, Default, Serialize, Deserialize, PartialEq)]
-pub struct EventCounts {
-    pub events: usize,
-    pub events_found: usize,
-    pub flagged_intervals: usize,
-    pub flagged_in_events: usize,
+/// An attacker strategy of the audit.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Strategy {
+    PosteriorMean,
+    LevelMidpoint,
+    EventPosterior,
+    TemplateGlr,
+    TopLevelRuns,
+    CapturedLowRank,
+    DayFolding,
+    JointDayFolding,
+    FoldedWithReadings,
 }
 
-impl EventCounts {
-    pub fn add(&mut self, o: &EventCounts) {
-        self.events += o.events;
-        self.events_found += o.events_found;
-        self.flagged_intervals += o.flagged_intervals;
-        self.flagged_in_events += o.flagged_in_events;
-    }
-    pub fn precision(&self) -> f64 {
-        if self.flagged_intervals == 0 {
-            0.0
-        } else {
-            self.flagged_in_events as f64 / self.flagged_intervals as f64
-        }
-    }
-    pub fn recall(&self) -> f64 {
-        if self.events == 0 {
-            0.0
-        } else {
-            self.events_found as f64 / self.events as f64
-        }
-    }
-    pub fn f1(&self) -> f64 {
-        let (p, r) = (self.precision(), self.recall());
-        if p + r == 0.0 {
-            0.0
-        } else {
-            2.0 * p * r / (p + r)
+impl Strategy {
+    pub const ALL: [Strategy; 9] = [
+        Strategy::PosteriorMean,
+        Strategy::LevelMidpoint,
+        Strategy::EventPosterior,
+        Strategy::TemplateGlr,
+        Strategy::TopLevelRuns,
+        Strategy::CapturedLowRank,
+        Strategy::DayFolding,
+        Strategy::JointDayFolding,
+        Strategy::FoldedWithReadings,
+    ];
+
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Strategy::PosteriorMean => "posterior_mean",
+            Strategy::LevelMidpoint => "level_midpoint",
+            Strategy::EventPosterior => "event_posterior",
+            Strategy::TemplateGlr => "template_glr",
+            Strategy::TopLevelRuns => "top_level_runs",
+            Strategy::CapturedLowRank => "captured_low_rank",
+            Strategy::DayFolding => "day_folding",
+            Strategy::JointDayFolding => "joint_day_folding",
+            Strategy::FoldedWithReadings => "folded_with_readings",
         }
     }
 }
 
-/// Detector thresholds (kW above the typical day) an attacker may tune over.
-pub const THRESHOLDS_KW: [f64; 6] = [0.5, 0.75, 1.0, 1.5, 2.0, 3.0];
-/// The documented detector's threshold.
-pub const DOCUMENTED_THRESHOLD_KW: f64 = 1.0;
-
-/// Each row's typical day: per time of day, the median over the window's days.
-pub fn typical_day(r: &DMatrix<f64>, layout: DayLayout) -> DMatrix<f64> {
-    let per_day = layout.per_day();
-    let phase = layout.phase();
-    let mut out = DMatrix::zeros(r.nrows(), per_day);
-    let mut buf = Vec::new();
-    for i in 0..r.nrows() {
-        for slot in 0..per_day {
-            buf.clear();
-            let mut j = (slot + per_day - phase % per_day) % per_day;
-            while j < r.ncols() {
-                buf.push(r[(i, j)]);
-                j += per_day;
-            }
-            if !buf.is_empty() {
-                buf.sort_by(f64::total_cmp);
-                out[(i, slot)] = buf[buf.len() / 2];
-            }
-        }
-    }
-    out
+/// What the attacker knows and which strategies it runs.
+#[derive(Debug, Clone, Copy)]
+pub struct Attacker<'a> {
+    /// The documented event mix (the event-aware strategies' templates).
+    pub mix: &'a [EventKind],
+    pub strategies: &'a [Strategy],
+    pub alpha: f64,
 }
 
-/// Scores the detector at `threshold` on reconstruction `r` against `events`
-/// (whose rows index `r`).
-pub fn score_events(r: &DMatrix<f64>, events: &[InjectedEvent], layout: DayLayout, threshold: f64) -> EventCounts {
-    let typ = typical_day(r, layout);
-    let per_day = layout.per_day();
-    let phase = layout.phase();
-    let (m, n) = r.shape();
-    // Which event (if any) covers each interval of each meter.
-    let mut inside = vec![false; m * n];
-    for e in events {
-        for j in e.start..(e.start + e.len).min(n) {
-            inside[e.row * n + j] = true;
-        }
-    }
-    let flagged = |i: usize, j: usize| r[(i, j)] - typ[(i, (j + phase) % per_day)] >= threshold;
-    let mut c = EventCounts { events: events.len(), ..Default::default() };
-    for i in 0..m {
-        for j in 0..n {
-            if flagged(i, j) {
-                c.flagged_intervals += 1;
-                c.flagged_in_events += usize::from(inside[i * n + j]);
-            }
-        }
-    }
-    c.events_found =
-        events.iter().filter(|e| e.row < m && (e.start..(e.start + e.len).min(n)).any(|j| flagged(e.row, j))).count();
-    c
-}
-
-/// nRMSE ‖a − b‖ / ‖b‖.
-pub fn nrmse(a: &DMatrix<f64>, reference: &DMatrix<f64>) -> f64 {
-    (a - reference).norm() / reference.norm().max(1e-300)
-}
-
-/// Per meter the mean over whole days of |E_a − E_ref| / E_ref; the median over meters.
-pub fn median_daily_energy_error(a: &DMatrix<f64>, reference: &DMatrix<f64>, layout: DayLayout) -> f64 {
-    let days = whole_days(layout, a.ncols());
-    if days.is_empty() || a.nrows() == 0 {
-        return f64::NAN;
-    }
-    let mut per: Vec<f64> = (0..a.nrows())
-        .map(|i| {
-            days.iter()
-                .map(|d| {
-                    let (e, t): (f64, f64) = d
-                        .clone()
-                        .map(|j| (a[(i, j)], reference[(i, j)]))
-                        .fold((0.0, 0.0), |s, v| (s.0 + v.0, s.1 + v.1));
-                    (e - t).abs() / t.max(1e-9)
-                })
-                .sum::<f64>()
-                / days.len() as f64
-        })
-        .collect();
-    per.sort_by(f64::total_cmp);
-    per[per.len() / 2]
-}
-
-/// A reconstruction by one attacker strategy.
+/// A reconstruction by one attacker strategy, and how it flags events.
 pub struct Reconstruction {
     pub strategy: &'static str,
     pub x: DMatrix<f64>,
+    pub detector: Detector,
 }
+
+/// Grid of the event posterior's detector: the probability that an interval lies in an event.
+pub const PROBABILITY_GRID: [f64; 10] = [0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9];
+/// Grid of the template detector: the best placement's log-likelihood ratio (nats).
+pub const LLR_GRID: [f64; 10] = [0.0, 1.0, 2.0, 3.0, 4.0, 6.0, 8.0, 12.0, 16.0, 24.0];
 
 fn attacker_params(rank: RankChoice, alpha: f64) -> Result<crate::recovery::ValidRecoveryParams, FieldError> {
     // The attacker keeps every reading: excluding implausible ones would throw
@@ -310,21 +250,22 @@ fn fold_constraints(constraints: &[SumConstraint], days: usize, layout: DayLayou
         .collect()
 }
 
-/// Runs every strategy on the captured meters' levels (`levels` holds only
-/// them; `constraints` are their register days, which an eavesdropper captures
-/// too when the profile sends them).
+/// Runs the attacker's strategies on the captured meters' levels (`levels`
+/// holds only them; `constraints` are their register days, which an
+/// eavesdropper captures too when the profile sends them).
 pub fn attack(
     levels: &LevelMatrix,
     profile: &DitherProfile,
     constraints: &[SumConstraint],
     layout: DayLayout,
-    mix: &[EventKind],
-    alpha: f64,
+    who: &Attacker<'_>,
 ) -> Result<Vec<Reconstruction>, FieldError> {
     let (k, n) = (levels.rows(), levels.cols());
     if k == 0 || n == 0 {
         return Err(FieldError::new("captured", "no captured meter with readings"));
     }
+    let wants = |s: Strategy| who.strategies.contains(&s);
+    let (alpha, mix) = (who.alpha, who.mix);
     let s = profile.scale_kw();
     let table = LikelihoodTable::new(profile, -0.5 * alpha - 5.0 * s, 1.5 * alpha + 5.0 * s);
     // Per-reading strategies, each meter with its own fitted prior.
@@ -349,148 +290,78 @@ pub fn attack(
         (0.5 * (lo + hi)).clamp(0.0, alpha)
     };
     let midpoint = DMatrix::from_fn(k, n, |i, j| levels.get(i, j).map_or(pm[(i, j)], mid));
-    let mut out = vec![
-        Reconstruction { strategy: "posterior_mean", x: pm.clone() },
-        Reconstruction { strategy: "level_midpoint", x: midpoint },
-        Reconstruction {
-            strategy: "event_posterior",
-            x: event_posterior::posterior_event_load(levels, profile, layout, mix, alpha),
-        },
-    ];
-    let quiet = &mut |_: &str, _: f64| {};
-    let lr = recover(
-        levels,
-        profile,
-        constraints,
-        layout,
-        &attacker_params(rank_grid(k, &[1, 2, 3, 5, 10]), alpha)?,
-        quiet,
-    )?;
-    out.push(Reconstruction { strategy: "captured_low_rank", x: lr.x });
-    // Each meter's own days.
-    let mut folded = DMatrix::zeros(k, n);
-    for i in 0..k {
-        let (f, days) = fold(levels, &[i], layout);
-        let own: Vec<SumConstraint> = constraints
-            .iter()
-            .filter(|c| c.row == i)
-            .map(|c| SumConstraint { row: 0, cols: c.cols.clone(), sum_kw: c.sum_kw })
-            .collect();
-        let fc = fold_constraints(&own, days, layout);
-        let flayout = DayLayout { window_start: 0, interval_s: layout.interval_s };
-        let r = recover(&f, profile, &fc, flayout, &attacker_params(rank_grid(days, &[1, 2, 3, 5]), alpha)?, quiet)?;
-        folded.row_mut(i).copy_from(&unfold(&r.x, 1, days, n, layout).row(0));
+    let mut out = Vec::new();
+    let mut push = |strategy: Strategy, x: DMatrix<f64>, detector: Detector| {
+        if wants(strategy) {
+            out.push(Reconstruction { strategy: strategy.as_str(), x, detector });
+        }
+    };
+    push(Strategy::PosteriorMean, pm.clone(), Detector::AboveTypicalDay);
+    if wants(Strategy::TopLevelRuns) {
+        let top = u8::try_from(b.len()).unwrap_or(u8::MAX);
+        let stat = level_runs::top_level_runs(levels, top);
+        push(
+            Strategy::TopLevelRuns,
+            midpoint.clone(),
+            Detector::Statistic { stat, grid: &level_runs::RUN_GRID, unit: "consecutive top-level readings" },
+        );
     }
-    let mut baseline = folded.clone();
-    out.push(Reconstruction { strategy: "day_folding", x: folded });
-    if k >= 2 {
+    push(Strategy::LevelMidpoint, midpoint, Detector::AboveTypicalDay);
+    if wants(Strategy::EventPosterior) {
+        let (prob, load) = event_posterior::posterior_events(levels, profile, layout, mix, alpha);
+        let det = Detector::Statistic { stat: prob, grid: &PROBABILITY_GRID, unit: "probability of an event" };
+        push(Strategy::EventPosterior, load, det);
+    }
+    if wants(Strategy::TemplateGlr) {
+        let (stat, load) = event_posterior::template_glr(levels, profile, layout, mix, alpha);
+        let det = Detector::Statistic { stat, grid: &LLR_GRID, unit: "log-likelihood ratio (nats)" };
+        push(Strategy::TemplateGlr, load, det);
+    }
+    let quiet = &mut |_: &str, _: f64| {};
+    if wants(Strategy::CapturedLowRank) {
+        let grid = rank_grid(k, &[1, 2, 3, 5, 10]);
+        let lr = recover(levels, profile, constraints, layout, &attacker_params(grid, alpha)?, quiet)?;
+        push(Strategy::CapturedLowRank, lr.x, Detector::AboveTypicalDay);
+    }
+    let folds_alone = wants(Strategy::DayFolding) || (k < 2 && wants(Strategy::FoldedWithReadings));
+    let folds_jointly = k >= 2 && (wants(Strategy::JointDayFolding) || wants(Strategy::FoldedWithReadings));
+    let flayout = DayLayout { window_start: 0, interval_s: layout.interval_s };
+    let mut baseline = None;
+    if folds_alone {
+        // Each meter's own days.
+        let mut folded = DMatrix::zeros(k, n);
+        for i in 0..k {
+            let (f, days) = fold(levels, &[i], layout);
+            let own: Vec<SumConstraint> = constraints
+                .iter()
+                .filter(|c| c.row == i)
+                .map(|c| SumConstraint { row: 0, cols: c.cols.clone(), sum_kw: c.sum_kw })
+                .collect();
+            let fc = fold_constraints(&own, days, layout);
+            let grid = rank_grid(days, &[1, 2, 3, 5]);
+            let r = recover(&f, profile, &fc, flayout, &attacker_params(grid, alpha)?, quiet)?;
+            folded.row_mut(i).copy_from(&unfold(&r.x, 1, days, n, layout).row(0));
+        }
+        baseline = Some(folded.clone());
+        push(Strategy::DayFolding, folded, Detector::AboveTypicalDay);
+    }
+    if folds_jointly {
         let rows: Vec<usize> = (0..k).collect();
         let (f, days) = fold(levels, &rows, layout);
         let fc = fold_constraints(constraints, days, layout);
-        let flayout = DayLayout { window_start: 0, interval_s: layout.interval_s };
         let grid = rank_grid(k * days, &[1, 2, 3, 5, 10, 20]);
         let r = recover(&f, profile, &fc, flayout, &attacker_params(grid, alpha)?, quiet)?;
         let joint = unfold(&r.x, k, days, n, layout);
-        baseline = joint.clone();
-        out.push(Reconstruction { strategy: "joint_day_folding", x: joint });
+        baseline = Some(joint.clone());
+        push(Strategy::JointDayFolding, joint, Detector::AboveTypicalDay);
     }
-    let combined =
-        DMatrix::from_fn(k, n, |i, j| if pm[(i, j)] - baseline[(i, j)] >= 0.5 { pm[(i, j)] } else { baseline[(i, j)] });
-    out.push(Reconstruction { strategy: "folded_with_readings", x: combined });
+    if let Some(base) = baseline.filter(|_| wants(Strategy::FoldedWithReadings)) {
+        // Habits from the history, excursions from the readings.
+        let combined =
+            DMatrix::from_fn(k, n, |i, j| if pm[(i, j)] - base[(i, j)] >= 0.5 { pm[(i, j)] } else { base[(i, j)] });
+        push(Strategy::FoldedWithReadings, combined, Detector::AboveTypicalDay);
+    }
     Ok(out)
-}
-
-/// Event detection of one reconstruction: at the documented threshold and at
-/// the best threshold of [`THRESHOLDS_KW`].
-#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
-pub struct EventFigures {
-    pub f1_at_documented_threshold: f64,
-    pub f1: f64,
-    pub precision: f64,
-    pub recall: f64,
-    pub best_threshold_kw: f64,
-    #[serde(skip)]
-    pub counts_by_threshold: Vec<EventCounts>,
-}
-
-pub fn event_figures(per_threshold: Vec<EventCounts>) -> EventFigures {
-    let doc = THRESHOLDS_KW.iter().position(|t| *t == DOCUMENTED_THRESHOLD_KW).unwrap_or(0);
-    let best =
-        (0..per_threshold.len()).max_by(|&a, &b| per_threshold[a].f1().total_cmp(&per_threshold[b].f1())).unwrap_or(0);
-    let c = per_threshold.get(best).copied().unwrap_or_default();
-    EventFigures {
-        f1_at_documented_threshold: per_threshold.get(doc).map_or(0.0, EventCounts::f1),
-        f1: c.f1(),
-        precision: c.precision(),
-        recall: c.recall(),
-        best_threshold_kw: THRESHOLDS_KW[best.min(THRESHOLDS_KW.len() - 1)],
-        counts_by_threshold: per_threshold,
-    }
-}
-
-/// Detector counts at every threshold of [`THRESHOLDS_KW`].
-pub fn score_all_thresholds(r: &DMatrix<f64>, events: &[InjectedEvent], layout: DayLayout) -> Vec<EventCounts> {
-    THRESHOLDS_KW.iter().map(|t| score_events(r, events, layout, *t)).collect()
-}
-
-/// What one strategy (or the utility) recovers of the captured meters.
-#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
-pub struct StrategyFigures {
-    pub strategy: String,
-    /// Against the simulated truth, events included.
-    pub nrmse: f64,
-    /// Against the habitual profile (the truth without the injected events).
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub habit_nrmse: Option<f64>,
-    pub daily_energy_error: f64,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub events: Option<EventFigures>,
-}
-
-/// The strongest attacker, metric by metric (each may come from a different strategy).
-#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
-pub struct Strongest {
-    /// The strategy strongest on the privacy-relevant metric: event F1 in the
-    /// bootstrap, nRMSE when no events are scored.
-    pub strategy: String,
-    pub nrmse: f64,
-    pub nrmse_strategy: String,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub habit_nrmse: Option<f64>,
-    pub daily_energy_error: f64,
-    pub daily_energy_strategy: String,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub event_f1: Option<f64>,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub event_precision: Option<f64>,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub event_recall: Option<f64>,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub event_threshold_kw: Option<f64>,
-}
-
-pub fn strongest(figs: &[StrategyFigures]) -> Strongest {
-    let by = |f: &dyn Fn(&StrategyFigures) -> f64, min: bool| -> &StrategyFigures {
-        figs.iter()
-            .filter(|s| f(s).is_finite())
-            .min_by(|a, b| if min { f(a).total_cmp(&f(b)) } else { f(b).total_cmp(&f(a)) })
-            .unwrap_or(&figs[0])
-    };
-    let n = by(&|s| s.nrmse, true);
-    let e = by(&|s| s.daily_energy_error, true);
-    let ev = figs.iter().any(|s| s.events.is_some()).then(|| by(&|s| s.events.as_ref().map_or(-1.0, |e| e.f1), false));
-    Strongest {
-        strategy: ev.map_or(n.strategy.clone(), |s| s.strategy.clone()),
-        nrmse: n.nrmse,
-        nrmse_strategy: n.strategy.clone(),
-        habit_nrmse: figs.iter().filter_map(|s| s.habit_nrmse).min_by(f64::total_cmp),
-        daily_energy_error: e.daily_energy_error,
-        daily_energy_strategy: e.strategy.clone(),
-        event_f1: ev.and_then(|s| s.events.as_ref().map(|e| e.f1)),
-        event_precision: ev.and_then(|s| s.events.as_ref().map(|e| e.precision)),
-        event_recall: ev.and_then(|s| s.events.as_ref().map(|e| e.recall)),
-        event_threshold_kw: ev.and_then(|s| s.events.as_ref().map(|e| e.best_threshold_kw)),
-    }
 }
 
 /// Scores reconstructions of rows `rows` of `reference` (events' rows index `rows`' positions).
@@ -499,6 +370,7 @@ pub fn score(
     reference: &DMatrix<f64>,
     habit: Option<&DMatrix<f64>>,
     events: Option<&[InjectedEvent]>,
+    mix: &[EventKind],
     layout: DayLayout,
 ) -> Vec<StrategyFigures> {
     recs.iter()
@@ -507,7 +379,7 @@ pub fn score(
             nrmse: nrmse(&r.x, reference),
             habit_nrmse: habit.map(|h| nrmse(&r.x, h)),
             daily_energy_error: median_daily_energy_error(&r.x, reference, layout),
-            events: events.map(|ev| event_figures(score_all_thresholds(&r.x, ev, layout))),
+            events: events.map(|ev| event_figures(score_detector(&r.x, &r.detector, ev, layout), &r.detector, mix)),
         })
         .collect()
 }
@@ -709,6 +581,13 @@ pub struct AuditReport {
     pub mechanism: MechanismFigures,
     pub curve_captured: Vec<CurvePoint>,
     pub curve_days: Vec<CurvePoint>,
+    /// The check of each captured meter's base profile against its own uploads.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub base_checks: Vec<BaseCheck>,
+    /// Simulated households, other than the captured ones, on which each
+    /// strategy's threshold was tuned for its `f1_tuned_elsewhere`.
+    #[serde(default)]
+    pub tuning_meters: usize,
     #[serde(skip_serializing_if = "Option::is_none")]
     pub direct: Option<DirectFigures>,
     pub assumptions: Vec<String>,
@@ -738,17 +617,27 @@ pub struct AuditConfig {
     pub curve_captured: Vec<usize>,
     /// Days of history of the second curve.
     pub curve_days: Vec<usize>,
+    /// The attacker's strategies (all of them unless a test asks otherwise).
+    pub strategies: Vec<Strategy>,
+    /// Other meters of the feeder, given events of their own, on which each
+    /// strategy's threshold is tuned for the less flattering figure.
+    pub tuning_meters: usize,
 }
+
+/// The audit's default seed; calibrations use [`crate::calibrate::DEFAULT_SEED`].
+pub const DEFAULT_SEED: u64 = 11;
 
 impl Default for AuditConfig {
     fn default() -> Self {
         Self {
             alpha_kw: 15.0,
             events: standard_event_mix(),
-            seed: 11,
+            seed: DEFAULT_SEED,
             utility_rank: RecoveryParams::default().rank,
             curve_captured: Vec::new(),
             curve_days: vec![7, 14, 21, 28],
+            strategies: Strategy::ALL.to_vec(),
+            tuning_meters: 2,
         }
     }
 }
@@ -760,9 +649,9 @@ history still reveals a household's habits. Obligations follow local regulation 
 
 fn assumptions(profile: &DitherProfile) -> Vec<String> {
     let mut a = vec![
-        "The eavesdropper holds every upload of the captured meters over the window and knows the dither profile.".to_owned(),
-        "Events are scored on injected appliance events (see event_mix), added to the utility's recovered profiles; a recovered profile is smooth and holds none of its own.".to_owned(),
-        "The strongest attacker's event F1 uses the best detector threshold of a grid; an attacker that knows the mechanism can tune it by simulation.".to_owned(),
+        "The eavesdropper holds every upload of the captured meters over the window and knows the dither profile and the event mix.".to_owned(),
+        "Events are scored on injected appliance events (see event_mix), added to the utility's recovered profiles; a recovered profile is smooth and holds none of its own. A captured meter's recovered profile that predicts more high readings than the meter sent is replaced by a per-slot estimate from its own uploads (see base_checks).".to_owned(),
+        "The strongest attacker's event F1 uses the best threshold of each strategy's grid: an attacker that knows the mechanism can tune it by simulation. The F1 at a threshold tuned on other simulated households is reported beside it.".to_owned(),
     ];
     if profile.send_registers() {
         a.push("The profile sends daily register reads: the eavesdropper captures them too, so captured meters' daily energy is exact to it.".to_owned());
@@ -774,7 +663,8 @@ fn figures_on(x: &DMatrix<f64>, rows: &[usize], cols: std::ops::Range<usize>) ->
     DMatrix::from_fn(rows.len(), cols.len(), |r, c| x[(rows[r], cols.start + c)])
 }
 
-fn events_on(events: &[InjectedEvent], rows: &[usize], cols: std::ops::Range<usize>) -> Vec<InjectedEvent> {
+/// Events of `rows` within `cols`, re-indexed to positions in `rows` and columns from `cols.start`.
+pub fn events_on(events: &[InjectedEvent], rows: &[usize], cols: std::ops::Range<usize>) -> Vec<InjectedEvent> {
     events
         .iter()
         .filter_map(|e| {
@@ -788,59 +678,81 @@ fn events_on(events: &[InjectedEvent], rows: &[usize], cols: std::ops::Range<usi
         .collect()
 }
 
-/// One bootstrap draw: what the simulation knows and what the utility recovered.
-struct Simulated<'a> {
-    levels: &'a LevelMatrix,
-    truth: &'a DMatrix<f64>,
-    utility: &'a DMatrix<f64>,
-    events: &'a [InjectedEvent],
-    mix: &'a [EventKind],
-    profile: &'a DitherProfile,
-    alpha: f64,
+/// A captured meter's base profile checked against its own uploads: the share
+/// of readings at the top level that the base predicts under the mechanism,
+/// beside the share the meter sent.
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
+pub struct BaseCheck {
+    /// Position in the captured set.
+    pub captured: usize,
+    pub predicted_top_share: f64,
+    pub uploaded_top_share: f64,
+    /// The base predicted more high readings than the meter sent, beyond
+    /// sampling error, and was replaced by the per-slot estimate from the uploads.
+    pub replaced: bool,
 }
 
-fn curve_point(
-    sim: &Simulated<'_>,
-    rows: &[usize],
-    cols: std::ops::Range<usize>,
-    layout: DayLayout,
-) -> Result<CurvePoint, FieldError> {
-    let Simulated { levels, truth, utility, events, profile, alpha, .. } = *sim;
-    let lc = select_rows(levels, rows, cols.clone());
-    let xc = figures_on(truth, rows, cols.clone());
-    let uc = figures_on(utility, rows, cols.clone());
-    let ev = events_on(events, rows, cols.clone());
-    let cons =
-        if profile.send_registers() { day_sums(&xc, &(0..rows.len()).collect::<Vec<_>>(), layout) } else { Vec::new() };
-    let recs = attack(&lc, profile, &cons, layout, sim.mix, alpha)?;
-    let figs = score(&recs, &xc, None, Some(&ev), layout);
-    let st = strongest(&figs);
-    Ok(CurvePoint {
-        captured: rows.len(),
-        days: cols.len() / layout.per_day(),
-        strongest_nrmse: st.nrmse,
-        strongest_event_f1: st.event_f1.unwrap_or(0.0),
-        strongest_event_strategy: st.strategy,
-        utility_nrmse: nrmse(&uc, &xc),
-        utility_event_f1: event_figures(score_all_thresholds(&uc, &ev, layout)).f1,
-    })
+/// Checks one meter's base (kW per interval) against its uploads. For each
+/// upper tail (levels ≥ l) the base's expected count is compared with the
+/// uploaded count; the base is implausible when it predicts more than
+/// 3 standard deviations plus 1% of readings more than were sent. A base
+/// predicting fewer high readings than were sent is expected: the uploads hold
+/// the household's own events, which a recovered profile smooths away.
+pub fn check_base(base: &[f64], uploads: &LevelMatrix, row: usize, profile: &DitherProfile) -> BaseCheck {
+    let k = profile.levels();
+    let mut expected = vec![0.0f64; k];
+    let mut sent = vec![0.0f64; k];
+    let mut n = 0.0;
+    for (j, &x) in base.iter().enumerate().take(uploads.cols()) {
+        let Some(l) = uploads.get(row, j) else { continue };
+        n += 1.0;
+        sent[usize::from(l)] += 1.0;
+        for (q, e) in expected.iter_mut().enumerate() {
+            *e += log_likelihood(profile, q as u8, x).0.exp();
+        }
+    }
+    let tail = |v: &[f64], l: usize| v[l..].iter().sum::<f64>();
+    let replaced = n > 0.0
+        && (1..k).any(|l| {
+            let (e, o) = (tail(&expected, l), tail(&sent, l));
+            e - o > 3.0 * e.max(1.0).sqrt() + 0.01 * n
+        });
+    BaseCheck {
+        captured: row,
+        predicted_top_share: if n > 0.0 { expected[k - 1] / n } else { 0.0 },
+        uploaded_top_share: if n > 0.0 { sent[k - 1] / n } else { 0.0 },
+        replaced,
+    }
 }
 
-/// The parametric bootstrap: events injected into the captured meters of the
-/// utility's recovered profiles `base` (the whole feeder, meters × intervals),
-/// levels re-drawn for every meter, the utility's recovery of the whole feeder
-/// and every attacker on the captured meters alone, scored against the truth
-/// of the simulation.
-pub fn bootstrap(
-    base: &DMatrix<f64>,
-    captured: &[usize],
-    profile: &DitherProfile,
-    layout: DayLayout,
-    cfg: &AuditConfig,
-    progress: &mut dyn FnMut(&str, f64),
-) -> Result<AuditReport, FieldError> {
-    use rand::SeedableRng;
-    let (m, n) = base.shape();
+/// The feeder an audit simulates: the utility's recovered profiles (meters ×
+/// intervals), the profile and the window; and, where the service has them,
+/// the captured meters' own uploads (rows in the order of the captured set).
+#[derive(Clone, Copy)]
+pub struct Feeder<'a> {
+    pub base: &'a DMatrix<f64>,
+    pub profile: &'a DitherProfile,
+    pub layout: DayLayout,
+    pub uploads: Option<&'a LevelMatrix>,
+}
+
+/// One bootstrap draw: the habit (base, clipped, checked), the truth with
+/// events, the levels of every meter, and which rows carry events.
+pub struct Draw {
+    pub habit: DMatrix<f64>,
+    pub truth: DMatrix<f64>,
+    pub levels: LevelMatrix,
+    /// Events on the captured meters and the curve's other meters.
+    pub events: Vec<InjectedEvent>,
+    /// The captured meters, then the curve's other meters.
+    pub curve_rows: Vec<usize>,
+    /// Meters whose events tune thresholds (none of the curve's).
+    pub tuning_rows: Vec<usize>,
+    pub tuning_events: Vec<InjectedEvent>,
+    pub base_checks: Vec<BaseCheck>,
+}
+
+fn check_captured(captured: &[usize], m: usize) -> Result<(), FieldError> {
     if captured.is_empty() {
         return Err(FieldError::new("captured", "name at least one captured meter"));
     }
@@ -853,74 +765,198 @@ pub fn bootstrap(
     if uniq.len() != captured.len() {
         return Err(FieldError::new("captured", "a meter is named twice"));
     }
+    Ok(())
+}
+
+/// `want` rows spread over `pool`.
+fn spread(pool: &[usize], want: usize) -> Vec<usize> {
+    if want == 0 || pool.is_empty() {
+        return Vec::new();
+    }
+    let stride = (pool.len() as f64 / want as f64).max(1.0);
+    let mut v: Vec<usize> = (0..want).map(|e| pool[((e as f64 * stride) as usize).min(pool.len() - 1)]).collect();
+    v.dedup();
+    v
+}
+
+/// Draws the bootstrap's simulated feeder. Deterministic in `cfg.seed`, so
+/// that a test can rerun any attacker on exactly the audit's draw.
+pub fn simulate(feeder: &Feeder<'_>, captured: &[usize], cfg: &AuditConfig) -> Result<Draw, FieldError> {
+    use rand::SeedableRng;
+    let (base, profile, layout) = (feeder.base, feeder.profile, feeder.layout);
+    let (m, n) = base.shape();
+    check_captured(captured, m)?;
     if whole_days(layout, n).len() < 2 {
         return Err(FieldError::new("window", "the audit needs at least two whole days"));
     }
+    if let Some(u) = feeder.uploads.filter(|u| u.rows() != captured.len() || u.cols() != n) {
+        return Err(FieldError::new(
+            "uploads",
+            format!("hold {} × {}, not the {} captured meters × {n} intervals", u.rows(), u.cols(), captured.len()),
+        ));
+    }
     // Meters of the captured-count curve: the captured set first, then others
     // spread over the feeder, up to the largest count asked for.
-    let mut counts: Vec<usize> = cfg.curve_captured.iter().copied().filter(|c| (1..=m).contains(c)).collect();
-    counts.sort_unstable();
-    counts.dedup();
+    let want = cfg.curve_captured.iter().copied().filter(|c| (1..=m).contains(c)).max().unwrap_or(0);
     let mut curve_rows = captured.to_vec();
-    let want = counts.last().copied().unwrap_or(0);
     let others: Vec<usize> = (0..m).filter(|i| !captured.contains(i)).collect();
-    if want > curve_rows.len() && !others.is_empty() {
-        let extra = want - curve_rows.len();
-        let stride = (others.len() as f64 / extra as f64).max(1.0);
-        curve_rows.extend((0..extra).map(|e| others[((e as f64 * stride) as usize).min(others.len() - 1)]));
-        curve_rows.dedup();
+    curve_rows.extend(spread(&others, want.saturating_sub(captured.len())));
+    let free: Vec<usize> = others.iter().copied().filter(|i| !curve_rows.contains(i)).collect();
+    let tuning_rows = spread(&free, cfg.tuning_meters);
+    let mut habit = base.map(|v| v.clamp(0.0, cfg.alpha_kw));
+    let mut base_checks = Vec::new();
+    if let Some(u) = feeder.uploads {
+        for (p, &i) in captured.iter().enumerate() {
+            let row: Vec<f64> = habit.row(i).iter().copied().collect();
+            let c = check_base(&row, u, p, profile);
+            if c.replaced {
+                let per_day = layout.per_day();
+                let phase = layout.phase() % per_day;
+                let slots = event_posterior::slot_habit(u, p, profile, layout, cfg.alpha_kw);
+                for j in 0..n {
+                    habit[(i, j)] = slots[(j + phase) % per_day];
+                }
+            }
+            base_checks.push(c);
+        }
     }
     // Separate streams, so that the captured meters' events and levels do not
-    // depend on how many other meters the feeder has.
+    // depend on how many other meters the feeder has or which tune thresholds.
     let mut event_rng = rand_chacha::ChaCha8Rng::seed_from_u64(cfg.seed);
     let mut dither_rng = rand_chacha::ChaCha8Rng::seed_from_u64(cfg.seed ^ 0x9e37_79b9_7f4a_7c15);
-    let habit = base.map(|v| v.clamp(0.0, cfg.alpha_kw));
+    let mut tuning_rng = rand_chacha::ChaCha8Rng::seed_from_u64(cfg.seed ^ 0x5851_f42d_4c95_7f2d);
     let mut truth = habit.clone();
     let events = inject_events(&mut truth, &curve_rows, layout, &cfg.events, cfg.alpha_kw, &mut event_rng);
+    let tuning_events = inject_events(&mut truth, &tuning_rows, layout, &cfg.events, cfg.alpha_kw, &mut tuning_rng);
     let levels = redraw_levels(&truth, profile, &mut dither_rng);
+    Ok(Draw { habit, truth, levels, events, curve_rows, tuning_rows, tuning_events, base_checks })
+}
+
+/// What the curves need of a draw and the utility's recovery of it.
+struct Simulated<'a> {
+    draw: &'a Draw,
+    utility: &'a DMatrix<f64>,
+    profile: &'a DitherProfile,
+    attacker: Attacker<'a>,
+}
+
+fn curve_point(
+    sim: &Simulated<'_>,
+    rows: &[usize],
+    cols: std::ops::Range<usize>,
+    layout: DayLayout,
+) -> Result<CurvePoint, FieldError> {
+    let Simulated { draw, utility, profile, attacker } = sim;
+    let lc = select_rows(&draw.levels, rows, cols.clone());
+    let xc = figures_on(&draw.truth, rows, cols.clone());
+    let uc = figures_on(utility, rows, cols.clone());
+    let ev = events_on(&draw.events, rows, cols.clone());
+    let cons =
+        if profile.send_registers() { day_sums(&xc, &(0..rows.len()).collect::<Vec<_>>(), layout) } else { Vec::new() };
+    let recs = attack(&lc, profile, &cons, layout, attacker)?;
+    let figs = score(&recs, &xc, None, Some(&ev), attacker.mix, layout);
+    let st = strongest(&figs);
+    Ok(CurvePoint {
+        captured: rows.len(),
+        days: cols.len() / layout.per_day(),
+        strongest_nrmse: st.nrmse,
+        strongest_event_f1: st.event_f1.unwrap_or(0.0),
+        strongest_event_strategy: st.strategy,
+        utility_nrmse: nrmse(&uc, &xc),
+        utility_event_f1: best_f1(&uc, &ev, layout),
+    })
+}
+
+fn best_f1(x: &DMatrix<f64>, events: &[InjectedEvent], layout: DayLayout) -> f64 {
+    let c = score_all_thresholds(x, events, layout);
+    c[best_index(&c)].f1()
+}
+
+/// Each strategy's best threshold position on the tuning meters' events.
+fn tuned_thresholds(
+    draw: &Draw,
+    profile: &DitherProfile,
+    layout: DayLayout,
+    who: &Attacker<'_>,
+) -> Result<Vec<(&'static str, usize)>, FieldError> {
+    if draw.tuning_rows.is_empty() || draw.tuning_events.is_empty() {
+        return Ok(Vec::new());
+    }
+    let n = draw.levels.cols();
+    let rows = &draw.tuning_rows;
+    let lt = select_rows(&draw.levels, rows, 0..n);
+    let xt = figures_on(&draw.truth, rows, 0..n);
+    let ev = events_on(&draw.tuning_events, rows, 0..n);
+    let cons =
+        if profile.send_registers() { day_sums(&xt, &(0..rows.len()).collect::<Vec<_>>(), layout) } else { Vec::new() };
+    Ok(attack(&lt, profile, &cons, layout, who)?
+        .iter()
+        .map(|r| (r.strategy, best_index(&score_detector(&r.x, &r.detector, &ev, layout))))
+        .collect())
+}
+
+/// The parametric bootstrap: events injected into the captured meters of the
+/// utility's recovered profiles (the whole feeder, meters × intervals, checked
+/// against the captured meters' uploads where given), levels re-drawn for
+/// every meter, the utility's recovery of the whole feeder and every attacker
+/// on the captured meters alone, scored against the truth of the simulation.
+pub fn bootstrap(
+    feeder: &Feeder<'_>,
+    captured: &[usize],
+    cfg: &AuditConfig,
+    progress: &mut dyn FnMut(&str, f64),
+) -> Result<AuditReport, FieldError> {
+    let (profile, layout) = (feeder.profile, feeder.layout);
+    let (m, n) = feeder.base.shape();
+    let draw = simulate(feeder, captured, cfg)?;
     progress("utility recovery of the whole feeder", 0.05);
     let all: Vec<usize> = (0..m).collect();
-    let cons = if profile.send_registers() { day_sums(&truth, &all, layout) } else { Vec::new() };
+    let cons = if profile.send_registers() { day_sums(&draw.truth, &all, layout) } else { Vec::new() };
     let up = RecoveryParams { rank: cfg.utility_rank.clone(), alpha_kw: cfg.alpha_kw, ..Default::default() }.check()?;
-    let util = recover(&levels, profile, &cons, layout, &up, &mut |_, _| {})?;
-    progress("attackers on the captured meters", 0.5);
+    let util = recover(&draw.levels, profile, &cons, layout, &up, &mut |_, _| {})?;
+    progress("attackers on the captured meters", 0.4);
+    let who = Attacker { mix: &cfg.events, strategies: &cfg.strategies, alpha: cfg.alpha_kw };
     let full = 0..n;
-    let lc = select_rows(&levels, captured, full.clone());
-    let xc = figures_on(&truth, captured, full.clone());
+    let lc = select_rows(&draw.levels, captured, full.clone());
+    let xc = figures_on(&draw.truth, captured, full.clone());
     let uc = figures_on(&util.x, captured, full.clone());
-    let ev = events_on(&events, captured, full.clone());
+    let ev = events_on(&draw.events, captured, full.clone());
     let ccons = if profile.send_registers() {
         day_sums(&xc, &(0..captured.len()).collect::<Vec<_>>(), layout)
     } else {
         Vec::new()
     };
-    let recs = attack(&lc, profile, &ccons, layout, &cfg.events, cfg.alpha_kw)?;
-    let hc = figures_on(&habit, captured, full.clone());
-    let strategies = score(&recs, &xc, Some(&hc), Some(&ev), layout);
+    let recs = attack(&lc, profile, &ccons, layout, &who)?;
+    let hc = figures_on(&draw.habit, captured, full.clone());
+    let mut strategies = score(&recs, &xc, Some(&hc), Some(&ev), &cfg.events, layout);
+    progress("thresholds tuned on other households", 0.55);
+    for (name, at) in tuned_thresholds(&draw, profile, layout, &who)? {
+        let Some(e) = strategies.iter_mut().find(|s| s.strategy == name).and_then(|s| s.events.as_mut()) else {
+            continue;
+        };
+        let grid = recs.iter().find(|r| r.strategy == name).map_or(&THRESHOLDS_KW[..], |r| r.detector.grid());
+        e.f1_tuned_elsewhere = e.counts_by_threshold.get(at).map(EventCounts::f1);
+        e.threshold_tuned_elsewhere = grid.get(at).copied();
+    }
     let st = strongest(&strategies);
-    let ue = event_figures(score_all_thresholds(&uc, &ev, layout));
+    let uf = event_figures(score_all_thresholds(&uc, &ev, layout), &Detector::AboveTypicalDay, &cfg.events);
     let utility = UtilityFigures {
         nrmse: nrmse(&uc, &xc),
         habit_nrmse: Some(nrmse(&uc, &hc)),
         daily_energy_error: median_daily_energy_error(&uc, &xc, layout),
-        event_f1: Some(ue.f1),
-        event_f1_at_documented_threshold: Some(ue.f1_at_documented_threshold),
+        event_f1: Some(uf.f1),
+        event_f1_at_documented_threshold: uf.f1_at_documented_threshold,
         population: m,
         rank: util.diagnostics.rank,
     };
     progress("curves", 0.7);
-    let sim = Simulated {
-        levels: &levels,
-        truth: &truth,
-        utility: &util.x,
-        events: &events,
-        mix: &cfg.events,
-        profile,
-        alpha: cfg.alpha_kw,
-    };
+    let sim = Simulated { draw: &draw, utility: &util.x, profile, attacker: who };
+    let mut counts: Vec<usize> = cfg.curve_captured.iter().copied().filter(|c| (1..=m).contains(c)).collect();
+    counts.sort_unstable();
+    counts.dedup();
     let mut curve_captured = Vec::new();
-    for c in counts.into_iter().filter(|c| *c <= curve_rows.len()) {
-        curve_captured.push(curve_point(&sim, &curve_rows[..c], full.clone(), layout)?);
+    for c in counts.into_iter().filter(|c| *c <= draw.curve_rows.len()) {
+        curve_captured.push(curve_point(&sim, &draw.curve_rows[..c], full.clone(), layout)?);
     }
     let days = whole_days(layout, n);
     let mut curve_days = Vec::new();
@@ -936,7 +972,7 @@ pub fn bootstrap(
         curve_days.push(curve_point(&sim, captured, cols, lay)?);
     }
     progress("mechanism figures", 0.95);
-    let mechanism = mechanism_figures(profile, base.as_slice(), cfg.alpha_kw);
+    let mechanism = mechanism_figures(profile, feeder.base.as_slice(), cfg.alpha_kw);
     Ok(AuditReport {
         mode: "bootstrap".into(),
         captured_meters: captured.len(),
@@ -952,6 +988,8 @@ pub fn bootstrap(
         mechanism,
         curve_captured,
         curve_days,
+        base_checks: draw.base_checks,
+        tuning_meters: draw.tuning_rows.len(),
         direct: None,
         assumptions: assumptions(profile),
         caution: CAUTION.into(),
@@ -975,7 +1013,7 @@ pub fn pooled_event_f1(reports: &[AuditReport]) -> (String, f64) {
     }
     pooled
         .into_iter()
-        .map(|(s, c)| (s.to_owned(), event_figures(c).f1))
+        .map(|(s, c)| (s.to_owned(), c[best_index(&c)].f1()))
         .max_by(|a, b| a.1.total_cmp(&b.1))
         .unwrap_or_default()
 }
@@ -990,8 +1028,10 @@ pub fn direct(
     layout: DayLayout,
     alpha: f64,
 ) -> Result<DirectFigures, FieldError> {
-    let recs = attack(captured_levels, profile, constraints, layout, &standard_event_mix(), alpha)?;
-    let strategies = score(&recs, utility, None, None, layout);
+    let mix = standard_event_mix();
+    let who = Attacker { mix: &mix, strategies: &Strategy::ALL, alpha };
+    let recs = attack(captured_levels, profile, constraints, layout, &who)?;
+    let strategies = score(&recs, utility, None, None, &mix, layout);
     let strongest = strongest(&strategies);
     Ok(DirectFigures {
         strategies,
@@ -1009,24 +1049,6 @@ mod tests {
 
     fn profile(scale: f64, b: &[f64]) -> DitherProfile {
         crate::profile::test_profile("gaussian", scale, b)
-    }
-
-    #[test]
-    fn detector_counts_runs_and_events() {
-        let layout = DayLayout { window_start: 0, interval_s: 900 };
-        let mut x = DMatrix::from_element(1, 96 * 3, 0.5);
-        let ev = vec![InjectedEvent { row: 0, start: 100, len: 3, kw: 2.0, kind: 1 }];
-        for j in 100..103 {
-            x[(0, j)] += 2.0;
-        }
-        x[(0, 200)] += 1.5; // a false alarm
-        let c = score_events(&x, &ev, layout, 1.0);
-        assert_eq!(c, EventCounts { events: 1, events_found: 1, flagged_intervals: 4, flagged_in_events: 3 });
-        assert!((c.f1() - 2.0 * 0.75 / 1.75).abs() < 1e-12);
-        assert_eq!(score_events(&x, &ev, layout, 2.5).f1(), 0.0);
-        // Flagging everything finds every event but scores only the events' share of intervals.
-        let all = score_events(&(x.clone() * 0.0), &ev, layout, -1.0);
-        assert_eq!((all.recall(), all.precision()), (1.0, 3.0 / 288.0));
     }
 
     #[test]

@@ -5,7 +5,7 @@
 mod common;
 
 use common::*;
-use meterveil_shared::audit::{bootstrap, pooled_event_f1, AuditConfig};
+use meterveil_shared::audit::{bootstrap, pooled_event_f1, AuditConfig, Feeder};
 use meterveil_shared::calibrate::{calibrate, CalibrationConfig, Simulation, Targets};
 use meterveil_shared::recovery::outage::DayLayout;
 use meterveil_shared::recovery::RankChoice;
@@ -78,7 +78,8 @@ fn calibration_is_repeatable_and_its_recommendation_holds_with_fresh_random_numb
                 curve_days: vec![],
                 ..Default::default()
             };
-            bootstrap(&x, &[5 + 10 * i as usize], &rec, LAYOUT, &cfg, &mut |_, _| {}).unwrap()
+            let feeder = Feeder { base: &x, profile: &rec, layout: LAYOUT, uploads: None };
+            bootstrap(&feeder, &[5 + 10 * i as usize], &cfg, &mut |_, _| {}).unwrap()
         })
         .collect();
     let (strategy, f1) = pooled_event_f1(&reports);

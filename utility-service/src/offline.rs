@@ -474,7 +474,7 @@ pub struct AuditFiles<'a> {
 /// levels file, the bootstrap audit of the captured meters on it, and the
 /// attackers on the stored levels (direct mode). Returns the JSON summary.
 pub fn run_audit(a: &AuditFiles<'_>) -> anyhow::Result<serde_json::Value> {
-    use meterveil_shared::audit::{bootstrap, default_curve_counts, direct, AuditConfig};
+    use meterveil_shared::audit::{bootstrap, default_curve_counts, direct, AuditConfig, Feeder};
     let (profile, w, constraints, _) = read_feeder(a.levels, a.profile, a.registers)?;
     let captured = read_captured(a.captured, &w)?;
     let rec = recover_window(&w, &profile, &constraints, a.alpha_kw)?;
@@ -486,9 +486,10 @@ pub fn run_audit(a: &AuditFiles<'_>) -> anyhow::Result<serde_json::Value> {
         ..AuditConfig::default()
     };
     let mut report = progress_reporter();
-    let mut out = bootstrap(&rec.x, &captured, &profile, w.layout(), &cfg, &mut report)
-        .map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
     let lc = meterveil_shared::audit::select_rows(&w.levels, &captured, 0..w.levels.cols());
+    let feeder = Feeder { base: &rec.x, profile: &profile, layout: w.layout(), uploads: Some(&lc) };
+    let mut out =
+        bootstrap(&feeder, &captured, &cfg, &mut report).map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
     let uc = nalgebra::DMatrix::from_fn(captured.len(), w.levels.cols(), |r, j| rec.x[(captured[r], j)]);
     let cc: Vec<SumConstraint> = constraints
         .iter()

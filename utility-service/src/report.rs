@@ -105,7 +105,7 @@ pub fn audit_html(title: &str, r: &AuditReport) -> String {
             s.habit_nrmse.map_or("–".into(), |v| format!("{v:.3}")),
             100.0 * s.daily_energy_error,
             e.map_or("–".into(), |e| format!("{:.3}", e.f1)),
-            e.map_or("–".into(), |e| format!("{:.3}", e.f1_at_documented_threshold)),
+            e.and_then(|e| e.f1_at_documented_threshold).map_or("–".into(), |v| format!("{v:.3}")),
         );
     }
     h += &format!(

@@ -106,6 +106,43 @@ impl MeterHabit {
         Self { habit, base }
     }
 
+    /// For each whole day, the allowed starts of an event of kind `e` and the
+    /// log-likelihood ratio of the observed levels for each (event of power P
+    /// over L intervals from that start, against the habit alone).
+    fn start_llrs(
+        &self,
+        levels: &LevelMatrix,
+        row: usize,
+        profile: &DitherProfile,
+        layout: DayLayout,
+        e: &EventKind,
+        alpha: f64,
+    ) -> KindStarts {
+        let n = levels.cols();
+        let per_hour = 3600.0 / f64::from(layout.interval_s);
+        let len = ((f64::from(e.minutes) / 60.0 * per_hour).round() as usize).max(1);
+        let lo = (e.earliest_h * per_hour) as usize;
+        let hi = ((e.latest_h * per_hour) as usize).max(lo + 1);
+        // Prefix sums of the per-interval log-likelihood ratio of "event" against "habit".
+        let mut prefix = vec![0.0f64; n + 1];
+        for j in 0..n {
+            let llr = levels
+                .get(row, j)
+                .map_or(0.0, |l| log_likelihood(profile, l, (self.habit[j] + e.kw).min(alpha)).0 - self.base[j]);
+            prefix[j + 1] = prefix[j] + llr;
+        }
+        let days = whole_days(layout, n)
+            .into_iter()
+            .map(|day| {
+                let starts: Vec<usize> = (lo..hi).map(|s| day.start + s).filter(|&t| t + len <= n).collect();
+                let llr = starts.iter().map(|&t| prefix[t + len] - prefix[t]).collect();
+                (starts, llr)
+            })
+            .filter(|(s, _): &(Vec<usize>, Vec<f64>)| !s.is_empty())
+            .collect();
+        KindStarts { len, allowed: hi - lo, days }
+    }
+
     /// Per interval, the posterior probability that it lies in an event of kind `e`.
     fn kind_coverage(
         &self,
@@ -117,30 +154,14 @@ impl MeterHabit {
         alpha: f64,
     ) -> Vec<f64> {
         let n = levels.cols();
-        let per_hour = 3600.0 / f64::from(layout.interval_s);
-        let len = ((f64::from(e.minutes) / 60.0 * per_hour).round() as usize).max(1);
-        let lo = (e.earliest_h * per_hour) as usize;
-        let hi = ((e.latest_h * per_hour) as usize).max(lo + 1);
         let p = e.daily_probability.clamp(0.0, 1.0);
         if p <= 0.0 {
             return vec![0.0; n];
         }
-        // Prefix sums of the per-interval log-likelihood ratio of "event" against "habit".
-        let mut prefix = vec![0.0f64; n + 1];
-        for j in 0..n {
-            let llr = levels
-                .get(row, j)
-                .map_or(0.0, |l| log_likelihood(profile, l, (self.habit[j] + e.kw).min(alpha)).0 - self.base[j]);
-            prefix[j + 1] = prefix[j] + llr;
-        }
+        let ks = self.start_llrs(levels, row, profile, layout, e, alpha);
+        let prior = p / ks.allowed as f64;
         let mut cover = vec![0.0f64; n + 1]; // difference array of posterior mass
-        for day in whole_days(layout, n) {
-            let starts: Vec<usize> = (lo..hi).map(|s| day.start + s).filter(|&t| t + len <= n).collect();
-            if starts.is_empty() {
-                continue;
-            }
-            let prior = p / (hi - lo) as f64;
-            let llr: Vec<f64> = starts.iter().map(|&t| prefix[t + len] - prefix[t]).collect();
+        for (starts, llr) in &ks.days {
             // Normalise in log space: weights prior·e^LLR against 1 − p.
             let top = llr.iter().copied().fold((1.0 - p).ln(), |a, v| a.max(prior.ln() + v));
             let none = ((1.0 - p).ln() - top).exp();
@@ -148,7 +169,7 @@ impl MeterHabit {
             let z = none + w.iter().sum::<f64>();
             for (&t, wt) in starts.iter().zip(&w) {
                 cover[t] += wt / z;
-                cover[t + len] -= wt / z;
+                cover[t + ks.len] -= wt / z;
             }
         }
         let mut run = 0.0;
@@ -160,6 +181,13 @@ impl MeterHabit {
             })
             .collect()
     }
+}
+
+/// The allowed starts of one event kind, day by day, with their log-likelihood ratios.
+struct KindStarts {
+    len: usize,
+    allowed: usize,
+    days: Vec<(Vec<usize>, Vec<f64>)>,
 }
 
 /// For one meter (`row` of `levels`): the probability that each interval lies in
@@ -183,8 +211,41 @@ pub fn coverage(
     (miss.iter().map(|q| 1.0 - q).collect(), m.habit)
 }
 
-/// The posterior mean load (kW) of the captured meters under habit plus events:
-/// habit + Σ over kinds P · (probability that the interval lies in such an event).
+/// The event posterior of the captured meters: per interval the probability
+/// that it lies in some event of `mix` (the detector's statistic), and the
+/// posterior mean load (kW), habit + Σ over kinds P · (probability that the
+/// interval lies in such an event).
+pub fn posterior_events(
+    levels: &LevelMatrix,
+    profile: &DitherProfile,
+    layout: DayLayout,
+    mix: &[EventKind],
+    alpha: f64,
+) -> (DMatrix<f64>, DMatrix<f64>) {
+    let (k, n) = (levels.rows(), levels.cols());
+    let mut prob = DMatrix::zeros(k, n);
+    let mut load = DMatrix::zeros(k, n);
+    for i in 0..k {
+        let m = MeterHabit::new(levels, i, profile, layout, alpha);
+        let mut x = m.habit.clone();
+        let mut miss = vec![1.0f64; n];
+        for e in mix {
+            for ((v, q), c) in
+                x.iter_mut().zip(miss.iter_mut()).zip(m.kind_coverage(levels, i, profile, layout, e, alpha))
+            {
+                *v = (*v + e.kw * c).min(alpha);
+                *q *= 1.0 - c;
+            }
+        }
+        for j in 0..n {
+            load[(i, j)] = x[j];
+            prob[(i, j)] = 1.0 - miss[j];
+        }
+    }
+    (prob, load)
+}
+
+/// The posterior mean load alone (see [`posterior_events`]).
 pub fn posterior_event_load(
     levels: &LevelMatrix,
     profile: &DitherProfile,
@@ -192,27 +253,56 @@ pub fn posterior_event_load(
     mix: &[EventKind],
     alpha: f64,
 ) -> DMatrix<f64> {
+    posterior_events(levels, profile, layout, mix, alpha).1
+}
+
+/// The generalised likelihood-ratio detector over the mix's event templates:
+/// per meter, day and kind, the start that maximises the log-likelihood ratio;
+/// every interval of that best placement carries its ratio (the largest over
+/// kinds where placements overlap), every other interval −∞. Returns the
+/// statistic and a load (habit plus the template's power where the ratio
+/// exceeds the Bayes threshold ln((1 − p)·W / p)).
+pub fn template_glr(
+    levels: &LevelMatrix,
+    profile: &DitherProfile,
+    layout: DayLayout,
+    mix: &[EventKind],
+    alpha: f64,
+) -> (DMatrix<f64>, DMatrix<f64>) {
     let (k, n) = (levels.rows(), levels.cols());
-    let mut out = DMatrix::zeros(k, n);
+    let mut stat = DMatrix::from_element(k, n, f64::NEG_INFINITY);
+    let mut load = DMatrix::zeros(k, n);
     for i in 0..k {
         let m = MeterHabit::new(levels, i, profile, layout, alpha);
-        let mut load = m.habit.clone();
+        for j in 0..n {
+            load[(i, j)] = m.habit[j];
+        }
         for e in mix {
-            for (x, c) in load.iter_mut().zip(m.kind_coverage(levels, i, profile, layout, e, alpha)) {
-                *x = (*x + e.kw * c).min(alpha);
+            let ks = m.start_llrs(levels, i, profile, layout, e, alpha);
+            let p = e.daily_probability.clamp(1e-9, 1.0 - 1e-9);
+            let bayes = ((1.0 - p) * ks.allowed as f64 / p).ln();
+            for (starts, llr) in &ks.days {
+                let best = (0..llr.len()).fold(0, |b, s| if llr[s] > llr[b] { s } else { b });
+                let (t, v) = (starts[best], llr[best]);
+                for j in t..t + ks.len {
+                    stat[(i, j)] = stat[(i, j)].max(v);
+                    if v >= bayes {
+                        load[(i, j)] = (load[(i, j)] + e.kw).min(alpha);
+                    }
+                }
             }
         }
-        for (j, x) in load.into_iter().enumerate() {
-            out[(i, j)] = x;
-        }
     }
-    out
+    (stat, load)
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::audit::{event_figures, inject_events, redraw_levels, score_all_thresholds, standard_event_mix};
+    use crate::audit::{
+        best_index, inject_events, redraw_levels, score_all_thresholds, score_detector, standard_event_mix, Detector,
+        LLR_GRID, PROBABILITY_GRID,
+    };
     use rand::SeedableRng;
 
     fn profile(scale: f64, b: &[f64]) -> DitherProfile {
@@ -242,11 +332,18 @@ mod tests {
         let mut x = DMatrix::from_element(1, 96 * 28, 0.4);
         let ev = inject_events(&mut x, &[0], layout, &standard_event_mix(), 15.0, &mut rng);
         let l = redraw_levels(&x, &p, &mut rng);
-        let post = posterior_event_load(&l, &p, layout, &standard_event_mix(), 15.0);
-        let f_post = event_figures(score_all_thresholds(&post, &ev, layout)).f1;
+        let best = |c: Vec<crate::audit::EventCounts>| c[best_index(&c)].f1();
+        let mix = standard_event_mix();
+        let (prob, _) = posterior_events(&l, &p, layout, &mix, 15.0);
+        let det = Detector::Statistic { stat: prob, grid: &PROBABILITY_GRID, unit: "" };
+        let f_post = best(score_detector(&x, &det, &ev, layout));
+        let (glr, _) = template_glr(&l, &p, layout, &mix, 15.0);
+        let det = Detector::Statistic { stat: glr, grid: &LLR_GRID, unit: "" };
+        let f_glr = best(score_detector(&x, &det, &ev, layout));
         let mid = DMatrix::from_fn(1, 96 * 28, |_, j| [0.25, 1.5, 3.0][usize::from(l.get(0, j).unwrap())]);
-        let f_mid = event_figures(score_all_thresholds(&mid, &ev, layout)).f1;
-        eprintln!("event posterior F1 {f_post:.3}, level midpoint F1 {f_mid:.3}");
+        let f_mid = best(score_all_thresholds(&mid, &ev, layout));
+        eprintln!("event posterior F1 {f_post:.3}, template GLR {f_glr:.3}, level midpoint F1 {f_mid:.3}");
+        assert!(f_glr > f_mid + 0.1, "{f_glr} vs {f_mid}");
         assert!(f_post > f_mid + 0.1, "{f_post} vs {f_mid}");
     }
 }

@@ -5,7 +5,7 @@
 use std::collections::HashMap;
 
 use anyhow::Context;
-use meterveil_shared::audit::{bootstrap, default_curve_counts, direct, select_rows, AuditConfig};
+use meterveil_shared::audit::{bootstrap, default_curve_counts, direct, select_rows, AuditConfig, Feeder};
 use meterveil_shared::calibrate::{calibrate, CalibrationConfig, Targets};
 use meterveil_shared::recovery::outage::DayLayout;
 use meterveil_shared::recovery::{LevelMatrix, RankChoice, SumConstraint};
@@ -118,9 +118,10 @@ async fn audit_inner(s: &AppState, job_id: &str, req: &AuditRequest) -> anyhow::
         ..AuditConfig::default()
     };
     let report = super::run_reporting(s, JobTable::Analysis, job_id, move |progress| {
-        let mut out = bootstrap(&r.x, &captured, &r.profile, r.layout, &cfg, progress)
-            .map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
         let lc = select_rows(&levels, &captured, 0..cols);
+        let feeder = Feeder { base: &r.x, profile: &r.profile, layout: r.layout, uploads: Some(&lc) };
+        let mut out =
+            bootstrap(&feeder, &captured, &cfg, progress).map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
         let uc = DMatrix::from_fn(captured.len(), cols, |p, j| r.x[(captured[p], j)]);
         out.direct = Some(
             direct(&lc, &uc, &cc, &r.profile, r.layout, cfg.alpha_kw)
