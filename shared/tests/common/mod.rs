@@ -4,6 +4,7 @@
 
 use std::process::Command;
 
+use meterveil_shared::audit::InjectedEvent;
 use meterveil_shared::mechanism::dither_and_quantize;
 use meterveil_shared::recovery::LevelMatrix;
 use meterveil_shared::DitherProfile;
@@ -236,4 +237,33 @@ pub fn nrmse_rows(a: &DMatrix<f64>, truth: &DMatrix<f64>, rows: &[usize]) -> f64
         }
     }
     (num / den).sqrt()
+}
+
+/// Appliance classes of the CREST events, in the order their index is used.
+pub const APPLIANCE_CLASSES: [&str; 6] =
+    ["kettle", "cooking", "washing and drying", "dishwasher", "water heating", "other"];
+
+/// The CREST switch-on events of meter `row` whose 15-minute mean power exceeds
+/// `min_kw` (the event's mean power times the share of the interval it fills,
+/// at most the whole interval), as interval events of row 0 with `kind` the
+/// index of its class in [`APPLIANCE_CLASSES`] (the generator's
+/// `appliance_classes` map; any other appliance is "other").
+pub fn crest_events(pop: &ReferencePopulation, row: usize, min_kw: f64) -> Vec<InjectedEvent> {
+    let classes = &pop.meta["appliance_classes"];
+    let interval_min = pop.meta["interval_s"].as_f64().expect("interval_s") / 60.0;
+    pop.meta["events"]
+        .as_array()
+        .expect("events")
+        .iter()
+        .filter(|e| e[0].as_u64() == Some(row as u64))
+        .filter_map(|e| {
+            let (s, t, kw) = (e[1].as_f64()?, e[2].as_f64()?, e[4].as_f64()?);
+            let class = classes[e[3].as_str()?].as_str().unwrap_or("other");
+            let kind = APPLIANCE_CLASSES.iter().position(|c| *c == class).unwrap_or(5);
+            let mean15 = kw * ((t - s) / interval_min).min(1.0);
+            let start = (s / interval_min) as usize;
+            let end = ((t / interval_min).ceil() as usize).max(start + 1);
+            (mean15 > min_kw).then_some(InjectedEvent { row: 0, start, len: end - start, kw, kind })
+        })
+        .collect()
 }
