@@ -1080,6 +1080,8 @@ fn audit_and_calibrate_commands_on_files() {
         "strongest.nrmse",
         "strongest.event_f1",
         "strongest.strategy",
+        "strongest.event_f1_tuned_elsewhere",
+        "strongest.event_by_kind",
         "utility.nrmse",
         "utility.event_f1",
         "mechanism.mutual_information_bits",
@@ -1092,6 +1094,10 @@ fn audit_and_calibrate_commands_on_files() {
         a["strategies"].as_array().expect("s").iter().filter_map(|s| s["strategy"].as_str()).collect();
     assert!(strategies.contains(&"day_folding") && strategies.contains(&"posterior_mean"), "{strategies:?}");
     assert_eq!(a["captured_meters"], 1);
+    // Every kind of the documented mix is scored, and the captured meter's
+    // recovered profile was checked against its own uploads.
+    assert_eq!(a["strongest"]["event_by_kind"].as_array().map(Vec::len), a["event_mix"].as_array().map(Vec::len));
+    assert_eq!(a["base_checks"].as_array().map(Vec::len), Some(1), "{}", a["base_checks"]);
     assert!(a["direct"]["strategies"].as_array().is_some_and(|s| s.len() == strategies.len()));
     assert!(!a["curve_captured"].as_array().expect("curve").is_empty());
     let html = std::fs::read_to_string(p("audit.html")).expect("html");
@@ -1100,6 +1106,8 @@ fn audit_and_calibrate_commands_on_files() {
             || html.contains("www.w3.org")
     );
     assert!(!html.contains("<script"));
+    assert!(html.contains("Per event kind") && html.contains("tuned on 2 other simulated households"));
+    assert!(html.contains("still reveals") || html.contains("mostly hides") || html.contains("partly reveals"));
     let summary = last_json_line(&run.stdout);
     assert_eq!(summary["strongest"]["strategy"], a["strongest"]["strategy"]);
 

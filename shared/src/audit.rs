@@ -47,9 +47,9 @@ pub mod level_runs;
 pub mod scoring;
 
 pub use scoring::{
-    best_index, event_figures, median_daily_energy_error, nrmse, score_all_thresholds, score_detector, score_events,
-    strongest, typical_day, Detector, EventCounts, EventFigures, KindCounts, KindFigures, StrategyFigures, Strongest,
-    DOCUMENTED_THRESHOLD_KW, THRESHOLDS_KW,
+    best_index, event_figures, kinds_in_words, median_daily_energy_error, nrmse, score_all_thresholds, score_detector,
+    score_events, strongest, typical_day, Detector, EventCounts, EventFigures, KindCounts, KindFigures,
+    StrategyFigures, Strongest, DOCUMENTED_THRESHOLD_KW, HIDDEN_F1, REVEALS_F1, THRESHOLDS_KW,
 };
 
 /// One kind of appliance event injected in the parametric bootstrap.

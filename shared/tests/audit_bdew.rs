@@ -94,7 +94,7 @@ fn weak_dither_reveals_events_of_one_meter_and_strong_dither_hides_them() {
     check_strongest(&w);
     check_strongest(&s);
     let (fw, fs) = (w.strongest.event_f1.unwrap(), s.strongest.event_f1.unwrap());
-    // README states 0.98 (weak) and 0.57 (strong, the event-posterior attacker).
+    // DEVELOPERS.md states 0.98 (weak) and 0.57 (strong, the whole-event attackers).
     assert!((fw - 0.98).abs() <= 0.03, "weak dither: strongest event F1 {fw}");
     assert!((fs - 0.57).abs() <= 0.05, "strong dither: strongest event F1 {fs}");
     // Under strong dither the attackers that read whole events (their likelihood

@@ -480,6 +480,14 @@ fn render_privacy(o: &mut String, p: &PrivacyCheck) {
         f(&st["nrmse"]),
         st["nrmse_strategy"].as_str().unwrap_or("?")
     );
+    let _ = writeln!(
+        o,
+        "  at thresholds tuned on other simulated households: event F1 {:.2}.",
+        f(&st["event_f1_tuned_elsewhere"])
+    );
+    if let Ok(s) = serde_json::from_value::<meterveil_shared::audit::Strongest>(st.clone()) {
+        let _ = writeln!(o, "  {}", meterveil_shared::audit::kinds_in_words(&s));
+    }
     let m = &a["mechanism"];
     let _ = writeln!(
         o,

@@ -87,6 +87,18 @@ pub fn audit_html(title: &str, r: &AuditReport) -> String {
         r.mechanism.mutual_information_bits,
         r.mechanism.level_bits
     );
+    h += &format!("<p>{}</p>", esc(&meterveil_shared::audit::kinds_in_words(&r.strongest)));
+    if let Some(t) = r.strongest.event_f1_tuned_elsewhere {
+        h += &format!(
+            "<p>With each strategy's threshold tuned on {} other simulated households instead of the captured ones, \
+             the strongest event F1 is {t:.2}: an attacker that cannot tune on the victim does about this well.</p>",
+            r.tuning_meters
+        );
+    }
+    if r.base_checks.iter().any(|c| c.replaced) {
+        h += "<p>The recovered profile of a captured meter predicted far more high readings than it sent; the audit \
+              used a per-slot estimate from its own uploads instead, so as not to understate the attacker.</p>";
+    }
     h += "<p>A long history still shows a household's habits: folding a meter's own days together recovers its \
           typical day whatever the dither, so the reconstruction error alone does not measure privacy. What dither \
           protects is what happened on a given day.</p>";
@@ -95,21 +107,37 @@ pub fn audit_html(title: &str, r: &AuditReport) -> String {
     for a in &r.assumptions {
         h += &format!("<li>{}</li>", esc(a));
     }
-    h += "</ul><h2>Every strategy</h2><table><tr><th>strategy</th><th>nRMSE</th><th>habit nRMSE</th><th>daily energy error</th><th>event F1</th><th>F1 at 1 kW</th></tr>";
+    h += "</ul>";
+    if !r.strongest.event_by_kind.is_empty() {
+        h += "<h2>Per event kind</h2><table><tr><th>event kind</th><th>events injected</th><th>strongest F1</th><th>recall</th></tr>";
+        for k in &r.strongest.event_by_kind {
+            h += &format!(
+                "<tr><td>{}</td><td>{}</td><td>{:.3}</td><td>{:.3}</td></tr>",
+                esc(&k.kind),
+                k.events,
+                k.f1,
+                k.recall
+            );
+        }
+        h += "</table><p>Per kind, the best strategy's recall of that kind paired with its overall precision.</p>";
+    }
+    h += "<h2>Every strategy</h2><table><tr><th>strategy</th><th>nRMSE</th><th>habit nRMSE</th><th>daily energy error</th><th>event F1</th><th>at threshold</th><th>F1, threshold tuned elsewhere</th><th>F1 at 1 kW</th></tr>";
     for s in &r.strategies {
         let e = s.events.as_ref();
         h += &format!(
-            "<tr><td>{}</td><td>{:.3}</td><td>{}</td><td>{:.1}%</td><td>{}</td><td>{}</td></tr>",
+            "<tr><td>{}</td><td>{:.3}</td><td>{}</td><td>{:.1}%</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
             esc(&s.strategy),
             s.nrmse,
             s.habit_nrmse.map_or("–".into(), |v| format!("{v:.3}")),
             100.0 * s.daily_energy_error,
             e.map_or("–".into(), |e| format!("{:.3}", e.f1)),
+            e.map_or("–".into(), |e| esc(&format!("{} {}", e.best_threshold, e.threshold_unit))),
+            e.and_then(|e| e.f1_tuned_elsewhere).map_or("–".into(), |v| format!("{v:.3}")),
             e.and_then(|e| e.f1_at_documented_threshold).map_or("–".into(), |v| format!("{v:.3}")),
         );
     }
     h += &format!(
-        "<tr><td>utility (whole feeder)</td><td>{:.3}</td><td>{}</td><td>{:.1}%</td><td>{:.3}</td><td>{}</td></tr></table>",
+        "<tr><td>utility (whole feeder)</td><td>{:.3}</td><td>{}</td><td>{:.1}%</td><td>{:.3}</td><td>–</td><td>–</td><td>{}</td></tr></table>",
         r.utility.nrmse,
         r.utility.habit_nrmse.map_or("–".into(), |v| format!("{v:.3}")),
         100.0 * r.utility.daily_energy_error,

@@ -385,6 +385,43 @@ pub fn strongest(figs: &[StrategyFigures]) -> Strongest {
     }
 }
 
+/// F1 from which a captured meter is said to reveal an event kind, and below
+/// which the kind is said to stay mostly hidden. Our own reading of the scale
+/// (0.5: at least about half the events found with about half the flags right),
+/// not a standard.
+pub const REVEALS_F1: f64 = 0.5;
+pub const HIDDEN_F1: f64 = 0.3;
+
+/// One sentence naming the kinds a captured meter still reveals at this
+/// setting and those it mostly hides, from the strongest per-kind figures.
+pub fn kinds_in_words(st: &Strongest) -> String {
+    let name = |k: &KindFigures| format!("{} (F1 {:.2})", k.kind, k.f1);
+    let list = |v: Vec<String>| match v.len() {
+        0 => String::new(),
+        1 => v[0].clone(),
+        _ => format!("{} and {}", v[..v.len() - 1].join(", "), v[v.len() - 1]),
+    };
+    let scored: Vec<&KindFigures> = st.event_by_kind.iter().filter(|k| k.events > 0).collect();
+    let shown: Vec<String> = scored.iter().filter(|k| k.f1 >= REVEALS_F1).map(|k| name(k)).collect();
+    let hidden: Vec<String> = scored.iter().filter(|k| k.f1 < HIDDEN_F1).map(|k| name(k)).collect();
+    let between: Vec<String> =
+        scored.iter().filter(|k| (HIDDEN_F1..REVEALS_F1).contains(&k.f1)).map(|k| name(k)).collect();
+    let mut out = Vec::new();
+    if !shown.is_empty() {
+        out.push(format!("A captured meter still reveals {}.", list(shown)));
+    }
+    if !between.is_empty() {
+        out.push(format!("It partly reveals {}.", list(between)));
+    }
+    if !hidden.is_empty() {
+        out.push(format!("It mostly hides {}.", list(hidden)));
+    }
+    if out.is_empty() {
+        out.push("No event kind was scored.".into());
+    }
+    out.join(" ")
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -425,5 +462,30 @@ mod tests {
         let f = event_figures(counts, &det, &mix[..2]);
         assert_eq!((f.f1, f.best_threshold, f.f1_at_documented_threshold), (1.0, 0.3, None));
         assert_eq!(f.by_kind.iter().map(|k| (k.events, k.recall)).collect::<Vec<_>>(), vec![(1, 1.0), (1, 1.0)]);
+    }
+
+    #[test]
+    fn kinds_are_named_by_what_they_reveal() {
+        let k = |kind: &str, f1| KindFigures { kind: kind.into(), events: 3, recall: f1, f1 };
+        let st = Strongest {
+            strategy: "x".into(),
+            nrmse: 0.0,
+            nrmse_strategy: "x".into(),
+            habit_nrmse: None,
+            daily_energy_error: 0.0,
+            daily_energy_strategy: "x".into(),
+            event_f1: None,
+            event_precision: None,
+            event_recall: None,
+            event_threshold: None,
+            event_threshold_unit: None,
+            event_f1_tuned_elsewhere: None,
+            event_by_kind: vec![k("kettle", 0.1), k("washer", 0.8), k("car", 0.9), k("oven", 0.4)],
+        };
+        assert_eq!(
+            kinds_in_words(&st),
+            "A captured meter still reveals washer (F1 0.80) and car (F1 0.90). It partly reveals oven (F1 0.40). \
+             It mostly hides kettle (F1 0.10)."
+        );
     }
 }
