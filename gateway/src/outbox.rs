@@ -16,7 +16,7 @@ use meterveil_shared::MeterId;
 use sqlx::sqlite::{SqliteConnectOptions, SqliteJournalMode, SqlitePoolOptions, SqliteSynchronous};
 use sqlx::{QueryBuilder, Row, Sqlite, SqlitePool};
 
-use crate::pipeline::{LevelOut, MeterState, RegisterOut, RegisterState};
+use crate::pipeline::{LevelOut, MeterState, RegisterOut};
 
 const CHUNK: usize = 1000;
 
@@ -62,12 +62,16 @@ fn now_s() -> i64 {
 
 impl Outbox {
     /// Opens or creates the outbox file with WAL and `synchronous = FULL`.
+    /// Deleted rows are overwritten (`secure_delete`), and on opening the WAL is
+    /// checkpointed and truncated, so no older page image (of an upgraded
+    /// outbox's energy totals, say) outlives the rows that held it.
     pub async fn open(path: &Path) -> anyhow::Result<Self> {
         let opts = SqliteConnectOptions::from_str(&format!("sqlite:{}", path.display()))
             .with_context(|| format!("outbox path {}", path.display()))?
             .create_if_missing(true)
             .journal_mode(SqliteJournalMode::Wal)
             .synchronous(SqliteSynchronous::Full)
+            .pragma("secure_delete", "ON")
             .busy_timeout(Duration::from_secs(10));
         // One connection: the pipeline and the uploader take turns, which is all
         // a single SQLite writer allows anyway.
@@ -77,6 +81,8 @@ impl Outbox {
             .await
             .with_context(|| format!("opening outbox {}", path.display()))?;
         sqlx::migrate!("../migrations/outbox").run(&pool).await.context("outbox migrations")?;
+        sqlx::query("VACUUM").execute(&pool).await.context("outbox vacuum")?;
+        sqlx::query("PRAGMA wal_checkpoint(TRUNCATE)").execute(&pool).await.context("outbox checkpoint")?;
         Ok(Self { pool })
     }
 
@@ -88,9 +94,8 @@ impl Outbox {
     pub async fn meter_states(&self, ids: &[&MeterId]) -> anyhow::Result<HashMap<MeterId, MeterState>> {
         let mut out = HashMap::new();
         for chunk in ids.chunks(CHUNK) {
-            let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
-                "SELECT meter_id, last_interval_start, register_mwh, last_read_at FROM meter_state WHERE meter_id IN (",
-            );
+            let mut qb: QueryBuilder<Sqlite> =
+                QueryBuilder::new("SELECT meter_id, last_interval_start FROM meter_state WHERE meter_id IN (");
             let mut sep = qb.separated(", ");
             for id in chunk {
                 sep.push_bind(id.as_str());
@@ -98,12 +103,9 @@ impl Outbox {
             sep.push_unseparated(")");
             for r in qb.build().fetch_all(&self.pool).await? {
                 let id: String = r.try_get(0)?;
-                let mwh: Option<i64> = r.try_get(2)?;
-                let state = MeterState {
-                    last_interval_start: Some(r.try_get(1)?),
-                    register: mwh
-                        .map(|m| RegisterState { total_mwh: m as u64, last_read_at: r.try_get(3).ok().flatten() }),
-                };
+                // The register period's running count is not stored: after a
+                // restart the interrupted period gets no read.
+                let state = MeterState { last_interval_start: Some(r.try_get(1)?), register: None };
                 out.insert(MeterId::parse(&id).context("stored meter id")?, state);
             }
         }
@@ -134,23 +136,22 @@ impl Outbox {
         }
         for chunk in registers.chunks(CHUNK) {
             let mut qb: QueryBuilder<Sqlite> =
-                QueryBuilder::new("INSERT OR IGNORE INTO pending_registers (meter_id, read_at, wh_total) ");
+                QueryBuilder::new("INSERT OR IGNORE INTO pending_registers (meter_id, period_start, read_at, wh) ");
             qb.push_values(chunk, |mut b, g| {
-                b.push_bind(g.meter_id.as_str()).push_bind(g.read_at).push_bind(g.wh_total as i64);
+                b.push_bind(g.meter_id.as_str())
+                    .push_bind(g.period_start)
+                    .push_bind(g.read_at)
+                    .push_bind(i64::try_from(g.wh).unwrap_or(i64::MAX));
             });
             qb.build().execute(&mut *tx).await?;
         }
         let rows: Vec<(&MeterId, &MeterState)> =
             states.iter().filter(|(_, s)| s.last_interval_start.is_some()).collect();
         for chunk in rows.chunks(CHUNK) {
-            let mut qb: QueryBuilder<Sqlite> = QueryBuilder::new(
-                "INSERT OR REPLACE INTO meter_state (meter_id, last_interval_start, register_mwh, last_read_at) ",
-            );
+            let mut qb: QueryBuilder<Sqlite> =
+                QueryBuilder::new("INSERT OR REPLACE INTO meter_state (meter_id, last_interval_start) ");
             qb.push_values(chunk, |mut b, (id, s)| {
-                b.push_bind(id.as_str())
-                    .push_bind(s.last_interval_start)
-                    .push_bind(s.register.as_ref().map(|r| r.total_mwh as i64))
-                    .push_bind(s.register.as_ref().and_then(|r| r.last_read_at));
+                b.push_bind(id.as_str()).push_bind(s.last_interval_start);
             });
             qb.build().execute(&mut *tx).await?;
         }
@@ -245,7 +246,8 @@ impl Outbox {
         })
         .collect::<Result<Vec<_>, sqlx::Error>>()?;
         let registers = sqlx::query(
-            "SELECT meter_id, read_at, wh_total FROM pending_registers WHERE batch_id = ? ORDER BY meter_id, read_at",
+            "SELECT meter_id, period_start, read_at, wh FROM pending_registers WHERE batch_id = ?
+             ORDER BY meter_id, read_at",
         )
         .bind(&batch_id)
         .fetch_all(&mut *tx)
@@ -254,8 +256,9 @@ impl Outbox {
         .map(|r| {
             Ok(RegisterWire {
                 meter_id: r.try_get(0)?,
-                read_at: r.try_get(1)?,
-                wh_total: r.try_get::<i64, _>(2)? as u64,
+                period_start: r.try_get(1)?,
+                read_at: r.try_get(2)?,
+                wh: r.try_get::<i64, _>(3)? as u64,
             })
         })
         .collect::<Result<Vec<_>, sqlx::Error>>()?;

@@ -13,8 +13,12 @@ use crate::gateway::Gateway;
 use crate::source::{Format, LineParser, RawReading};
 use crate::uploader::{UploadEnd, UploadStats};
 
-/// Lines per outbox transaction.
-const CHUNK_LINES: usize = 2000;
+/// Lines per outbox transaction: a crash loses at most the readings of one
+/// chunk not yet queued (the source position is saved with each chunk, so a
+/// file or directory source re-reads them; stdin cannot be re-read).
+pub const CHUNK_LINES: usize = 96;
+/// Stdin: a partial chunk is queued once no line has arrived for this long.
+pub const STDIN_IDLE_FLUSH: Duration = Duration::from_secs(1);
 
 #[derive(Debug, Clone, Copy, Default)]
 pub struct RunReport {
@@ -96,7 +100,18 @@ impl Feeder<'_> {
         let mut parser = LineParser::new(format);
         let mut lines = tokio::io::BufReader::new(tokio::io::stdin()).lines();
         let mut batch = Vec::with_capacity(CHUNK_LINES);
-        while let Some(line) = lines.next_line().await? {
+        loop {
+            let line = match tokio::time::timeout(STDIN_IDLE_FLUSH, lines.next_line()).await {
+                Ok(line) => line?,
+                Err(_) => {
+                    // Idle: queue what has arrived rather than hold it in memory.
+                    if !batch.is_empty() {
+                        self.push(&mut batch, None).await?;
+                    }
+                    continue;
+                }
+            };
+            let Some(line) = line else { break };
             match parser.next_line(&line, len) {
                 Ok(Some(r)) => batch.push(r),
                 Ok(None) => {}

@@ -75,11 +75,14 @@ impl CsvLayout {
     }
 }
 
-/// A line that could not be read, with its 1-based line number.
+/// A line that could not be read: its 1-based line number, the meter it names
+/// (where one can be read), the field and the reason. Never the value: a
+/// rejected reading is still a household's reading, and logs are kept.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
-#[error("line {line}: {error}")]
+#[error("line {line}{}: {error}", meter.as_ref().map(|m| format!(", meter {m}")).unwrap_or_default())]
 pub struct LineError {
     pub line: u64,
+    pub meter: Option<String>,
     pub error: FieldError,
 }
 
@@ -95,10 +98,10 @@ fn check_value(field: &str, kw: f64) -> Result<f64, FieldError> {
         return Err(FieldError::new(field, "is not a finite number"));
     }
     if kw < 0.0 {
-        return Err(FieldError::new(field, format!("{kw} is negative; exported energy is not supported")));
+        return Err(FieldError::new(field, "is negative; exported energy is not supported"));
     }
     if kw > MAX_READING_KW {
-        return Err(FieldError::new(field, format!("{kw} kW is above the {MAX_READING_KW} kW plausibility limit")));
+        return Err(FieldError::new(field, format!("is above the {MAX_READING_KW} kW plausibility limit")));
     }
     Ok(kw)
 }
@@ -120,13 +123,10 @@ pub fn parse_csv_line(layout: &CsvLayout, line: &str, len: IntervalLength) -> Re
     if cells.len() != layout.columns {
         return Err(FieldError::new("line", format!("has {} columns; the header has {}", cells.len(), layout.columns)));
     }
-    let start: i64 = cells[layout.start].parse().map_err(|_| {
-        FieldError::new("interval_start", format!("{:?} is not an integer epoch second", cells[layout.start]))
-    })?;
+    let start: i64 =
+        cells[layout.start].parse().map_err(|_| FieldError::new("interval_start", "is not an integer epoch second"))?;
     let value_name = if layout.unit == Unit::Kw { "kw" } else { "wh" };
-    let value: f64 = cells[layout.value]
-        .parse()
-        .map_err(|_| FieldError::new(value_name, format!("{:?} is not a number", cells[layout.value])))?;
+    let value: f64 = cells[layout.value].parse().map_err(|_| FieldError::new(value_name, "is not a number"))?;
     finish(cells[layout.meter], start, value, layout.unit, len)
 }
 
@@ -141,7 +141,10 @@ struct JsonReading {
 
 /// Parses one JSON-lines object.
 pub fn parse_json_line(line: &str, len: IntervalLength) -> Result<RawReading, FieldError> {
-    let r: JsonReading = serde_json::from_str(line).map_err(|e| FieldError::new("json", e.to_string()))?;
+    // serde's message can quote the offending value: report its kind and column only.
+    let r: JsonReading = serde_json::from_str(line).map_err(|e| {
+        FieldError::new("json", format!("is not a reading object ({:?} error at column {})", e.classify(), e.column()))
+    })?;
     let (value, unit) = match (r.kw, r.wh) {
         (Some(k), None) => (k, Unit::Kw),
         (None, Some(w)) => (w, Unit::Wh),
@@ -173,7 +176,17 @@ impl LineParser {
         if t.is_empty() || t.starts_with('#') {
             return Ok(None);
         }
-        let wrap = |error| LineError { line, error };
+        let meter = || -> Option<String> {
+            match (self.format, &self.layout) {
+                (Format::Csv, Some(l)) => t.split(',').nth(l.meter).map(|m| m.trim().to_owned()),
+                (Format::Jsonl, _) => serde_json::from_str::<serde_json::Value>(t)
+                    .ok()
+                    .and_then(|v| v.get("meter_id").and_then(|m| m.as_str()).map(str::to_owned)),
+                _ => None,
+            }
+            .filter(|m| MeterId::parse(m).is_ok())
+        };
+        let wrap = |error| LineError { line, meter: meter(), error };
         match self.format {
             Format::Jsonl => parse_json_line(t, len).map(Some).map_err(wrap),
             Format::Csv => match &self.layout {

@@ -16,14 +16,16 @@ pub struct ReadingWire {
     pub profile_version: u32,
 }
 
-/// An exact cumulative register read (Wh) at a UTC instant, usually midnight.
+/// A register advance: the exact energy (Wh) of the intervals a gateway forwarded
+/// in one completed register period [period_start, read_at), UTC epoch seconds.
+/// A gateway sends one only for a period it counted from its start.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct RegisterWire {
     pub meter_id: String,
-    /// UTC epoch seconds.
+    pub period_start: i64,
     pub read_at: i64,
-    pub wh_total: u64,
+    pub wh: u64,
 }
 
 /// One upload from a gateway. `batch_id` is stable across retries of the same rows.

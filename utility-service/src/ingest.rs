@@ -23,9 +23,14 @@ pub struct ValidReading {
 #[derive(Debug, Clone)]
 pub struct ValidRegister {
     pub meter_id: MeterId,
+    pub period_start: i64,
     pub read_at: i64,
-    pub wh_total: u64,
+    pub wh: u64,
 }
+
+/// The longest register period an advance may span: a calendar month plus a
+/// daylight-saving hour, rounded up to 32 days.
+pub const MAX_REGISTER_SPAN_S: i64 = 32 * 86_400;
 
 #[derive(Debug, Clone)]
 pub struct ValidatedBatch {
@@ -191,8 +196,33 @@ pub fn validate(
                 format!("{} is in the future (server time {})", g.read_at, ctx.now),
             ));
         }
-        if g.wh_total > i64::MAX as u64 {
-            return Err(ApiError::invalid(at("wh_total"), "is larger than any register can hold"));
+        if g.read_at <= g.period_start {
+            return Err(ApiError::invalid(
+                at("read_at"),
+                format!("{} is not after period_start {}: the advance runs backwards", g.read_at, g.period_start),
+            ));
+        }
+        if g.read_at - g.period_start > MAX_REGISTER_SPAN_S {
+            return Err(ApiError::invalid(
+                at("period_start"),
+                format!(
+                    "spans {} s to read_at; a register period is at most {MAX_REGISTER_SPAN_S} s",
+                    g.read_at - g.period_start
+                ),
+            ));
+        }
+        let step = ctx.profiles.iter().map(|p| i64::from(p.profile.interval().seconds())).max().unwrap_or(900);
+        if g.period_start.rem_euclid(step) != 0 || g.read_at.rem_euclid(step) != 0 {
+            return Err(ApiError::invalid(
+                at("period_start"),
+                format!(
+                    "the period [{}, {}) is not aligned to the feeder's {step} s intervals",
+                    g.period_start, g.read_at
+                ),
+            ));
+        }
+        if g.wh > i64::MAX as u64 {
+            return Err(ApiError::invalid(at("wh"), "is larger than any register can hold"));
         }
         if !seen_reg.insert((g.meter_id.as_str(), g.read_at)) {
             return Err(ApiError::invalid(
@@ -200,7 +230,7 @@ pub fn validate(
                 "repeats an earlier register read (same meter_id and read_at)",
             ));
         }
-        registers.push(ValidRegister { meter_id, read_at: g.read_at, wh_total: g.wh_total });
+        registers.push(ValidRegister { meter_id, period_start: g.period_start, read_at: g.read_at, wh: g.wh });
     }
 
     Ok(ValidatedBatch {

@@ -44,25 +44,31 @@ fn utc_date(t: i64) -> String {
     DateTime::<Utc>::from_timestamp(t, 0).map(|d| d.format("%Y-%m-%d").to_string()).unwrap_or_default()
 }
 
-/// Register advances per (meter, UTC day start) from reads at consecutive midnights.
-pub fn register_advances(reads: &[(String, i64, i64)]) -> HashMap<(String, i64), i64> {
-    let mut out = HashMap::new();
-    for w in reads.windows(2) {
-        let (a, b) = (&w[0], &w[1]);
-        if a.0 == b.0 && a.1.rem_euclid(86_400) == 0 && b.1 - a.1 == 86_400 && b.2 >= a.2 {
-            out.insert((a.0.clone(), a.1), b.2 - a.2);
-        }
-    }
-    out
+/// A stored register advance: the exact energy (Wh) a meter's gateway forwarded
+/// over the register period [period_start, read_at).
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Advance {
+    pub meter_id: String,
+    pub period_start: i64,
+    pub read_at: i64,
+    pub wh: i64,
+}
+
+/// Daily advances per (meter, UTC day start): those whose period is one UTC day.
+pub fn daily_advances(reads: &[Advance]) -> HashMap<(String, i64), i64> {
+    reads
+        .iter()
+        .filter(|a| a.period_start.rem_euclid(86_400) == 0 && a.read_at - a.period_start == 86_400)
+        .map(|a| ((a.meter_id.clone(), a.period_start), a.wh))
+        .collect()
 }
 
 /// Daily energies of every meter over the whole UTC days the rows cover.
-/// `rows` are ordered by meter and time; `reads` are (meter, read_at, wh_total)
-/// ordered by meter and time.
-pub fn daily(rows: &[RecoveredRow], reads: &[(String, i64, i64)], interval_s: u32) -> Vec<DailyEnergy> {
+/// `rows` are ordered by meter and time.
+pub fn daily(rows: &[RecoveredRow], reads: &[Advance], interval_s: u32) -> Vec<DailyEnergy> {
     let per_day = (86_400 / interval_s.max(1)) as usize;
     let wh_per_kw = f64::from(interval_s) / 3.6;
-    let advances = register_advances(reads);
+    let advances = daily_advances(reads);
     let mut groups: Vec<((String, i64), Vec<&RecoveredRow>)> = Vec::new();
     for r in rows {
         let key = (r.meter_id.clone(), r.interval_start - r.interval_start.rem_euclid(86_400));
@@ -282,7 +288,9 @@ mod tests {
     fn a_register_day_settles_at_its_advance() {
         let day = 1_774_656_000;
         let r = rows("M-1", day, day + 2 * 86_400, 0.5);
-        let reads = vec![("M-1".to_owned(), day, 10_000), ("M-1".to_owned(), day + 86_400, 22_345)];
+        let adv = |s: i64, e: i64, wh| Advance { meter_id: "M-1".into(), period_start: s, read_at: e, wh };
+        // A daily advance, and a two-day one that settles no single day.
+        let reads = vec![adv(day, day + 86_400, 12_345), adv(day, day + 2 * 86_400, 24_000)];
         let d = daily(&r, &reads, 900);
         assert_eq!(d.len(), 2);
         assert_eq!((d[0].energy_wh, d[0].source, d[0].uncertainty_wh), (12_345.0, "register", 0.0));

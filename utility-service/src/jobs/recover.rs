@@ -22,26 +22,27 @@ pub struct RecoveryRequest {
     pub alpha_kw: f64,
 }
 
-/// Register energies of whole UTC days inside the window, for meters whose day
-/// has every interval stored: then the gateway's count of forwarded intervals
-/// and the day's intervals coincide.
+/// Register advances whose period lies inside the window (a day, or any longer
+/// period), for meters with every interval of the period stored: then the
+/// gateway's count of forwarded intervals and the period's intervals coincide.
 pub fn day_constraints(
     meters: &HashMap<String, usize>,
     levels: &LevelMatrix,
-    reads: &[(String, i64, i64)],
+    reads: &[crate::settlement::Advance],
     from: i64,
     interval_s: u32,
 ) -> Vec<SumConstraint> {
-    let per_day = (86_400 / interval_s) as usize;
+    let step = i64::from(interval_s);
     let hours = f64::from(interval_s) / 3600.0;
     let mut out = Vec::new();
-    for ((meter, day), wh) in crate::settlement::register_advances(reads) {
-        if day < from {
+    for a in reads {
+        if a.period_start < from || (a.period_start - from) % step != 0 || (a.read_at - a.period_start) % step != 0 {
             continue;
         }
-        let Some(&row) = meters.get(&meter) else { continue };
-        let first = ((day - from) / i64::from(interval_s)) as usize;
-        let cols = first..first + per_day;
+        let Some(&row) = meters.get(&a.meter_id) else { continue };
+        let first = ((a.period_start - from) / step) as usize;
+        let cols = first..((a.read_at - from) / step) as usize;
+        let wh = a.wh;
         if cols.end > levels.cols() || cols.clone().any(|j| levels.get(row, j).is_none()) {
             continue;
         }

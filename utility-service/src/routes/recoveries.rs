@@ -166,7 +166,7 @@ async fn daily(
     let feeder = FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
     let mut reads = s.store.feeder_registers_between(&feeder, job.window_start, job.window_end + 1).await?;
     if let Some(m) = &q.meter_id {
-        reads.retain(|r| &r.0 == m);
+        reads.retain(|r| &r.meter_id == m);
     }
     let days = crate::settlement::daily(&rows, &reads, job_interval(&rows, &job));
     tracing::info!(job = %id, days = days.len(), meter = ?q.meter_id, "per-meter daily energy export");

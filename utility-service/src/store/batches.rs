@@ -178,15 +178,15 @@ impl Store {
         for chunk in registers.chunks(INSERT_CHUNK) {
             let sql = values_sql(
                 self.backend,
-                "INSERT INTO register_reads (meter_id, read_at, wh_total, batch_id)",
+                "INSERT INTO register_advances (meter_id, period_start, read_at, wh, batch_id)",
                 chunk.len(),
-                4,
+                5,
                 "ON CONFLICT DO NOTHING",
             );
             let mut q = sqlx::query(&sql).persistent(chunk.len() == INSERT_CHUNK);
             for (r, batch_id) in chunk {
-                // wh_total was checked to fit an i64 during validation.
-                q = q.bind(r.meter_id.as_str()).bind(r.read_at).bind(r.wh_total as i64).bind(*batch_id);
+                // wh was checked to fit an i64 during validation.
+                q = q.bind(r.meter_id.as_str()).bind(r.period_start).bind(r.read_at).bind(r.wh as i64).bind(*batch_id);
             }
             stored_registers += q.execute(&mut *tx).await?.rows_affected();
         }

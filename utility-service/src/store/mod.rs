@@ -381,7 +381,7 @@ impl Store {
             "SELECT f.feeder_id, f.name,
                     (SELECT COUNT(*) FROM meters m WHERE m.feeder_id = f.feeder_id),
                     (SELECT COUNT(*) FROM readings r JOIN meters m ON m.meter_id = r.meter_id WHERE m.feeder_id = f.feeder_id),
-                    (SELECT COUNT(*) FROM register_reads g JOIN meters m ON m.meter_id = g.meter_id WHERE m.feeder_id = f.feeder_id)
+                    (SELECT COUNT(*) FROM register_advances g JOIN meters m ON m.meter_id = g.meter_id WHERE m.feeder_id = f.feeder_id)
              FROM feeders f ORDER BY f.feeder_id",
         )
         .fetch_all(&self.pool)

@@ -6,6 +6,7 @@ use sqlx::Row;
 
 use super::Store;
 use crate::error::ApiError;
+use crate::settlement::Advance;
 
 #[derive(Debug, Clone, Serialize)]
 pub struct JobRecord {
@@ -217,22 +218,27 @@ impl Store {
             .collect()
     }
 
-    /// Register reads of a feeder's meters in [from, to] as (meter, read_at, wh_total).
+    /// Register advances of a feeder's meters whose periods lie within [from, to],
+    /// ordered by meter and time.
     pub async fn feeder_registers_between(
         &self,
         feeder: &FeederId,
         from: i64,
         to: i64,
-    ) -> Result<Vec<(String, i64, i64)>, ApiError> {
-        let rows: Vec<(String, i64, i64)> = sqlx::query_as(
-            "SELECT g.meter_id, g.read_at, g.wh_total FROM register_reads g JOIN meters m ON m.meter_id = g.meter_id
-             WHERE m.feeder_id = $1 AND g.read_at >= $2 AND g.read_at <= $3 ORDER BY g.meter_id, g.read_at",
+    ) -> Result<Vec<Advance>, ApiError> {
+        let rows: Vec<(String, i64, i64, i64)> = sqlx::query_as(
+            "SELECT g.meter_id, g.period_start, g.read_at, g.wh FROM register_advances g
+             JOIN meters m ON m.meter_id = g.meter_id
+             WHERE m.feeder_id = $1 AND g.period_start >= $2 AND g.read_at <= $3 ORDER BY g.meter_id, g.read_at",
         )
         .bind(feeder.as_str())
         .bind(from)
         .bind(to)
         .fetch_all(&self.pool)
         .await?;
-        Ok(rows)
+        Ok(rows
+            .into_iter()
+            .map(|(meter_id, period_start, read_at, wh)| Advance { meter_id, period_start, read_at, wh })
+            .collect())
     }
 }
