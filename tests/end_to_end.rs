@@ -334,6 +334,7 @@ async fn assert_rejected(t: &TestService, body: &Value, status: StatusCode, fiel
     assert!(resp["reason"].as_str().unwrap_or("").contains(reason_part), "{resp}");
     assert!(resp["message"].as_str().unwrap_or("").contains(field), "{resp}");
     assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 0, "nothing stored");
+    assert_eq!(t.count("SELECT COUNT(*) FROM register_advances").await, 0, "no register advance stored");
     assert_eq!(t.count("SELECT COUNT(*) FROM ingest_batches").await, 0, "no batch recorded");
 }
 
@@ -423,6 +424,20 @@ async fn bad_batches_are_refused_with_the_field_and_reason_and_store_nothing() {
         ),
         (batch("b", vec![]), StatusCode::UNPROCESSABLE_ENTITY, "readings", "empty"),
         (
+            json!({"batch_id": "b", "gateway_id": "gw-1", "feeder_id": "F1", "readings": [good_reading(ok)],
+                   "registers": [{"meter_id": "m1", "period_start": ok - ok.rem_euclid(86_400), "read_at": ok - ok.rem_euclid(86_400) - 86_400, "wh": 5000}]}),
+            StatusCode::UNPROCESSABLE_ENTITY,
+            "registers[0].read_at",
+            "runs backwards",
+        ),
+        (
+            json!({"batch_id": "b", "gateway_id": "gw-1", "feeder_id": "F1", "readings": [good_reading(ok)],
+                   "registers": [{"meter_id": "m1", "read_at": ok - ok.rem_euclid(86_400), "wh_total": 5000}]}),
+            StatusCode::BAD_REQUEST,
+            "registers[0].wh_total",
+            "unknown field",
+        ),
+        (
             json!({"batch_id": "b", "gateway_id": "gw 1", "feeder_id": "F1", "readings": [good_reading(ok)]}),
             StatusCode::UNPROCESSABLE_ENTITY,
             "gateway_id",
@@ -438,6 +453,15 @@ async fn bad_batches_are_refused_with_the_field_and_reason_and_store_nothing() {
     for (body, status, field, reason) in &cases {
         assert_rejected(&t, body, *status, field, reason).await;
     }
+    // A profile with an unknown register period is refused by field, and the
+    // feeder keeps its profile.
+    let bad = json!({"noise": "gaussian", "scale_kw": 0.3, "boundaries_kw": [1.0], "register_period": "hourly"});
+    let (st, body) = t.post_json("/v1/feeders/F1/profiles", &bad, true).await;
+    assert_eq!((st, body["field"].as_str()), (StatusCode::UNPROCESSABLE_ENTITY, Some("register_period")), "{body}");
+    let current: Value =
+        t.http.get(format!("{}/v1/feeders/F1/profile", t.url())).send().await.expect("get").json().await.expect("json");
+    assert_eq!((current["version"].as_u64(), current["profile"]["register_period"].as_str()), (Some(1), Some("daily")));
+    nothing_stored(&t).await;
     let (s, _) = t.post_batch(&batch("b", vec![good_reading(ok)])).await;
     assert_eq!(s, StatusCode::OK, "a good batch is still accepted afterwards");
     let m = t.http.get(format!("{}/metrics", t.url())).send().await.expect("metrics").text().await.expect("text");
@@ -1404,6 +1428,7 @@ async fn dashboard_pages_render_in_a_real_browser() {
 /// Nothing of a refused upload is stored: no reading, no batch, no sequence number.
 async fn nothing_stored(t: &TestService) {
     assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 0, "nothing stored");
+    assert_eq!(t.count("SELECT COUNT(*) FROM register_advances").await, 0, "no register advance stored");
     assert_eq!(t.count("SELECT COUNT(*) FROM ingest_batches").await, 0, "no batch recorded");
     assert_eq!(t.count("SELECT COUNT(*) FROM gateway_sequences").await, 0, "no sequence recorded");
 }

@@ -33,6 +33,7 @@ fn profiles() -> Vec<ProfileRecord> {
         boundaries_kw: vec![1.0, 2.0],
         interval_s: 900,
         send_registers: true,
+        register_period: None,
     })
     .expect("profile");
     vec![ProfileRecord {

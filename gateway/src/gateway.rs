@@ -51,6 +51,8 @@ impl std::fmt::Debug for GatewayKey {
 pub struct ActiveProfile {
     pub version: u32,
     pub profile: DitherProfile,
+    /// The feeder's time zone (weekly and monthly register periods).
+    pub tz: meterveil_shared::Tz,
 }
 
 impl TryFrom<&ProfileRecordWire> for ActiveProfile {
@@ -58,7 +60,10 @@ impl TryFrom<&ProfileRecordWire> for ActiveProfile {
     fn try_from(rec: &ProfileRecordWire) -> anyhow::Result<Self> {
         let profile = DitherProfile::try_from(rec.profile.clone())
             .map_err(|e| anyhow::anyhow!("service sent an invalid profile: {e}"))?;
-        Ok(Self { version: rec.version, profile })
+        let tz = rec.time_zone.parse().map_err(|_| {
+            anyhow::anyhow!("service sent time_zone {:?}, which is not an IANA time zone", rec.time_zone)
+        })?;
+        Ok(Self { version: rec.version, profile, tz })
     }
 }
 
@@ -158,7 +163,7 @@ impl Gateway {
         let mut stats = AcceptStats::default();
         for r in readings {
             let state = self.states.entry(r.meter_id.clone()).or_default();
-            let out = step(state, r, &active.profile, active.version, &mut self.rng);
+            let out = step(state, r, &active.profile, active.tz, active.version, &mut self.rng);
             match out.level {
                 Some(l) => {
                     levels.push(l);

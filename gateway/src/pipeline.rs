@@ -9,7 +9,7 @@
 //! missing. A crash costs at most one register read per meter, never a level.
 
 use meterveil_shared::mechanism::dither_and_quantize;
-use meterveil_shared::{DitherProfile, MeterId};
+use meterveil_shared::{DitherProfile, MeterId, Tz};
 use rand::Rng;
 
 use crate::source::RawReading;
@@ -59,17 +59,13 @@ pub struct Step {
     pub registers: Vec<RegisterOut>,
 }
 
-/// The register period holding instant `t`: [start, end). Today a UTC day.
-pub fn register_period(t: i64) -> (i64, i64) {
-    let start = t - t.rem_euclid(86_400);
-    (start, start + 86_400)
-}
-
-/// Dithers, quantizes and advances the meter's state by one reading.
+/// Dithers, quantizes and advances the meter's state by one reading. `tz` is
+/// the feeder's time zone, whose calendar weekly and monthly periods follow.
 pub fn step(
     state: &mut MeterState,
     reading: &RawReading,
     profile: &DitherProfile,
+    tz: Tz,
     version: u32,
     rng: &mut impl Rng,
 ) -> Step {
@@ -89,17 +85,17 @@ pub fn step(
         }),
         registers: Vec::new(),
     };
-    if !profile.send_registers() {
+    let period = |t: i64| profile.register_period().bounds(tz, t);
+    let Some((start, end)) = period(reading.interval_start) else {
         state.register = None;
         return out;
-    }
-    let (start, end) = register_period(reading.interval_start);
+    };
     let emit = |c: &PeriodCount, out: &mut Step| {
         if c.whole && c.readings > 0 {
             out.registers.push(RegisterOut {
                 meter_id: reading.meter_id.clone(),
                 period_start: c.period_start,
-                read_at: register_period(c.period_start).1,
+                read_at: period(c.period_start).map_or(c.period_start, |p| p.1),
                 // Whole milli-Wh per interval: at most 0.5 mWh rounding each, far
                 // below the 1 Wh resolution of the advance.
                 wh: (c.mwh + 500) / 1000,
@@ -138,6 +134,7 @@ mod tests {
             boundaries_kw: vec![1.0, 2.0],
             interval_s: 900,
             send_registers,
+            register_period: None,
         })
         .unwrap()
     }
@@ -153,9 +150,9 @@ mod tests {
         let p = profile(false);
         let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(1);
         let mut st = MeterState::default();
-        assert!(step(&mut st, &reading(DAY0, 1.0), &p, 1, &mut rng).level.is_some());
-        assert!(step(&mut st, &reading(DAY0, 1.0), &p, 1, &mut rng).level.is_none());
-        assert!(step(&mut st, &reading(DAY0 - 900, 1.0), &p, 1, &mut rng).level.is_none());
+        assert!(step(&mut st, &reading(DAY0, 1.0), &p, Tz::UTC, 1, &mut rng).level.is_some());
+        assert!(step(&mut st, &reading(DAY0, 1.0), &p, Tz::UTC, 1, &mut rng).level.is_none());
+        assert!(step(&mut st, &reading(DAY0 - 900, 1.0), &p, Tz::UTC, 1, &mut rng).level.is_none());
         assert!(st.register.is_none());
     }
 
@@ -174,7 +171,9 @@ mod tests {
                 }
                 let kw = 0.2 + 0.013 * ((i * 7 + d) % 17) as f64;
                 day_wh[d as usize] += kw * 250.0;
-                reads.extend(step(&mut st, &reading(DAY0 + d * 86_400 + i * 900, kw), &p, 1, &mut rng).registers);
+                reads.extend(
+                    step(&mut st, &reading(DAY0 + d * 86_400 + i * 900, kw), &p, Tz::UTC, 1, &mut rng).registers,
+                );
             }
         }
         let days: Vec<(i64, i64)> =
@@ -190,7 +189,7 @@ mod tests {
         let mut st = MeterState { last_interval_start: Some(DAY0 + 4 * 86_400 + 20 * 900), register: None };
         let mut after = Vec::new();
         for i in 21..96 + 96 {
-            after.extend(step(&mut st, &reading(DAY0 + 4 * 86_400 + i * 900, 1.0), &p, 1, &mut rng).registers);
+            after.extend(step(&mut st, &reading(DAY0 + 4 * 86_400 + i * 900, 1.0), &p, Tz::UTC, 1, &mut rng).registers);
         }
         assert_eq!(after.iter().map(|r| (r.period_start - DAY0) / 86_400).collect::<Vec<_>>(), vec![5]);
         assert_eq!(after[0].wh, 24_000);

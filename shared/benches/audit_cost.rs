@@ -44,6 +44,7 @@ fn main() {
         boundaries_kw: vec![1.0, 2.0],
         interval_s: 900,
         send_registers: false,
+        register_period: None,
     })
     .expect("profile");
     let feeder = Feeder { base: &x, profile: &p, layout, uploads: None };

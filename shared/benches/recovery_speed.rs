@@ -35,6 +35,7 @@ fn main() {
         boundaries_kw: vec![1.0, 2.0],
         interval_s: 900,
         send_registers: false,
+        register_period: None,
     })
     .expect("profile");
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(1);

@@ -478,6 +478,39 @@ pub fn day_sums(x: &DMatrix<f64>, rows: &[usize], layout: DayLayout) -> Vec<SumC
         .collect()
 }
 
+/// Exact register sums of rows `rows` of `x` over every whole register period
+/// of the profile inside the window: what gateways send and an eavesdropper
+/// captures (`tz` places weeks and months). Empty when the profile sends none.
+pub fn register_sums(
+    x: &DMatrix<f64>,
+    rows: &[usize],
+    layout: DayLayout,
+    profile: &DitherProfile,
+    tz: crate::Tz,
+) -> Vec<SumConstraint> {
+    let step = i64::from(layout.interval_s);
+    let (from, to) = (layout.window_start, layout.window_start + x.ncols() as i64 * step);
+    let mut periods = Vec::new();
+    let mut t = from;
+    while t < to {
+        let Some((s, e)) = profile.register_period().bounds(tz, t) else { return Vec::new() };
+        if s >= from && e <= to && (s - from) % step == 0 && (e - from) % step == 0 {
+            periods.push(((s - from) / step) as usize..((e - from) / step) as usize);
+        }
+        t = e.max(t + step);
+    }
+    rows.iter()
+        .enumerate()
+        .flat_map(|(r, &i)| {
+            periods.iter().map(move |p| SumConstraint {
+                row: r,
+                cols: p.clone(),
+                sum_kw: p.clone().map(|j| x[(i, j)]).sum(),
+            })
+        })
+        .collect()
+}
+
 /// Rows `rows` of a level matrix.
 pub fn select_rows(levels: &LevelMatrix, rows: &[usize], cols: std::ops::Range<usize>) -> LevelMatrix {
     let mut out = LevelMatrix::missing(rows.len(), cols.len());
@@ -620,6 +653,8 @@ pub struct AuditConfig {
     /// Other meters of the feeder, given events of their own, on which each
     /// strategy's threshold is tuned for the less flattering figure.
     pub tuning_meters: usize,
+    /// The feeder's time zone: weekly and monthly register periods follow it.
+    pub tz: crate::Tz,
 }
 
 /// The audit's default seed; calibrations use [`crate::calibrate::DEFAULT_SEED`].
@@ -636,6 +671,7 @@ impl Default for AuditConfig {
             curve_days: vec![7, 14, 21, 28],
             strategies: Strategy::ALL.to_vec(),
             tuning_meters: 2,
+            tz: crate::Tz::UTC,
         }
     }
 }
@@ -652,7 +688,10 @@ fn assumptions(profile: &DitherProfile) -> Vec<String> {
         "The strongest attacker's event F1 uses the best threshold of each strategy's grid: an attacker that knows the mechanism can tune it by simulation. The F1 at a threshold tuned on other simulated households is reported beside it.".to_owned(),
     ];
     if profile.send_registers() {
-        a.push("The profile sends daily register reads: the eavesdropper captures them too, so captured meters' daily energy is exact to it.".to_owned());
+        a.push(format!(
+            "The profile sends {} register reads: the eavesdropper captures them too, so each whole period's energy of the captured meters is exact to it.",
+            profile.register_period().as_str()
+        ));
     }
     a
 }
@@ -836,6 +875,7 @@ struct Simulated<'a> {
     utility: &'a DMatrix<f64>,
     profile: &'a DitherProfile,
     attacker: Attacker<'a>,
+    tz: crate::Tz,
 }
 
 fn curve_point(
@@ -844,13 +884,12 @@ fn curve_point(
     cols: std::ops::Range<usize>,
     layout: DayLayout,
 ) -> Result<CurvePoint, FieldError> {
-    let Simulated { draw, utility, profile, attacker } = sim;
+    let Simulated { draw, utility, profile, attacker, .. } = sim;
     let lc = select_rows(&draw.levels, rows, cols.clone());
     let xc = figures_on(&draw.truth, rows, cols.clone());
     let uc = figures_on(utility, rows, cols.clone());
     let ev = events_on(&draw.events, rows, cols.clone());
-    let cons =
-        if profile.send_registers() { day_sums(&xc, &(0..rows.len()).collect::<Vec<_>>(), layout) } else { Vec::new() };
+    let cons = register_sums(&xc, &(0..rows.len()).collect::<Vec<_>>(), layout, profile, sim.tz);
     let recs = attack(&lc, profile, &cons, layout, attacker)?;
     let figs = score(&recs, &xc, None, Some(&ev), attacker.mix, layout);
     let st = strongest(&figs);
@@ -875,6 +914,7 @@ fn tuned_thresholds(
     draw: &Draw,
     profile: &DitherProfile,
     layout: DayLayout,
+    tz: crate::Tz,
     who: &Attacker<'_>,
 ) -> Result<Vec<(&'static str, usize)>, FieldError> {
     if draw.tuning_rows.is_empty() || draw.tuning_events.is_empty() {
@@ -885,8 +925,7 @@ fn tuned_thresholds(
     let lt = select_rows(&draw.levels, rows, 0..n);
     let xt = figures_on(&draw.truth, rows, 0..n);
     let ev = events_on(&draw.tuning_events, rows, 0..n);
-    let cons =
-        if profile.send_registers() { day_sums(&xt, &(0..rows.len()).collect::<Vec<_>>(), layout) } else { Vec::new() };
+    let cons = register_sums(&xt, &(0..rows.len()).collect::<Vec<_>>(), layout, profile, tz);
     Ok(attack(&lt, profile, &cons, layout, who)?
         .iter()
         .map(|r| (r.strategy, best_index(&score_detector(&r.x, &r.detector, &ev, layout))))
@@ -909,7 +948,7 @@ pub fn bootstrap(
     let draw = simulate(feeder, captured, cfg)?;
     progress("utility recovery of the whole feeder", 0.05);
     let all: Vec<usize> = (0..m).collect();
-    let cons = if profile.send_registers() { day_sums(&draw.truth, &all, layout) } else { Vec::new() };
+    let cons = register_sums(&draw.truth, &all, layout, profile, cfg.tz);
     let up = RecoveryParams { rank: cfg.utility_rank.clone(), alpha_kw: cfg.alpha_kw, ..Default::default() }.check()?;
     let util = recover(&draw.levels, profile, &cons, layout, &up, &mut |_, _| {})?;
     progress("attackers on the captured meters", 0.4);
@@ -919,16 +958,12 @@ pub fn bootstrap(
     let xc = figures_on(&draw.truth, captured, full.clone());
     let uc = figures_on(&util.x, captured, full.clone());
     let ev = events_on(&draw.events, captured, full.clone());
-    let ccons = if profile.send_registers() {
-        day_sums(&xc, &(0..captured.len()).collect::<Vec<_>>(), layout)
-    } else {
-        Vec::new()
-    };
+    let ccons = register_sums(&xc, &(0..captured.len()).collect::<Vec<_>>(), layout, profile, cfg.tz);
     let recs = attack(&lc, profile, &ccons, layout, &who)?;
     let hc = figures_on(&draw.habit, captured, full.clone());
     let mut strategies = score(&recs, &xc, Some(&hc), Some(&ev), &cfg.events, layout);
     progress("thresholds tuned on other households", 0.55);
-    for (name, at) in tuned_thresholds(&draw, profile, layout, &who)? {
+    for (name, at) in tuned_thresholds(&draw, profile, layout, cfg.tz, &who)? {
         let Some(e) = strategies.iter_mut().find(|s| s.strategy == name).and_then(|s| s.events.as_mut()) else {
             continue;
         };
@@ -948,7 +983,7 @@ pub fn bootstrap(
         rank: util.diagnostics.rank,
     };
     progress("curves", 0.7);
-    let sim = Simulated { draw: &draw, utility: &util.x, profile, attacker: who };
+    let sim = Simulated { draw: &draw, utility: &util.x, profile, attacker: who, tz: cfg.tz };
     let mut counts: Vec<usize> = cfg.curve_captured.iter().copied().filter(|c| (1..=m).contains(c)).collect();
     counts.sort_unstable();
     counts.dedup();

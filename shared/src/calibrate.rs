@@ -21,11 +21,11 @@ use rand_distr::{Distribution, StandardNormal};
 use serde::{Deserialize, Serialize};
 
 use crate::audit::{
-    attack, best_index, day_sums, inject_events, levels_from_standard, median_daily_energy_error, nrmse,
+    attack, best_index, inject_events, levels_from_standard, median_daily_energy_error, nrmse, register_sums,
     score_detector, select_rows, standard_event_mix, Attacker, EventCounts, EventKind, InjectedEvent, Strategy,
 };
 use crate::error::FieldError;
-use crate::profile::{DitherProfile, DitherProfileSpec, NoiseFamily};
+use crate::profile::{DitherProfile, DitherProfileSpec, NoiseFamily, RegisterPeriod};
 use crate::recovery::outage::DayLayout;
 use crate::recovery::{recover, RankChoice, RecoveryParams};
 
@@ -66,6 +66,11 @@ pub struct CalibrationConfig {
     pub alpha_kw: f64,
     pub utility_rank: RankChoice,
     pub events: Vec<EventKind>,
+    /// Register periods searched with the scale and level set; empty: the
+    /// current profile's only.
+    pub register_periods: Vec<RegisterPeriod>,
+    /// The feeder's time zone (weekly and monthly periods).
+    pub tz: crate::Tz,
 }
 
 impl CalibrationConfig {
@@ -81,11 +86,16 @@ impl CalibrationConfig {
             alpha_kw: 15.0,
             utility_rank: RankChoice::Fixed(10),
             events: standard_event_mix(),
+            register_periods: Vec::new(),
+            tz: crate::Tz::UTC,
         }
     }
 
     pub fn check(&self, population: usize) -> Result<(), FieldError> {
         let t = &self.targets;
+        if self.register_periods.len() > RegisterPeriod::ALL.len() {
+            return Err(FieldError::new("register_periods", "names more periods than exist"));
+        }
         if !(t.event_f1_max > 0.0 && t.event_f1_max <= 1.0) {
             return Err(FieldError::new("event_f1_max", "must be in (0, 1]"));
         }
@@ -121,6 +131,7 @@ impl CalibrationConfig {
 /// One evaluated candidate.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct TradeoffPoint {
+    pub register_period: RegisterPeriod,
     pub levels: usize,
     pub boundaries_kw: Vec<f64>,
     pub scale_kw: f64,
@@ -156,6 +167,7 @@ pub struct Simulation {
     alpha: f64,
     rank: RankChoice,
     template: DitherProfileSpec,
+    tz: crate::Tz,
 }
 
 fn standard_draw(noise: NoiseFamily, rng: &mut impl rand::Rng) -> f64 {
@@ -207,6 +219,7 @@ impl Simulation {
             alpha: cfg.alpha_kw,
             rank: cfg.utility_rank.clone(),
             template: current.to_spec(),
+            tz: cfg.tz,
         }
     }
 
@@ -218,14 +231,26 @@ impl Simulation {
         })
     }
 
-    /// Scores one candidate: the utility recovers the whole feeder, every
-    /// attacker strategy runs on each captured set.
+    /// Scores one candidate with the current profile's register period.
     pub fn evaluate(&self, boundaries: &[f64], scale: f64) -> Result<TradeoffPoint, FieldError> {
-        let p = self.profile(boundaries, scale)?;
+        let period = self.profile(boundaries, scale)?.register_period();
+        self.evaluate_with(boundaries, scale, period)
+    }
+
+    /// Scores one candidate: the utility recovers the whole feeder, every
+    /// attacker strategy runs on each captured set, both with the register
+    /// sums of `period`.
+    pub fn evaluate_with(
+        &self,
+        boundaries: &[f64],
+        scale: f64,
+        period: RegisterPeriod,
+    ) -> Result<TradeoffPoint, FieldError> {
+        let p = self.profile(boundaries, scale)?.with_register_period(period);
         let levels = levels_from_standard(&self.truth, &p, &self.z);
         let m = self.truth.nrows();
         let all: Vec<usize> = (0..m).collect();
-        let cons = if p.send_registers() { day_sums(&self.truth, &all, self.layout) } else { Vec::new() };
+        let cons = register_sums(&self.truth, &all, self.layout, &p, self.tz);
         let up = RecoveryParams { rank: self.rank.clone(), alpha_kw: self.alpha, ..Default::default() }.check()?;
         let util = recover(&levels, &p, &cons, self.layout, &up, &mut |_, _| {})?;
         // Pooled counts per strategy and threshold.
@@ -234,7 +259,7 @@ impl Simulation {
             let lc = select_rows(&levels, set, 0..levels.cols());
             let xc = DMatrix::from_fn(set.len(), self.truth.ncols(), |r, j| self.truth[(set[r], j)]);
             let own: Vec<usize> = (0..set.len()).collect();
-            let cc = if p.send_registers() { day_sums(&xc, &own, self.layout) } else { Vec::new() };
+            let cc = register_sums(&xc, &own, self.layout, &p, self.tz);
             let who = Attacker { mix: &self.mix, strategies: &Strategy::ALL, alpha: self.alpha };
             for r in attack(&lc, &p, &cc, self.layout, &who)? {
                 let counts = score_detector(&r.x, &r.detector, ev, self.layout);
@@ -250,6 +275,7 @@ impl Simulation {
             .max_by(|a, b| a.1.total_cmp(&b.1))
             .unwrap_or(("none", 0.0));
         Ok(TradeoffPoint {
+            register_period: period,
             levels: p.levels(),
             boundaries_kw: boundaries.to_vec(),
             scale_kw: scale,
@@ -278,6 +304,7 @@ pub fn quantile_boundaries(readings: &[f64], quantiles: &[f64]) -> Vec<f64> {
 
 struct Gap<'a> {
     sim: &'a Simulation,
+    period: RegisterPeriod,
     boundaries: &'a [f64],
     aim: f64,
     seen: &'a RefCell<Vec<TradeoffPoint>>,
@@ -287,7 +314,10 @@ impl CostFunction for Gap<'_> {
     type Param = f64;
     type Output = f64;
     fn cost(&self, s: &f64) -> Result<f64, argmin::core::Error> {
-        let p = self.sim.evaluate(self.boundaries, *s).map_err(|e| argmin::core::Error::msg(e.to_string()))?;
+        let p = self
+            .sim
+            .evaluate_with(self.boundaries, *s, self.period)
+            .map_err(|e| argmin::core::Error::msg(e.to_string()))?;
         let gap = p.attacker_event_f1 - self.aim;
         self.seen.borrow_mut().push(p);
         Ok(gap)
@@ -315,14 +345,24 @@ pub fn calibrate(
     let (lo, hi) = cfg.scale_range_kw;
     let grid: Vec<f64> = (0..cfg.grid).map(|g| lo * (hi / lo).powf(g as f64 / (cfg.grid - 1) as f64)).collect();
     let aim = cfg.margin * cfg.targets.event_f1_max;
+    let mut periods = cfg.register_periods.clone();
+    if periods.is_empty() {
+        periods.push(current.register_period());
+    }
+    periods.dedup();
+    let candidates: Vec<(RegisterPeriod, &Vec<f64>)> =
+        periods.iter().flat_map(|p| sets.iter().map(move |b| (*p, b))).collect();
     let mut curve = Vec::new();
     let mut best_per_set: Vec<TradeoffPoint> = Vec::new();
-    let total = sets.len() as f64;
-    for (si, b) in sets.iter().enumerate() {
-        progress(&format!("level set {} of {}", si + 1, sets.len()), si as f64 / total);
+    let total = candidates.len() as f64;
+    for (si, &(period, b)) in candidates.iter().enumerate() {
+        progress(
+            &format!("{} register reads, level set {} of {}", period.as_str(), si % sets.len() + 1, sets.len()),
+            si as f64 / total,
+        );
         let seen = RefCell::new(Vec::new());
         for &s in &grid {
-            seen.borrow_mut().push(sim.evaluate(b, s)?);
+            seen.borrow_mut().push(sim.evaluate_with(b, s, period)?);
         }
         // The smallest grid scale from which the attacker's F1 stays at or under the aim.
         let first_ok = {
@@ -330,7 +370,7 @@ pub fn calibrate(
             (0..s.len()).find(|&g| s[g..].iter().all(|p| p.attacker_event_f1 <= aim))
         };
         if let Some(g) = first_ok.filter(|g| *g > 0) {
-            let gap = Gap { sim: &sim, boundaries: b, aim, seen: &seen };
+            let gap = Gap { sim: &sim, period, boundaries: b, aim, seen: &seen };
             let solver = BrentRoot::new(grid[g - 1], grid[g], 0.01 * grid[g]);
             // A failure inside the bracket leaves the grid's feasible point.
             let _ = Executor::new(gap, solver).configure(|s| s.max_iters(10)).run();
@@ -359,11 +399,12 @@ pub fn calibrate(
             p.clone(),
             true,
             format!(
-                "{} levels at σ {:.3} kW: the strongest attacker holding {} meter(s) detects events with F1 {:.2} \
+                "{} levels at σ {:.3} kW, {} register reads: the strongest attacker holding {} meter(s) detects events with F1 {:.2} \
                  (target ≤ {:.2}, searched at {:.2}); the utility's median daily-energy error is {:.1}% (target ≤ {:.1}%) \
                  and its interval nRMSE {:.2}",
                 p.levels,
                 p.scale_kw,
+                p.register_period.as_str(),
                 t.captured,
                 p.attacker_event_f1,
                 t.event_f1_max,
@@ -421,7 +462,7 @@ pub fn calibrate(
     let recommended = DitherProfileSpec {
         scale_kw: (chosen.scale_kw * 100.0).ceil() / 100.0,
         boundaries_kw: chosen.boundaries_kw.clone(),
-        ..current.to_spec()
+        ..current.with_register_period(chosen.register_period).to_spec()
     };
     Ok(Calibration {
         meets_targets: meets,

@@ -14,6 +14,8 @@ pub mod recovery;
 pub mod special;
 pub mod wire;
 
+/// IANA time zones, for register periods that follow a feeder's calendar.
+pub use chrono_tz::Tz;
 pub use domain::{BatchId, FeederId, GatewayId, IntervalLength, IntervalStart, MeterId, ProfileVersion};
 pub use error::FieldError;
-pub use profile::{DitherProfile, DitherProfileSpec, NoiseFamily};
+pub use profile::{DitherProfile, DitherProfileSpec, NoiseFamily, RegisterPeriod};

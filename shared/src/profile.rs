@@ -35,6 +35,75 @@ impl NoiseFamily {
     }
 }
 
+/// How often gateways send each meter's register advance: the exact energy of
+/// the intervals forwarded over one completed period.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum RegisterPeriod {
+    /// No register reads: the utility works from the levels alone.
+    None,
+    /// UTC days (the service's settlement days).
+    Daily,
+    /// Weeks from Monday 00:00 in the feeder's time zone.
+    Weekly,
+    /// Calendar months in the feeder's time zone, the usual billing period.
+    Monthly,
+}
+
+impl RegisterPeriod {
+    pub const ALL: [RegisterPeriod; 4] =
+        [RegisterPeriod::None, RegisterPeriod::Daily, RegisterPeriod::Weekly, RegisterPeriod::Monthly];
+
+    pub fn as_str(self) -> &'static str {
+        match self {
+            RegisterPeriod::None => "none",
+            RegisterPeriod::Daily => "daily",
+            RegisterPeriod::Weekly => "weekly",
+            RegisterPeriod::Monthly => "monthly",
+        }
+    }
+
+    pub fn parse(field: &str, raw: &str) -> Result<Self, FieldError> {
+        Self::ALL.into_iter().find(|p| p.as_str() == raw).ok_or_else(|| {
+            FieldError::new(field, format!("{raw:?} is not a register period; use none, daily, weekly or monthly"))
+        })
+    }
+
+    /// The period holding instant `t` (UTC epoch seconds) as [start, end), in the
+    /// time zone `tz` for weeks and months. `None` when no reads are sent.
+    pub fn bounds(self, tz: chrono_tz::Tz, t: i64) -> Option<(i64, i64)> {
+        use chrono::{Datelike, Duration, NaiveDate, TimeZone};
+        let local_midnight = |d: NaiveDate| -> Option<i64> {
+            // The first instant of the local date (a gap at midnight moves it later).
+            let naive = d.and_hms_opt(0, 0, 0)?;
+            (0..4).find_map(|h| tz.from_local_datetime(&(naive + Duration::hours(h))).earliest()).map(|x| x.timestamp())
+        };
+        let date = || tz.timestamp_opt(t, 0).single().map(|x| x.date_naive());
+        match self {
+            RegisterPeriod::None => None,
+            RegisterPeriod::Daily => {
+                let s = t - t.rem_euclid(86_400);
+                Some((s, s + 86_400))
+            }
+            RegisterPeriod::Weekly => {
+                let d = date()?;
+                let monday = d - Duration::days(i64::from(d.weekday().num_days_from_monday()));
+                Some((local_midnight(monday)?, local_midnight(monday + Duration::days(7))?))
+            }
+            RegisterPeriod::Monthly => {
+                let d = date()?;
+                let first = d.with_day(1)?;
+                let next = if first.month() == 12 {
+                    NaiveDate::from_ymd_opt(first.year() + 1, 1, 1)?
+                } else {
+                    NaiveDate::from_ymd_opt(first.year(), first.month() + 1, 1)?
+                };
+                Some((local_midnight(first)?, local_midnight(next)?))
+            }
+        }
+    }
+}
+
 /// Smallest and largest dither scale we accept, in kW. Below 1 W of dither the
 /// mechanism is plain quantization; above 100 kW no household reading survives.
 pub const MIN_SCALE_KW: f64 = 0.001;
@@ -54,9 +123,12 @@ pub struct DitherProfileSpec {
     pub boundaries_kw: Vec<f64>,
     #[serde(default = "default_interval_s")]
     pub interval_s: u32,
-    /// Whether gateways send one exact register read per meter and UTC day.
+    /// Whether gateways send register reads (daily, unless `register_period` says otherwise).
     #[serde(default)]
     pub send_registers: bool,
+    /// `none`, `daily`, `weekly` or `monthly`; given, it decides.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub register_period: Option<String>,
 }
 
 fn default_interval_s() -> u32 {
@@ -70,7 +142,7 @@ pub struct DitherProfile {
     scale_kw: f64,
     boundaries_kw: Vec<f64>,
     interval: IntervalLength,
-    send_registers: bool,
+    register_period: RegisterPeriod,
 }
 
 impl TryFrom<DitherProfileSpec> for DitherProfile {
@@ -106,13 +178,18 @@ impl TryFrom<DitherProfileSpec> for DitherProfile {
             }
         }
         let interval = IntervalLength::new(spec.interval_s)?;
-        Ok(Self {
-            noise,
-            scale_kw: spec.scale_kw,
-            boundaries_kw: spec.boundaries_kw,
-            interval,
-            send_registers: spec.send_registers,
-        })
+        let register_period = match spec.register_period.as_deref() {
+            Some(raw) => {
+                let p = RegisterPeriod::parse("register_period", raw)?;
+                if p == RegisterPeriod::None && spec.send_registers {
+                    return Err(FieldError::new("register_period", "is none while send_registers is true"));
+                }
+                p
+            }
+            None if spec.send_registers => RegisterPeriod::Daily,
+            None => RegisterPeriod::None,
+        };
+        Ok(Self { noise, scale_kw: spec.scale_kw, boundaries_kw: spec.boundaries_kw, interval, register_period })
     }
 }
 
@@ -136,7 +213,14 @@ impl DitherProfile {
         self.interval
     }
     pub fn send_registers(&self) -> bool {
-        self.send_registers
+        self.register_period != RegisterPeriod::None
+    }
+    pub fn register_period(&self) -> RegisterPeriod {
+        self.register_period
+    }
+    /// The same profile with another register period.
+    pub fn with_register_period(&self, register_period: RegisterPeriod) -> Self {
+        Self { register_period, ..self.clone() }
     }
 
     /// The wire/file form of this profile.
@@ -146,7 +230,8 @@ impl DitherProfile {
             scale_kw: self.scale_kw,
             boundaries_kw: self.boundaries_kw.clone(),
             interval_s: self.interval.seconds(),
-            send_registers: self.send_registers,
+            send_registers: self.send_registers(),
+            register_period: Some(self.register_period.as_str().to_owned()),
         }
     }
 
@@ -168,7 +253,10 @@ impl DitherProfile {
             self.levels(),
             b.join(", "),
             self.interval.seconds(),
-            if self.send_registers { ", daily register reads" } else { "" }
+            match self.register_period {
+                RegisterPeriod::None => String::new(),
+                p => format!(", {} register reads", p.as_str()),
+            }
         )
     }
 }
@@ -182,6 +270,7 @@ pub(crate) fn test_profile(noise: &str, scale_kw: f64, boundaries_kw: &[f64]) ->
         boundaries_kw: boundaries_kw.to_vec(),
         interval_s: 900,
         send_registers: false,
+        register_period: None,
     })
     .expect("valid test profile")
 }
@@ -197,6 +286,7 @@ mod tests {
             boundaries_kw: vec![1.0, 2.0],
             interval_s: 900,
             send_registers: true,
+            register_period: None,
         }
     }
 
@@ -222,6 +312,8 @@ mod tests {
             (DitherProfileSpec { boundaries_kw: vec![1.0, f64::INFINITY], ..spec() }, "boundaries_kw[1]"),
             (DitherProfileSpec { boundaries_kw: (0..64).map(f64::from).collect(), ..spec() }, "boundaries_kw"),
             (DitherProfileSpec { interval_s: 60, ..spec() }, "interval_s"),
+            (DitherProfileSpec { register_period: Some("hourly".into()), ..spec() }, "register_period"),
+            (DitherProfileSpec { register_period: Some("none".into()), ..spec() }, "register_period"),
         ];
         for (s, field) in cases {
             let e = DitherProfile::try_from(s).unwrap_err();
@@ -229,5 +321,24 @@ mod tests {
         }
         let e = DitherProfile::from_json(r#"{"noise":"gaussian","scale_kw":0.3}"#).unwrap_err();
         assert!(e.reason.contains("boundaries_kw"), "{e}");
+    }
+
+    #[test]
+    fn register_periods_follow_the_calendar_of_the_time_zone() {
+        let p = DitherProfile::from_json(
+            r#"{"noise":"gaussian","scale_kw":0.3,"boundaries_kw":[1],"register_period":"monthly"}"#,
+        )
+        .unwrap();
+        assert!(p.send_registers() && p.register_period() == RegisterPeriod::Monthly);
+        assert_eq!(DitherProfile::try_from(p.to_spec()).unwrap(), p);
+        let london: chrono_tz::Tz = "Europe/London".parse().unwrap();
+        // 2026-03-15 12:00 UTC: March starts 2026-03-01 00:00 GMT, April at 2026-03-31 23:00 UTC (BST).
+        let (s, e) = RegisterPeriod::Monthly.bounds(london, 1_773_576_000).unwrap();
+        assert_eq!((s, e), (1_772_323_200, 1_774_911_600));
+        // The week of Wednesday 2026-03-18 starts Monday 2026-03-16 00:00 GMT.
+        let (s, e) = RegisterPeriod::Weekly.bounds(london, 1_773_835_200).unwrap();
+        assert_eq!((s, e - s), (1_773_619_200, 7 * 86_400));
+        assert_eq!(RegisterPeriod::Daily.bounds(london, 1_773_835_200), Some((1_773_792_000, 1_773_878_400)));
+        assert_eq!(RegisterPeriod::None.bounds(london, 0), None);
     }
 }

@@ -61,6 +61,13 @@ pub struct ProfileRecordWire {
     /// UTC epoch seconds at which the service published this version.
     pub created_at: i64,
     pub profile: DitherProfileSpec,
+    /// The feeder's IANA time zone: weekly and monthly register periods follow its calendar.
+    #[serde(default = "utc")]
+    pub time_zone: String,
+}
+
+fn utc() -> String {
+    "UTC".into()
 }
 
 /// Error body of every 4xx/5xx answer: the field (path into the request) and reason.

@@ -84,6 +84,7 @@ fn weak_dither_reveals_events_of_one_meter_and_strong_dither_hides_them() {
         boundaries_kw: vec![0.5, 1.0, 1.5, 2.0, 3.0, 4.5, 6.5],
         interval_s: 900,
         send_registers: false,
+        register_period: None,
     })
     .unwrap();
     let strong = gaussian_profile(1.0, &[1.0, 2.0]);

@@ -33,6 +33,7 @@ fn mutual_information_and_epsilon_match_scipy() {
             boundaries_kw: c["bounds"].as_array().expect("bounds").iter().map(|b| b.as_f64().expect("b")).collect(),
             interval_s: 900,
             send_registers: false,
+            register_period: None,
         })
         .expect("profile");
         for (name, want) in c["mutual_information_bits"].as_object().expect("mi") {

@@ -18,6 +18,7 @@ fn profile(s: f64, b: &[f64]) -> DitherProfile {
         boundaries_kw: b.to_vec(),
         interval_s: 900,
         send_registers: false,
+        register_period: None,
     })
     .unwrap()
 }

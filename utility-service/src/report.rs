@@ -208,16 +208,17 @@ pub fn calibration_html(title: &str, c: &Calibration) -> String {
         c.recommended.scale_kw,
         c.recommended.boundaries_kw
     );
-    let mut sets: Vec<Vec<f64>> = Vec::new();
+    let mut sets: Vec<(meterveil_shared::RegisterPeriod, Vec<f64>)> = Vec::new();
     for p in &c.curve {
-        if !sets.contains(&p.boundaries_kw) {
-            sets.push(p.boundaries_kw.clone());
+        let key = (p.register_period, p.boundaries_kw.clone());
+        if !sets.contains(&key) {
+            sets.push(key);
         }
     }
     let mut series: Vec<(String, Vec<(f64, f64)>)> = Vec::new();
-    for b in &sets {
-        let pts: Vec<_> = c.curve.iter().filter(|p| &p.boundaries_kw == b).collect();
-        let name = format!("{} levels {:?}", b.len() + 1, b);
+    for (period, b) in &sets {
+        let pts: Vec<_> = c.curve.iter().filter(|p| &p.boundaries_kw == b && p.register_period == *period).collect();
+        let name = format!("{} reads, {} levels {:?}", period.as_str(), b.len() + 1, b);
         series.push((format!("{name}: attacker F1"), pts.iter().map(|p| (p.scale_kw, p.attacker_event_f1)).collect()));
         series.push((
             format!("{name}: utility energy error ×5"),
@@ -226,10 +227,11 @@ pub fn calibration_html(title: &str, c: &Calibration) -> String {
     }
     let refs: Vec<(&str, Vec<(f64, f64)>)> = series.iter().map(|(n, v)| (n.as_str(), v.clone())).collect();
     h += &line_chart("Trade-off against the dither scale", "scale (kW)", "F1 / 5 × energy error", &refs, 1.0);
-    h += "<table><tr><th>levels</th><th>scale kW</th><th>attacker F1</th><th>strategy</th><th>utility daily energy error</th></tr>";
+    h += "<table><tr><th>register reads</th><th>levels</th><th>scale kW</th><th>attacker F1</th><th>strategy</th><th>utility daily energy error</th></tr>";
     for p in &c.curve {
         h += &format!(
-            "<tr><td>{}</td><td>{:.3}</td><td>{:.3}</td><td>{}</td><td>{:.1}%</td></tr>",
+            "<tr><td>{}</td><td>{}</td><td>{:.3}</td><td>{:.3}</td><td>{}</td><td>{:.1}%</td></tr>",
+            p.register_period.as_str(),
             p.levels,
             p.scale_kw,
             p.attacker_event_f1,

@@ -83,6 +83,7 @@ pub fn starting_profiles() -> HashMap<&'static str, DitherProfileSpec> {
         boundaries_kw: b.to_vec(),
         interval_s: 900,
         send_registers: reg,
+        register_period: None,
     };
     HashMap::from([
         ("QM-CHAPEL-ROW", spec("gaussian", 0.3, &[1.0, 2.0], true)),

@@ -91,6 +91,7 @@ mod tests {
                 boundaries_kw: b,
                 interval_s: 900,
                 send_registers: false,
+                register_period: None,
             })
             .unwrap();
             let t = LikelihoodTable::new(&p, -0.5, 15.5);

@@ -22,6 +22,7 @@ pub fn gaussian_profile(scale_kw: f64, boundaries_kw: &[f64]) -> DitherProfile {
         boundaries_kw: boundaries_kw.to_vec(),
         interval_s: 900,
         send_registers: false,
+        register_period: None,
     })
     .expect("valid test profile")
 }

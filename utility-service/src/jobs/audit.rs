@@ -111,10 +111,13 @@ async fn audit_inner(s: &AppState, job_id: &str, req: &AuditRequest) -> anyhow::
             })
         })
         .collect();
+    let tz =
+        s.store.feeder_time_zone(&r.feeder).await?.and_then(|z| z.parse().ok()).unwrap_or(meterveil_shared::Tz::UTC);
     let cfg = AuditConfig {
         seed: req.seed,
         utility_rank: RankChoice::Fixed(r.rank),
         curve_captured: default_curve_counts(r.meters.len()),
+        tz,
         ..AuditConfig::default()
     };
     let report = super::run_reporting(s, JobTable::Analysis, job_id, move |progress| {
@@ -144,6 +147,7 @@ pub struct CalibrationRequest {
     pub targets: Targets,
     pub publish: bool,
     pub seed: u64,
+    pub register_periods: Vec<meterveil_shared::RegisterPeriod>,
 }
 
 pub async fn run_calibration(state: AppState, job_id: String, req: CalibrationRequest) {
@@ -156,9 +160,13 @@ pub async fn run_calibration(state: AppState, job_id: String, req: CalibrationRe
 async fn calibration_inner(s: &AppState, job_id: &str, req: &CalibrationRequest) -> anyhow::Result<()> {
     s.store.set_progress(JobTable::Analysis, job_id, 0.0, "loading the recovery", now_s()).await?;
     let r = load(s, &req.recovery_job).await?;
+    let tz =
+        s.store.feeder_time_zone(&r.feeder).await?.and_then(|z| z.parse().ok()).unwrap_or(meterveil_shared::Tz::UTC);
     let cfg = CalibrationConfig {
         seed: req.seed,
         utility_rank: RankChoice::Fixed(r.rank),
+        register_periods: req.register_periods.clone(),
+        tz,
         ..CalibrationConfig::new(req.targets.clone())
     };
     cfg.check(r.meters.len()).map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;

@@ -74,7 +74,13 @@ async fn execute(s: &AppState, c: Claimed) {
                     recovery_job: p["recovery_job"].as_str().unwrap_or_default().to_owned(),
                     targets,
                     publish: p["publish"].as_bool().unwrap_or(false),
-                    seed: p["seed"].as_u64().unwrap_or(5),
+                    seed: p["seed"].as_u64().unwrap_or(meterveil_shared::calibrate::DEFAULT_SEED),
+                    register_periods: p["register_periods"]
+                        .as_array()
+                        .into_iter()
+                        .flatten()
+                        .filter_map(|v| meterveil_shared::RegisterPeriod::parse("register_periods", v.as_str()?).ok())
+                        .collect(),
                 };
                 super::audit::run_calibration(s.clone(), id, req).await;
             }

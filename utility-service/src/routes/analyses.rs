@@ -155,6 +155,9 @@ struct CalibrationWire {
     publish: bool,
     #[serde(default)]
     seed: Option<u64>,
+    /// Register periods to search with the scale and level set (default: the current one).
+    #[serde(default)]
+    register_periods: Vec<String>,
 }
 
 fn one() -> usize {
@@ -177,9 +180,20 @@ async fn start_calibration(
     };
     let population = job.diagnostics.as_ref().and_then(|d| d["meters"].as_u64()).unwrap_or(0) as usize;
     CalibrationConfig::new(targets.clone()).check(population).map_err(ApiError::Invalid)?;
-    let seed = w.seed.unwrap_or(5);
+    let seed = w.seed.unwrap_or(meterveil_shared::calibrate::DEFAULT_SEED);
+    let periods: Vec<&str> = w
+        .register_periods
+        .iter()
+        .enumerate()
+        .map(|(i, p)| {
+            meterveil_shared::RegisterPeriod::parse(&format!("register_periods[{i}]"), p)
+                .map(|p| p.as_str())
+                .map_err(ApiError::Invalid)
+        })
+        .collect::<Result<_, _>>()?;
     let job_id = new_job_id("cal");
-    let params = json!({ "recovery_job": w.recovery_job, "targets": targets, "publish": w.publish, "seed": seed });
+    let params = json!({ "recovery_job": w.recovery_job, "targets": targets, "publish": w.publish, "seed": seed,
+                         "register_periods": periods });
     s.store.create_analysis(&job_id, "calibrate", Some(&job.feeder_id), &params, now_s()).await?;
     s.wake.notify_one();
     Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))

@@ -92,13 +92,18 @@ async fn current_profile(
     let rec = s.store.current_profile(&feeder).await?.ok_or_else(|| {
         ApiError::NotFound(FieldError::new("profile", format!("feeder {feeder} has no dither profile yet")))
     })?;
-    Ok(Json(rec.to_wire()))
+    Ok(Json(rec.to_wire(&zone(&s, &feeder).await?)))
+}
+
+async fn zone(s: &AppState, feeder: &FeederId) -> Result<String, ApiError> {
+    Ok(s.store.feeder_time_zone(feeder).await?.unwrap_or_else(|| "UTC".into()))
 }
 
 async fn list_profiles(State(s): State<AppState>, Path(feeder): Path<String>) -> Result<Json<Vec<Value>>, ApiError> {
     let feeder = known_feeder(&s, &feeder).await?;
     let recs = s.store.profiles(&feeder).await?;
-    Ok(Json(recs.iter().map(|r| json!({ "record": r.to_wire(), "in_use": r.in_use })).collect()))
+    let tz = zone(&s, &feeder).await?;
+    Ok(Json(recs.iter().map(|r| json!({ "record": r.to_wire(&tz), "in_use": r.in_use })).collect()))
 }
 
 async fn publish_profile(
@@ -111,7 +116,7 @@ async fn publish_profile(
     let profile = parse_profile(&body)?;
     let rec = s.store.publish_profile(&feeder, &profile, now_s()).await?;
     tracing::info!(feeder = %feeder, version = rec.version.0, profile = %profile.describe(), "profile published");
-    Ok((StatusCode::CREATED, Json(rec.to_wire())))
+    Ok((StatusCode::CREATED, Json(rec.to_wire(&zone(&s, &feeder).await?))))
 }
 
 async fn replace_profile(

@@ -105,7 +105,7 @@ impl Store {
         }
         for chunk in keys.feeders.chunks(IN_CHUNK) {
             let sql = format!(
-                "SELECT feeder_id, version, noise, scale_kw, boundaries_kw, interval_s, send_registers, created_at, in_use
+                "SELECT feeder_id, version, noise, scale_kw, boundaries_kw, interval_s, send_registers, register_period, created_at, in_use
                  FROM dither_profiles WHERE feeder_id IN ({}) ORDER BY feeder_id, version",
                 placeholders(1, chunk.len())
             );

@@ -93,12 +93,14 @@ pub struct ProfileRecord {
 }
 
 impl ProfileRecord {
-    pub fn to_wire(&self) -> meterveil_shared::wire::ProfileRecordWire {
+    /// The wire form, with the feeder's time zone (`time_zone`, IANA name).
+    pub fn to_wire(&self, time_zone: &str) -> meterveil_shared::wire::ProfileRecordWire {
         meterveil_shared::wire::ProfileRecordWire {
             feeder_id: self.feeder_id.to_string(),
             version: self.version.0,
             created_at: self.created_at,
             profile: self.profile.to_spec(),
+            time_zone: time_zone.to_owned(),
         }
     }
 }
@@ -291,7 +293,7 @@ impl Store {
     /// All versions of a feeder's profile, oldest first.
     pub async fn profiles(&self, feeder: &FeederId) -> Result<Vec<ProfileRecord>, ApiError> {
         let rows = sqlx::query(
-            "SELECT version, noise, scale_kw, boundaries_kw, interval_s, send_registers, created_at, in_use
+            "SELECT version, noise, scale_kw, boundaries_kw, interval_s, send_registers, register_period, created_at, in_use
              FROM dither_profiles WHERE feeder_id = $1 ORDER BY version",
         )
         .bind(feeder.as_str())
@@ -351,8 +353,8 @@ impl Store {
             ))),
             Some(false) => {
                 sqlx::query(
-                    "UPDATE dither_profiles SET noise = $1, scale_kw = $2, boundaries_kw = $3, interval_s = $4, send_registers = $5
-                     WHERE feeder_id = $6 AND version = $7 AND in_use = 0",
+                    "UPDATE dither_profiles SET noise = $1, scale_kw = $2, boundaries_kw = $3, interval_s = $4, send_registers = $5,
+                     register_period = $8 WHERE feeder_id = $6 AND version = $7 AND in_use = 0",
                 )
                 .bind(&spec.noise)
                 .bind(spec.scale_kw)
@@ -361,6 +363,7 @@ impl Store {
                 .bind(i64::from(spec.send_registers))
                 .bind(feeder.as_str())
                 .bind(i64::from(version.0))
+                .bind(spec.register_period.clone().unwrap_or_else(|| "none".into()))
                 .execute(&self.pool)
                 .await?;
                 Ok(())
@@ -390,8 +393,9 @@ impl Store {
         for r in rows {
             let feeder_id: String = r.try_get(0)?;
             let fid = FeederId::parse(&feeder_id).map_err(|e| anyhow::anyhow!("stored feeder id: {e}"))?;
+            let tz = self.feeder_time_zone(&fid).await?.unwrap_or_else(|| "UTC".into());
             out.push(FeederSummary {
-                current_profile: self.current_profile(&fid).await?.map(|p| p.to_wire()),
+                current_profile: self.current_profile(&fid).await?.map(|p| p.to_wire(&tz)),
                 feeder_id,
                 name: r.try_get(1)?,
                 meters: r.try_get(2)?,
@@ -454,6 +458,7 @@ fn profile_from_row(feeder: &FeederId, r: &AnyRow) -> Result<ProfileRecord, ApiE
         boundaries_kw: serde_json::from_str(&boundaries).map_err(anyhow::Error::from)?,
         interval_s: r.try_get::<i64, _>("interval_s")? as u32,
         send_registers: r.try_get::<i64, _>("send_registers")? != 0,
+        register_period: Some(r.try_get("register_period")?),
     };
     let profile = DitherProfile::try_from(spec).map_err(|e| anyhow::anyhow!("stored profile is invalid: {e}"))?;
     Ok(ProfileRecord {
@@ -489,8 +494,8 @@ pub(crate) async fn insert_profile(
             .await?;
     let spec = profile.to_spec();
     sqlx::query(
-        "INSERT INTO dither_profiles (feeder_id, version, noise, scale_kw, boundaries_kw, interval_s, send_registers, created_at)
-         VALUES ($1, $2, $3, $4, $5, $6, $7, $8)",
+        "INSERT INTO dither_profiles (feeder_id, version, noise, scale_kw, boundaries_kw, interval_s, send_registers, created_at, register_period)
+         VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9)",
     )
     .bind(feeder.as_str())
     .bind(next)
@@ -500,6 +505,7 @@ pub(crate) async fn insert_profile(
     .bind(i64::from(spec.interval_s))
     .bind(i64::from(spec.send_registers))
     .bind(now)
+    .bind(profile.register_period().as_str())
     .execute(&mut **tx)
     .await?;
     Ok(next)
