@@ -238,3 +238,60 @@ fn bdew_feeder_wide_outages_beat_the_vee_rule() {
     assert!(ours <= 0.9 * rule_plain, "{ours} vs {rule_plain}");
     assert!(ours <= 1.05 * rule, "{ours} vs {rule}");
 }
+
+/// Register reads at the period a feeder chooses: on 400 BDEW meters over
+/// February and March 2023 (feeder in Europe/London, so March ends at 23:00
+/// UTC on the 31st), monthly advances pin each meter-month to 1 Wh; the daily
+/// energy, which a monthly register does not fix, is reported beside daily
+/// reads and none.
+#[test]
+fn bdew_monthly_register_reads_fix_each_month_to_one_wh() {
+    use meterveil_shared::audit::register_sums;
+    use meterveil_shared::RegisterPeriod;
+    let v = python_json("bdew_profiles.py", &["2023", "2", "1", "59"]);
+    let mut shapes: Vec<(String, Vec<f64>)> = v["classes"]
+        .as_object()
+        .expect("classes")
+        .iter()
+        .map(|(k, vals)| (k.clone(), vals.as_array().expect("values").iter().map(|x| x.as_f64().unwrap()).collect()))
+        .collect();
+    shapes.sort_by(|a, b| a.0.cmp(&b.0));
+    let mut rng = ChaCha8Rng::seed_from_u64(31);
+    let (truth, _) = population(&shapes, 400, ALPHA, &mut rng);
+    let layout = DayLayout { window_start: 1_675_209_600, interval_s: 900 }; // 2023-02-01T00:00Z
+    let base = profile(&[1.0, 2.0]);
+    let levels = quantize(&truth, &base, 0.0, &mut rng);
+    let london: meterveil_shared::Tz = "Europe/London".parse().unwrap();
+    let all: Vec<usize> = (0..truth.nrows()).collect();
+    let mut energies = Vec::new();
+    for period in [RegisterPeriod::None, RegisterPeriod::Monthly, RegisterPeriod::Daily] {
+        let p = base.with_register_period(period);
+        // Whole Wh, as a register advances.
+        let cons: Vec<SumConstraint> = register_sums(&truth, &all, layout, &p, london)
+            .into_iter()
+            .map(|c| SumConstraint { sum_kw: (c.sum_kw * 250.0).floor() / 250.0, ..c })
+            .collect();
+        let rec = recover(&levels, &p, &cons, layout, &params(RankChoice::Fixed(RANK)), &mut |_, _| {}).unwrap();
+        let worst = cons
+            .iter()
+            .map(|c| (c.cols.clone().map(|j| rec.x[(c.row, j)] * 250.0).sum::<f64>() - c.sum_kw * 250.0).abs());
+        let worst = worst.fold(0.0, f64::max);
+        let energy = median_daily_energy_error(&rec.x, &truth, 96);
+        let spans: Vec<usize> = cons.iter().filter(|c| c.row == 0).map(|c| c.cols.len()).collect();
+        eprintln!(
+            "{} reads: {} constraints (meter 0's spans {spans:?} intervals), worst period error {worst:.2e} Wh, median daily energy error {:.2}%",
+            period.as_str(),
+            cons.len(),
+            100.0 * energy
+        );
+        if period == RegisterPeriod::Monthly {
+            // February (28 days) and March to 23:00 UTC on the 31st.
+            assert_eq!(spans, vec![28 * 96, 31 * 96 - 4]);
+        }
+        assert!(worst <= 1.0, "{}: {worst} Wh", period.as_str());
+        assert_eq!(rec.diagnostics.infeasible_constraints, 0);
+        energies.push(energy);
+    }
+    // A monthly register helps the daily energy less than a daily one does.
+    assert!(energies[2] < energies[1], "{energies:?}");
+}
