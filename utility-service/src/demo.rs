@@ -56,6 +56,8 @@ pub struct DemoSummary {
     pub recoveries: Vec<FeederRecovery>,
     pub clusters: Vec<TownCluster>,
     pub privacy: Option<PrivacyCheck>,
+    /// Per feeder, an audit of its first meter at the feeder's own register period.
+    pub feeder_audits: Vec<FeederAudit>,
     pub service_url: String,
     pub database: PathBuf,
     pub simulation: SimulationReport,
@@ -114,9 +116,23 @@ pub async fn run(opts: &DemoOptions) -> anyhow::Result<DemoSummary> {
         Some(r) => Some(privacy_check(&svc.url(), &token_for_jobs, r, &dir).await?),
         None => None,
     };
+    let mut feeder_audits = Vec::new();
+    for (r, f) in recoveries.iter().zip(&feeders) {
+        let period =
+            f.current_profile.as_ref().and_then(|p| p.profile.register_period.clone()).unwrap_or_else(|| "none".into());
+        eprintln!("demo: auditing {} at its own {period} register reads ...", r.feeder_id);
+        let (f1, energy) = light_audit(&svc.url(), &token_for_jobs, r, None).await?;
+        feeder_audits.push(FeederAudit {
+            feeder_id: r.feeder_id.clone(),
+            register_period: period,
+            event_f1: f1,
+            daily_energy_error: energy,
+        });
+    }
     let summary = DemoSummary {
         clusters,
         privacy,
+        feeder_audits,
         recoveries,
         service_url: svc.url(),
         database: db,
@@ -242,6 +258,38 @@ pub struct PrivacyCheck {
     pub audit: serde_json::Value,
     pub calibration: serde_json::Value,
     pub reports: Vec<PathBuf>,
+    /// The same audit as if the feeder sent each register period's reads.
+    pub by_period: Vec<FeederAudit>,
+}
+
+/// One audit's headline: the strongest attacker's event F1 for one captured
+/// meter, and the utility's median daily-energy error on it.
+#[derive(Debug, Clone)]
+pub struct FeederAudit {
+    pub feeder_id: String,
+    pub register_period: String,
+    pub event_f1: f64,
+    pub daily_energy_error: f64,
+}
+
+/// An audit of the recovery's first meter without curves, optionally as if the
+/// feeder sent another register period's reads.
+async fn light_audit(
+    base: &str,
+    token: &str,
+    rec: &FeederRecovery,
+    period: Option<&str>,
+) -> anyhow::Result<(f64, f64)> {
+    let mut body = serde_json::json!({ "recovery_job": rec.job_id, "captured": [rec.first_meter], "curves": false });
+    if let Some(p) = period {
+        body["register_period"] = p.into();
+    }
+    let a = run_job(base, token, "/v1/audits", body, "/v1/analyses").await?;
+    let r = &a["result"];
+    Ok((
+        r["strongest"]["event_f1"].as_f64().unwrap_or(f64::NAN),
+        r["utility"]["daily_energy_error"].as_f64().unwrap_or(f64::NAN),
+    ))
 }
 
 async fn privacy_check(
@@ -262,6 +310,17 @@ async fn privacy_check(
         "/v1/analyses",
     )
     .await?;
+    let mut by_period = Vec::new();
+    for p in ["none", "daily", "weekly", "monthly"] {
+        eprintln!("demo: auditing {} as if it sent {p} register reads ...", rec.feeder_id);
+        let (f1, energy) = light_audit(base, token, rec, Some(p)).await?;
+        by_period.push(FeederAudit {
+            feeder_id: rec.feeder_id.clone(),
+            register_period: p.into(),
+            event_f1: f1,
+            daily_energy_error: energy,
+        });
+    }
     eprintln!("demo: calibrating the dither of {} ...", rec.feeder_id);
     let body = serde_json::json!({
         "recovery_job": rec.job_id, "event_f1_max": 0.3, "captured": 1, "daily_energy_error_max": 0.1,
@@ -289,6 +348,7 @@ async fn privacy_check(
         audit: audit["result"].clone(),
         calibration: calibration["result"].clone(),
         reports,
+        by_period,
     })
 }
 
@@ -430,6 +490,23 @@ pub fn render(s: &DemoSummary) -> String {
     if let Some(p) = &s.privacy {
         render_privacy(&mut o, p);
     }
+    if !s.feeder_audits.is_empty() {
+        let _ = writeln!(
+            o,
+            "\n  Each feeder at its own register period (one captured meter, the strongest attacker's event F1\n  and the utility's median daily-energy error on that meter):"
+        );
+        let _ = writeln!(o, "  {:<16} {:<15} {:>9} {:>11}", "feeder", "register reads", "event F1", "day energy");
+        for a in &s.feeder_audits {
+            let _ = writeln!(
+                o,
+                "  {:<16} {:<15} {:>9.2} {:>10.1}%",
+                a.feeder_id,
+                a.register_period,
+                a.event_f1,
+                100.0 * a.daily_energy_error
+            );
+        }
+    }
     let _ = writeln!(o, "\n  database: {}", s.database.display());
     let _ = writeln!(
         o,
@@ -505,6 +582,16 @@ fn render_privacy(o: &mut String, p: &PrivacyCheck) {
         .map(|c| format!("{} meters F1 {:.2}", c["captured"], f(&c["strongest_event_f1"])))
         .collect();
     let _ = writeln!(o, "  more captured meters: {}", curve.join(", "));
+    let _ = writeln!(o, "  the same audit as if {} sent other register reads (what-ifs, without curves):", p.feeder_id);
+    for a in &p.by_period {
+        let _ = writeln!(
+            o,
+            "    {:<8} register reads: event F1 {:.2}, utility day-energy error {:.1}%",
+            a.register_period,
+            a.event_f1,
+            100.0 * a.daily_energy_error
+        );
+    }
     let c = &p.calibration;
     let _ = writeln!(
         o,

@@ -24,14 +24,18 @@ pub struct DailyEnergy {
     pub day_start: i64,
     /// ISO 8601 date of that UTC day.
     pub day: String,
-    /// Settled energy: the register advance where both midnight reads exist,
-    /// otherwise the sum of the recovered intervals.
+    /// Settled energy: the day's register advance where one exists (daily
+    /// reads), otherwise the sum of the recovered intervals (which, under
+    /// weekly or monthly reads, sum to the period's advance).
     pub energy_wh: f64,
     /// One standard deviation of `energy_wh`: 0 for a register advance, else the
     /// intervals' bands combined as independent (an understatement: interval
     /// errors of one meter-day are correlated).
     pub uncertainty_wh: f64,
     pub source: &'static str,
+    /// ESPI QualityOfReading of `energy_wh`: 0 (valid, a register advance) or
+    /// 11 (derived, from the recovery).
+    pub quality: u16,
     pub recovered_wh: f64,
     pub register_wh: Option<i64>,
     pub intervals: usize,
@@ -91,6 +95,7 @@ pub fn daily(rows: &[RecoveredRow], reads: &[Advance], interval_s: u32) -> Vec<D
                 energy_wh: reg.map_or(recovered, |w| w as f64),
                 uncertainty_wh: if reg.is_some() { 0.0 } else { var.sqrt() },
                 source: if reg.is_some() { "register" } else { "recovered" },
+                quality: if reg.is_some() { 0 } else { 11 },
                 recovered_wh: recovered,
                 register_wh: reg,
                 intervals: v.len(),
@@ -105,18 +110,19 @@ pub fn daily(rows: &[RecoveredRow], reads: &[Advance], interval_s: u32) -> Vec<D
 
 pub fn daily_csv(days: &[DailyEnergy]) -> String {
     let mut out = String::from(
-        "meter_id,day_start,day,energy_wh,uncertainty_wh,source,recovered_wh,register_wh,intervals,derived,estimated,corrected\n",
+        "meter_id,day_start,day,energy_wh,uncertainty_wh,source,quality,recovered_wh,register_wh,intervals,derived,estimated,corrected\n",
     );
     for d in days {
         let _ = writeln!(
             out,
-            "{},{},{},{:.1},{:.1},{},{:.1},{},{},{},{},{}",
+            "{},{},{},{:.1},{:.1},{},{},{:.1},{},{},{},{},{}",
             d.meter_id,
             d.day_start,
             d.day,
             d.energy_wh,
             d.uncertainty_wh,
             d.source,
+            d.quality,
             d.recovered_wh,
             d.register_wh.map(|w| w.to_string()).unwrap_or_default(),
             d.intervals,
@@ -293,9 +299,9 @@ mod tests {
         let reads = vec![adv(day, day + 86_400, 12_345), adv(day, day + 2 * 86_400, 24_000)];
         let d = daily(&r, &reads, 900);
         assert_eq!(d.len(), 2);
-        assert_eq!((d[0].energy_wh, d[0].source, d[0].uncertainty_wh), (12_345.0, "register", 0.0));
+        assert_eq!((d[0].energy_wh, d[0].source, d[0].uncertainty_wh, d[0].quality), (12_345.0, "register", 0.0, 0));
         assert!((d[0].recovered_wh - 12_000.0).abs() < 1e-9);
-        assert_eq!((d[1].source, d[1].energy_wh), ("recovered", 12_000.0));
+        assert_eq!((d[1].source, d[1].energy_wh, d[1].quality), ("recovered", 12_000.0, 11));
         assert!(d[1].uncertainty_wh > 0.0);
         assert_eq!(d[0].derived, 96);
     }

@@ -77,19 +77,19 @@ pub struct SimulationReport {
 /// The dither profile each Quillmarsh feeder starts with. Household feeders use
 /// three or four levels; the rural feeder, with farms' milking loads, wider steps.
 pub fn starting_profiles() -> HashMap<&'static str, DitherProfileSpec> {
-    let spec = |noise: &str, scale: f64, b: &[f64], reg: bool| DitherProfileSpec {
+    let spec = |noise: &str, scale: f64, b: &[f64], period: &str| DitherProfileSpec {
         noise: noise.into(),
         scale_kw: scale,
         boundaries_kw: b.to_vec(),
         interval_s: 900,
-        send_registers: reg,
-        register_period: None,
+        send_registers: period != "none",
+        register_period: Some(period.into()),
     };
     HashMap::from([
-        ("QM-CHAPEL-ROW", spec("gaussian", 0.3, &[1.0, 2.0], true)),
-        ("QM-MILLPOND", spec("gaussian", 0.3, &[0.5, 1.5, 3.0], true)),
-        ("QM-FERRY-LANE", spec("logistic", 0.25, &[1.0, 2.0, 4.0], false)),
-        ("QM-UPPER-FIELDS", spec("gaussian", 0.6, &[1.0, 3.0, 6.0], true)),
+        ("QM-CHAPEL-ROW", spec("gaussian", 0.3, &[1.0, 2.0], "daily")),
+        ("QM-MILLPOND", spec("gaussian", 0.3, &[0.5, 1.5, 3.0], "monthly")),
+        ("QM-FERRY-LANE", spec("logistic", 0.25, &[1.0, 2.0, 4.0], "none")),
+        ("QM-UPPER-FIELDS", spec("gaussian", 0.6, &[1.0, 3.0, 6.0], "weekly")),
     ])
 }
 

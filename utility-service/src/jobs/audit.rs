@@ -70,6 +70,11 @@ pub struct AuditRequest {
     pub recovery_job: String,
     pub captured: Vec<String>,
     pub seed: u64,
+    /// Audit as if the feeder sent register reads of this period (a what-if);
+    /// `None`: the period of the profile the readings were made with.
+    pub register_period: Option<meterveil_shared::RegisterPeriod>,
+    /// Whether to draw the curves over captured meters and days of history.
+    pub curves: bool,
 }
 
 pub async fn run_audit(state: AppState, job_id: String, req: AuditRequest) {
@@ -116,13 +121,15 @@ async fn audit_inner(s: &AppState, job_id: &str, req: &AuditRequest) -> anyhow::
     let cfg = AuditConfig {
         seed: req.seed,
         utility_rank: RankChoice::Fixed(r.rank),
-        curve_captured: default_curve_counts(r.meters.len()),
+        curve_captured: if req.curves { default_curve_counts(r.meters.len()) } else { Vec::new() },
+        curve_days: if req.curves { AuditConfig::default().curve_days } else { Vec::new() },
         tz,
         ..AuditConfig::default()
     };
+    let profile = req.register_period.map_or_else(|| r.profile.clone(), |p| r.profile.with_register_period(p));
     let report = super::run_reporting(s, JobTable::Analysis, job_id, move |progress| {
         let lc = select_rows(&levels, &captured, 0..cols);
-        let feeder = Feeder { base: &r.x, profile: &r.profile, layout: r.layout, uploads: Some(&lc) };
+        let feeder = Feeder { base: &r.x, profile: &profile, layout: r.layout, uploads: Some(&lc) };
         let mut out =
             bootstrap(&feeder, &captured, &cfg, progress).map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
         let uc = DMatrix::from_fn(captured.len(), cols, |p, j| r.x[(captured[p], j)]);

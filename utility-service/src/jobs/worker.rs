@@ -64,7 +64,11 @@ async fn execute(s: &AppState, c: Claimed) {
             let req = super::audit::AuditRequest {
                 recovery_job: p["recovery_job"].as_str().unwrap_or_default().to_owned(),
                 captured: strings(&p["captured"]),
-                seed: p["seed"].as_u64().unwrap_or(11),
+                seed: p["seed"].as_u64().unwrap_or(meterveil_shared::audit::DEFAULT_SEED),
+                register_period: p["register_period"]
+                    .as_str()
+                    .and_then(|v| meterveil_shared::RegisterPeriod::parse("register_period", v).ok()),
+                curves: p["curves"].as_bool().unwrap_or(true),
             };
             super::audit::run_audit(s.clone(), id, req).await;
         }

@@ -110,6 +110,15 @@ struct AuditWire {
     captured: Vec<String>,
     #[serde(default)]
     seed: Option<u64>,
+    /// Audit as if the feeder sent register reads of this period.
+    #[serde(default)]
+    register_period: Option<String>,
+    #[serde(default = "yes")]
+    curves: bool,
+}
+
+fn yes() -> bool {
+    true
 }
 
 async fn start_audit(
@@ -133,9 +142,16 @@ async fn start_audit(
             return Err(ApiError::invalid("captured", format!("meter {m} is named twice")));
         }
     }
-    let seed = w.seed.unwrap_or(11);
+    let seed = w.seed.unwrap_or(meterveil_shared::audit::DEFAULT_SEED);
+    let period = w
+        .register_period
+        .as_deref()
+        .map(|p| meterveil_shared::RegisterPeriod::parse("register_period", p).map(|p| p.as_str()))
+        .transpose()
+        .map_err(ApiError::Invalid)?;
     let job_id = new_job_id("aud");
-    let params = json!({ "recovery_job": w.recovery_job, "captured": w.captured, "seed": seed });
+    let params = json!({ "recovery_job": w.recovery_job, "captured": w.captured, "seed": seed,
+                         "register_period": period, "curves": w.curves });
     s.store.create_analysis(&job_id, "audit", Some(&job.feeder_id), &params, now_s()).await?;
     s.wake.notify_one();
     Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
