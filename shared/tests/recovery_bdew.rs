@@ -264,7 +264,7 @@ fn bdew_monthly_register_reads_fix_each_month_to_one_wh() {
     let london: meterveil_shared::Tz = "Europe/London".parse().unwrap();
     let all: Vec<usize> = (0..truth.nrows()).collect();
     let mut energies = Vec::new();
-    for period in [RegisterPeriod::None, RegisterPeriod::Monthly, RegisterPeriod::Daily] {
+    for period in [RegisterPeriod::None, RegisterPeriod::Monthly, RegisterPeriod::Daily, RegisterPeriod::Weekly] {
         let p = base.with_register_period(period);
         // Whole Wh, as a register advances.
         let cons: Vec<SumConstraint> = register_sums(&truth, &all, layout, &p, london)
