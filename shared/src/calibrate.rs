@@ -474,3 +474,41 @@ pub fn calibrate(
         curve,
     })
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn register_periods_are_searched_beside_scale_and_levels() {
+        // 60 small households × 8 days with a morning and an evening bump.
+        let layout = DayLayout { window_start: 1_672_531_200, interval_s: 900 }; // 2023-01-01, a Sunday
+        let base = DMatrix::from_fn(60, 96 * 8, |i, j| {
+            let h = (j % 96) as f64 / 4.0;
+            let bump = |c: f64| (-(h - c) * (h - c) / 2.0).exp();
+            0.2 + 0.05 * (i % 7) as f64 + bump(7.5) + 1.5 * bump(19.0)
+        });
+        let current = crate::profile::test_profile("gaussian", 0.3, &[1.0, 2.0]);
+        let targets = Targets { event_f1_max: 0.9, captured: 1, daily_energy_error_max: 0.5, profile_nrmse_max: None };
+        let cfg = CalibrationConfig {
+            grid: 2,
+            sets: 2,
+            level_sets: vec![vec![1.0, 2.0]],
+            register_periods: vec![RegisterPeriod::None, RegisterPeriod::Daily, RegisterPeriod::Weekly],
+            utility_rank: RankChoice::Fixed(3),
+            ..CalibrationConfig::new(targets)
+        };
+        let c = calibrate(&base, &current, layout, &cfg, &mut |_, _| {}).unwrap();
+        let periods: Vec<RegisterPeriod> = c.curve.iter().map(|p| p.register_period).collect();
+        for p in [RegisterPeriod::None, RegisterPeriod::Daily, RegisterPeriod::Weekly] {
+            assert!(periods.contains(&p), "{p:?} not searched: {periods:?}");
+        }
+        // Daily reads pin each day's energy: the utility's daily error vanishes there.
+        let daily = c.curve.iter().filter(|p| p.register_period == RegisterPeriod::Daily);
+        assert!(daily.clone().count() >= 2 && daily.clone().all(|p| p.utility_daily_energy_error < 1e-6));
+        let none = c.curve.iter().find(|p| p.register_period == RegisterPeriod::None).unwrap();
+        assert!(none.utility_daily_energy_error > 1e-3);
+        // The recommendation carries the period it was found with.
+        assert_eq!(DitherProfile::try_from(c.recommended.clone()).unwrap().register_period(), c.chosen.register_period);
+    }
+}
