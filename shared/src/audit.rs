@@ -463,16 +463,15 @@ pub fn levels_from_standard(x: &DMatrix<f64>, profile: &DitherProfile, z: &DMatr
     l
 }
 
-/// Exact day sums of rows of `x` over the window's whole days (register reads).
-pub fn day_sums(x: &DMatrix<f64>, rows: &[usize], layout: DayLayout) -> Vec<SumConstraint> {
-    let days = whole_days(layout, x.ncols());
+/// For each of `rows` (re-indexed by position) and each column range, the exact sum of `x`.
+fn sums_over(x: &DMatrix<f64>, rows: &[usize], periods: &[std::ops::Range<usize>]) -> Vec<SumConstraint> {
     rows.iter()
         .enumerate()
         .flat_map(|(r, &i)| {
-            days.iter().map(move |d| SumConstraint {
+            periods.iter().map(move |p| SumConstraint {
                 row: r,
-                cols: d.clone(),
-                sum_kw: d.clone().map(|j| x[(i, j)]).sum(),
+                cols: p.clone(),
+                sum_kw: p.clone().map(|j| x[(i, j)]).sum(),
             })
         })
         .collect()
@@ -499,16 +498,7 @@ pub fn register_sums(
         }
         t = e.max(t + step);
     }
-    rows.iter()
-        .enumerate()
-        .flat_map(|(r, &i)| {
-            periods.iter().map(move |p| SumConstraint {
-                row: r,
-                cols: p.clone(),
-                sum_kw: p.clone().map(|j| x[(i, j)]).sum(),
-            })
-        })
-        .collect()
+    sums_over(x, rows, &periods)
 }
 
 /// Rows `rows` of a level matrix.

@@ -449,7 +449,7 @@ pub fn render(s: &DemoSummary) -> String {
     let _ = writeln!(
         o,
         "  {:<16} {:>4} {:>5} {:>7} {:>9} {:>13} {:>7} {:>14}",
-        "feeder", "rank", "iters", "time s", "corrected", "register days", "nRMSE", "day energy err"
+        "feeder", "rank", "iters", "time s", "corrected", "reg. periods", "nRMSE", "day energy err"
     );
     for r in &s.recoveries {
         let _ = writeln!(
