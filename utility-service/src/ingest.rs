@@ -202,13 +202,12 @@ pub fn validate(
                 format!("{} is not after period_start {}: the advance runs backwards", g.read_at, g.period_start),
             ));
         }
-        if g.read_at - g.period_start > MAX_REGISTER_SPAN_S {
+        // Saturating: period_start is unchecked input and may be any i64.
+        let span = g.read_at.saturating_sub(g.period_start);
+        if span > MAX_REGISTER_SPAN_S {
             return Err(ApiError::invalid(
                 at("period_start"),
-                format!(
-                    "spans {} s to read_at; a register period is at most {MAX_REGISTER_SPAN_S} s",
-                    g.read_at - g.period_start
-                ),
+                format!("spans {span} s to read_at; a register period is at most {MAX_REGISTER_SPAN_S} s"),
             ));
         }
         let step = ctx.profiles.iter().map(|p| i64::from(p.profile.interval().seconds())).max().unwrap_or(900);
