@@ -332,9 +332,9 @@ mod tests {
         assert!(p.send_registers() && p.register_period() == RegisterPeriod::Monthly);
         assert_eq!(DitherProfile::try_from(p.to_spec()).unwrap(), p);
         let london: chrono_tz::Tz = "Europe/London".parse().unwrap();
-        // 2026-03-15 12:00 UTC: March starts 2026-03-01 00:00 GMT, April at 2026-03-31 23:00 UTC (BST).
+        // 2026-03-15 12:00 UTC: March starts 2026-03-01 00:00 GMT; April starts 00:00 BST, 2026-03-31 23:00 UTC.
         let (s, e) = RegisterPeriod::Monthly.bounds(london, 1_773_576_000).unwrap();
-        assert_eq!((s, e), (1_772_323_200, 1_774_911_600));
+        assert_eq!((s, e), (1_772_323_200, 1_774_998_000));
         // The week of Wednesday 2026-03-18 starts Monday 2026-03-16 00:00 GMT.
         let (s, e) = RegisterPeriod::Weekly.bounds(london, 1_773_835_200).unwrap();
         assert_eq!((s, e - s), (1_773_619_200, 7 * 86_400));
