@@ -196,7 +196,7 @@ struct Row {
 }
 
 fn with_registers(p: &DitherProfile) -> DitherProfile {
-    DitherProfile::try_from(meterveil_shared::DitherProfileSpec { send_registers: true, ..p.to_spec() }).unwrap()
+    p.with_register_period(meterveil_shared::RegisterPeriod::Daily)
 }
 
 /// The audit's reported figures that a strategy can be strongest on, each as
