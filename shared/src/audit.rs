@@ -310,15 +310,13 @@ pub fn attack(
             Detector::Statistic { stat, grid: &level_runs::RUN_GRID, unit: "consecutive top-level readings" },
         );
     }
-    if wants(Strategy::EventPosterior) {
-        let (prob, load) = event_posterior::posterior_events(levels, profile, layout, mix, alpha);
-        let det = Detector::Statistic { stat: prob, grid: &PROBABILITY_GRID, unit: "probability of an event" };
-        push(Strategy::EventPosterior, load, det);
-    }
-    if wants(Strategy::TemplateGlr) {
-        let (stat, load) = event_posterior::template_glr(levels, profile, layout, mix, alpha);
-        let det = Detector::Statistic { stat, grid: &LLR_GRID, unit: "log-likelihood ratio (nats)" };
-        push(Strategy::TemplateGlr, load, det);
+    if wants(Strategy::EventPosterior) || wants(Strategy::TemplateGlr) {
+        // One habit and one pass over each event kind's starts serve both.
+        let w = event_posterior::whole_event(levels, profile, layout, mix, alpha);
+        let det = Detector::Statistic { stat: w.probability, grid: &PROBABILITY_GRID, unit: "probability of an event" };
+        push(Strategy::EventPosterior, w.posterior_load, det);
+        let det = Detector::Statistic { stat: w.glr, grid: &LLR_GRID, unit: "log-likelihood ratio (nats)" };
+        push(Strategy::TemplateGlr, w.glr_load, det);
     }
     let quiet = &mut |_: &str, _: f64| {};
     if wants(Strategy::CapturedLowRank) {

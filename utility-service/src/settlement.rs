@@ -34,7 +34,8 @@ pub struct DailyEnergy {
     pub uncertainty_wh: f64,
     pub source: &'static str,
     /// ESPI QualityOfReading of `energy_wh`: 0 (valid, a register advance) or
-    /// 11 (derived, from the recovery).
+    /// 11 (derived, from the recovery); the code values are from memory of the
+    /// NAESB REQ.21 QualityOfReading list, as in `espi_quality`.
     pub quality: u16,
     pub recovered_wh: f64,
     pub register_wh: Option<i64>,

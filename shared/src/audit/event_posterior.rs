@@ -87,15 +87,28 @@ pub fn slot_habit(
         .collect()
 }
 
-/// One meter's habit (kW per interval) and the log-likelihood of each of its
-/// readings under it (0 where a reading is missing).
-struct MeterHabit {
+/// One captured meter as the attacker sees it: its levels, the mechanism, its
+/// habit (kW per interval) and the log-likelihood of each reading under the
+/// habit (0 where a reading is missing).
+struct Meter<'a> {
+    levels: &'a LevelMatrix,
+    row: usize,
+    profile: &'a DitherProfile,
+    layout: DayLayout,
+    alpha: f64,
     habit: Vec<f64>,
     base: Vec<f64>,
 }
 
-impl MeterHabit {
-    fn new(levels: &LevelMatrix, row: usize, profile: &DitherProfile, layout: DayLayout, alpha: f64) -> Self {
+/// The allowed starts of one event kind, day by day, with their log-likelihood ratios.
+struct KindStarts {
+    len: usize,
+    allowed: usize,
+    days: Vec<(Vec<usize>, Vec<f64>)>,
+}
+
+impl<'a> Meter<'a> {
+    fn new(levels: &'a LevelMatrix, row: usize, profile: &'a DitherProfile, layout: DayLayout, alpha: f64) -> Self {
         let per_day = layout.per_day();
         let phase = layout.phase() % per_day;
         let slots = slot_habit(levels, row, profile, layout, alpha);
@@ -103,35 +116,27 @@ impl MeterHabit {
         let base = (0..levels.cols())
             .map(|j| levels.get(row, j).map_or(0.0, |l| log_likelihood(profile, l, habit[j]).0))
             .collect();
-        Self { habit, base }
+        Self { levels, row, profile, layout, alpha, habit, base }
     }
 
     /// For each whole day, the allowed starts of an event of kind `e` and the
     /// log-likelihood ratio of the observed levels for each (event of power P
     /// over L intervals from that start, against the habit alone).
-    fn start_llrs(
-        &self,
-        levels: &LevelMatrix,
-        row: usize,
-        profile: &DitherProfile,
-        layout: DayLayout,
-        e: &EventKind,
-        alpha: f64,
-    ) -> KindStarts {
-        let n = levels.cols();
-        let per_hour = 3600.0 / f64::from(layout.interval_s);
+    fn starts(&self, e: &EventKind) -> KindStarts {
+        let n = self.levels.cols();
+        let per_hour = 3600.0 / f64::from(self.layout.interval_s);
         let len = ((f64::from(e.minutes) / 60.0 * per_hour).round() as usize).max(1);
         let lo = (e.earliest_h * per_hour) as usize;
         let hi = ((e.latest_h * per_hour) as usize).max(lo + 1);
         // Prefix sums of the per-interval log-likelihood ratio of "event" against "habit".
         let mut prefix = vec![0.0f64; n + 1];
         for j in 0..n {
-            let llr = levels
-                .get(row, j)
-                .map_or(0.0, |l| log_likelihood(profile, l, (self.habit[j] + e.kw).min(alpha)).0 - self.base[j]);
+            let llr = self.levels.get(self.row, j).map_or(0.0, |l| {
+                log_likelihood(self.profile, l, (self.habit[j] + e.kw).min(self.alpha)).0 - self.base[j]
+            });
             prefix[j + 1] = prefix[j] + llr;
         }
-        let days = whole_days(layout, n)
+        let days = whole_days(self.layout, n)
             .into_iter()
             .map(|day| {
                 let starts: Vec<usize> = (lo..hi).map(|s| day.start + s).filter(|&t| t + len <= n).collect();
@@ -142,79 +147,102 @@ impl MeterHabit {
             .collect();
         KindStarts { len, allowed: hi - lo, days }
     }
+}
 
-    /// Per interval, the posterior probability that it lies in an event of kind `e`.
-    fn kind_coverage(
-        &self,
-        levels: &LevelMatrix,
-        row: usize,
-        profile: &DitherProfile,
-        layout: DayLayout,
-        e: &EventKind,
-        alpha: f64,
-    ) -> Vec<f64> {
-        let n = levels.cols();
-        let p = e.daily_probability.clamp(0.0, 1.0);
-        if p <= 0.0 {
-            return vec![0.0; n];
-        }
-        let ks = self.start_llrs(levels, row, profile, layout, e, alpha);
-        let prior = p / ks.allowed as f64;
-        let mut cover = vec![0.0f64; n + 1]; // difference array of posterior mass
-        for (starts, llr) in &ks.days {
-            // Normalise in log space: weights prior·e^LLR against 1 − p.
-            let top = llr.iter().copied().fold((1.0 - p).ln(), |a, v| a.max(prior.ln() + v));
-            let none = ((1.0 - p).ln() - top).exp();
-            let w: Vec<f64> = llr.iter().map(|v| (prior.ln() + v - top).exp()).collect();
-            let z = none + w.iter().sum::<f64>();
-            for (&t, wt) in starts.iter().zip(&w) {
-                cover[t] += wt / z;
-                cover[t + ks.len] -= wt / z;
-            }
-        }
-        let mut run = 0.0;
-        cover[..n]
-            .iter()
-            .map(|c| {
-                run += c;
-                run.clamp(0.0, 1.0)
-            })
-            .collect()
+/// Per interval, the posterior probability that it lies in an event of kind `e`.
+fn kind_coverage(ks: &KindStarts, e: &EventKind, n: usize) -> Vec<f64> {
+    let p = e.daily_probability.clamp(0.0, 1.0);
+    if p <= 0.0 {
+        return vec![0.0; n];
     }
+    let prior = p / ks.allowed as f64;
+    let mut cover = vec![0.0f64; n + 1]; // difference array of posterior mass
+    for (starts, llr) in &ks.days {
+        // Normalise in log space: weights prior·e^LLR against 1 − p.
+        let top = llr.iter().copied().fold((1.0 - p).ln(), |a, v| a.max(prior.ln() + v));
+        let none = ((1.0 - p).ln() - top).exp();
+        let w: Vec<f64> = llr.iter().map(|v| (prior.ln() + v - top).exp()).collect();
+        let z = none + w.iter().sum::<f64>();
+        for (&t, wt) in starts.iter().zip(&w) {
+            cover[t] += wt / z;
+            cover[t + ks.len] -= wt / z;
+        }
+    }
+    let mut run = 0.0;
+    cover[..n]
+        .iter()
+        .map(|c| {
+            run += c;
+            run.clamp(0.0, 1.0)
+        })
+        .collect()
 }
 
-/// The allowed starts of one event kind, day by day, with their log-likelihood ratios.
-struct KindStarts {
-    len: usize,
-    allowed: usize,
-    days: Vec<(Vec<usize>, Vec<f64>)>,
+/// What the two whole-event attackers make of the captured meters, from one
+/// habit and one set of start log-likelihood ratios per meter and event kind.
+pub struct WholeEvent {
+    /// Event posterior: per interval, the probability that it lies in some event of the mix.
+    pub probability: DMatrix<f64>,
+    /// Event posterior: the posterior mean load (kW), habit + Σ over kinds P · coverage.
+    pub posterior_load: DMatrix<f64>,
+    /// Template test: the best placement's log-likelihood ratio per day and kind
+    /// on its intervals (the largest where placements overlap), −∞ elsewhere.
+    pub glr: DMatrix<f64>,
+    /// Template test: the habit plus the template's power where the ratio
+    /// exceeds the Bayes threshold ln((1 − p)·W / p).
+    pub glr_load: DMatrix<f64>,
 }
 
-/// For one meter (`row` of `levels`): the probability that each interval lies in
-/// an event of `mix` (1 − Π over kinds of 1 − coverage), and the habit (kW per
-/// interval) it was measured against.
-pub fn coverage(
+/// Runs both whole-event attackers on every captured meter (rows of `levels`).
+pub fn whole_event(
     levels: &LevelMatrix,
-    row: usize,
     profile: &DitherProfile,
     layout: DayLayout,
     mix: &[EventKind],
     alpha: f64,
-) -> (Vec<f64>, Vec<f64>) {
-    let m = MeterHabit::new(levels, row, profile, layout, alpha);
-    let mut miss = vec![1.0f64; levels.cols()];
-    for e in mix {
-        for (q, c) in miss.iter_mut().zip(m.kind_coverage(levels, row, profile, layout, e, alpha)) {
-            *q *= 1.0 - c;
+) -> WholeEvent {
+    let (k, n) = (levels.rows(), levels.cols());
+    let mut out = WholeEvent {
+        probability: DMatrix::zeros(k, n),
+        posterior_load: DMatrix::zeros(k, n),
+        glr: DMatrix::from_element(k, n, f64::NEG_INFINITY),
+        glr_load: DMatrix::zeros(k, n),
+    };
+    for i in 0..k {
+        let m = Meter::new(levels, i, profile, layout, alpha);
+        let mut load = m.habit.clone();
+        let mut miss = vec![1.0f64; n];
+        for j in 0..n {
+            out.glr_load[(i, j)] = m.habit[j];
+        }
+        for e in mix {
+            let ks = m.starts(e);
+            for ((v, q), c) in load.iter_mut().zip(miss.iter_mut()).zip(kind_coverage(&ks, e, n)) {
+                *v = (*v + e.kw * c).min(alpha);
+                *q *= 1.0 - c;
+            }
+            let p = e.daily_probability.clamp(1e-9, 1.0 - 1e-9);
+            let bayes = ((1.0 - p) * ks.allowed as f64 / p).ln();
+            for (starts, llr) in &ks.days {
+                let best = (0..llr.len()).fold(0, |b, s| if llr[s] > llr[b] { s } else { b });
+                let (t, v) = (starts[best], llr[best]);
+                for j in t..t + ks.len {
+                    out.glr[(i, j)] = out.glr[(i, j)].max(v);
+                    if v >= bayes {
+                        out.glr_load[(i, j)] = (out.glr_load[(i, j)] + e.kw).min(alpha);
+                    }
+                }
+            }
+        }
+        for j in 0..n {
+            out.posterior_load[(i, j)] = load[j];
+            out.probability[(i, j)] = 1.0 - miss[j];
         }
     }
-    (miss.iter().map(|q| 1.0 - q).collect(), m.habit)
+    out
 }
 
-/// The event posterior of the captured meters: per interval the probability
-/// that it lies in some event of `mix` (the detector's statistic), and the
-/// posterior mean load (kW), habit + Σ over kinds P · (probability that the
-/// interval lies in such an event).
+/// The event posterior alone: (event probability, posterior mean load).
 pub fn posterior_events(
     levels: &LevelMatrix,
     profile: &DitherProfile,
@@ -222,46 +250,11 @@ pub fn posterior_events(
     mix: &[EventKind],
     alpha: f64,
 ) -> (DMatrix<f64>, DMatrix<f64>) {
-    let (k, n) = (levels.rows(), levels.cols());
-    let mut prob = DMatrix::zeros(k, n);
-    let mut load = DMatrix::zeros(k, n);
-    for i in 0..k {
-        let m = MeterHabit::new(levels, i, profile, layout, alpha);
-        let mut x = m.habit.clone();
-        let mut miss = vec![1.0f64; n];
-        for e in mix {
-            for ((v, q), c) in
-                x.iter_mut().zip(miss.iter_mut()).zip(m.kind_coverage(levels, i, profile, layout, e, alpha))
-            {
-                *v = (*v + e.kw * c).min(alpha);
-                *q *= 1.0 - c;
-            }
-        }
-        for j in 0..n {
-            load[(i, j)] = x[j];
-            prob[(i, j)] = 1.0 - miss[j];
-        }
-    }
-    (prob, load)
+    let w = whole_event(levels, profile, layout, mix, alpha);
+    (w.probability, w.posterior_load)
 }
 
-/// The posterior mean load alone (see [`posterior_events`]).
-pub fn posterior_event_load(
-    levels: &LevelMatrix,
-    profile: &DitherProfile,
-    layout: DayLayout,
-    mix: &[EventKind],
-    alpha: f64,
-) -> DMatrix<f64> {
-    posterior_events(levels, profile, layout, mix, alpha).1
-}
-
-/// The generalised likelihood-ratio detector over the mix's event templates:
-/// per meter, day and kind, the start that maximises the log-likelihood ratio;
-/// every interval of that best placement carries its ratio (the largest over
-/// kinds where placements overlap), every other interval −∞. Returns the
-/// statistic and a load (habit plus the template's power where the ratio
-/// exceeds the Bayes threshold ln((1 − p)·W / p)).
+/// The template likelihood-ratio test alone: (statistic, load).
 pub fn template_glr(
     levels: &LevelMatrix,
     profile: &DitherProfile,
@@ -269,31 +262,8 @@ pub fn template_glr(
     mix: &[EventKind],
     alpha: f64,
 ) -> (DMatrix<f64>, DMatrix<f64>) {
-    let (k, n) = (levels.rows(), levels.cols());
-    let mut stat = DMatrix::from_element(k, n, f64::NEG_INFINITY);
-    let mut load = DMatrix::zeros(k, n);
-    for i in 0..k {
-        let m = MeterHabit::new(levels, i, profile, layout, alpha);
-        for j in 0..n {
-            load[(i, j)] = m.habit[j];
-        }
-        for e in mix {
-            let ks = m.start_llrs(levels, i, profile, layout, e, alpha);
-            let p = e.daily_probability.clamp(1e-9, 1.0 - 1e-9);
-            let bayes = ((1.0 - p) * ks.allowed as f64 / p).ln();
-            for (starts, llr) in &ks.days {
-                let best = (0..llr.len()).fold(0, |b, s| if llr[s] > llr[b] { s } else { b });
-                let (t, v) = (starts[best], llr[best]);
-                for j in t..t + ks.len {
-                    stat[(i, j)] = stat[(i, j)].max(v);
-                    if v >= bayes {
-                        load[(i, j)] = (load[(i, j)] + e.kw).min(alpha);
-                    }
-                }
-            }
-        }
-    }
-    (stat, load)
+    let w = whole_event(levels, profile, layout, mix, alpha);
+    (w.glr, w.glr_load)
 }
 
 #[cfg(test)]
