@@ -8,9 +8,8 @@ use std::io::Write;
 use std::process::{Command, Stdio};
 
 use common::*;
-use meterveil_shared::cluster::{cluster, features, ClusterParams};
+use meterveil_shared::cluster::{cluster, features, representation, ClusterParams, CLUSTER_RANK};
 use meterveil_shared::recovery::outage::DayLayout;
-use meterveil_shared::recovery::{recover, RankChoice, RecoveryParams};
 use nalgebra::DMatrix;
 use rand::Rng;
 use rand::SeedableRng;
@@ -60,25 +59,31 @@ fn bdew_classes_are_found_in_true_and_recovered_profiles() {
 
     let p = gaussian_profile(0.3, &[1.0, 2.0]);
     let levels = quantize(&truth, &p, 0.05, &mut rng);
-    let rp = RecoveryParams { rank: RankChoice::Fixed(20), alpha_kw: 15.0, ..Default::default() }.check().unwrap();
-    let rec =
-        recover(&levels, &p, &[], DayLayout { window_start: 1_673_222_400, interval_s: 900 }, &rp, &mut |_, _| {})
-            .unwrap();
-    let on_rec = cluster(&rec.x, &ClusterParams { clusters: Some(shapes.len()), ..params.clone() }).unwrap();
-    let rfeats = features(&rec.x, params.dimension, params.seed);
+    let layout = DayLayout { window_start: 1_673_222_400, interval_s: 900 };
+    let rec = representation(&levels, &p, &[], layout, 15.0, &mut |_, _| {}).unwrap();
+    let on_rec = cluster(&rec, &ClusterParams { clusters: Some(shapes.len()), ..params.clone() }).unwrap();
+    let rfeats = features(&rec, params.dimension, params.seed);
     let r = scores(&class, &[("recovered", &on_rec.labels)], &rfeats, shapes.len());
     eprintln!(
-        "recovered profiles: ARI {:.3}, sklearn KMeans on the same features {:.3}",
+        "from the levels (clustering fit at rank {CLUSTER_RANK}): ARI {:.3}, sklearn KMeans on the same features {:.3}",
         r["ari"]["recovered"], r["ari"]["sklearn_kmeans"]
     );
 
-    assert!((auto.clusters as i64 - shapes.len() as i64).abs() <= 2, "automatic count {}", auto.clusters);
-    assert!(s["ari"]["fixed"].as_f64().unwrap() >= 0.85);
-    assert!(s["ari"]["dense"].as_f64().unwrap() >= 0.85);
-    for (a, b) in auto.eigenvalues.iter().zip(&dense.eigenvalues) {
+    assert!((auto.clusters as i64 - shapes.len() as i64).abs() <= 1, "automatic count {}", auto.clusters);
+    for key in ["auto", "fixed", "dense"] {
+        let ari = s["ari"][key].as_f64().unwrap();
+        assert!((ari - 0.99).abs() < 0.02, "ARI {key} {ari}");
+    }
+    // The leading count + 1 values; the trailing ones of the 21 the
+    // over-segmentation uses settle last in the subspace iteration (differences
+    // up to 1e-4 measured at the 21st).
+    for (a, b) in auto.eigenvalues.iter().zip(&dense.eigenvalues).take(shapes.len() + 1) {
         assert!((a - b).abs() < 1e-6, "sparse and dense eigenvalues differ: {a} vs {b}");
     }
-    assert!(r["ari"]["recovered"].as_f64().unwrap() >= 0.55);
+    let ari = r["ari"]["recovered"].as_f64().unwrap();
+    // Lower than a rank-20 fit of the same levels (0.99): two of the 11 BDEW
+    // classes share a cluster; the rank suits the household feeders better.
+    assert!((ari - 0.92).abs() < 0.03, "ARI from the levels {ari}");
 }
 
 /// Mixed-use premises: each class blends two BDEW shapes in a proportion that
@@ -129,11 +134,11 @@ fn mixed_use_classes_separate_where_kmeans_does_not() {
         let s = scores(&class, &[("ours", &ours.labels), ("ridge", &ridge_only.labels)], &feats, k);
         let (ari, km) = (s["ari"]["ours"].as_f64().unwrap(), s["ari"]["sklearn_kmeans"].as_f64().unwrap());
         eprintln!(
-            "mixed-use population ({}), 1200 meters, {k} classes: ARI ours {ari:.3}, ridge-only self-expression {:.3}, sklearn {} KMeans on the same features {km:.3}; automatic count {} (the eigengap rule overcounts arcs)",
+            "mixed-use population ({}), 1200 meters, {k} classes: ARI ours {ari:.3}, ridge-only self-expression {:.3}, sklearn {} KMeans on the same features {km:.3}; automatic count {} (the coherence rule keeps arcs in pieces: open work)",
             if noisy { "day factors and interval noise" } else { "noise-free" },
             s["ari"]["ridge"].as_f64().unwrap(), s["sklearn"], auto.clusters
         );
-        assert!(ari >= 0.9, "ARI {ari}");
+        assert!(ari >= 0.98, "ARI {ari}");
         assert!(ari >= km + 0.3, "ours {ari} vs k-means {km}");
     }
 }

@@ -24,6 +24,15 @@ def main():
         x = np.asarray(p["features"], float)
         km = KMeans(n_clusters=p["k"], n_init=10, random_state=0).fit(x)
         out["ari"]["sklearn_kmeans"] = adjusted_rand_score(truth, km.labels_)
+    if p.get("affinity"):
+        from scipy.sparse import coo_matrix
+        from sklearn.cluster import SpectralClustering
+
+        e = np.asarray(p["affinity"], float)
+        m = len(truth)
+        a = coo_matrix((e[:, 2], (e[:, 0].astype(int), e[:, 1].astype(int))), shape=(m, m)).tocsr()
+        sc = SpectralClustering(n_clusters=p["k"], affinity="precomputed", assign_labels="cluster_qr", random_state=0)
+        out["ari"]["sklearn_spectral_qr"] = adjusted_rand_score(truth, sc.fit_predict(a))
     json.dump(out, sys.stdout)
 
 

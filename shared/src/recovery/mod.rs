@@ -13,7 +13,7 @@ pub mod solver;
 pub mod table;
 
 pub use params::{RankChoice, RecoveryParams, ValidRecoveryParams};
-pub use solver::{recover, Diagnostics, Flag, Recovery, Stop};
+pub use solver::{recover, Diagnostics, Flag, ProgressFn, Recovery, Stop};
 
 /// Marks a missing entry in a [`LevelMatrix`].
 pub const MISSING: u8 = u8::MAX;
