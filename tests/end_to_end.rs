@@ -794,10 +794,35 @@ fn recover_command_on_files() {
     assert_eq!((summary["clusters"].as_u64(), summary["chosen_by"].as_str()), (Some(4), Some("operator")));
     assert_eq!(summary["representatives"][0]["weekday_kw"].as_array().map(Vec::len), Some(96));
     let text = std::fs::read_to_string(&clusters).expect("clusters");
-    assert_eq!(text.lines().next(), Some("meter_id,cluster,confidence"));
+    assert_eq!(text.lines().next(), Some("meter_id,cluster,confidence,status"));
     let labels: HashSet<&str> = text.lines().skip(1).map(|l| l.split(',').nth(1).expect("cluster")).collect();
     assert_eq!(text.lines().count(), 61);
     assert_eq!(labels.len(), 4);
+    assert!(text.lines().skip(1).all(|l| l.ends_with(",assigned") || l.ends_with(",unassigned")), "{text}");
+    assert!(summary["input"].as_str().is_some_and(|n| n.contains("--levels")), "{summary}");
+
+    // Clustering from the levels: a fit at the clustering rank first, the count by the coherence rule.
+    let run = std::process::Command::new(bin)
+        .args(["cluster", "--levels"])
+        .arg(dir.path().join("levels.csv"))
+        .arg("--profile")
+        .arg(dir.path().join("profile.json"))
+        .arg("--output")
+        .arg(&clusters)
+        .output()
+        .expect("run cluster");
+    assert!(run.status.success(), "{}", String::from_utf8_lossy(&run.stderr));
+    let summary: Value =
+        serde_json::from_slice(run.stdout.split(|b| *b == b'\n').rfind(|l| !l.is_empty()).expect("line"))
+            .expect("json");
+    assert_eq!(summary["chosen_by"].as_str(), Some("coherence"), "{summary}");
+    let k = summary["clusters"].as_u64().expect("clusters") as usize;
+    assert_eq!(summary["coherence"].as_array().map(Vec::len), Some(k), "{summary}");
+    assert_eq!(std::fs::read_to_string(&clusters).expect("clusters").lines().count(), 61);
+    // One input or the other, and a clear error without either.
+    let run = std::process::Command::new(bin).args(["cluster", "--output"]).arg(&clusters).output().expect("run");
+    assert!(!run.status.success());
+    assert!(String::from_utf8_lossy(&run.stderr).contains("--profiles"), "{}", String::from_utf8_lossy(&run.stderr));
 
     // Bad input: the file, the line and the field are named; nothing is written.
     let bad = dir.path().join("bad.csv");
@@ -977,7 +1002,9 @@ async fn recovery_job_over_stored_levels() {
     assert_eq!(rows.len(), 12);
     assert!(rows.iter().all(|r| r["feeder_id"] == "QM-CHAPEL-ROW" && (0..3).contains(&r["cluster"].as_i64().unwrap())));
     let csv = get(format!("/v1/clusterings/{cid}/assignments?format=csv")).await.expect("csv").text().await.expect("t");
-    assert!(csv.starts_with("meter_id,cluster,confidence\n") && csv.lines().count() == 13, "{csv}");
+    assert!(csv.starts_with("meter_id,cluster,confidence,status\n") && csv.lines().count() == 13, "{csv}");
+    assert_eq!(job["result"]["clustering_rank"].as_u64(), Some(30), "{job}");
+    assert_eq!(job["result"]["coherence"].as_array().map(Vec::len), Some(3), "{job}");
     let stored = t.count(&format!("SELECT COUNT(*) FROM cluster_assignments WHERE job_id = '{cid}'")).await;
     assert_eq!(stored, 12);
     for (body, field) in [

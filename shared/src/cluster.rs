@@ -384,10 +384,7 @@ pub fn qr_assign(emb: &DMatrix<f64>) -> Vec<usize> {
     };
     let rot = u * vt;
     let coords = emb * rot;
-    coords
-        .row_iter()
-        .map(|r| (0..k).max_by(|&a, &b| r[a].abs().total_cmp(&r[b].abs())).unwrap_or(0))
-        .collect()
+    coords.row_iter().map(|r| (0..k).max_by(|&a, &b| r[a].abs().total_cmp(&r[b].abs())).unwrap_or(0)).collect()
 }
 
 /// Each cluster's coherence: the share of its members' affinity that stays
@@ -477,9 +474,9 @@ pub fn merge(
     while count > target.unwrap_or(1).max(1) {
         let coh = |inside: f64, v: f64| if v > 0.0 { inside / v } else { 1.0 };
         // Without a target, only the least coherent cluster is merged.
-        let worst = (0..k).filter(|&c| alive[c]).min_by(|&x, &y| {
-            coh(between[(x, x)], vol[x]).total_cmp(&coh(between[(y, y)], vol[y]))
-        });
+        let worst = (0..k)
+            .filter(|&c| alive[c])
+            .min_by(|&x, &y| coh(between[(x, x)], vol[x]).total_cmp(&coh(between[(y, y)], vol[y])));
         if target.is_none() && worst.is_none_or(|c| coh(between[(c, c)], vol[c]) >= min_coherence) {
             break;
         }
@@ -531,6 +528,16 @@ pub fn merge(
         })
         .collect();
     (out, decreases)
+}
+
+/// "assigned" or "unassigned" for a stored confidence, by the default
+/// `min_confidence` (the one clustering jobs use).
+pub fn status(confidence: f64) -> &'static str {
+    if confidence >= ClusterParams::default().min_confidence {
+        "assigned"
+    } else {
+        "unassigned"
+    }
 }
 
 /// Clusters the rows of `profiles` (customers × intervals, kW).

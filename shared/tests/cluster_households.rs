@@ -30,7 +30,11 @@ fn bump(h: f64, h0: f64, width: f64, a: f64) -> f64 {
 /// day-to-day factor, interval noise and 1-3 kW appliance spikes; the other ten
 /// BDEW classes share the rest equally, each meter with its own scale, a small
 /// shape of its own and day and interval variation. Returns kW and true classes.
-pub fn households_dominating(shapes: &[(String, Vec<f64>)], m: usize, rng: &mut ChaCha8Rng) -> (DMatrix<f64>, Vec<usize>) {
+pub fn households_dominating(
+    shapes: &[(String, Vec<f64>)],
+    m: usize,
+    rng: &mut ChaCha8Rng,
+) -> (DMatrix<f64>, Vec<usize>) {
     let n = shapes[0].1.len();
     let h0 = shapes.iter().position(|s| s.0 == "H0").expect("H0");
     let others: Vec<usize> = (0..shapes.len()).filter(|&c| c != h0).collect();
@@ -74,7 +78,13 @@ pub fn households_dominating(shapes: &[(String, Vec<f64>)], m: usize, rng: &mut 
     (x, class)
 }
 
-fn scores(truth: &[usize], labels: &[(&str, &[usize])], feats: &DMatrix<f64>, affinity: &[Vec<(usize, f64)>], k: usize) -> Value {
+fn scores(
+    truth: &[usize],
+    labels: &[(&str, &[usize])],
+    feats: &DMatrix<f64>,
+    affinity: &[Vec<(usize, f64)>],
+    k: usize,
+) -> Value {
     let python = std::env::var("METERVEIL_PYTHON").unwrap_or_else(|_| "python3".into());
     let script = concat!(env!("CARGO_MANIFEST_DIR"), "/../tests/reference/clustering_scores.py");
     let rows: Vec<Vec<f64>> = feats.row_iter().map(|r| r.iter().copied().collect()).collect();

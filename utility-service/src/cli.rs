@@ -88,15 +88,29 @@ pub enum Command {
         #[arg(long, default_value_t = 15.0)]
         alpha_kw: f64,
     },
-    /// Group customers by load shape from recovered profiles (a `recover` output).
+    /// Group customers by load shape, from quantized levels (fitted at the
+    /// clustering rank first) or from a `recover` output as it is.
     Cluster {
-        /// CSV with header meter_id,interval_start,kw,… (the recover output).
-        #[arg(long)]
-        profiles: PathBuf,
-        /// Output CSV: meter_id,cluster,confidence.
+        /// CSV with header meter_id,interval_start,level (with --profile).
+        #[arg(long, requires = "profile", conflicts_with = "profiles")]
+        levels: Option<PathBuf>,
+        /// Dither profile JSON the levels were made with.
+        #[arg(long, requires = "levels")]
+        profile: Option<PathBuf>,
+        /// Optional CSV of register advances for the levels: meter_id,day_start,wh.
+        #[arg(long, requires = "levels")]
+        registers: Option<PathBuf>,
+        /// Service limit in kW for the fit of the levels.
+        #[arg(long, default_value_t = 15.0)]
+        alpha_kw: f64,
+        /// CSV with header meter_id,interval_start,kw,… (a recover output),
+        /// clustered as it is; its rank must exceed the number of classes.
+        #[arg(long, required_unless_present = "levels")]
+        profiles: Option<PathBuf>,
+        /// Output CSV: meter_id,cluster,confidence,status.
         #[arg(long)]
         output: PathBuf,
-        /// A number of clusters, or "auto" (eigengap rule).
+        /// A number of clusters, or "auto" (the coherence rule).
         #[arg(long, default_value = "auto")]
         clusters: String,
     },
@@ -337,16 +351,27 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
             println!("{summary}");
             Ok(())
         }
-        Command::Cluster { profiles, output, clusters } => {
+        Command::Cluster { levels, profile, registers, alpha_kw, profiles, output, clusters } => {
             let clusters = match clusters.as_str() {
                 "auto" => None,
                 n => {
                     Some(n.parse().map_err(|_| anyhow::anyhow!("--clusters: {n:?} is neither a number nor \"auto\""))?)
                 }
             };
-            let summary =
-                tokio::task::spawn_blocking(move || crate::offline::run_cluster(&profiles, &output, clusters))
-                    .await??;
+            let summary = tokio::task::spawn_blocking(move || {
+                let input = match (&levels, &profile, &profiles) {
+                    (Some(levels), Some(profile), _) => crate::offline::ClusterInput::Levels {
+                        levels,
+                        profile,
+                        registers: registers.as_deref(),
+                        alpha_kw,
+                    },
+                    (_, _, Some(p)) => crate::offline::ClusterInput::Profiles(p),
+                    _ => anyhow::bail!("--levels with --profile, or --profiles, is needed"),
+                };
+                crate::offline::run_cluster(input, &output, clusters)
+            })
+            .await??;
             println!("{summary}");
             Ok(())
         }

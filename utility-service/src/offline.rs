@@ -356,24 +356,63 @@ pub fn read_profiles(path: &Path) -> anyhow::Result<Profiles> {
     Ok(Profiles { meters, start: times[0], interval_s: step as u32, kw })
 }
 
+/// What the `cluster` command clusters.
+pub enum ClusterInput<'a> {
+    /// A `recover` output, clustered as it is.
+    Profiles(&'a Path),
+    /// Levels and their dither profile (and optional register reads), fitted at
+    /// the clustering rank first.
+    Levels { levels: &'a Path, profile: &'a Path, registers: Option<&'a Path>, alpha_kw: f64 },
+}
+
 /// The whole `cluster` command; returns the JSON summary line.
-pub fn run_cluster(profiles: &Path, output: &Path, clusters: Option<usize>) -> anyhow::Result<serde_json::Value> {
-    use meterveil_shared::cluster::{cluster, representatives, ClusterParams};
-    let p = read_profiles(profiles)?;
+pub fn run_cluster(
+    input: ClusterInput<'_>,
+    output: &Path,
+    clusters: Option<usize>,
+) -> anyhow::Result<serde_json::Value> {
+    use meterveil_shared::cluster::{cluster, representation, representatives, ClusterParams, CLUSTER_RANK};
     let params = ClusterParams { clusters, ..ClusterParams::default() };
-    let c = cluster(&p.kw, &params).map_err(|e| anyhow::anyhow!("--{}: {}", e.field, e.reason))?;
+    let (meters, start, interval_s, shapes, z, note) = match input {
+        ClusterInput::Profiles(path) => {
+            let p = read_profiles(path)?;
+            let note = format!(
+                "clustered the given profiles as they are: a recover output at the automatic rank (often 2-10) has lost \
+                 classes that differ in shape; give --levels and --profile instead to cluster a rank-{CLUSTER_RANK} fit"
+            );
+            let z = p.kw.clone();
+            (p.meters, p.start, p.interval_s, p.kw, z, note)
+        }
+        ClusterInput::Levels { levels, profile, registers, alpha_kw } => {
+            if !(alpha_kw.is_finite() && alpha_kw > 0.0 && alpha_kw <= 10_000.0) {
+                anyhow::bail!("--alpha-kw: must be a positive number of kW up to 10000");
+            }
+            let (profile, w, constraints, _) = read_feeder(levels, profile, registers)?;
+            let mut report = progress_reporter();
+            let z = representation(&w.levels, &profile, &constraints, w.layout(), alpha_kw, &mut report)
+                .map_err(|e| anyhow::anyhow!("--{}: {}", e.field.replace('_', "-"), e.reason))?;
+            let note = format!("clustered a rank-{CLUSTER_RANK} fit of the levels");
+            let meters = w.meters.iter().map(|m| m.to_string()).collect::<Vec<String>>();
+            (meters, w.start, w.interval_s, z.clone(), z, note)
+        }
+    };
+    let c = cluster(&z, &params).map_err(|e| anyhow::anyhow!("--{}: {}", e.field, e.reason))?;
     let f = std::fs::File::create(output).with_context(|| format!("creating {}", output.display()))?;
     let mut out = BufWriter::new(f);
-    writeln!(out, "meter_id,cluster,confidence")?;
-    for (i, m) in p.meters.iter().enumerate() {
-        writeln!(out, "{m},{},{:.3}", c.labels[i], c.confidence[i])?;
+    writeln!(out, "meter_id,cluster,confidence,status")?;
+    for (i, m) in meters.iter().enumerate() {
+        let status = if c.assigned[i] { "assigned" } else { "unassigned" };
+        writeln!(out, "{m},{},{:.3},{status}", c.labels[i], c.confidence[i])?;
     }
     out.flush()?;
-    let reps = representatives(&p.kw, &c, p.start, p.interval_s);
+    let reps = representatives(&shapes, &c, start, interval_s);
     Ok(serde_json::json!({
-        "meters": p.meters.len(),
+        "meters": meters.len(),
         "clusters": c.clusters,
-        "chosen_by": if clusters.is_some() { "operator" } else { "eigengap" },
+        "chosen_by": c.chosen_by.as_str(),
+        "coherence": c.coherence,
+        "unassigned": c.assigned.iter().filter(|a| !**a).count(),
+        "input": note,
         "leading_eigenvalues": c.eigenvalues,
         "representatives": reps,
         "output": output.display().to_string(),

@@ -1,6 +1,7 @@
 //! Load-shape clustering of the profiles of finished recovery jobs.
 
-use meterveil_shared::cluster::{cluster, representatives, ClusterParams};
+use meterveil_shared::cluster::{cluster, representation, representatives, ClusterParams, CLUSTER_RANK};
+use meterveil_shared::recovery::RecoveryParams;
 use nalgebra::DMatrix;
 use serde_json::json;
 
@@ -12,7 +13,7 @@ use crate::store::queue::JobTable;
 pub struct ClusterRequest {
     /// Finished recovery jobs over one common window (one per feeder, typically).
     pub recovery_jobs: Vec<String>,
-    /// Operator's cluster count, or `None` for the eigengap rule.
+    /// Operator's cluster count, or `None` for the coherence rule.
     pub clusters: Option<usize>,
 }
 
@@ -60,11 +61,38 @@ async fn run_inner(s: &AppState, job_id: &str, req: &ClusterRequest) -> anyhow::
     anyhow::ensure!(values.len() == meters.len() * cols, "recovered rows do not form a full meters × intervals table");
     let interval_s = ((to - from) / cols as i64) as u32;
     let x = DMatrix::from_row_slice(meters.len(), cols, &values);
+    // The clustering representation: each recovery's levels fitted again at the
+    // clustering rank (the profiles' own rank is chosen for accuracy, and below
+    // the number of classes the classes are gone).
+    let mut windows = Vec::with_capacity(req.recovery_jobs.len());
+    for id in &req.recovery_jobs {
+        let job = s.store.job(id).await?.ok_or_else(|| anyhow::anyhow!("recovery job {id} does not exist"))?;
+        let feeder = meterveil_shared::FeederId::parse(&job.feeder_id)
+            .map_err(|e| anyhow::anyhow!("feeder of recovery job {id}: {e}"))?;
+        let w = super::recover::load_window(&s.store, &feeder, from, to).await?;
+        windows.push((
+            w,
+            job.params.get("alpha_kw").and_then(|v| v.as_f64()).unwrap_or(RecoveryParams::default().alpha_kw),
+        ));
+    }
     let params = ClusterParams { clusters: req.clusters, ..ClusterParams::default() };
-    let chosen_by = if req.clusters.is_some() { "operator" } else { "eigengap" };
+    let order: Vec<String> = meters.iter().map(|m| m.0.clone()).collect();
     let (c, reps) = super::run_reporting(s, JobTable::Analysis, job_id, move |progress| {
-        progress("clustering", 0.1);
-        let c = cluster(&x, &params).map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
+        let mut rows: std::collections::HashMap<String, Vec<f64>> = Default::default();
+        let total = windows.len().max(1) as f64;
+        for (done, (w, alpha)) in windows.iter().enumerate() {
+            let base = 0.8 * done as f64 / total;
+            let z = representation(&w.levels, &w.profile, &w.constraints, w.layout, *alpha, &mut |_, f| {
+                progress("fitting at the clustering rank", base + 0.8 * f / total)
+            })
+            .map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
+            for (i, m) in w.meters.iter().enumerate() {
+                rows.insert(m.clone(), z.row(i).iter().copied().collect());
+            }
+        }
+        let z = DMatrix::from_fn(order.len(), cols, |i, j| rows.get(&order[i]).map_or(0.0, |r| r[j]));
+        progress("clustering", 0.85);
+        let c = cluster(&z, &params).map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
         let reps = representatives(&x, &c, from, interval_s);
         Ok((c, reps))
     })
@@ -82,7 +110,10 @@ async fn run_inner(s: &AppState, job_id: &str, req: &ClusterRequest) -> anyhow::
     let result = json!({
         "meters": meters.len(),
         "clusters": c.clusters,
-        "chosen_by": chosen_by,
+        "chosen_by": c.chosen_by.as_str(),
+        "coherence": c.coherence,
+        "unassigned": c.assigned.iter().filter(|a| !**a).count(),
+        "clustering_rank": CLUSTER_RANK,
         "leading_eigenvalues": c.eigenvalues,
         "window_start": from,
         "window_end": to,

@@ -60,47 +60,72 @@ pub async fn run(state: AppState, job_id: String, req: RecoveryRequest) {
     }
 }
 
-async fn run_inner(s: &AppState, job_id: &str, req: &RecoveryRequest) -> anyhow::Result<()> {
-    let store = &s.store;
-    store.set_progress(JobTable::Recovery, job_id, 0.0, "loading levels", now_s()).await?;
-    let rows = store.feeder_levels_between(&req.feeder, req.from, req.to).await?;
+/// A feeder's stored levels over a window, with what fitting them needs.
+pub struct FeederWindow {
+    pub meters: Vec<String>,
+    pub levels: LevelMatrix,
+    pub profile: meterveil_shared::DitherProfile,
+    pub version: u32,
+    pub constraints: Vec<SumConstraint>,
+    pub layout: DayLayout,
+}
+
+/// Loads the levels of `feeder` in [from, to) (one profile version) and the
+/// register advances that constrain them.
+pub async fn load_window(
+    store: &crate::store::Store,
+    feeder: &FeederId,
+    from: i64,
+    to: i64,
+) -> anyhow::Result<FeederWindow> {
+    let rows = store.feeder_levels_between(feeder, from, to).await?;
     let mut versions: Vec<u32> = rows.iter().map(|r| r.3).collect();
     versions.sort_unstable();
     versions.dedup();
     let version = match versions.as_slice() {
-        [] => anyhow::bail!("no readings of feeder {} in [{}, {})", req.feeder, req.from, req.to),
+        [] => anyhow::bail!("no readings of feeder {feeder} in [{from}, {to})"),
         [v] => *v,
         many => anyhow::bail!(
             "the window holds readings of profile versions {many:?}; recover each version's window separately"
         ),
     };
     let rec = store
-        .profiles(&req.feeder)
+        .profiles(feeder)
         .await?
         .into_iter()
         .find(|p| p.version.0 == version)
         .context("profile version of the readings")?;
     let profile = rec.profile;
     let step = i64::from(profile.interval().seconds());
-    if req.from.rem_euclid(step) != 0 || req.to.rem_euclid(step) != 0 {
+    if from.rem_euclid(step) != 0 || to.rem_euclid(step) != 0 {
         anyhow::bail!("window bounds must be aligned to the {step}-second interval length");
     }
-    let meters = store.meters_of(&req.feeder).await?;
+    let meters = store.meters_of(feeder).await?;
     let index: HashMap<String, usize> = meters.iter().enumerate().map(|(i, m)| (m.clone(), i)).collect();
-    let cols = ((req.to - req.from) / step) as usize;
+    let cols = ((to - from) / step) as usize;
     let mut levels = LevelMatrix::missing(meters.len(), cols);
     for (m, t, l, _) in &rows {
         if let Some(&i) = index.get(m) {
-            levels.set(i, ((t - req.from) / step) as usize, Some(*l));
+            levels.set(i, ((t - from) / step) as usize, Some(*l));
         }
     }
-    let reads = store.feeder_registers_between(&req.feeder, req.from, req.to).await?;
-    let constraints = day_constraints(&index, &levels, &reads, req.from, profile.interval().seconds());
+    let reads = store.feeder_registers_between(feeder, from, to).await?;
+    let constraints = day_constraints(&index, &levels, &reads, from, profile.interval().seconds());
+    let layout = DayLayout { window_start: from, interval_s: profile.interval().seconds() };
+    Ok(FeederWindow { meters, levels, profile, version, constraints, layout })
+}
+
+async fn run_inner(s: &AppState, job_id: &str, req: &RecoveryRequest) -> anyhow::Result<()> {
+    let store = &s.store;
+    store.set_progress(JobTable::Recovery, job_id, 0.0, "loading levels", now_s()).await?;
+    let FeederWindow { meters, levels, profile, version, constraints, layout } =
+        load_window(store, &req.feeder, req.from, req.to).await?;
+    let step = i64::from(profile.interval().seconds());
+    let cols = levels.cols();
     let params = RecoveryParams { rank: req.rank.clone(), alpha_kw: req.alpha_kw, ..Default::default() }
         .check()
         .map_err(|e| anyhow::anyhow!("{e}"))?;
 
-    let layout = DayLayout { window_start: req.from, interval_s: profile.interval().seconds() };
     let (rec, n_constraints) = super::run_reporting(s, JobTable::Recovery, job_id, move |progress| {
         let _span = tracing::info_span!("recovery").entered();
         recover(&levels, &profile, &constraints, layout, &params, &mut |stage, f| progress(stage, f))

@@ -285,11 +285,21 @@ async fn assignments(
     }
     let rows = s.store.assignments(&id).await?;
     match q.format.as_deref().unwrap_or("json") {
-        "json" => Ok(Json(rows).into_response()),
+        "json" => {
+            let rows: Vec<serde_json::Value> = rows
+                .iter()
+                .map(|r| {
+                    json!({"meter_id": r.meter_id, "feeder_id": r.feeder_id, "cluster": r.cluster,
+                           "confidence": r.confidence, "status": meterveil_shared::cluster::status(r.confidence)})
+                })
+                .collect();
+            Ok(Json(rows).into_response())
+        }
         "csv" => {
-            let mut out = String::from("meter_id,cluster,confidence\n");
+            let mut out = String::from("meter_id,cluster,confidence,status\n");
             for r in rows {
-                out.push_str(&format!("{},{},{:.3}\n", r.meter_id, r.cluster, r.confidence));
+                let status = meterveil_shared::cluster::status(r.confidence);
+                out.push_str(&format!("{},{},{:.3},{status}\n", r.meter_id, r.cluster, r.confidence));
             }
             Ok(([(header::CONTENT_TYPE, "text/csv; charset=utf-8")], out).into_response())
         }
