@@ -47,6 +47,10 @@ pub struct TownCluster {
     pub weekday_peak: String,
     pub weekday_kwh: f64,
     pub weekend_kwh: f64,
+    /// Share of its members' affinity that stays inside it.
+    pub coherence: f64,
+    /// Members whose own cluster receives less than half of their affinity.
+    pub unassigned: usize,
     /// The simulated kinds of its members, most common first (only a demo knows them).
     pub kinds: Vec<(String, usize)>,
 }
@@ -352,8 +356,8 @@ async fn privacy_check(
     })
 }
 
-/// Clusters every recovered profile of the town by load shape (eigengap count),
-/// as a clustering job over the feeders' recovery jobs.
+/// Clusters the town's meters by load shape (the coherence rule's count), as a
+/// clustering job over the feeders' recovery jobs.
 async fn cluster_town(
     base: &str,
     token: &str,
@@ -391,9 +395,11 @@ async fn cluster_town(
         .map(|r| {
             let k = r["cluster"].as_i64().unwrap_or(-1);
             let mut kinds: std::collections::BTreeMap<String, usize> = Default::default();
+            let mut unassigned = 0;
             for row in rows.iter().filter(|row| row["cluster"].as_i64() == Some(k)) {
                 let kind = kind_of.get(row["meter_id"].as_str().unwrap_or("")).unwrap_or(&"?");
                 *kinds.entry(kind.to_string()).or_default() += 1;
+                unassigned += usize::from(row["status"] == "unassigned");
             }
             let mut kinds: Vec<(String, usize)> = kinds.into_iter().collect();
             kinds.sort_by_key(|k| std::cmp::Reverse(k.1));
@@ -405,6 +411,8 @@ async fn cluster_town(
                 weekday_peak: format!("{:02}:{:02}", minutes / 60, minutes % 60),
                 weekday_kwh: weekday.iter().sum::<f64>() / per_hour as f64,
                 weekend_kwh: weekend.iter().sum::<f64>() / per_hour as f64,
+                coherence: job["result"]["coherence"][k.max(0) as usize].as_f64().unwrap_or(0.0),
+                unassigned,
                 kinds,
             }
         })
@@ -467,20 +475,23 @@ pub fn render(s: &DemoSummary) -> String {
     }
     let _ = writeln!(
         o,
-        "\n  Load-shape clusters of the recovered profiles ({} found by the eigengap rule):",
-        s.clusters.len()
+        "\n  Load-shape clusters ({} found by the coherence rule, from a rank-{} fit of each feeder's levels).\n  Coherence: the share of the members' self-expression weight that stays inside the cluster.\n  Unassigned: members with most of their weight elsewhere, fitting no cluster well.",
+        s.clusters.len(),
+        meterveil_shared::cluster::CLUSTER_RANK
     );
     let _ = writeln!(
         o,
-        "  {:>7} {:>12} {:>12} {:>12}  simulated kinds (demo only)",
-        "members", "weekday peak", "weekday kWh", "weekend kWh"
+        "  {:>7} {:>9} {:>10} {:>12} {:>12} {:>12}  simulated kinds (demo only)",
+        "members", "coherence", "unassigned", "weekday peak", "weekday kWh", "weekend kWh"
     );
     for c in &s.clusters {
         let kinds: Vec<String> = c.kinds.iter().take(3).map(|(k, n)| format!("{k} {n}")).collect();
         let _ = writeln!(
             o,
-            "  {:>7} {:>12} {:>12.1} {:>12.1}  {}",
+            "  {:>7} {:>9.2} {:>10} {:>12} {:>12.1} {:>12.1}  {}",
             c.size,
+            c.coherence,
+            c.unassigned,
             c.weekday_peak,
             c.weekday_kwh,
             c.weekend_kwh,

@@ -324,15 +324,23 @@ async fn clusters_page(_: Viewer, State(s): State<AppState>, Path(id): Path<Stri
                             .collect()
                     })
                     .unwrap_or_default();
-                (format!("cluster {} ({} customers)", c["cluster"], c["size"]), pts)
+                let coherence = c["cluster"].as_u64().and_then(|k| r["coherence"][k as usize].as_f64());
+                let name = match coherence {
+                    Some(v) => format!("cluster {} ({} customers, coherence {v:.2})", c["cluster"], c["size"]),
+                    None => format!("cluster {} ({} customers)", c["cluster"], c["size"]),
+                };
+                (name, pts)
             })
             .collect()
     };
     let mut b = format!(
-        "<p>{} customers in {} clusters (count chosen by {}).</p>",
+        "<p>{} customers in {} clusters (count chosen by {}); {} customers fit no cluster well (unassigned: \
+         less than half of their self-expression weight inside their cluster). A cluster's coherence is the \
+         share of its members' weight that stays inside it; low coherence means it blends into others.</p>",
         r["meters"],
         r["clusters"],
-        esc(r["chosen_by"].as_str().unwrap_or("?"))
+        esc(r["chosen_by"].as_str().unwrap_or("?")),
+        r["unassigned"].as_u64().map_or("an unknown number of".to_owned(), |n| n.to_string()),
     );
     for (key, title) in [("weekday_kw", "Representative working day"), ("weekend_kw", "Representative weekend day")] {
         let series = series_of(key);
