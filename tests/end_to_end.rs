@@ -801,7 +801,7 @@ fn recover_command_on_files() {
     assert!(text.lines().skip(1).all(|l| l.ends_with(",assigned") || l.ends_with(",unassigned")), "{text}");
     assert!(summary["input"].as_str().is_some_and(|n| n.contains("--levels")), "{summary}");
 
-    // Clustering from the levels: a fit at the clustering rank first, the count by the coherence rule.
+    // Clustering from the levels: a fit at the clustering rank first, the count by the stability rule.
     let run = std::process::Command::new(bin)
         .args(["cluster", "--levels"])
         .arg(dir.path().join("levels.csv"))
@@ -815,7 +815,7 @@ fn recover_command_on_files() {
     let summary: Value =
         serde_json::from_slice(run.stdout.split(|b| *b == b'\n').rfind(|l| !l.is_empty()).expect("line"))
             .expect("json");
-    assert_eq!(summary["chosen_by"].as_str(), Some("coherence"), "{summary}");
+    assert_eq!(summary["chosen_by"].as_str(), Some("stability"), "{summary}");
     let k = summary["clusters"].as_u64().expect("clusters") as usize;
     assert_eq!(summary["coherence"].as_array().map(Vec::len), Some(k), "{summary}");
     assert_eq!(std::fs::read_to_string(&clusters).expect("clusters").lines().count(), 61);

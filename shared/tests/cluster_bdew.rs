@@ -134,11 +134,12 @@ fn mixed_use_classes_separate_where_kmeans_does_not() {
         let s = scores(&class, &[("ours", &ours.labels), ("ridge", &ridge_only.labels)], &feats, k);
         let (ari, km) = (s["ari"]["ours"].as_f64().unwrap(), s["ari"]["sklearn_kmeans"].as_f64().unwrap());
         eprintln!(
-            "mixed-use population ({}), 1200 meters, {k} classes: ARI ours {ari:.3}, ridge-only self-expression {:.3}, sklearn {} KMeans on the same features {km:.3}; automatic count {} (the coherence rule keeps arcs in pieces: open work)",
+            "mixed-use population ({}), 1200 meters, {k} classes: ARI ours {ari:.3}, ridge-only self-expression {:.3}, sklearn {} KMeans on the same features {km:.3}; automatic count {} (stability rule)",
             if noisy { "day factors and interval noise" } else { "noise-free" },
             s["ari"]["ridge"].as_f64().unwrap(), s["sklearn"], auto.clusters
         );
         assert!(ari >= 0.98, "ARI {ari}");
+        assert!((auto.clusters as i64 - k as i64).abs() <= 1, "automatic count {}", auto.clusters);
         assert!(ari >= km + 0.3, "ours {ari} vs k-means {km}");
     }
 }

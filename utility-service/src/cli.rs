@@ -110,7 +110,7 @@ pub enum Command {
         /// Output CSV: meter_id,cluster,confidence,status.
         #[arg(long)]
         output: PathBuf,
-        /// A number of clusters, or "auto" (the coherence rule).
+        /// A number of clusters, or "auto" (the stability rule).
         #[arg(long, default_value = "auto")]
         clusters: String,
     },

@@ -356,7 +356,7 @@ async fn privacy_check(
     })
 }
 
-/// Clusters the town's meters by load shape (the coherence rule's count), as a
+/// Clusters the town's meters by load shape (the stability rule's count), as a
 /// clustering job over the feeders' recovery jobs.
 async fn cluster_town(
     base: &str,
@@ -475,7 +475,7 @@ pub fn render(s: &DemoSummary) -> String {
     }
     let _ = writeln!(
         o,
-        "\n  Load-shape clusters ({} found by the coherence rule, from a rank-{} fit of each feeder's levels).\n  Coherence: the share of the members' self-expression weight that stays inside the cluster.\n  Unassigned: members with most of their weight elsewhere, fitting no cluster well.",
+        "\n  Load-shape clusters ({} found by the stability rule, from a rank-{} fit of each feeder's levels).\n  Coherence: the share of the members' self-expression weight that stays inside the cluster.\n  Unassigned: members with most of their weight elsewhere, fitting no cluster well.",
         s.clusters.len(),
         meterveil_shared::cluster::CLUSTER_RANK
     );

@@ -13,7 +13,7 @@ use crate::store::queue::JobTable;
 pub struct ClusterRequest {
     /// Finished recovery jobs over one common window (one per feeder, typically).
     pub recovery_jobs: Vec<String>,
-    /// Operator's cluster count, or `None` for the coherence rule.
+    /// Operator's cluster count, or `None` for the stability rule.
     pub clusters: Option<usize>,
 }
 
