@@ -978,6 +978,16 @@ async fn recovery_job_over_stored_levels() {
         )
         .await;
     assert_eq!((s, body["field"].as_str()), (StatusCode::UNPROCESSABLE_ENTITY, Some("rank")));
+    // A service limit whose likelihood table would not fit in bounded memory.
+    let (s, body) = t
+        .post_json(
+            "/v1/recoveries",
+            &json!({"feeder_id": "QM-CHAPEL-ROW", "from": from, "to": to, "alpha_kw": 10000}),
+            true,
+        )
+        .await;
+    assert_eq!((s, body["field"].as_str()), (StatusCode::UNPROCESSABLE_ENTITY, Some("alpha_kw")), "{body}");
+    assert!(body["reason"].as_str().is_some_and(|r| r.contains("MiB")), "{body}");
     let r = get("/v1/recoveries/rec-none".into()).await.expect("get");
     assert_eq!(r.status().as_u16(), 404);
 

@@ -58,7 +58,7 @@ impl ServiceClient {
         &self,
         batch: &BatchWire,
         sequence: i64,
-        key: &crate::gateway::GatewayKey,
+        key: &crate::identity::GatewayKey,
     ) -> Result<AckWire, UploadError> {
         use meterveil_shared::auth::{
             body_sha256, sign, signing_text, HEADER_GATEWAY, HEADER_SEQUENCE, HEADER_SIGNATURE, HEADER_TIMESTAMP,

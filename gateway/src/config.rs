@@ -24,7 +24,7 @@ use anyhow::Context;
 use meterveil_shared::{FeederId, GatewayId};
 use serde::Deserialize;
 
-use crate::gateway::GatewayIdentity;
+use crate::identity::GatewayIdentity;
 use crate::source::Format;
 use crate::uploader::UploadConfig;
 
@@ -99,7 +99,7 @@ impl GatewayConfig {
         let identity = GatewayIdentity {
             gateway_id: GatewayId::parse(&raw.gateway_id)?,
             feeder_id: FeederId::parse(&raw.feeder_id)?,
-            key: crate::gateway::GatewayKey::from_hex(&secret)?,
+            key: crate::identity::GatewayKey::from_hex(&secret)?,
         };
         if !(raw.service_url.starts_with("http://") || raw.service_url.starts_with("https://")) {
             anyhow::bail!("service_url: {:?} must start with http:// or https://", raw.service_url);

@@ -9,6 +9,7 @@ pub mod cli;
 pub mod client;
 pub mod config;
 pub mod gateway;
+pub mod identity;
 pub mod outbox;
 pub mod pipeline;
 pub mod run;

@@ -6,7 +6,7 @@ use tokio::sync::watch;
 
 use crate::backoff::BackoffPolicy;
 use crate::client::{ServiceClient, UploadError};
-use crate::gateway::GatewayIdentity;
+use crate::identity::GatewayIdentity;
 use crate::outbox::Outbox;
 
 #[derive(Debug, Clone, Copy, serde::Deserialize)]

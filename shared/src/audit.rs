@@ -271,7 +271,7 @@ pub fn attack(
     let wants = |s: Strategy| who.strategies.contains(&s);
     let (alpha, mix) = (who.alpha, who.mix);
     let s = profile.scale_kw();
-    let table = LikelihoodTable::new(profile, -0.5 * alpha - 5.0 * s, 1.5 * alpha + 5.0 * s);
+    let table = LikelihoodTable::for_fit(profile, alpha)?;
     // Per-reading strategies, each meter with its own fitted prior.
     let mut pm = DMatrix::zeros(k, n);
     for i in 0..k {

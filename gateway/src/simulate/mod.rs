@@ -15,7 +15,8 @@ use serde::Serialize;
 use tokio::sync::watch;
 
 use crate::client::ServiceClient;
-use crate::gateway::{Gateway, GatewayIdentity};
+use crate::gateway::Gateway;
+use crate::identity::GatewayIdentity;
 use crate::source::RawReading;
 use crate::uploader::{UploadConfig, UploadStats};
 pub use town::{Kind, Town, TOWN_ALPHA_KW};

@@ -445,8 +445,7 @@ pub fn recover(
         }
     }
     let alpha = p.alpha_kw;
-    let table =
-        LikelihoodTable::new(profile, -0.5 * alpha - 5.0 * profile.scale_kw(), 1.5 * alpha + 5.0 * profile.scale_kw());
+    let table = LikelihoodTable::for_fit(profile, alpha)?;
     let observed: Vec<bool> = levels.as_slice().iter().map(|&v| v != MISSING).collect();
     let n_obs = observed.iter().filter(|b| **b).count();
     let mut diagnostics = Diagnostics {

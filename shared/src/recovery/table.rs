@@ -6,11 +6,52 @@
 //! Hermite polynomials: for the value from (f, f'), for the derivative from
 //! (f', f''). Outside the grid the exact formula is used.
 
+use crate::error::FieldError;
 use crate::mechanism::log_likelihood;
 use crate::profile::DitherProfile;
 
 /// Grid points per unit of noise scale.
 const PER_SCALE: f64 = 128.0;
+
+/// Largest table a fit may build: 512 MiB. The grid has 128 nodes per unit of
+/// the dither scale over about twice the service limit, per level, so a small
+/// scale with a large limit (0.001 kW with 10,000 kW: about 2.6 × 10⁹ nodes per
+/// level) would otherwise ask for terabytes. Our choice; 15 kW at the smallest
+/// scale, 0.001 kW, with 3 levels needs 264 MiB.
+pub const MAX_TABLE_BYTES: usize = 512 << 20;
+
+/// The range a fit with service limit `alpha` tabulates: [-α/2 - 5s, 3α/2 + 5s].
+fn fit_range(profile: &DitherProfile, alpha: f64) -> (f64, f64) {
+    let s = profile.scale_kw();
+    (-0.5 * alpha - 5.0 * s, 1.5 * alpha + 5.0 * s)
+}
+
+/// Bytes of the table a fit with service limit `alpha_kw` builds.
+pub fn fit_table_bytes(profile: &DitherProfile, alpha_kw: f64) -> f64 {
+    let (lo, hi) = fit_range(profile, alpha_kw);
+    let nodes = (hi - lo) / (profile.scale_kw() / PER_SCALE) + 2.0;
+    nodes * profile.levels() as f64 * std::mem::size_of::<[f64; 3]>() as f64
+}
+
+/// Refuses a service limit whose table would exceed [`MAX_TABLE_BYTES`].
+pub fn check_table_size(profile: &DitherProfile, alpha_kw: f64) -> Result<(), FieldError> {
+    let bytes = fit_table_bytes(profile, alpha_kw);
+    if !bytes.is_finite() || bytes > MAX_TABLE_BYTES as f64 {
+        let most = alpha_kw * MAX_TABLE_BYTES as f64 / bytes;
+        return Err(FieldError::new(
+            "alpha_kw",
+            format!(
+                "{alpha_kw} kW with a dither scale of {} kW and {} levels needs a {:.0} MiB likelihood table; \
+                 at most {} MiB are allowed, so at this scale alpha_kw can be at most about {most:.0} kW",
+                profile.scale_kw(),
+                profile.levels(),
+                bytes / 1_048_576.0,
+                MAX_TABLE_BYTES >> 20
+            ),
+        ));
+    }
+    Ok(())
+}
 
 #[derive(Debug, Clone)]
 pub struct LikelihoodTable {
@@ -45,6 +86,14 @@ impl LikelihoodTable {
         Self { profile: profile.clone(), lo, hi: lo + (nodes - 1) as f64 * h, h, inv_h: 1.0 / h, nodes, data }
     }
 
+    /// The table a fit with service limit `alpha_kw` uses, refused (naming
+    /// `alpha_kw`) when it would exceed [`MAX_TABLE_BYTES`].
+    pub fn for_fit(profile: &DitherProfile, alpha_kw: f64) -> Result<Self, FieldError> {
+        check_table_size(profile, alpha_kw)?;
+        let (lo, hi) = fit_range(profile, alpha_kw);
+        Ok(Self::new(profile, lo, hi))
+    }
+
     pub fn profile(&self) -> &DitherProfile {
         &self.profile
     }
@@ -77,6 +126,31 @@ impl LikelihoodTable {
 mod tests {
     use super::*;
     use crate::profile::DitherProfileSpec;
+
+    #[test]
+    fn a_fit_table_is_bounded_and_the_error_names_alpha() {
+        let p = |scale_kw: f64| {
+            DitherProfile::try_from(DitherProfileSpec {
+                noise: "gaussian".into(),
+                scale_kw,
+                boundaries_kw: vec![1.0, 2.0],
+                interval_s: 900,
+                send_registers: false,
+                register_period: None,
+            })
+            .unwrap()
+        };
+        // 15 kW at the smallest scale: about 264 MiB, allowed.
+        let mib = fit_table_bytes(&p(0.001), 15.0) / 1_048_576.0;
+        assert!((mib - 264.0).abs() < 1.0, "{mib}");
+        assert!(check_table_size(&p(0.001), 15.0).is_ok());
+        // 10,000 kW at 0.001 kW would need about 172 GiB.
+        let e = LikelihoodTable::for_fit(&p(0.001), 10_000.0).unwrap_err();
+        assert_eq!(e.field, "alpha_kw");
+        assert!(e.reason.contains("at most about 29 kW"), "{}", e.reason);
+        assert!(check_table_size(&p(0.3), 10_000.0).is_err());
+        assert!(check_table_size(&p(0.3), 5_000.0).is_ok());
+    }
 
     #[test]
     fn matches_the_exact_formula() {

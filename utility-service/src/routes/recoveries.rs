@@ -64,6 +64,10 @@ async fn start(_: Operator, State(s): State<AppState>, body: Bytes) -> Result<(S
     if !(alpha_kw.is_finite() && alpha_kw > 0.0 && alpha_kw <= 10_000.0) {
         return Err(ApiError::invalid("alpha_kw", "must be a positive number of kW up to 10000"));
     }
+    // Every profile version the window may hold must keep the fit's table bounded.
+    for p in s.store.profiles(&feeder).await? {
+        meterveil_shared::recovery::table::check_table_size(&p.profile, alpha_kw).map_err(ApiError::Invalid)?;
+    }
     let job_id = crate::jobs::new_job_id("rec");
     let rank = match rank {
         RankChoice::Fixed(r) => json!(r),
