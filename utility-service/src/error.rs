@@ -58,6 +58,19 @@ impl ApiError {
     }
 }
 
+/// The one mapping of store errors to HTTP.
+impl From<crate::store::StoreError> for ApiError {
+    fn from(e: crate::store::StoreError) -> Self {
+        use crate::store::StoreError;
+        match e {
+            StoreError::NotFound(f) => ApiError::NotFound(f),
+            StoreError::Conflict(f) => ApiError::Conflict(f),
+            StoreError::Database(e) => ApiError::Internal(e.into()),
+            StoreError::Other(e) => ApiError::Internal(e),
+        }
+    }
+}
+
 impl From<sqlx::Error> for ApiError {
     fn from(e: sqlx::Error) -> Self {
         ApiError::Internal(e.into())

@@ -4,7 +4,7 @@ use serde::Serialize;
 use sqlx::{Any, Row};
 
 use super::Store;
-use crate::error::ApiError;
+use super::StoreError;
 
 #[derive(Debug, Clone, Serialize)]
 pub struct AnalysisRecord {
@@ -38,7 +38,7 @@ impl Store {
         feeder: Option<&str>,
         params: &serde_json::Value,
         now: i64,
-    ) -> Result<(), ApiError> {
+    ) -> Result<(), StoreError> {
         let _w = self.write_lock().await;
         sqlx::query(
             "INSERT INTO analysis_jobs (job_id, kind, feeder_id, params, state, created_at) VALUES ($1, $2, $3, $4, 'queued', $5)",
@@ -61,7 +61,7 @@ impl Store {
         result: &serde_json::Value,
         assignments: &[Assignment],
         now: i64,
-    ) -> Result<(), ApiError> {
+    ) -> Result<(), StoreError> {
         let _w = self.write_lock().await;
         let mut tx = self.pool.begin().await?;
         Self::take_done(&mut tx, id, result, &self.worker_id, now).await?;
@@ -95,7 +95,7 @@ impl Store {
         result: &serde_json::Value,
         worker: &str,
         now: i64,
-    ) -> Result<(), ApiError> {
+    ) -> Result<(), StoreError> {
         let held = sqlx::query(
             "UPDATE analysis_jobs SET state = 'done', progress = 1, message = 'done', result = $1, finished_at = $2
              WHERE job_id = $3 AND state = 'running' AND (worker IS NULL OR worker = $4)",
@@ -107,7 +107,7 @@ impl Store {
         .execute(&mut **tx)
         .await?;
         if held.rows_affected() != 1 {
-            return Err(ApiError::Conflict(meterveil_shared::FieldError::new(
+            return Err(StoreError::Conflict(meterveil_shared::FieldError::new(
                 "job_id",
                 format!("job {id} is no longer held by this worker; its results were discarded"),
             )));
@@ -123,7 +123,7 @@ impl Store {
         result: &serde_json::Value,
         publish: Option<(&meterveil_shared::FeederId, &meterveil_shared::DitherProfile)>,
         now: i64,
-    ) -> Result<Option<i64>, ApiError> {
+    ) -> Result<Option<i64>, StoreError> {
         let _w = self.write_lock().await;
         let mut tx = self.pool.begin().await?;
         let version = match publish {
@@ -137,7 +137,7 @@ impl Store {
         Ok(version)
     }
 
-    pub async fn analysis(&self, id: &str) -> Result<Option<AnalysisRecord>, ApiError> {
+    pub async fn analysis(&self, id: &str) -> Result<Option<AnalysisRecord>, StoreError> {
         let Some(r) =
             sqlx::query("SELECT * FROM analysis_jobs WHERE job_id = $1").bind(id).fetch_optional(&self.pool).await?
         else {
@@ -159,7 +159,7 @@ impl Store {
         }))
     }
 
-    pub async fn assignments(&self, id: &str) -> Result<Vec<Assignment>, ApiError> {
+    pub async fn assignments(&self, id: &str) -> Result<Vec<Assignment>, StoreError> {
         let rows = sqlx::query(
             "SELECT meter_id, feeder_id, cluster, confidence FROM cluster_assignments WHERE job_id = $1 ORDER BY meter_id",
         )

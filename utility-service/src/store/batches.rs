@@ -13,9 +13,9 @@ use meterveil_shared::wire::AckWire;
 use meterveil_shared::FeederId;
 use sqlx::{AnyConnection, Connection, Row};
 
+use super::StoreError;
 use super::INSERT_CHUNK;
 use super::{placeholders, profile_from_row, stored_batch_from_row, values_sql, ProfileRecord, Store, StoredBatch};
-use crate::error::ApiError;
 use crate::ingest::ValidatedBatch;
 
 /// Ids per `IN (…)` list.
@@ -58,7 +58,7 @@ pub struct Accepted {
 
 impl Store {
     /// Reads what `keys` names; ids that are not stored are simply absent.
-    pub async fn group_state(&self, conn: &mut AnyConnection, keys: &GroupKeys<'_>) -> Result<GroupState, ApiError> {
+    pub async fn group_state(&self, conn: &mut AnyConnection, keys: &GroupKeys<'_>) -> Result<GroupState, StoreError> {
         let mut st = GroupState::default();
         for chunk in keys.gateways.chunks(IN_CHUNK) {
             let sql = format!(
@@ -143,7 +143,7 @@ impl Store {
         conn: &mut AnyConnection,
         group: &[Accepted],
         now: i64,
-    ) -> Result<Option<Vec<AckWire>>, ApiError> {
+    ) -> Result<Option<Vec<AckWire>>, StoreError> {
         if group.is_empty() {
             return Ok(Some(Vec::new()));
         }

@@ -3,7 +3,7 @@
 use meterveil_shared::FeederId;
 
 use super::Store;
-use crate::error::ApiError;
+use super::StoreError;
 
 #[derive(Debug, Clone)]
 pub struct GatewayRecord {
@@ -16,7 +16,7 @@ pub struct GatewayRecord {
 impl Store {
     /// Provisions a gateway on a feeder, or rotates an existing one's key (and
     /// moves it to `feeder`). Returns the new key generation.
-    pub async fn provision_gateway(&self, id: &str, feeder: &FeederId, now: i64) -> Result<i64, ApiError> {
+    pub async fn provision_gateway(&self, id: &str, feeder: &FeederId, now: i64) -> Result<i64, StoreError> {
         let _w = self.write_lock().await;
         let generation: i64 = sqlx::query_scalar(
             "INSERT INTO gateways (gateway_id, feeder_id, key_generation, created_at) VALUES ($1, $2, 1, $3)
@@ -31,7 +31,7 @@ impl Store {
         Ok(generation)
     }
 
-    pub async fn gateway(&self, id: &str) -> Result<Option<GatewayRecord>, ApiError> {
+    pub async fn gateway(&self, id: &str) -> Result<Option<GatewayRecord>, StoreError> {
         let r: Option<(String, String, i64, i64)> = sqlx::query_as(
             "SELECT gateway_id, feeder_id, key_generation, last_sequence FROM gateways WHERE gateway_id = $1",
         )
@@ -47,7 +47,7 @@ impl Store {
     }
 
     /// The body hash and batch id an accepted sequence number carried.
-    pub async fn sequence_record(&self, gateway: &str, sequence: i64) -> Result<Option<(String, String)>, ApiError> {
+    pub async fn sequence_record(&self, gateway: &str, sequence: i64) -> Result<Option<(String, String)>, StoreError> {
         Ok(sqlx::query_as(
             "SELECT body_sha256, batch_id FROM gateway_sequences WHERE gateway_id = $1 AND sequence = $2",
         )

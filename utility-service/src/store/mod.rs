@@ -20,7 +20,24 @@ use sqlx::any::{AnyPoolOptions, AnyRow};
 use sqlx::{Any, AnyPool, Executor, Row};
 use tokio::sync::{Mutex, MutexGuard};
 
-use crate::error::ApiError;
+/// What the store can fail with. The HTTP status of each is decided in
+/// `error.rs` (the one place errors meet HTTP); background work reports them as
+/// its failure message.
+#[derive(Debug, thiserror::Error)]
+pub enum StoreError {
+    /// The row asked for does not exist.
+    #[error("{0}")]
+    NotFound(FieldError),
+    /// The write conflicts with stored state (a reused id, a profile in use).
+    #[error("{0}")]
+    Conflict(FieldError),
+    /// The database failed or refused the statement.
+    #[error(transparent)]
+    Database(#[from] sqlx::Error),
+    /// Anything else (a stored value that does not decode, a migration).
+    #[error(transparent)]
+    Other(#[from] anyhow::Error),
+}
 
 pub mod analyses;
 pub mod batches;
@@ -208,7 +225,7 @@ impl Store {
         backend: Backend,
         tx: &mut sqlx::Transaction<'_, Any>,
         feeder: &FeederId,
-    ) -> Result<(), ApiError> {
+    ) -> Result<(), StoreError> {
         if backend == Backend::Postgres {
             sqlx::query("SELECT feeder_id FROM feeders WHERE feeder_id = $1 FOR UPDATE")
                 .bind(feeder.as_str())
@@ -219,7 +236,13 @@ impl Store {
     }
 
     /// Registers a feeder. Returns false when it already existed (same id).
-    pub async fn create_feeder(&self, id: &FeederId, name: &str, time_zone: &str, now: i64) -> Result<bool, ApiError> {
+    pub async fn create_feeder(
+        &self,
+        id: &FeederId,
+        name: &str,
+        time_zone: &str,
+        now: i64,
+    ) -> Result<bool, StoreError> {
         let _w = self.write_lock().await;
         let r =
             sqlx::query("INSERT INTO feeders (feeder_id, name, time_zone, created_at) VALUES ($1, $2, $3, $4) ON CONFLICT DO NOTHING")
@@ -233,14 +256,14 @@ impl Store {
     }
 
     /// The feeder's IANA time zone name, or None when it is not registered.
-    pub async fn feeder_time_zone(&self, id: &FeederId) -> Result<Option<String>, ApiError> {
+    pub async fn feeder_time_zone(&self, id: &FeederId) -> Result<Option<String>, StoreError> {
         Ok(sqlx::query_scalar("SELECT time_zone FROM feeders WHERE feeder_id = $1")
             .bind(id.as_str())
             .fetch_optional(&self.pool)
             .await?)
     }
 
-    pub async fn feeder_exists(&self, id: &FeederId) -> Result<bool, ApiError> {
+    pub async fn feeder_exists(&self, id: &FeederId) -> Result<bool, StoreError> {
         let row = sqlx::query("SELECT 1 FROM feeders WHERE feeder_id = $1")
             .bind(id.as_str())
             .fetch_optional(&self.pool)
@@ -250,7 +273,7 @@ impl Store {
 
     /// Registers meters on a feeder. Meters already on this feeder are counted, not
     /// an error; a meter registered on another feeder is a 409 and nothing is added.
-    pub async fn add_meters(&self, feeder: &FeederId, ids: &[MeterId], now: i64) -> Result<(u64, u64), ApiError> {
+    pub async fn add_meters(&self, feeder: &FeederId, ids: &[MeterId], now: i64) -> Result<(u64, u64), StoreError> {
         let _w = self.write_lock().await;
         let mut tx = self.pool.begin().await?;
         let mut added = 0;
@@ -262,7 +285,7 @@ impl Store {
             match existing {
                 Some(f) if f == feeder.as_str() => {}
                 Some(f) => {
-                    return Err(ApiError::Conflict(FieldError::new(
+                    return Err(StoreError::Conflict(FieldError::new(
                         format!("meter_ids[{i}]"),
                         format!("meter {id} is already registered on feeder {f}"),
                     )))
@@ -283,7 +306,7 @@ impl Store {
     }
 
     /// The subset of `ids` registered on `feeder`.
-    pub async fn meters_of(&self, feeder: &FeederId) -> Result<Vec<String>, ApiError> {
+    pub async fn meters_of(&self, feeder: &FeederId) -> Result<Vec<String>, StoreError> {
         Ok(sqlx::query_scalar("SELECT meter_id FROM meters WHERE feeder_id = $1 ORDER BY meter_id")
             .bind(feeder.as_str())
             .fetch_all(&self.pool)
@@ -291,7 +314,7 @@ impl Store {
     }
 
     /// All versions of a feeder's profile, oldest first.
-    pub async fn profiles(&self, feeder: &FeederId) -> Result<Vec<ProfileRecord>, ApiError> {
+    pub async fn profiles(&self, feeder: &FeederId) -> Result<Vec<ProfileRecord>, StoreError> {
         let rows = sqlx::query(
             "SELECT version, noise, scale_kw, boundaries_kw, interval_s, send_registers, register_period, created_at, in_use
              FROM dither_profiles WHERE feeder_id = $1 ORDER BY version",
@@ -302,7 +325,7 @@ impl Store {
         rows.into_iter().map(|r| profile_from_row(feeder, &r)).collect()
     }
 
-    pub async fn current_profile(&self, feeder: &FeederId) -> Result<Option<ProfileRecord>, ApiError> {
+    pub async fn current_profile(&self, feeder: &FeederId) -> Result<Option<ProfileRecord>, StoreError> {
         Ok(self.profiles(feeder).await?.pop())
     }
 
@@ -312,7 +335,7 @@ impl Store {
         feeder: &FeederId,
         profile: &DitherProfile,
         now: i64,
-    ) -> Result<ProfileRecord, ApiError> {
+    ) -> Result<ProfileRecord, StoreError> {
         let _w = self.write_lock().await;
         let mut tx = self.pool.begin().await?;
         let next = insert_profile(self.backend, &mut tx, feeder, profile, now).await?;
@@ -332,7 +355,7 @@ impl Store {
         feeder: &FeederId,
         version: ProfileVersion,
         profile: &DitherProfile,
-    ) -> Result<(), ApiError> {
+    ) -> Result<(), StoreError> {
         let _w = self.write_lock().await;
         let spec = profile.to_spec();
         let in_use: Option<i64> =
@@ -343,11 +366,11 @@ impl Store {
                 .await?;
         let in_use = in_use.map(|v| v != 0);
         match in_use {
-            None => Err(ApiError::NotFound(FieldError::new(
+            None => Err(StoreError::NotFound(FieldError::new(
                 "version",
                 format!("feeder {feeder} has no profile {version}"),
             ))),
-            Some(true) => Err(ApiError::Conflict(FieldError::new(
+            Some(true) => Err(StoreError::Conflict(FieldError::new(
                 "version",
                 format!("profile {version} of feeder {feeder} has been used by readings and is immutable; publish a new version instead"),
             ))),
@@ -371,7 +394,7 @@ impl Store {
         }
     }
 
-    pub async fn find_batch(&self, batch_id: &str) -> Result<Option<StoredBatch>, ApiError> {
+    pub async fn find_batch(&self, batch_id: &str) -> Result<Option<StoredBatch>, StoreError> {
         let row = sqlx::query("SELECT body_sha256, ack FROM ingest_batches WHERE batch_id = $1")
             .bind(batch_id)
             .fetch_optional(&self.pool)
@@ -379,7 +402,7 @@ impl Store {
         row.map(|r| stored_batch_from_row(&r)).transpose()
     }
 
-    pub async fn feeder_summaries(&self) -> Result<Vec<FeederSummary>, ApiError> {
+    pub async fn feeder_summaries(&self) -> Result<Vec<FeederSummary>, StoreError> {
         let rows = sqlx::query(
             "SELECT f.feeder_id, f.name,
                     (SELECT COUNT(*) FROM meters m WHERE m.feeder_id = f.feeder_id),
@@ -408,7 +431,7 @@ impl Store {
 
     /// Every stored level of a feeder as (meter_id, interval_start, level, profile_version),
     /// ordered by meter and time.
-    pub async fn feeder_levels(&self, feeder: &FeederId) -> Result<Vec<(String, i64, u8, u32)>, ApiError> {
+    pub async fn feeder_levels(&self, feeder: &FeederId) -> Result<Vec<(String, i64, u8, u32)>, StoreError> {
         let rows = sqlx::query(
             "SELECT r.meter_id, r.interval_start, r.level, r.profile_version
              FROM readings r JOIN meters m ON m.meter_id = r.meter_id
@@ -423,7 +446,7 @@ impl Store {
     }
 
     /// Names of every column of every table, for the audit that no raw value is stored.
-    pub async fn schema_columns(&self) -> Result<Vec<(String, String, String)>, ApiError> {
+    pub async fn schema_columns(&self) -> Result<Vec<(String, String, String)>, StoreError> {
         if self.backend == Backend::Postgres {
             let rows: Vec<(String, String, String)> = sqlx::query_as(
                 "SELECT table_name::text, column_name::text, data_type::text FROM information_schema.columns
@@ -450,7 +473,7 @@ impl Store {
     }
 }
 
-fn profile_from_row(feeder: &FeederId, r: &AnyRow) -> Result<ProfileRecord, ApiError> {
+fn profile_from_row(feeder: &FeederId, r: &AnyRow) -> Result<ProfileRecord, StoreError> {
     let boundaries: String = r.try_get("boundaries_kw")?;
     let spec = DitherProfileSpec {
         noise: r.try_get("noise")?,
@@ -470,7 +493,7 @@ fn profile_from_row(feeder: &FeederId, r: &AnyRow) -> Result<ProfileRecord, ApiE
     })
 }
 
-fn stored_batch_from_row(r: &AnyRow) -> Result<StoredBatch, ApiError> {
+fn stored_batch_from_row(r: &AnyRow) -> Result<StoredBatch, StoreError> {
     let ack: String = r.try_get("ack")?;
     Ok(StoredBatch {
         body_sha256: r.try_get("body_sha256")?,
@@ -485,7 +508,7 @@ pub(crate) async fn insert_profile(
     feeder: &FeederId,
     profile: &DitherProfile,
     now: i64,
-) -> Result<i64, ApiError> {
+) -> Result<i64, StoreError> {
     Store::lock_feeder(backend, tx, feeder).await?;
     let next: i64 =
         sqlx::query_scalar("SELECT COALESCE(MAX(version), 0) + 1 FROM dither_profiles WHERE feeder_id = $1")

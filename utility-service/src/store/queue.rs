@@ -6,7 +6,7 @@ use serde::Serialize;
 use sqlx::Row;
 
 use super::Store;
-use crate::error::ApiError;
+use super::StoreError;
 
 /// The two job tables.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
@@ -70,7 +70,7 @@ impl Store {
         progress: f64,
         message: &str,
         now: i64,
-    ) -> Result<(), ApiError> {
+    ) -> Result<(), StoreError> {
         let _w = self.write_lock().await;
         sqlx::query(&format!(
             "UPDATE {} SET state = 'running', progress = $1, message = $2, started_at = COALESCE(started_at, $3)
@@ -88,7 +88,7 @@ impl Store {
     }
 
     /// Ends a job as failed with `error` (only while this worker may hold it).
-    pub async fn fail(&self, table: JobTable, id: &str, error: &str, now: i64) -> Result<(), ApiError> {
+    pub async fn fail(&self, table: JobTable, id: &str, error: &str, now: i64) -> Result<(), StoreError> {
         let _w = self.write_lock().await;
         sqlx::query(&format!(
             "UPDATE {} SET state = 'failed', error = $1, finished_at = $2
@@ -119,7 +119,7 @@ impl Store {
         lease_s: i64,
         max_attempts: i64,
         feeders: Option<&[String]>,
-    ) -> Result<Option<Claimed>, ApiError> {
+    ) -> Result<Option<Claimed>, StoreError> {
         let _w = self.write_lock().await;
         for table in [JobTable::Recovery, JobTable::Analysis] {
             let t = table.name();
@@ -179,7 +179,7 @@ impl Store {
 
     /// Extends this worker's lease; false when the job is no longer ours (taken
     /// over after our lease ran out, or cancelled).
-    pub async fn renew_lease(&self, table: JobTable, id: &str, until: i64) -> Result<bool, ApiError> {
+    pub async fn renew_lease(&self, table: JobTable, id: &str, until: i64) -> Result<bool, StoreError> {
         let _w = self.write_lock().await;
         let r = sqlx::query(&format!(
             "UPDATE {} SET lease_until = $1 WHERE job_id = $2 AND worker = $3 AND state = 'running'",
@@ -195,7 +195,7 @@ impl Store {
 
     /// Cancels a queued or running job (it ends as failed, "cancelled by the
     /// operator"); false when it had already ended or does not exist.
-    pub async fn cancel_job(&self, id: &str, now: i64) -> Result<bool, ApiError> {
+    pub async fn cancel_job(&self, id: &str, now: i64) -> Result<bool, StoreError> {
         let _w = self.write_lock().await;
         let r = sqlx::query(&format!(
             "UPDATE {} SET state = 'failed', error = 'cancelled by the operator', finished_at = $1
@@ -210,7 +210,7 @@ impl Store {
     }
 
     /// The most recent jobs of both tables, newest first.
-    pub async fn list_jobs(&self, limit: i64) -> Result<Vec<JobLine>, ApiError> {
+    pub async fn list_jobs(&self, limit: i64) -> Result<Vec<JobLine>, StoreError> {
         let rows = sqlx::query(
             "SELECT job_id, 'recover' AS kind, state, progress, message, attempts, worker, created_at, started_at, finished_at, error FROM recovery_jobs
              UNION ALL

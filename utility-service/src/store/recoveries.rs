@@ -5,7 +5,7 @@ use serde::Serialize;
 use sqlx::Row;
 
 use super::Store;
-use crate::error::ApiError;
+use super::StoreError;
 use crate::settlement::Advance;
 
 #[derive(Debug, Clone, Serialize)]
@@ -46,7 +46,7 @@ impl Store {
         to: i64,
         params: &serde_json::Value,
         now: i64,
-    ) -> Result<(), ApiError> {
+    ) -> Result<(), StoreError> {
         let _w = self.write_lock().await;
         sqlx::query(
             "INSERT INTO recovery_jobs (job_id, feeder_id, window_start, window_end, params, state, created_at) VALUES ($1, $2, $3, $4, $5, 'queued', $6)",
@@ -70,7 +70,7 @@ impl Store {
         rows: &[RecoveredRow],
         diagnostics: &serde_json::Value,
         now: i64,
-    ) -> Result<(), ApiError> {
+    ) -> Result<(), StoreError> {
         let _w = self.write_lock().await;
         let mut tx = self.pool.begin().await?;
         // Only the lease holder may finish: a worker whose lease ran out (and whose
@@ -87,7 +87,7 @@ impl Store {
         .execute(&mut *tx)
         .await?;
         if held.rows_affected() != 1 {
-            return Err(ApiError::Conflict(meterveil_shared::FieldError::new(
+            return Err(StoreError::Conflict(meterveil_shared::FieldError::new(
                 "job_id",
                 format!("job {id} is no longer held by this worker; its results were discarded"),
             )));
@@ -117,7 +117,7 @@ impl Store {
         Ok(())
     }
 
-    pub async fn job(&self, id: &str) -> Result<Option<JobRecord>, ApiError> {
+    pub async fn job(&self, id: &str) -> Result<Option<JobRecord>, StoreError> {
         let Some(r) =
             sqlx::query("SELECT * FROM recovery_jobs WHERE job_id = $1").bind(id).fetch_optional(&self.pool).await?
         else {
@@ -142,7 +142,7 @@ impl Store {
         }))
     }
 
-    pub async fn job_rows(&self, id: &str, meter: Option<&str>) -> Result<Vec<RecoveredRow>, ApiError> {
+    pub async fn job_rows(&self, id: &str, meter: Option<&str>) -> Result<Vec<RecoveredRow>, StoreError> {
         let rows = sqlx::query(
             "SELECT meter_id, interval_start, estimate_kw, flag, band_low_kw, band_high_kw FROM recovered_intervals
              WHERE job_id = $1 AND ($2 IS NULL OR meter_id = $2) ORDER BY meter_id, interval_start",
@@ -171,7 +171,7 @@ impl Store {
     }
 
     /// One meter's levels in [from, to) as (interval_start, level), in time order.
-    pub async fn meter_levels_between(&self, meter: &str, from: i64, to: i64) -> Result<Vec<(i64, u8)>, ApiError> {
+    pub async fn meter_levels_between(&self, meter: &str, from: i64, to: i64) -> Result<Vec<(i64, u8)>, StoreError> {
         let rows: Vec<(i64, i64)> = sqlx::query_as(
             "SELECT interval_start, level FROM readings WHERE meter_id = $1 AND interval_start >= $2 AND interval_start < $3
              ORDER BY interval_start",
@@ -185,7 +185,7 @@ impl Store {
     }
 
     /// First and last interval start of a feeder's stored readings.
-    pub async fn feeder_span(&self, feeder: &FeederId) -> Result<Option<(i64, i64)>, ApiError> {
+    pub async fn feeder_span(&self, feeder: &FeederId) -> Result<Option<(i64, i64)>, StoreError> {
         let r: (Option<i64>, Option<i64>) = sqlx::query_as(
             "SELECT MIN(r.interval_start), MAX(r.interval_start) FROM readings r JOIN meters m ON m.meter_id = r.meter_id
              WHERE m.feeder_id = $1",
@@ -202,7 +202,7 @@ impl Store {
         feeder: &FeederId,
         from: i64,
         to: i64,
-    ) -> Result<Vec<(String, i64, u8, u32)>, ApiError> {
+    ) -> Result<Vec<(String, i64, u8, u32)>, StoreError> {
         let rows = sqlx::query(
             "SELECT r.meter_id, r.interval_start, r.level, r.profile_version
              FROM readings r JOIN meters m ON m.meter_id = r.meter_id
@@ -225,7 +225,7 @@ impl Store {
         feeder: &FeederId,
         from: i64,
         to: i64,
-    ) -> Result<Vec<Advance>, ApiError> {
+    ) -> Result<Vec<Advance>, StoreError> {
         let rows: Vec<(String, i64, i64, i64)> = sqlx::query_as(
             "SELECT g.meter_id, g.period_start, g.read_at, g.wh FROM register_advances g
              JOIN meters m ON m.meter_id = g.meter_id
