@@ -747,9 +747,7 @@ fn recover_command_on_files() {
         .output()
         .expect("run recover");
     assert!(run.status.success(), "{}", String::from_utf8_lossy(&run.stderr));
-    let summary: Value =
-        serde_json::from_slice(run.stdout.split(|b| *b == b'\n').rfind(|l| !l.is_empty()).expect("line"))
-            .expect("json");
+    let summary = last_json_line(&run.stdout);
     assert_eq!(summary["meters"], 60);
     assert_eq!(summary["intervals"], 7 * 96);
     assert_eq!(summary["readings"], rows);
@@ -788,9 +786,7 @@ fn recover_command_on_files() {
         .output()
         .expect("run cluster");
     assert!(run.status.success(), "{}", String::from_utf8_lossy(&run.stderr));
-    let summary: Value =
-        serde_json::from_slice(run.stdout.split(|b| *b == b'\n').rfind(|l| !l.is_empty()).expect("line"))
-            .expect("json");
+    let summary = last_json_line(&run.stdout);
     assert_eq!((summary["clusters"].as_u64(), summary["chosen_by"].as_str()), (Some(4), Some("operator")));
     assert_eq!(summary["representatives"][0]["weekday_kw"].as_array().map(Vec::len), Some(96));
     let text = std::fs::read_to_string(&clusters).expect("clusters");
@@ -812,9 +808,7 @@ fn recover_command_on_files() {
         .output()
         .expect("run cluster");
     assert!(run.status.success(), "{}", String::from_utf8_lossy(&run.stderr));
-    let summary: Value =
-        serde_json::from_slice(run.stdout.split(|b| *b == b'\n').rfind(|l| !l.is_empty()).expect("line"))
-            .expect("json");
+    let summary = last_json_line(&run.stdout);
     assert_eq!(summary["chosen_by"].as_str(), Some("stability"), "{summary}");
     let k = summary["clusters"].as_u64().expect("clusters") as usize;
     assert_eq!(summary["coherence"].as_array().map(Vec::len), Some(k), "{summary}");

@@ -4,9 +4,6 @@
 
 mod common;
 
-use std::io::Write;
-use std::process::{Command, Stdio};
-
 use common::*;
 use meterveil_shared::cluster::{cluster, features, representation, ClusterParams, CLUSTER_RANK};
 use meterveil_shared::recovery::outage::DayLayout;
@@ -15,24 +12,6 @@ use rand::Rng;
 use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, LogNormal};
-use serde_json::{json, Value};
-
-fn scores(truth: &[usize], labels: &[(&str, &[usize])], feats: &DMatrix<f64>, k: usize) -> Value {
-    let python = std::env::var("METERVEIL_PYTHON").unwrap_or_else(|_| "python3".into());
-    let script = concat!(env!("CARGO_MANIFEST_DIR"), "/../tests/reference/clustering_scores.py");
-    let rows: Vec<Vec<f64>> = feats.row_iter().map(|r| r.iter().copied().collect()).collect();
-    let body = json!({
-        "truth": truth,
-        "labels": labels.iter().map(|(n, l)| (n.to_string(), json!(l))).collect::<serde_json::Map<_, _>>(),
-        "features": rows, "k": k,
-    });
-    let mut child =
-        Command::new(&python).arg(script).stdin(Stdio::piped()).stdout(Stdio::piped()).spawn().expect("python");
-    child.stdin.take().expect("stdin").write_all(body.to_string().as_bytes()).expect("write");
-    let out = child.wait_with_output().expect("scores");
-    assert!(out.status.success(), "clustering_scores.py failed");
-    serde_json::from_slice(&out.stdout).expect("json")
-}
 
 #[test]
 fn bdew_classes_are_found_in_true_and_recovered_profiles() {
@@ -48,10 +27,11 @@ fn bdew_classes_are_found_in_true_and_recovered_profiles() {
     let dense =
         cluster(&truth, &ClusterParams { clusters: Some(shapes.len()), dense_limit: 1400, ..params.clone() }).unwrap();
     let feats = features(&truth, params.dimension, params.seed);
-    let s = scores(
+    let s = clustering_scores(
         &class,
         &[("auto", &auto.labels), ("fixed", &fixed.labels), ("dense", &dense.labels)],
         &feats,
+        None,
         shapes.len(),
     );
     eprintln!("{source}; sklearn {}: true profiles: automatic count {} (of {}), ARI auto {:.3}, ARI with {} clusters {:.3} (dense eigensolver {:.3}), sklearn KMeans on the same features {:.3}; eigenvalues {:?}",
@@ -63,7 +43,7 @@ fn bdew_classes_are_found_in_true_and_recovered_profiles() {
     let rec = representation(&levels, &p, &[], layout, 15.0, &mut |_, _| {}).unwrap();
     let on_rec = cluster(&rec, &ClusterParams { clusters: Some(shapes.len()), ..params.clone() }).unwrap();
     let rfeats = features(&rec, params.dimension, params.seed);
-    let r = scores(&class, &[("recovered", &on_rec.labels)], &rfeats, shapes.len());
+    let r = clustering_scores(&class, &[("recovered", &on_rec.labels)], &rfeats, None, shapes.len());
     eprintln!(
         "from the levels (clustering fit at rank {CLUSTER_RANK}): ARI {:.3}, sklearn KMeans on the same features {:.3}",
         r["ari"]["recovered"], r["ari"]["sklearn_kmeans"]
@@ -131,7 +111,7 @@ fn mixed_use_classes_separate_where_kmeans_does_not() {
         let ridge_only = cluster(&x, &ClusterParams { l1: 0.0, ..params.clone() }).unwrap();
         let auto = cluster(&x, &ClusterParams { clusters: None, ..params.clone() }).unwrap();
         let feats = features(&x, params.dimension, params.seed);
-        let s = scores(&class, &[("ours", &ours.labels), ("ridge", &ridge_only.labels)], &feats, k);
+        let s = clustering_scores(&class, &[("ours", &ours.labels), ("ridge", &ridge_only.labels)], &feats, None, k);
         let (ari, km) = (s["ari"]["ours"].as_f64().unwrap(), s["ari"]["sklearn_kmeans"].as_f64().unwrap());
         eprintln!(
             "mixed-use population ({}), 1200 meters, {k} classes: ARI ours {ari:.3}, ridge-only self-expression {:.3}, sklearn {} KMeans on the same features {km:.3}; automatic count {} (stability rule)",

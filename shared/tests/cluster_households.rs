@@ -7,9 +7,6 @@
 
 mod common;
 
-use std::io::Write;
-use std::process::{Command, Stdio};
-
 use common::*;
 use meterveil_shared::cluster::{affinity_graph, cluster, features, representation, ClusterParams};
 use meterveil_shared::recovery::outage::DayLayout;
@@ -17,7 +14,6 @@ use nalgebra::DMatrix;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, LogNormal, Poisson};
-use serde_json::{json, Value};
 
 /// A smooth bump over the day, for a meter's own habit: 1 + a·exp(-(h-h0)²/2w²)
 /// (h wraps around midnight).
@@ -78,31 +74,6 @@ pub fn households_dominating(
     (x, class)
 }
 
-fn scores(
-    truth: &[usize],
-    labels: &[(&str, &[usize])],
-    feats: &DMatrix<f64>,
-    affinity: &[Vec<(usize, f64)>],
-    k: usize,
-) -> Value {
-    let python = std::env::var("METERVEIL_PYTHON").unwrap_or_else(|_| "python3".into());
-    let script = concat!(env!("CARGO_MANIFEST_DIR"), "/../tests/reference/clustering_scores.py");
-    let rows: Vec<Vec<f64>> = feats.row_iter().map(|r| r.iter().copied().collect()).collect();
-    let edges: Vec<(usize, usize, f64)> =
-        affinity.iter().enumerate().flat_map(|(i, r)| r.iter().map(move |&(j, v)| (i, j, v))).collect();
-    let body = json!({
-        "truth": truth,
-        "labels": labels.iter().map(|(n, l)| (n.to_string(), json!(l))).collect::<serde_json::Map<_, _>>(),
-        "features": rows, "k": k, "affinity": edges,
-    });
-    let mut child =
-        Command::new(&python).arg(script).stdin(Stdio::piped()).stdout(Stdio::piped()).spawn().expect("python");
-    child.stdin.take().expect("stdin").write_all(body.to_string().as_bytes()).expect("write");
-    let out = child.wait_with_output().expect("scores");
-    assert!(out.status.success(), "clustering_scores.py failed");
-    serde_json::from_slice(&out.stdout).expect("json")
-}
-
 struct Figures {
     clusters: usize,
     auto: f64,
@@ -128,7 +99,7 @@ fn run(name: &str, truth: &DMatrix<f64>, class: &[usize], k: usize) -> Figures {
     let fixed = cluster(&x, &ClusterParams { clusters: Some(k), ..params.clone() }).unwrap();
     let feats = features(&x, params.dimension, params.seed);
     let w = affinity_graph(&x, &params);
-    let s = scores(class, &[("auto", &auto.labels), ("fixed", &fixed.labels)], &feats, &w, k);
+    let s = clustering_scores(class, &[("auto", &auto.labels), ("fixed", &fixed.labels)], &feats, Some(&w), k);
     let f = |n: &str| s["ari"][n].as_f64().unwrap();
     let unassigned = auto.assigned.iter().filter(|a| !**a).count() as f64 / x.nrows() as f64;
     eprintln!(

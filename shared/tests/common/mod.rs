@@ -42,6 +42,37 @@ pub fn python_json(script: &str, args: &[&str]) -> Value {
     serde_json::from_slice(&out.stdout).expect("reference prints JSON")
 }
 
+/// Scores labellings against true classes with scikit-learn
+/// (tests/reference/clustering_scores.py): the adjusted Rand index of each, of
+/// scikit-learn's KMeans on `feats`, and (given an affinity as adjacency lists)
+/// of scikit-learn's SpectralClustering(assign_labels="cluster_qr") on it.
+pub fn clustering_scores(
+    truth: &[usize],
+    labels: &[(&str, &[usize])],
+    feats: &DMatrix<f64>,
+    affinity: Option<&[Vec<(usize, f64)>]>,
+    k: usize,
+) -> Value {
+    use std::io::Write;
+    use std::process::Stdio;
+    let python = std::env::var("METERVEIL_PYTHON").unwrap_or_else(|_| "python3".into());
+    let script = format!("{}/../tests/reference/clustering_scores.py", env!("CARGO_MANIFEST_DIR"));
+    let rows: Vec<Vec<f64>> = feats.row_iter().map(|r| r.iter().copied().collect()).collect();
+    let edges: Vec<(usize, usize, f64)> =
+        affinity.unwrap_or(&[]).iter().enumerate().flat_map(|(i, r)| r.iter().map(move |&(j, v)| (i, j, v))).collect();
+    let body = serde_json::json!({
+        "truth": truth,
+        "labels": labels.iter().map(|(n, l)| (n.to_string(), serde_json::json!(l))).collect::<serde_json::Map<_, _>>(),
+        "features": rows, "k": k, "affinity": edges,
+    });
+    let mut child =
+        Command::new(&python).arg(script).stdin(Stdio::piped()).stdout(Stdio::piped()).spawn().expect("python");
+    child.stdin.take().expect("stdin").write_all(body.to_string().as_bytes()).expect("write");
+    let out = child.wait_with_output().expect("scores");
+    assert!(out.status.success(), "clustering_scores.py failed");
+    serde_json::from_slice(&out.stdout).expect("json")
+}
+
 /// BDEW class shapes (mean 1 kW over the year) for `days` days from 2023-01-09,
 /// from the package demandlib (see tests/reference/bdew_profiles.py).
 pub fn bdew_shapes(days: usize) -> (String, Vec<(String, Vec<f64>)>) {
