@@ -38,6 +38,13 @@ use crate::recovery::outage::DayLayout;
 use crate::recovery::{recover, LevelMatrix, ProgressFn, RankChoice, RecoveryParams, SumConstraint};
 use crate::DitherProfile;
 
+mod assignment;
+mod count;
+
+use assignment::{assign, own_share};
+pub use assignment::{coherence, merge, qr_assign};
+pub use count::{adjusted_rand, count_stability, stable_count};
+
 /// Rank of the fit made for clustering: 2-3× the number of load-shape classes
 /// one expects on a feeder (10-15). Ranks 20, 30 and 40 separated the classes
 /// equally well in our measurements; rank 10, the profile fit's usual choice,
@@ -384,157 +391,12 @@ fn leading_eigen(w: &[Vec<(usize, f64)>], k: usize, seed: u64, dense_limit: usiz
     (vals, q * rot)
 }
 
-/// Labels from the leading `k` eigenvectors (rows of `emb`) by the QR-based
-/// discretisation of Damle, Minden and Ying (2019): a column-pivoted QR of embᵀ
-/// picks k well-spread meters; the orthogonal factor of their k × k block
-/// rotates the embedding so each axis points at one cluster; each meter goes to
-/// its largest |coordinate|. Unlike k-means it does not prefer equal-sized
-/// clusters, so a dominant class is not cut into pieces to balance them.
-pub fn qr_assign(emb: &DMatrix<f64>) -> Vec<usize> {
-    let (m, k) = emb.shape();
-    if k <= 1 || m == 0 {
-        return vec![0; m];
-    }
-    let qr = emb.transpose().col_piv_qr();
-    let mut order = DMatrix::<f64>::from_fn(1, m, |_, c| c as f64);
-    qr.p().permute_columns(&mut order);
-    let piv: Vec<usize> = (0..k.min(m)).map(|c| order[(0, c)] as usize).collect();
-    let block = DMatrix::from_fn(k, piv.len(), |r, c| emb[(piv[c], r)]); // (k, k): columns are the pivots' rows
-    let svd = block.svd(true, true);
-    let (Some(u), Some(vt)) = (svd.u, svd.v_t) else {
-        return vec![0; m];
-    };
-    let rot = u * vt;
-    let coords = emb * rot;
-    coords.row_iter().map(|r| (0..k).max_by(|&a, &b| r[a].abs().total_cmp(&r[b].abs())).unwrap_or(0)).collect()
-}
-
-/// Each cluster's coherence: the share of its members' affinity that stays
-/// inside it, w(C, C) / vol(C), in [0, 1] (one minus its normalised cut).
-pub fn coherence(w: &[Vec<(usize, f64)>], labels: &[usize], k: usize) -> Vec<f64> {
-    let (mut inside, mut vol) = (vec![0.0; k], vec![0.0; k]);
-    for (i, row) in w.iter().enumerate() {
-        for &(j, v) in row {
-            vol[labels[i]] += v;
-            if labels[j] == labels[i] {
-                inside[labels[i]] += v;
-            }
-        }
-    }
-    inside.iter().zip(&vol).map(|(a, b)| if *b > 0.0 { a / b } else { 0.0 }).collect()
-}
-
-/// Each meter's share of its own affinity that goes to its cluster, in [0, 1].
-fn own_share(w: &[Vec<(usize, f64)>], labels: &[usize]) -> Vec<f64> {
-    w.iter()
-        .enumerate()
-        .map(|(i, row)| {
-            let total: f64 = row.iter().map(|e| e.1).sum();
-            let inside: f64 = row.iter().filter(|e| labels[e.0] == labels[i]).map(|e| e.1).sum();
-            if total > 0.0 {
-                inside / total
-            } else {
-                0.0
-            }
-        })
-        .collect()
-}
-
-/// Labels of the rows of the leading `k` columns of `vecs`, renumbered so that
-/// empty clusters are dropped.
-fn assign(vecs: &DMatrix<f64>, k: usize) -> (Vec<usize>, usize) {
-    let k = k.min(vecs.ncols()).max(1);
-    let emb = vecs.columns(0, k).clone_owned();
-    let raw = qr_assign(&emb);
-    let mut map = vec![usize::MAX; k];
-    let mut next = 0;
-    let labels = raw
-        .iter()
-        .map(|&l| {
-            if map[l] == usize::MAX {
-                map[l] = next;
-                next += 1;
-            }
-            map[l]
-        })
-        .collect();
-    (labels, next)
-}
-
 /// The sparse affinity `cluster` builds from `profiles`, as adjacency lists
 /// (each pair once in each direction), for comparison with other assignments.
 pub fn affinity_graph(profiles: &DMatrix<f64>, params: &ClusterParams) -> Vec<Vec<(usize, f64)>> {
     let m = profiles.nrows();
     let f = features(profiles, params.dimension.min(profiles.ncols()).min(m), params.seed);
     affinity(&self_expression(&f, params.neighbors, params.ridge, params.l1, params.candidates))
-}
-
-/// Merges the `k` clusters of `labels` pairwise down to `target`, each time
-/// the pair whose union lowers the normalised cut most: Σ (1 - coherence)
-/// falls by 1 - coh(A) - coh(B) + coh(A ∪ B). The pieces of one class send
-/// most of their affinity to each other and merge first; classes that keep
-/// theirs merge last. Returns dense 0-based labels.
-pub fn merge(w: &[Vec<(usize, f64)>], labels: &[usize], k: usize, target: usize) -> Vec<usize> {
-    // Inter-cluster affinity and volumes.
-    let mut between = DMatrix::<f64>::zeros(k, k);
-    for (i, row) in w.iter().enumerate() {
-        for &(j, v) in row {
-            between[(labels[i], labels[j])] += v;
-        }
-    }
-    let mut vol: Vec<f64> = (0..k).map(|a| between.row(a).sum()).collect();
-    let mut alive: Vec<bool> = vec![true; k];
-    let mut parent: Vec<usize> = (0..k).collect();
-    let mut count = k;
-    while count > target.max(1) {
-        let coh = |inside: f64, v: f64| if v > 0.0 { inside / v } else { 1.0 };
-        let mut best: Option<(f64, usize, usize)> = None;
-        for a in 0..k {
-            for b in a + 1..k {
-                if !(alive[a] && alive[b]) {
-                    continue;
-                }
-                let union = coh(between[(a, a)] + between[(b, b)] + 2.0 * between[(a, b)], vol[a] + vol[b]);
-                let decrease = 1.0 - coh(between[(a, a)], vol[a]) - coh(between[(b, b)], vol[b]) + union;
-                if best.is_none_or(|x| decrease > x.0) {
-                    best = Some((decrease, a, b));
-                }
-            }
-        }
-        let Some((_, a, b)) = best else { break };
-        // b joins a.
-        let inside = between[(b, b)] + 2.0 * between[(a, b)];
-        for c in (0..k).filter(|&c| c != a && c != b) {
-            let v = between[(b, c)];
-            between[(a, c)] += v;
-            between[(c, a)] += v;
-        }
-        between[(a, a)] += inside;
-        vol[a] += vol[b];
-        alive[b] = false;
-        parent[b] = a;
-        count -= 1;
-    }
-    let root = |mut c: usize| {
-        while parent[c] != c {
-            c = parent[c];
-        }
-        c
-    };
-    let mut map = vec![usize::MAX; k];
-    let mut next = 0;
-    let out = labels
-        .iter()
-        .map(|&l| {
-            let r = root(l);
-            if map[r] == usize::MAX {
-                map[r] = next;
-                next += 1;
-            }
-            map[r]
-        })
-        .collect();
-    out
 }
 
 /// "assigned" or "unassigned" for a stored confidence, by the default
@@ -545,68 +407,6 @@ pub fn status(confidence: f64) -> &'static str {
     } else {
         "unassigned"
     }
-}
-
-/// The adjusted Rand index of two labellings of the same items (Hubert and
-/// Arabie 1985): 1 for identical partitions, about 0 for chance agreement.
-pub fn adjusted_rand(a: &[usize], b: &[usize]) -> f64 {
-    let n = a.len();
-    if n < 2 {
-        return 1.0;
-    }
-    let (ka, kb) = (a.iter().max().map_or(0, |v| v + 1), b.iter().max().map_or(0, |v| v + 1));
-    let mut table = vec![0u64; ka * kb];
-    for (x, y) in a.iter().zip(b) {
-        table[x * kb + y] += 1;
-    }
-    let pairs = |v: u64| (v * v.saturating_sub(1)) as f64 / 2.0;
-    let index: f64 = table.iter().map(|v| pairs(*v)).sum();
-    let rows: f64 = (0..ka).map(|x| pairs(table[x * kb..(x + 1) * kb].iter().sum())).sum();
-    let cols: f64 = (0..kb).map(|y| pairs((0..ka).map(|x| table[x * kb + y]).sum())).sum();
-    let expected = rows * cols / pairs(n as u64);
-    let max = 0.5 * (rows + cols);
-    if (max - expected).abs() < 1e-12 {
-        1.0
-    } else {
-        (index - expected) / (max - expected)
-    }
-}
-
-/// The merge path of `profiles`: for each count c in 1..=pieces (index c), the
-/// labels after merging the over-segmentation down to c.
-fn merge_path(profiles: &DMatrix<f64>, params: &ClusterParams) -> Vec<Vec<usize>> {
-    let m = profiles.nrows();
-    let w = affinity_graph(profiles, params);
-    let pieces = params.max_clusters.min(m - 1).max(2);
-    let (_, vecs) = leading_eigen(&w, pieces + 1, params.seed, params.dense_limit);
-    let (over, found) = assign(&vecs, pieces);
-    let mut out = vec![Vec::new(); pieces + 1];
-    for (c, slot) in out.iter_mut().enumerate().skip(1) {
-        *slot = merge(&w, &over, found, c.min(found));
-    }
-    out
-}
-
-/// Each count's stability under resampling: the mean adjusted Rand index
-/// between the merge path's partition at that count and the partition of a
-/// random 80% of the customers clustered afresh (restricted to them).
-pub fn count_stability(profiles: &DMatrix<f64>, params: &ClusterParams, draws: usize) -> Vec<f64> {
-    let m = profiles.nrows();
-    let full = merge_path(profiles, params);
-    let mut score = vec![0.0; full.len()];
-    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(params.seed.wrapping_add(1));
-    if m * 4 / 5 < 3 {
-        return score;
-    }
-    for _ in 0..draws {
-        let rows = rand::seq::index::sample(&mut rng, m, m * 4 / 5).into_vec();
-        let sub = merge_path(&profiles.select_rows(&rows), params);
-        for c in 2..full.len().min(sub.len()) {
-            let restricted: Vec<usize> = rows.iter().map(|&i| full[c][i]).collect();
-            score[c] += adjusted_rand(&restricted, &sub[c]) / draws as f64;
-        }
-    }
-    score
 }
 
 /// Clusters the rows of `profiles` (customers × intervals, kW).
@@ -648,16 +448,6 @@ pub fn cluster(profiles: &DMatrix<f64>, params: &ClusterParams) -> Result<Cluste
         coherence,
         eigenvalues: vals,
     })
-}
-
-/// The largest count whose stability reaches `min`, or else the most stable.
-pub fn stable_count(stability: &[f64], min: f64) -> usize {
-    let counts = 2..stability.len();
-    counts
-        .clone()
-        .rev()
-        .find(|&c| stability[c] >= min)
-        .unwrap_or_else(|| counts.max_by(|&a, &b| stability[a].total_cmp(&stability[b])).unwrap_or(2))
 }
 
 /// A cluster's representative days: the mean over its members of their mean
