@@ -41,9 +41,10 @@ use crate::DitherProfile;
 mod assignment;
 mod count;
 
-use assignment::{assign, own_share};
 pub use assignment::{coherence, merge, qr_assign};
+use assignment::{over_segment, own_share, Pieces};
 pub use count::{adjusted_rand, count_stability, stable_count};
+use count::{merge_path, stability_of};
 
 /// Rank of the fit made for clustering: 2-3× the number of load-shape classes
 /// one expects on a feeder (10-15). Ranks 20, 30 and 40 separated the classes
@@ -416,38 +417,31 @@ pub fn cluster(profiles: &DMatrix<f64>, params: &ClusterParams) -> Result<Cluste
     if m < 2 {
         return Err(FieldError::new("profiles", format!("{m} customers: at least 2 are needed")));
     }
-    let Some(target) = params.clusters else {
-        // The stability rule, on a sample of at most count_sample customers.
-        let sample = if m > params.count_sample {
-            let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(params.seed);
-            profiles.select_rows(&rand::seq::index::sample(&mut rng, m, params.count_sample).into_vec())
-        } else {
-            profiles.clone()
-        };
-        let k = stable_count(&count_stability(&sample, params, params.stability_draws), params.min_stability);
-        let mut c = cluster(profiles, &ClusterParams { clusters: Some(k), ..params.clone() })?;
-        c.chosen_by = CountChoice::Stability;
-        return Ok(c);
-    };
-    let w = affinity_graph(profiles, params);
     // Over-segment into at least max_clusters pieces (fewer for tiny populations).
-    let pieces = target.max(params.max_clusters).min(m - 1).max(2);
-    let (vals, vecs) = leading_eigen(&w, pieces + 1, params.seed, params.dense_limit);
-    let (over, found) = assign(&vecs, pieces);
+    let pieces =
+        over_segment(profiles, params, params.clusters.unwrap_or(0).max(params.max_clusters).min(m - 1).max(2));
+    let (target, chosen_by) = match params.clusters {
+        Some(t) => (t, CountChoice::Operator),
+        // The stability rule, on a sample of count_sample customers...
+        None if m > params.count_sample => {
+            let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(params.seed);
+            let sample = profiles.select_rows(&rand::seq::index::sample(&mut rng, m, params.count_sample).into_vec());
+            let stability = count_stability(&sample, params, params.stability_draws);
+            (stable_count(&stability, params.min_stability), CountChoice::Stability)
+        }
+        // ...or on the whole population, whose merge path is at hand.
+        None => {
+            let stability = stability_of(profiles, &merge_path(&pieces), params, params.stability_draws);
+            (stable_count(&stability, params.min_stability), CountChoice::Stability)
+        }
+    };
+    let Pieces { w, vals, over, found } = pieces;
     let labels = merge(&w, &over, found, target.min(found));
     let k = labels.iter().max().map_or(0, |v| v + 1);
     let confidence = own_share(&w, &labels);
     let assigned = confidence.iter().map(|c| *c >= params.min_confidence).collect();
     let coherence = coherence(&w, &labels, k);
-    Ok(Clustering {
-        labels,
-        confidence,
-        assigned,
-        clusters: k,
-        chosen_by: CountChoice::Operator,
-        coherence,
-        eigenvalues: vals,
-    })
+    Ok(Clustering { labels, confidence, assigned, clusters: k, chosen_by, coherence, eigenvalues: vals })
 }
 
 /// A cluster's representative days: the mean over its members of their mean

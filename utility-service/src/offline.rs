@@ -373,15 +373,15 @@ pub fn run_cluster(
 ) -> anyhow::Result<serde_json::Value> {
     use meterveil_shared::cluster::{cluster, representation, representatives, ClusterParams, CLUSTER_RANK};
     let params = ClusterParams { clusters, ..ClusterParams::default() };
-    let (meters, start, interval_s, shapes, z, note) = match input {
+    // The matrix clustered; its representative days come from it too.
+    let (meters, start, interval_s, z, note) = match input {
         ClusterInput::Profiles(path) => {
             let p = read_profiles(path)?;
             let note = format!(
                 "clustered the given profiles as they are: a recover output at the automatic rank (often 2-10) has lost \
                  classes that differ in shape; give --levels and --profile instead to cluster a rank-{CLUSTER_RANK} fit"
             );
-            let z = p.kw.clone();
-            (p.meters, p.start, p.interval_s, p.kw, z, note)
+            (p.meters, p.start, p.interval_s, p.kw, note)
         }
         ClusterInput::Levels { levels, profile, registers, alpha_kw } => {
             if !(alpha_kw.is_finite() && alpha_kw > 0.0 && alpha_kw <= 10_000.0) {
@@ -393,7 +393,7 @@ pub fn run_cluster(
                 .map_err(|e| anyhow::anyhow!("--{}: {}", e.field.replace('_', "-"), e.reason))?;
             let note = format!("clustered a rank-{CLUSTER_RANK} fit of the levels");
             let meters = w.meters.iter().map(|m| m.to_string()).collect::<Vec<String>>();
-            (meters, w.start, w.interval_s, z.clone(), z, note)
+            (meters, w.start, w.interval_s, z, note)
         }
     };
     let c = cluster(&z, &params).map_err(|e| anyhow::anyhow!("--{}: {}", e.field, e.reason))?;
@@ -405,7 +405,7 @@ pub fn run_cluster(
         writeln!(out, "{m},{},{:.3},{status}", c.labels[i], c.confidence[i])?;
     }
     out.flush()?;
-    let reps = representatives(&shapes, &c, start, interval_s);
+    let reps = representatives(&z, &c, start, interval_s);
     Ok(serde_json::json!({
         "meters": meters.len(),
         "clusters": c.clusters,

@@ -4,6 +4,26 @@
 
 use nalgebra::DMatrix;
 
+use super::{affinity_graph, leading_eigen, ClusterParams};
+
+/// A population's affinity, its leading eigenvalues and its over-segmentation.
+pub(super) struct Pieces {
+    pub w: Vec<Vec<(usize, f64)>>,
+    /// Leading eigenvalues of the normalised affinity, largest first.
+    pub vals: Vec<f64>,
+    /// Piece of each customer, and the number of pieces found.
+    pub over: Vec<usize>,
+    pub found: usize,
+}
+
+/// Cuts the spectral embedding of `profiles` into at most `pieces` pieces.
+pub(super) fn over_segment(profiles: &DMatrix<f64>, params: &ClusterParams, pieces: usize) -> Pieces {
+    let w = affinity_graph(profiles, params);
+    let (vals, vecs) = leading_eigen(&w, pieces + 1, params.seed, params.dense_limit);
+    let (over, found) = assign(&vecs, pieces);
+    Pieces { w, vals, over, found }
+}
+
 /// Labels from the leading `k` eigenvectors (rows of `emb`) by the QR-based
 /// discretisation of Damle, Minden and Ying (2019): a column-pivoted QR of embᵀ
 /// picks k well-spread meters; the orthogonal factor of their k × k block

@@ -4,8 +4,8 @@
 use nalgebra::DMatrix;
 use rand::SeedableRng;
 
-use super::assignment::{assign, merge};
-use super::{affinity_graph, leading_eigen, ClusterParams};
+use super::assignment::{merge, over_segment, Pieces};
+use super::ClusterParams;
 
 /// The adjusted Rand index of two labellings of the same items (Hubert and
 /// Arabie 1985): 1 for identical partitions, about 0 for chance agreement.
@@ -32,17 +32,12 @@ pub fn adjusted_rand(a: &[usize], b: &[usize]) -> f64 {
     }
 }
 
-/// The merge path of `profiles`: for each count c in 1..=pieces (index c), the
-/// labels after merging the over-segmentation down to c.
-fn merge_path(profiles: &DMatrix<f64>, params: &ClusterParams) -> Vec<Vec<usize>> {
-    let m = profiles.nrows();
-    let w = affinity_graph(profiles, params);
-    let pieces = params.max_clusters.min(m - 1).max(2);
-    let (_, vecs) = leading_eigen(&w, pieces + 1, params.seed, params.dense_limit);
-    let (over, found) = assign(&vecs, pieces);
-    let mut out = vec![Vec::new(); pieces + 1];
+/// The merge path of an over-segmentation: for each count c in 1..=found
+/// (index c), the labels after merging the pieces down to c.
+pub(super) fn merge_path(p: &Pieces) -> Vec<Vec<usize>> {
+    let mut out = vec![Vec::new(); p.found + 1];
     for (c, slot) in out.iter_mut().enumerate().skip(1) {
-        *slot = merge(&w, &over, found, c.min(found));
+        *slot = merge(&p.w, &p.over, p.found, c);
     }
     out
 }
@@ -51,16 +46,28 @@ fn merge_path(profiles: &DMatrix<f64>, params: &ClusterParams) -> Vec<Vec<usize>
 /// between the merge path's partition at that count and the partition of a
 /// random 80% of the customers clustered afresh (restricted to them).
 pub fn count_stability(profiles: &DMatrix<f64>, params: &ClusterParams, draws: usize) -> Vec<f64> {
+    let pieces = params.max_clusters.min(profiles.nrows().saturating_sub(1)).max(2);
+    stability_of(profiles, &merge_path(&over_segment(profiles, params, pieces)), params, draws)
+}
+
+/// [`count_stability`] for a merge path already computed on `profiles`.
+pub(super) fn stability_of(
+    profiles: &DMatrix<f64>,
+    full: &[Vec<usize>],
+    params: &ClusterParams,
+    draws: usize,
+) -> Vec<f64> {
     let m = profiles.nrows();
-    let full = merge_path(profiles, params);
     let mut score = vec![0.0; full.len()];
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(params.seed.wrapping_add(1));
     if m * 4 / 5 < 3 {
         return score;
     }
+    let pieces = params.max_clusters.min(m - 1).max(2);
     for _ in 0..draws {
         let rows = rand::seq::index::sample(&mut rng, m, m * 4 / 5).into_vec();
-        let sub = merge_path(&profiles.select_rows(&rows), params);
+        let sample = profiles.select_rows(&rows);
+        let sub = merge_path(&over_segment(&sample, params, pieces.min(rows.len() - 1).max(2)));
         for c in 2..full.len().min(sub.len()) {
             let restricted: Vec<usize> = rows.iter().map(|&i| full[c][i]).collect();
             score[c] += adjusted_rand(&restricted, &sub[c]) / draws as f64;

@@ -30,8 +30,12 @@ async fn run_inner(s: &AppState, job_id: &str, req: &ClusterRequest) -> anyhow::
     let mut values: Vec<f64> = Vec::new();
     let mut window: Option<(i64, i64)> = None;
     let mut cols = 0usize;
+    // Each recovery's feeder and service limit, for the clustering fit below.
+    let mut fits: Vec<(String, String, f64)> = Vec::with_capacity(req.recovery_jobs.len());
     for id in &req.recovery_jobs {
         let job = s.store.job(id).await?.ok_or_else(|| anyhow::anyhow!("recovery job {id} does not exist"))?;
+        let alpha = job.params.get("alpha_kw").and_then(|v| v.as_f64()).unwrap_or(RecoveryParams::default().alpha_kw);
+        fits.push((id.clone(), job.feeder_id.clone(), alpha));
         anyhow::ensure!(job.state == "done", "recovery job {id} is {}, not done", job.state);
         let w = (job.window_start, job.window_end);
         anyhow::ensure!(
@@ -64,16 +68,11 @@ async fn run_inner(s: &AppState, job_id: &str, req: &ClusterRequest) -> anyhow::
     // The clustering representation: each recovery's levels fitted again at the
     // clustering rank (the profiles' own rank is chosen for accuracy, and below
     // the number of classes the classes are gone).
-    let mut windows = Vec::with_capacity(req.recovery_jobs.len());
-    for id in &req.recovery_jobs {
-        let job = s.store.job(id).await?.ok_or_else(|| anyhow::anyhow!("recovery job {id} does not exist"))?;
-        let feeder = meterveil_shared::FeederId::parse(&job.feeder_id)
+    let mut windows = Vec::with_capacity(fits.len());
+    for (id, feeder, alpha) in &fits {
+        let feeder = meterveil_shared::FeederId::parse(feeder)
             .map_err(|e| anyhow::anyhow!("feeder of recovery job {id}: {e}"))?;
-        let w = super::recover::load_window(&s.store, &feeder, from, to).await?;
-        windows.push((
-            w,
-            job.params.get("alpha_kw").and_then(|v| v.as_f64()).unwrap_or(RecoveryParams::default().alpha_kw),
-        ));
+        windows.push((super::recover::load_window(&s.store, &feeder, from, to).await?, *alpha));
     }
     let params = ClusterParams { clusters: req.clusters, ..ClusterParams::default() };
     let order: Vec<String> = meters.iter().map(|m| m.0.clone()).collect();
