@@ -73,16 +73,14 @@ pub async fn start_with_store(
         metrics.clone(),
     );
     let state = AppState {
-        store: store.clone(),
-        config: Arc::new(config),
+        work: crate::jobs::WorkContext::new(store.clone(), config),
         metrics: metrics.clone(),
-        wake: Arc::new(tokio::sync::Notify::new()),
         dashboard: Default::default(),
         buckets: Default::default(),
         committer,
     };
     let dashboard = state.dashboard.clone();
-    let worker = state.config.run_worker.then(|| tokio::spawn(crate::jobs::worker::run(state.clone())));
+    let worker = state.config.run_worker.then(|| tokio::spawn(crate::jobs::worker::run(state.work.clone())));
     // A request that takes longer than this is answered 408 and dropped; a batch's
     // commit is one transaction, so nothing half-written remains.
     let app = routes::router(state)

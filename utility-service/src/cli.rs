@@ -279,22 +279,7 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
             let mut config = ServiceConfig::local(database_url, Secret::new(""));
             config.job_lease_s = job_lease_s;
             config.job_feeders = (!feeders.is_empty()).then_some(feeders);
-            let metrics: std::sync::Arc<crate::metrics::Metrics> = Default::default();
-            let committer = crate::committer::Committer::start(
-                store.clone(),
-                config.ingest_limits(),
-                config.ingest_group_linger,
-                metrics.clone(),
-            );
-            let state = crate::routes::AppState {
-                store,
-                config: std::sync::Arc::new(config),
-                metrics,
-                wake: Default::default(),
-                dashboard: Default::default(),
-                buckets: Default::default(),
-                committer,
-            };
+            let state = crate::jobs::WorkContext::new(store, config);
             match &state.config.job_feeders {
                 Some(f) => println!("worker {} started for feeders {}", state.store.worker_id(), f.join(", ")),
                 None => println!("worker {} started for every feeder", state.store.worker_id()),

@@ -17,16 +17,30 @@ use std::collections::{HashSet, VecDeque};
 use std::sync::Arc;
 use std::time::Duration;
 
-use meterveil_shared::wire::{AckWire, BatchWire};
+use meterveil_shared::wire::AckWire;
 use sqlx::pool::PoolConnection;
 use sqlx::{Any, AnyConnection};
 use tokio::sync::{mpsc, oneshot};
 
-use crate::error::ApiError;
-use crate::ingest::{decide, BatchHeader, Decision, IngestLimits};
+pub use crate::ingest::Upload;
+use crate::ingest::{decide, Decision, IngestLimits, Refusal};
 use crate::metrics::Metrics;
 use crate::store::batches::{Accepted, GroupKeys};
-use crate::store::{Store, StoredBatch};
+use crate::store::{Store, StoreError, StoredBatch};
+
+/// Why an upload was not stored.
+#[derive(Debug, thiserror::Error)]
+pub enum CommitError {
+    /// The rules refused it.
+    #[error(transparent)]
+    Refused(#[from] Refusal),
+    /// The store failed.
+    #[error(transparent)]
+    Store(#[from] StoreError),
+    /// The committer itself failed (stopped, or the group could not be written).
+    #[error(transparent)]
+    Failed(#[from] anyhow::Error),
+}
 
 /// Uploads per group, and readings per group: bounds one transaction's size.
 const MAX_GROUP_UPLOADS: usize = 256;
@@ -35,18 +49,6 @@ const MAX_GROUP_READINGS: usize = 30_000;
 const QUEUE: usize = 2 * MAX_GROUP_UPLOADS;
 /// Attempts for an upload alone that keeps racing with another writer.
 const ALONE_ATTEMPTS: usize = 3;
-
-/// A signed upload whose signature checked out and whose body parsed.
-#[derive(Debug)]
-pub struct Upload {
-    /// The gateway that signed it, and the key generation the signature matched.
-    pub gateway_id: String,
-    pub key_generation: i64,
-    pub sequence: i64,
-    pub body_sha256: String,
-    pub header: BatchHeader,
-    pub batch: BatchWire,
-}
 
 /// How an upload was settled.
 #[derive(Debug)]
@@ -58,7 +60,7 @@ pub enum Committed {
     Earlier(StoredBatch),
 }
 
-type Reply = oneshot::Sender<Result<Committed, ApiError>>;
+type Reply = oneshot::Sender<Result<Committed, CommitError>>;
 
 /// Hands uploads to this process's group-commit task.
 #[derive(Clone)]
@@ -77,7 +79,7 @@ impl Committer {
     }
 
     /// Checks and stores `upload` (or finds it stored before).
-    pub async fn submit(&self, upload: Upload) -> Result<Committed, ApiError> {
+    pub async fn submit(&self, upload: Upload) -> Result<Committed, CommitError> {
         let (reply, answer) = oneshot::channel();
         self.tx.send((upload, reply)).await.map_err(|_| anyhow::anyhow!("the ingest committer has stopped"))?;
         answer.await.map_err(|_| anyhow::anyhow!("the ingest committer dropped an upload"))?
@@ -155,7 +157,7 @@ fn next_group(waiting: &mut VecDeque<(Upload, Reply)>) -> Vec<(Upload, Reply)> {
 
 impl Task {
     /// Settles every upload of a group, in order.
-    async fn settle(&mut self, uploads: &[Upload]) -> Vec<Result<Committed, ApiError>> {
+    async fn settle(&mut self, uploads: &[Upload]) -> Vec<Result<Committed, CommitError>> {
         self.metrics.ingest_groups.inc();
         match self.attempt(uploads).await {
             Ok(Some(results)) => results,
@@ -170,12 +172,12 @@ impl Task {
             }
             Err(e) => {
                 tracing::error!(error = ?e, uploads = uploads.len(), "group commit failed");
-                uploads.iter().map(|_| Err(ApiError::Internal(anyhow::anyhow!("group commit failed: {e}")))).collect()
+                uploads.iter().map(|_| Err(CommitError::Failed(anyhow::anyhow!("group commit failed: {e}")))).collect()
             }
         }
     }
 
-    async fn settle_alone(&mut self, u: &Upload) -> Result<Committed, ApiError> {
+    async fn settle_alone(&mut self, u: &Upload) -> Result<Committed, CommitError> {
         for _ in 0..ALONE_ATTEMPTS {
             self.metrics.ingest_groups.inc();
             if let Some(mut r) = self.attempt(std::slice::from_ref(u)).await? {
@@ -184,7 +186,7 @@ impl Task {
                 }
             }
         }
-        Err(ApiError::Internal(anyhow::anyhow!(
+        Err(CommitError::Failed(anyhow::anyhow!(
             "batch {} kept racing with other writers ({ALONE_ATTEMPTS} attempts)",
             u.header.batch_id
         )))
@@ -192,10 +194,10 @@ impl Task {
 
     /// Reads the group's state, decides each upload and writes the accepted ones.
     /// `Ok(None)`: another writer got in first and nothing was written.
-    async fn attempt(&mut self, uploads: &[Upload]) -> Result<Option<Vec<Result<Committed, ApiError>>>, ApiError> {
+    async fn attempt(&mut self, uploads: &[Upload]) -> Result<Option<Vec<Result<Committed, CommitError>>>, CommitError> {
         let mut conn = match self.conn.take() {
             Some(c) => c,
-            None => self.store.pool().acquire().await?,
+            None => self.store.pool().acquire().await.map_err(StoreError::from)?,
         };
         let result = attempt_on(&self.store, &self.limits, &mut conn, uploads).await;
         if result.is_ok() {
@@ -211,7 +213,7 @@ async fn attempt_on(
     limits: &IngestLimits,
     conn: &mut AnyConnection,
     uploads: &[Upload],
-) -> Result<Option<Vec<Result<Committed, ApiError>>>, ApiError> {
+) -> Result<Option<Vec<Result<Committed, CommitError>>>, CommitError> {
     let mut keys = GroupKeys::default();
     for u in uploads {
         keys.gateways.push(&u.gateway_id);
@@ -226,9 +228,9 @@ async fn attempt_on(
     keys.meters.sort_unstable();
     keys.meters.dedup();
     let state = store.group_state(conn, &keys).await?;
-    let now = crate::routes::now_s();
+    let now = crate::clock::now_s();
 
-    let mut results: Vec<Option<Result<Committed, ApiError>>> = Vec::with_capacity(uploads.len());
+    let mut results: Vec<Option<Result<Committed, CommitError>>> = Vec::with_capacity(uploads.len());
     let (mut accepted, mut slots) = (Vec::new(), Vec::new());
     for (i, u) in uploads.iter().enumerate() {
         match decide(u, &state, now, limits) {
@@ -238,7 +240,7 @@ async fn attempt_on(
                 results.push(None);
             }
             Ok(Decision::Earlier(prev)) => results.push(Some(Ok(Committed::Earlier(prev)))),
-            Err(e) => results.push(Some(Err(e))),
+            Err(e) => results.push(Some(Err(e.into()))),
         }
     }
     let Some(acks) = store.write_group(conn, &accepted, now).await? else { return Ok(None) };

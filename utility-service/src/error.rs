@@ -71,6 +71,30 @@ impl From<crate::store::StoreError> for ApiError {
     }
 }
 
+/// The one mapping of the ingest rules' refusals to HTTP.
+impl From<crate::ingest::Refusal> for ApiError {
+    fn from(e: crate::ingest::Refusal) -> Self {
+        use crate::ingest::Refusal;
+        match e {
+            Refusal::Invalid(f) => ApiError::Invalid(f),
+            Refusal::Conflict(f) => ApiError::Conflict(f),
+            Refusal::Forbidden(f) => ApiError::Forbidden(f),
+            Refusal::Unauthorized(f) => ApiError::Unauthorized(f),
+        }
+    }
+}
+
+impl From<crate::committer::CommitError> for ApiError {
+    fn from(e: crate::committer::CommitError) -> Self {
+        use crate::committer::CommitError;
+        match e {
+            CommitError::Refused(r) => r.into(),
+            CommitError::Store(s) => s.into(),
+            CommitError::Failed(e) => ApiError::Internal(e),
+        }
+    }
+}
+
 impl From<sqlx::Error> for ApiError {
     fn from(e: sqlx::Error) -> Self {
         ApiError::Internal(e.into())

@@ -7,10 +7,42 @@ use meterveil_shared::wire::BatchWire;
 use meterveil_shared::{BatchId, FeederId, FieldError, GatewayId, IntervalStart, MeterId};
 use sha2::{Digest, Sha256};
 
-use crate::committer::Upload;
-use crate::error::ApiError;
-use crate::store::batches::GroupState;
-use crate::store::{ProfileRecord, StoredBatch};
+use crate::records::{GroupState, ProfileRecord, StoredBatch};
+
+/// Why the rules refuse an upload. Each kind gets its HTTP status in `error.rs`.
+#[derive(Debug, thiserror::Error)]
+pub enum Refusal {
+    /// Well-formed but wrong (a bad row, an unknown meter, ...).
+    #[error("{0}")]
+    Invalid(FieldError),
+    /// Conflicts with what is stored (a sequence number reused or not rising).
+    #[error("{0}")]
+    Conflict(FieldError),
+    /// A gateway writing for a meter or feeder it does not serve.
+    #[error("{0}")]
+    Forbidden(FieldError),
+    /// The signature no longer matches the gateway's key.
+    #[error("{0}")]
+    Unauthorized(FieldError),
+}
+
+impl Refusal {
+    pub fn invalid(field: impl Into<String>, reason: impl Into<String>) -> Self {
+        Refusal::Invalid(FieldError::new(field, reason))
+    }
+}
+
+/// A signed upload whose signature checked out and whose body parsed.
+#[derive(Debug)]
+pub struct Upload {
+    /// The gateway that signed it, and the key generation the signature matched.
+    pub gateway_id: String,
+    pub key_generation: i64,
+    pub sequence: i64,
+    pub body_sha256: String,
+    pub header: BatchHeader,
+    pub batch: BatchWire,
+}
 
 #[derive(Debug, Clone)]
 pub struct ValidReading {
@@ -57,16 +89,11 @@ pub fn body_sha256(body: &[u8]) -> String {
     hex::encode(Sha256::digest(body))
 }
 
-/// Parses the JSON body, naming the path of the first bad field.
-pub fn parse_batch(body: &[u8]) -> Result<BatchWire, ApiError> {
-    crate::routes::parse_json(body)
-}
-
-pub fn check_header(b: &BatchWire) -> Result<BatchHeader, ApiError> {
+pub fn check_header(b: &BatchWire) -> Result<BatchHeader, Refusal> {
     Ok(BatchHeader {
-        batch_id: BatchId::parse(&b.batch_id).map_err(ApiError::Invalid)?,
-        gateway_id: GatewayId::parse(&b.gateway_id).map_err(ApiError::Invalid)?,
-        feeder_id: FeederId::parse(&b.feeder_id).map_err(ApiError::Invalid)?,
+        batch_id: BatchId::parse(&b.batch_id).map_err(Refusal::Invalid)?,
+        gateway_id: GatewayId::parse(&b.gateway_id).map_err(Refusal::Invalid)?,
+        feeder_id: FeederId::parse(&b.feeder_id).map_err(Refusal::Invalid)?,
     })
 }
 
@@ -88,9 +115,9 @@ pub fn validate(
     batch: &BatchWire,
     body_sha256: String,
     ctx: &IngestContext<'_>,
-) -> Result<ValidatedBatch, ApiError> {
+) -> Result<ValidatedBatch, Refusal> {
     if batch.readings.is_empty() && batch.registers.is_empty() {
-        return Err(ApiError::invalid("readings", "batch is empty: it has no readings and no register reads"));
+        return Err(Refusal::invalid("readings", "batch is empty: it has no readings and no register reads"));
     }
     let by_version: HashMap<u32, (usize, &ProfileRecord)> =
         ctx.profiles.iter().enumerate().map(|(i, p)| (p.version.0, (i, p))).collect();
@@ -101,24 +128,24 @@ pub fn validate(
 
     for (i, r) in batch.readings.iter().enumerate() {
         let at = |f: &str| format!("readings[{i}].{f}");
-        let meter_id = MeterId::parse_field(&at("meter_id"), &r.meter_id).map_err(ApiError::Invalid)?;
+        let meter_id = MeterId::parse_field(&at("meter_id"), &r.meter_id).map_err(Refusal::Invalid)?;
         if !ctx.known_meters.contains(&r.meter_id) {
-            return Err(ApiError::invalid(
+            return Err(Refusal::invalid(
                 at("meter_id"),
                 format!("meter {meter_id} is not registered on feeder {feeder}"),
             ));
         }
         let Some(&(idx, rec)) = by_version.get(&r.profile_version) else {
-            return Err(ApiError::invalid(
+            return Err(Refusal::invalid(
                 at("profile_version"),
                 format!("feeder {feeder} has no profile version {}", r.profile_version),
             ));
         };
         let len = rec.profile.interval();
-        IntervalStart::new_field(&at("interval_start"), r.interval_start, len).map_err(ApiError::Invalid)?;
+        IntervalStart::new_field(&at("interval_start"), r.interval_start, len).map_err(Refusal::Invalid)?;
         let interval_end = r.interval_start + i64::from(len.seconds());
         if interval_end > ctx.now + ctx.clock_tolerance_s {
-            return Err(ApiError::invalid(
+            return Err(Refusal::invalid(
                 at("interval_start"),
                 format!(
                     "interval {} ends {} s in the future (server time {}); check the meter clock",
@@ -131,7 +158,7 @@ pub fn validate(
         if let Some(next) = ctx.profiles.get(idx + 1) {
             let cutoff = next.created_at + ctx.stale_grace_s;
             if r.interval_start >= cutoff {
-                return Err(ApiError::invalid(
+                return Err(Refusal::invalid(
                     at("profile_version"),
                     format!(
                         "version {} is stale: it was superseded by version {} at {}, and readings from {} on must use the newer version",
@@ -142,7 +169,7 @@ pub fn validate(
         }
         let k = rec.profile.levels();
         if usize::from(r.level) >= k {
-            return Err(ApiError::invalid(
+            return Err(Refusal::invalid(
                 at("level"),
                 format!(
                     "{} is out of range for profile version {} ({k} levels: 0 to {})",
@@ -153,7 +180,7 @@ pub fn validate(
             ));
         }
         if let Some(first) = seen.insert((r.meter_id.as_str(), r.interval_start), i) {
-            return Err(ApiError::invalid(
+            return Err(Refusal::invalid(
                 format!("readings[{i}]"),
                 format!("repeats readings[{first}] (same meter_id and interval_start)"),
             ));
@@ -175,29 +202,29 @@ pub fn validate(
     for (i, g) in batch.registers.iter().enumerate() {
         let at = |f: &str| format!("registers[{i}].{f}");
         if !registers_allowed {
-            return Err(ApiError::invalid(
+            return Err(Refusal::invalid(
                 format!("registers[{i}]"),
                 format!("no profile of feeder {feeder} allows register reads"),
             ));
         }
-        let meter_id = MeterId::parse_field(&at("meter_id"), &g.meter_id).map_err(ApiError::Invalid)?;
+        let meter_id = MeterId::parse_field(&at("meter_id"), &g.meter_id).map_err(Refusal::Invalid)?;
         if !ctx.known_meters.contains(&g.meter_id) {
-            return Err(ApiError::invalid(
+            return Err(Refusal::invalid(
                 at("meter_id"),
                 format!("meter {meter_id} is not registered on feeder {feeder}"),
             ));
         }
         if g.read_at < meterveil_shared::domain::EARLIEST_EPOCH_S {
-            return Err(ApiError::invalid(at("read_at"), format!("{} is before 2000-01-01T00:00:00Z", g.read_at)));
+            return Err(Refusal::invalid(at("read_at"), format!("{} is before 2000-01-01T00:00:00Z", g.read_at)));
         }
         if g.read_at > ctx.now + ctx.clock_tolerance_s {
-            return Err(ApiError::invalid(
+            return Err(Refusal::invalid(
                 at("read_at"),
                 format!("{} is in the future (server time {})", g.read_at, ctx.now),
             ));
         }
         if g.read_at <= g.period_start {
-            return Err(ApiError::invalid(
+            return Err(Refusal::invalid(
                 at("read_at"),
                 format!("{} is not after period_start {}: the advance runs backwards", g.read_at, g.period_start),
             ));
@@ -205,14 +232,14 @@ pub fn validate(
         // Saturating: period_start is unchecked input and may be any i64.
         let span = g.read_at.saturating_sub(g.period_start);
         if span > MAX_REGISTER_SPAN_S {
-            return Err(ApiError::invalid(
+            return Err(Refusal::invalid(
                 at("period_start"),
                 format!("spans {span} s to read_at; a register period is at most {MAX_REGISTER_SPAN_S} s"),
             ));
         }
         let step = ctx.profiles.iter().map(|p| i64::from(p.profile.interval().seconds())).max().unwrap_or(900);
         if g.period_start.rem_euclid(step) != 0 || g.read_at.rem_euclid(step) != 0 {
-            return Err(ApiError::invalid(
+            return Err(Refusal::invalid(
                 at("period_start"),
                 format!(
                     "the period [{}, {}) is not aligned to the feeder's {step} s intervals",
@@ -221,10 +248,10 @@ pub fn validate(
             ));
         }
         if g.wh > i64::MAX as u64 {
-            return Err(ApiError::invalid(at("wh"), "is larger than any register can hold"));
+            return Err(Refusal::invalid(at("wh"), "is larger than any register can hold"));
         }
         if !seen_reg.insert((g.meter_id.as_str(), g.read_at)) {
-            return Err(ApiError::invalid(
+            return Err(Refusal::invalid(
                 format!("registers[{i}]"),
                 "repeats an earlier register read (same meter_id and read_at)",
             ));
@@ -264,13 +291,13 @@ pub enum Decision {
 /// number reused with another body (409), a replay (the earlier answer), a meter
 /// of another feeder (403), the batch's own rows (422), then a sequence number
 /// that is not above the gateway's last (409).
-pub fn decide(u: &Upload, st: &GroupState, now: i64, limits: &IngestLimits) -> Result<Decision, ApiError> {
+pub fn decide(u: &Upload, st: &GroupState, now: i64, limits: &IngestLimits) -> Result<Decision, Refusal> {
     let gw = u.gateway_id.as_str();
     let last_sequence = match st.gateways.get(gw) {
         Some((_, generation, last)) if *generation == u.key_generation => *last,
         // Re-provisioned (or removed) since the signature was checked.
         _ => {
-            return Err(ApiError::Unauthorized(FieldError::new(meterveil_shared::auth::HEADER_SIGNATURE, KEY_MISMATCH)))
+            return Err(Refusal::Unauthorized(FieldError::new(meterveil_shared::auth::HEADER_SIGNATURE, KEY_MISMATCH)))
         }
     };
     if let Some((hash, batch_id)) = st.sequences.get(&(gw.to_owned(), u.sequence)) {
@@ -295,7 +322,7 @@ pub fn decide(u: &Upload, st: &GroupState, now: i64, limits: &IngestLimits) -> R
     for m in ids {
         match st.meter_feeders.get(m) {
             Some(f) if f != feeder => {
-                return Err(ApiError::Forbidden(FieldError::new(
+                return Err(Refusal::Forbidden(FieldError::new(
                     "meter_id",
                     format!("meter {m} is on feeder {f}, which gateway {gw} does not serve"),
                 )))
@@ -316,7 +343,7 @@ pub fn decide(u: &Upload, st: &GroupState, now: i64, limits: &IngestLimits) -> R
     };
     let valid = validate(u.header.clone(), &u.batch, u.body_sha256.clone(), &ctx)?;
     if u.sequence <= last_sequence {
-        return Err(ApiError::Conflict(FieldError::new(
+        return Err(Refusal::Conflict(FieldError::new(
             meterveil_shared::auth::HEADER_SEQUENCE,
             format!("sequence {} is not above the last one this gateway had accepted", u.sequence),
         )));
@@ -328,8 +355,8 @@ pub fn decide(u: &Upload, st: &GroupState, now: i64, limits: &IngestLimits) -> R
 pub const KEY_MISMATCH: &str = "does not match: the key is wrong (rotated?) or the request was altered";
 
 /// The 409 for a sequence number already accepted with another body.
-pub fn sequence_reused(sequence: i64, batch_id: &str) -> ApiError {
-    ApiError::Conflict(FieldError::new(
+pub fn sequence_reused(sequence: i64, batch_id: &str) -> Refusal {
+    Refusal::Conflict(FieldError::new(
         meterveil_shared::auth::HEADER_SEQUENCE,
         format!("sequence {sequence} was already used with another body (batch {batch_id})"),
     ))

@@ -6,6 +6,7 @@
 
 pub mod app;
 pub mod cli;
+pub mod clock;
 pub mod committer;
 pub mod config;
 pub mod demo;
@@ -14,6 +15,7 @@ pub mod ingest;
 pub mod jobs;
 pub mod metrics;
 pub mod offline;
+pub mod records;
 pub mod report;
 pub mod routes;
 pub mod settlement;

@@ -153,7 +153,6 @@ pub fn read_registers(path: &Path, w: &Window) -> anyhow::Result<(Vec<SumConstra
     let pos = header_positions(&file, lines.next().unwrap_or(""), &["meter_id", "day_start", "wh"])?;
     let rows: HashMap<&str, usize> = w.meters.iter().enumerate().map(|(i, m)| (m.as_str(), i)).collect();
     let per_day = (86_400 / w.interval_s) as i64;
-    let hours = f64::from(w.interval_s) / 3600.0;
     let (mut out, mut skipped) = (Vec::new(), 0);
     for (no, line) in lines.enumerate() {
         let line_no = no + 2;
@@ -186,7 +185,7 @@ pub fn read_registers(path: &Path, w: &Window) -> anyhow::Result<(Vec<SumConstra
             continue;
         }
         let cols = first as usize..(first + per_day) as usize;
-        out.push(SumConstraint { row, cols, sum_kw: wh / (1000.0 * hours) });
+        out.push(SumConstraint::from_wh(row, cols, wh, w.interval_s));
     }
     Ok((out, skipped))
 }
@@ -199,20 +198,12 @@ pub fn write_recovery(path: &Path, w: &Window, rec: &Recovery, alpha: f64) -> an
     for (i, m) in w.meters.iter().enumerate() {
         for j in 0..w.levels.cols() {
             let (x, sd) = (rec.x[(i, j)], rec.std_kw[(i, j)]);
-            let (lo, hi) = band(x, sd, alpha);
+            let (lo, hi) = meterveil_shared::recovery::band95(x, sd, alpha);
             writeln!(out, "{m},{},{x:.4},{},{lo:.4},{hi:.4}", w.interval_start(j), rec.flag(i, j).as_str())?;
         }
     }
     out.flush()?;
     Ok(())
-}
-
-/// The 95% band x ± 1.96 sd, inside [0, alpha].
-pub fn band(x: f64, sd: f64, alpha: f64) -> (f64, f64) {
-    if !sd.is_finite() {
-        return (0.0, alpha);
-    }
-    ((x - 1.96 * sd).max(0.0), (x + 1.96 * sd).min(alpha))
 }
 
 /// Progress on a terminal as a bar, otherwise as plain lines.

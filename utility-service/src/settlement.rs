@@ -14,7 +14,9 @@ use chrono::{DateTime, SecondsFormat, TimeZone, Utc};
 use chrono_tz::Tz;
 use serde::Serialize;
 
-use crate::store::recoveries::RecoveredRow;
+use meterveil_shared::recovery::{LevelMatrix, SumConstraint};
+
+use crate::records::RecoveredRow;
 
 /// One meter-day of settlement.
 #[derive(Debug, Clone, Serialize, PartialEq)]
@@ -57,6 +59,35 @@ pub struct Advance {
     pub period_start: i64,
     pub read_at: i64,
     pub wh: i64,
+}
+
+/// Register advances whose period lies inside the window (a day, or any longer
+/// period), for meters with every interval of the period stored: then the
+/// gateway's count of forwarded intervals and the period's intervals coincide.
+pub fn register_constraints(
+    meters: &HashMap<String, usize>,
+    levels: &LevelMatrix,
+    reads: &[Advance],
+    from: i64,
+    interval_s: u32,
+) -> Vec<SumConstraint> {
+    let step = i64::from(interval_s);
+    let mut out = Vec::new();
+    for a in reads {
+        if a.period_start < from || (a.period_start - from) % step != 0 || (a.read_at - a.period_start) % step != 0 {
+            continue;
+        }
+        let Some(&row) = meters.get(&a.meter_id) else { continue };
+        let first = ((a.period_start - from) / step) as usize;
+        let cols = first..((a.read_at - from) / step) as usize;
+        let wh = a.wh;
+        if cols.end > levels.cols() || cols.clone().any(|j| levels.get(row, j).is_none()) {
+            continue;
+        }
+        out.push(SumConstraint::from_wh(row, cols, wh as f64, interval_s));
+    }
+    out.sort_by_key(|c| (c.row, c.cols.start));
+    out
 }
 
 /// Daily advances per (meter, UTC day start): those whose period is one UTC day.

@@ -68,3 +68,21 @@ pub struct SumConstraint {
     pub cols: std::ops::Range<usize>,
     pub sum_kw: f64,
 }
+
+impl SumConstraint {
+    /// The constraint that a register advance of `wh` over `cols` (intervals of
+    /// `interval_s` seconds) sets.
+    pub fn from_wh(row: usize, cols: std::ops::Range<usize>, wh: f64, interval_s: u32) -> Self {
+        let hours = f64::from(interval_s) / 3600.0;
+        Self { row, cols, sum_kw: wh / (1000.0 * hours) }
+    }
+}
+
+/// The 95% band x ± 1.96 sd of an estimate with standard deviation `sd`,
+/// clipped to the service limit [0, alpha]; an unknown sd gives the whole range.
+pub fn band95(x: f64, sd: f64, alpha: f64) -> (f64, f64) {
+    if !sd.is_finite() {
+        return (0.0, alpha);
+    }
+    ((x - 1.96 * sd).max(0.0), (x + 1.96 * sd).min(alpha))
+}

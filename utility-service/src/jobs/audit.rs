@@ -12,7 +12,8 @@ use meterveil_shared::recovery::{LevelMatrix, RankChoice, SumConstraint};
 use meterveil_shared::{DitherProfile, FeederId};
 use nalgebra::DMatrix;
 
-use crate::routes::{now_s, AppState};
+use super::WorkContext;
+use crate::clock::now_s;
 use crate::store::queue::JobTable;
 
 /// A finished recovery, loaded back for analysis.
@@ -27,7 +28,7 @@ struct Recovered {
     rank: usize,
 }
 
-async fn load(s: &AppState, recovery_job: &str) -> anyhow::Result<Recovered> {
+async fn load(s: &WorkContext, recovery_job: &str) -> anyhow::Result<Recovered> {
     let job =
         s.store.job(recovery_job).await?.with_context(|| format!("recovery job {recovery_job} does not exist"))?;
     anyhow::ensure!(job.state == "done", "recovery job {recovery_job} is {}, not done", job.state);
@@ -77,14 +78,14 @@ pub struct AuditRequest {
     pub curves: bool,
 }
 
-pub async fn run_audit(state: AppState, job_id: String, req: AuditRequest) {
+pub async fn run_audit(state: WorkContext, job_id: String, req: AuditRequest) {
     if let Err(e) = audit_inner(&state, &job_id, &req).await {
         tracing::warn!(job = %job_id, error = %format!("{e:#}"), "audit job failed");
         let _ = state.store.fail(JobTable::Analysis, &job_id, &format!("{e:#}"), now_s()).await;
     }
 }
 
-async fn audit_inner(s: &AppState, job_id: &str, req: &AuditRequest) -> anyhow::Result<()> {
+async fn audit_inner(s: &WorkContext, job_id: &str, req: &AuditRequest) -> anyhow::Result<()> {
     s.store.set_progress(JobTable::Analysis, job_id, 0.0, "loading the recovery", now_s()).await?;
     let r = load(s, &req.recovery_job).await?;
     let index: HashMap<String, usize> = r.meters.iter().enumerate().map(|(i, m)| (m.clone(), i)).collect();
@@ -105,7 +106,7 @@ async fn audit_inner(s: &AppState, job_id: &str, req: &AuditRequest) -> anyhow::
         }
     }
     let reads = s.store.feeder_registers_between(&r.feeder, r.from, r.to).await?;
-    let cons = super::recover::day_constraints(&index, &levels, &reads, r.from, r.layout.interval_s);
+    let cons = crate::settlement::register_constraints(&index, &levels, &reads, r.from, r.layout.interval_s);
     let cc: Vec<SumConstraint> = cons
         .iter()
         .filter_map(|c| {
@@ -157,14 +158,14 @@ pub struct CalibrationRequest {
     pub register_periods: Vec<meterveil_shared::RegisterPeriod>,
 }
 
-pub async fn run_calibration(state: AppState, job_id: String, req: CalibrationRequest) {
+pub async fn run_calibration(state: WorkContext, job_id: String, req: CalibrationRequest) {
     if let Err(e) = calibration_inner(&state, &job_id, &req).await {
         tracing::warn!(job = %job_id, error = %format!("{e:#}"), "calibration job failed");
         let _ = state.store.fail(JobTable::Analysis, &job_id, &format!("{e:#}"), now_s()).await;
     }
 }
 
-async fn calibration_inner(s: &AppState, job_id: &str, req: &CalibrationRequest) -> anyhow::Result<()> {
+async fn calibration_inner(s: &WorkContext, job_id: &str, req: &CalibrationRequest) -> anyhow::Result<()> {
     s.store.set_progress(JobTable::Analysis, job_id, 0.0, "loading the recovery", now_s()).await?;
     let r = load(s, &req.recovery_job).await?;
     let tz =

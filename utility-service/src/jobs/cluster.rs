@@ -5,7 +5,8 @@ use meterveil_shared::recovery::RecoveryParams;
 use nalgebra::DMatrix;
 use serde_json::json;
 
-use crate::routes::{now_s, AppState};
+use super::WorkContext;
+use crate::clock::now_s;
 use crate::store::analyses::Assignment;
 use crate::store::queue::JobTable;
 
@@ -17,14 +18,14 @@ pub struct ClusterRequest {
     pub clusters: Option<usize>,
 }
 
-pub async fn run(state: AppState, job_id: String, req: ClusterRequest) {
+pub async fn run(state: WorkContext, job_id: String, req: ClusterRequest) {
     if let Err(e) = run_inner(&state, &job_id, &req).await {
         tracing::warn!(job = %job_id, error = %format!("{e:#}"), "clustering job failed");
         let _ = state.store.fail(JobTable::Analysis, &job_id, &format!("{e:#}"), now_s()).await;
     }
 }
 
-async fn run_inner(s: &AppState, job_id: &str, req: &ClusterRequest) -> anyhow::Result<()> {
+async fn run_inner(s: &WorkContext, job_id: &str, req: &ClusterRequest) -> anyhow::Result<()> {
     s.store.set_progress(JobTable::Analysis, job_id, 0.0, "loading recovered profiles", now_s()).await?;
     let mut meters: Vec<(String, String)> = Vec::new();
     let mut values: Vec<f64> = Vec::new();

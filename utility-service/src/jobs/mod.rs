@@ -10,12 +10,30 @@ use std::time::Duration;
 
 use anyhow::Context;
 
-use crate::routes::{now_s, AppState};
+use crate::clock::now_s;
+use crate::config::ServiceConfig;
 use crate::store::queue::JobTable;
+use crate::store::Store;
+
+/// What background work needs, and nothing of HTTP: the store, the service
+/// configuration, and the wake-up of this process's job worker.
+#[derive(Clone)]
+pub struct WorkContext {
+    pub store: Store,
+    pub config: Arc<ServiceConfig>,
+    /// Wakes this process's job worker when a job is queued.
+    pub wake: Arc<tokio::sync::Notify>,
+}
+
+impl WorkContext {
+    pub fn new(store: Store, config: ServiceConfig) -> Self {
+        Self { store, config: Arc::new(config), wake: Default::default() }
+    }
+}
 
 /// Runs `work` on the blocking pool, copying the stage and fraction it reports
 /// into the job's row every half second.
-pub async fn run_reporting<T, F>(s: &AppState, table: JobTable, job_id: &str, work: F) -> anyhow::Result<T>
+pub async fn run_reporting<T, F>(s: &WorkContext, table: JobTable, job_id: &str, work: F) -> anyhow::Result<T>
 where
     T: Send + 'static,
     F: FnOnce(&mut dyn FnMut(&str, f64)) -> anyhow::Result<T> + Send + 'static,

@@ -7,8 +7,9 @@ use meterveil_shared::recovery::outage::DayLayout;
 use meterveil_shared::recovery::{recover, LevelMatrix, RankChoice, RecoveryParams, SumConstraint};
 use meterveil_shared::FeederId;
 
-use crate::offline::band;
-use crate::routes::{now_s, AppState};
+use meterveil_shared::recovery::band95;
+use super::WorkContext;
+use crate::clock::now_s;
 use crate::store::queue::JobTable;
 use crate::store::recoveries::RecoveredRow;
 
@@ -22,38 +23,8 @@ pub struct RecoveryRequest {
     pub alpha_kw: f64,
 }
 
-/// Register advances whose period lies inside the window (a day, or any longer
-/// period), for meters with every interval of the period stored: then the
-/// gateway's count of forwarded intervals and the period's intervals coincide.
-pub fn day_constraints(
-    meters: &HashMap<String, usize>,
-    levels: &LevelMatrix,
-    reads: &[crate::settlement::Advance],
-    from: i64,
-    interval_s: u32,
-) -> Vec<SumConstraint> {
-    let step = i64::from(interval_s);
-    let hours = f64::from(interval_s) / 3600.0;
-    let mut out = Vec::new();
-    for a in reads {
-        if a.period_start < from || (a.period_start - from) % step != 0 || (a.read_at - a.period_start) % step != 0 {
-            continue;
-        }
-        let Some(&row) = meters.get(&a.meter_id) else { continue };
-        let first = ((a.period_start - from) / step) as usize;
-        let cols = first..((a.read_at - from) / step) as usize;
-        let wh = a.wh;
-        if cols.end > levels.cols() || cols.clone().any(|j| levels.get(row, j).is_none()) {
-            continue;
-        }
-        out.push(SumConstraint { row, cols, sum_kw: wh as f64 / (1000.0 * hours) });
-    }
-    out.sort_by_key(|c| (c.row, c.cols.start));
-    out
-}
-
 /// Runs the job to completion, recording progress and the outcome in its row.
-pub async fn run(state: AppState, job_id: String, req: RecoveryRequest) {
+pub async fn run(state: WorkContext, job_id: String, req: RecoveryRequest) {
     if let Err(e) = run_inner(&state, &job_id, &req).await {
         tracing::warn!(job = %job_id, error = %format!("{e:#}"), "recovery job failed");
         let _ = state.store.fail(JobTable::Recovery, &job_id, &format!("{e:#}"), now_s()).await;
@@ -110,12 +81,12 @@ pub async fn load_window(
         }
     }
     let reads = store.feeder_registers_between(feeder, from, to).await?;
-    let constraints = day_constraints(&index, &levels, &reads, from, profile.interval().seconds());
+    let constraints = crate::settlement::register_constraints(&index, &levels, &reads, from, profile.interval().seconds());
     let layout = DayLayout { window_start: from, interval_s: profile.interval().seconds() };
     Ok(FeederWindow { meters, levels, profile, version, constraints, layout })
 }
 
-async fn run_inner(s: &AppState, job_id: &str, req: &RecoveryRequest) -> anyhow::Result<()> {
+async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoveryRequest) -> anyhow::Result<()> {
     let store = &s.store;
     store.set_progress(JobTable::Recovery, job_id, 0.0, "loading levels", now_s()).await?;
     let FeederWindow { meters, levels, profile, version, constraints, layout } =
@@ -137,7 +108,7 @@ async fn run_inner(s: &AppState, job_id: &str, req: &RecoveryRequest) -> anyhow:
     for (i, m) in meters.iter().enumerate() {
         for j in 0..cols {
             let (x, sd) = (rec.x[(i, j)], rec.std_kw[(i, j)]);
-            let (lo, hi) = band(x, sd, req.alpha_kw);
+            let (lo, hi) = band95(x, sd, req.alpha_kw);
             out.push(RecoveredRow {
                 meter_id: m.clone(),
                 interval_start: req.from + j as i64 * step,

@@ -9,7 +9,8 @@ use meterveil_shared::recovery::RankChoice;
 use meterveil_shared::FeederId;
 use serde_json::Value;
 
-use crate::routes::{now_s, AppState};
+use super::WorkContext;
+use crate::clock::now_s;
 use crate::store::queue::Claimed;
 use crate::store::queue::JobTable;
 
@@ -30,7 +31,7 @@ fn strings(v: &Value) -> Vec<String> {
 }
 
 /// Runs one claimed job to its end (done or failed), renewing its lease meanwhile.
-async fn execute(s: &AppState, c: Claimed) {
+async fn execute(s: &WorkContext, c: Claimed) {
     let lease = s.config.job_lease_s.max(3);
     let (store, table, id) = (s.store.clone(), c.table, c.job_id.clone());
     let heartbeat = tokio::spawn(async move {
@@ -101,7 +102,7 @@ async fn execute(s: &AppState, c: Claimed) {
 }
 
 /// Claims and runs jobs until the task is aborted.
-pub async fn run(s: AppState) {
+pub async fn run(s: WorkContext) {
     loop {
         match s
             .store

@@ -16,7 +16,7 @@ use meterveil_shared::FieldError;
 use super::{now_s, AppState};
 use crate::committer::{Committed, Upload};
 use crate::error::ApiError;
-use crate::ingest::{body_sha256, check_header, parse_batch, sequence_reused, BatchHeader, KEY_MISMATCH};
+use crate::ingest::{body_sha256, check_header, sequence_reused, BatchHeader, KEY_MISMATCH};
 
 pub fn router() -> Router<AppState> {
     // Bodies may come gzip-compressed; the size limit applies to the decompressed
@@ -191,7 +191,7 @@ async fn ingest(s: &AppState, headers: &HeaderMap, body: Body) -> Result<AckWire
             Ok(ack)
         }
         Ok(Committed::Earlier(prev)) => replay(s, prev, &hash),
-        Err(e) => Err(e),
+        Err(e) => Err(e.into()),
     };
     if outcome.is_err() {
         s.metrics.readings_rejected.inc_by(n_readings);
@@ -201,7 +201,7 @@ async fn ingest(s: &AppState, headers: &HeaderMap, body: Body) -> Result<AckWire
 
 /// Parses the body and checks that it names the signing gateway and its feeder.
 fn parse_signed(bytes: &[u8], signed: &Signed) -> Result<(BatchHeader, BatchWire), ApiError> {
-    let batch = parse_batch(bytes)?;
+    let batch: BatchWire = super::parse_json(bytes)?;
     let header = check_header(&batch)?;
     if header.gateway_id.as_str() != signed.gateway_id {
         return Err(ApiError::Forbidden(FieldError::new(
@@ -225,7 +225,7 @@ async fn earlier_sequence(s: &AppState, signed: &Signed, hash: &str) -> Result<O
         return Ok(None);
     };
     if prev_hash != hash {
-        return Err(sequence_reused(signed.sequence, &batch_id));
+        return Err(sequence_reused(signed.sequence, &batch_id).into());
     }
     match s.store.find_batch(&batch_id).await? {
         Some(prev) => replay(s, prev, hash).map(Some),

@@ -16,24 +16,30 @@ use axum::Router;
 use meterveil_shared::FieldError;
 use serde::de::DeserializeOwned;
 
-use crate::config::ServiceConfig;
 use crate::error::ApiError;
 use crate::metrics::Metrics;
-use crate::store::Store;
+use crate::jobs::WorkContext;
 
+/// What the handlers share: the background work's context (store,
+/// configuration, the worker's wake-up), reached through `Deref`, and the
+/// HTTP side's own state.
 #[derive(Clone)]
 pub struct AppState {
-    pub store: Store,
-    pub config: Arc<ServiceConfig>,
+    pub work: WorkContext,
     pub metrics: Arc<Metrics>,
-    /// Wakes this process's job worker when a job is queued.
-    pub wake: Arc<tokio::sync::Notify>,
     /// Dashboard sessions and one-time sign-in codes.
     pub dashboard: Arc<dashboard::Sessions>,
     /// Per-gateway upload rate buckets.
     pub buckets: Arc<ingest::Buckets>,
     /// Checks and writes uploads in groups.
     pub committer: crate::committer::Committer,
+}
+
+impl std::ops::Deref for AppState {
+    type Target = WorkContext;
+    fn deref(&self) -> &WorkContext {
+        &self.work
+    }
 }
 
 pub fn router(state: AppState) -> Router {
@@ -83,7 +89,4 @@ pub fn parse_json<T: DeserializeOwned>(body: &[u8]) -> Result<T, ApiError> {
     })
 }
 
-/// Server time as UTC epoch seconds.
-pub fn now_s() -> i64 {
-    std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).map(|d| d.as_secs() as i64).unwrap_or(0)
-}
+pub use crate::clock::now_s;

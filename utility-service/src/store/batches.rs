@@ -7,7 +7,6 @@
 //! another writer (a second process on the same database) is rolled back whole
 //! and the caller retries its uploads one by one.
 
-use std::collections::HashMap;
 
 use meterveil_shared::wire::AckWire;
 use meterveil_shared::FeederId;
@@ -15,27 +14,13 @@ use sqlx::{AnyConnection, Connection, Row};
 
 use super::StoreError;
 use super::INSERT_CHUNK;
-use super::{placeholders, profile_from_row, stored_batch_from_row, values_sql, ProfileRecord, Store, StoredBatch};
+use super::{placeholders, profile_from_row, stored_batch_from_row, values_sql, Store};
 use crate::ingest::ValidatedBatch;
 
 /// Ids per `IN (…)` list.
 const IN_CHUNK: usize = 500;
 
-/// What is stored about the gateways, sequence numbers, batch ids, feeders and
-/// meters a group of uploads names.
-#[derive(Debug, Default)]
-pub struct GroupState {
-    /// gateway id → (feeder id, key generation, last accepted sequence).
-    pub gateways: HashMap<String, (String, i64, i64)>,
-    /// (gateway id, sequence) → (body sha256, batch id) of an accepted upload.
-    pub sequences: HashMap<(String, i64), (String, String)>,
-    /// Stored batches by batch id.
-    pub batches: HashMap<String, StoredBatch>,
-    /// Each named feeder's profile versions, oldest first.
-    pub profiles: HashMap<String, Vec<ProfileRecord>>,
-    /// meter id → feeder id, for the registered meters among those named.
-    pub meter_feeders: HashMap<String, String>,
-}
+pub use crate::records::GroupState;
 
 /// What a group names, for [`Store::group_state`].
 #[derive(Debug, Default)]

@@ -14,7 +14,6 @@
 use std::time::Duration;
 
 use anyhow::Context;
-use meterveil_shared::wire::AckWire;
 use meterveil_shared::{DitherProfile, DitherProfileSpec, FeederId, FieldError, MeterId, ProfileVersion};
 use sqlx::any::{AnyPoolOptions, AnyRow};
 use sqlx::{Any, AnyPool, Executor, Row};
@@ -99,34 +98,7 @@ pub(crate) fn values_sql(backend: Backend, prefix: &str, rows: usize, cols: usiz
 pub(crate) fn placeholders(from: usize, n: usize) -> String {
     (from..from + n).map(|i| format!("${i}")).collect::<Vec<_>>().join(", ")
 }
-#[derive(Debug, Clone)]
-pub struct ProfileRecord {
-    pub feeder_id: FeederId,
-    pub version: ProfileVersion,
-    /// UTC epoch seconds of publication.
-    pub created_at: i64,
-    pub profile: DitherProfile,
-    pub in_use: bool,
-}
-
-impl ProfileRecord {
-    /// The wire form, with the feeder's time zone (`time_zone`, IANA name).
-    pub fn to_wire(&self, time_zone: &str) -> meterveil_shared::wire::ProfileRecordWire {
-        meterveil_shared::wire::ProfileRecordWire {
-            feeder_id: self.feeder_id.to_string(),
-            version: self.version.0,
-            created_at: self.created_at,
-            profile: self.profile.to_spec(),
-            time_zone: time_zone.to_owned(),
-        }
-    }
-}
-
-#[derive(Debug, Clone, PartialEq, Eq)]
-pub struct StoredBatch {
-    pub body_sha256: String,
-    pub ack: AckWire,
-}
+pub use crate::records::{ProfileRecord, StoredBatch};
 
 #[derive(Debug, Clone, serde::Serialize)]
 pub struct FeederSummary {

@@ -26,16 +26,7 @@ pub struct JobRecord {
     pub error: Option<String>,
 }
 
-/// One recovered interval as stored and served.
-#[derive(Debug, Clone, Serialize)]
-pub struct RecoveredRow {
-    pub meter_id: String,
-    pub interval_start: i64,
-    pub kw: f64,
-    pub flag: &'static str,
-    pub kw_low: f64,
-    pub kw_high: f64,
-}
+pub use crate::records::RecoveredRow;
 
 impl Store {
     pub async fn create_job(
