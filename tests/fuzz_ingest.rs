@@ -5,25 +5,32 @@
 
 use std::collections::HashSet;
 
-use meterveil_service::ingest::{body_sha256, check_header, parse_batch, validate, IngestContext};
-use meterveil_service::store::ProfileRecord;
+use meterveil_service::ingest::{body_sha256, check_header, validate, IngestContext};
+use meterveil_service::records::ProfileRecord;
+use meterveil_service::routes::parse_json;
+use meterveil_shared::wire::BatchWire;
 use meterveil_shared::{DitherProfile, DitherProfileSpec, FeederId, ProfileVersion};
 use proptest::prelude::*;
 
 const CASES: u32 = 20_000;
 const NOW: i64 = 1_700_006_400;
 
-fn seeds() -> Vec<Vec<u8>> {
+/// The seed bodies, each with its file name, in name order.
+fn named_seeds() -> Vec<(String, Vec<u8>)> {
     let dir = concat!(env!("CARGO_MANIFEST_DIR"), "/../tests/fuzz-seeds");
-    let mut out: Vec<Vec<u8>> = std::fs::read_dir(dir)
+    let mut out: Vec<(String, Vec<u8>)> = std::fs::read_dir(dir)
         .expect("seed folder")
         .filter_map(|e| e.ok().map(|e| e.path()))
         .filter(|p| p.extension().is_some_and(|x| x == "json"))
-        .map(|p| std::fs::read(p).expect("seed"))
+        .map(|p| (p.file_name().unwrap_or_default().to_string_lossy().into_owned(), std::fs::read(&p).expect("seed")))
         .collect();
     out.sort();
-    assert!(out.len() >= 3, "seeds missing");
+    assert!(out.len() >= 4, "seeds missing");
     out
+}
+
+fn seeds() -> Vec<Vec<u8>> {
+    named_seeds().into_iter().map(|(_, b)| b).collect()
 }
 
 fn profiles() -> Vec<ProfileRecord> {
@@ -45,11 +52,15 @@ fn profiles() -> Vec<ProfileRecord> {
     }]
 }
 
+fn known() -> HashSet<String> {
+    ["m1".to_owned(), "m2".to_owned()].into()
+}
+
 /// Runs the whole decode-and-validate path; panics only on a broken invariant.
 fn run(body: &[u8]) {
     let profiles = profiles();
-    let known: HashSet<String> = ["m1".to_owned(), "m2".to_owned()].into();
-    let batch = match parse_batch(body) {
+    let known = known();
+    let batch = match parse_json::<BatchWire>(body) {
         Ok(b) => b,
         Err(e) => return assert!(!e.to_string().is_empty()),
     };
@@ -75,6 +86,32 @@ fn run(body: &[u8]) {
         Err(e) => {
             let s = e.to_string();
             assert!(s.contains(':') && s.len() > 3, "a refusal without field and reason: {s:?}");
+        }
+    }
+}
+
+/// The corpus is what its names say: `accept-*` seeds are valid batches (so
+/// the mutations start from accepted input and probe the validators, not only
+/// the decoder), and `refuse-*` seeds are refused with a named field.
+#[test]
+fn seeds_are_accepted_or_refused_as_named() {
+    let (profiles, known) = (profiles(), known());
+    let ctx =
+        IngestContext { profiles: &profiles, known_meters: &known, now: NOW, clock_tolerance_s: 300, stale_grace_s: 86_400 };
+    let judge = |body: &[u8]| -> Result<usize, String> {
+        let batch: BatchWire = parse_json(body).map_err(|e| e.to_string())?;
+        let header = check_header(&batch).map_err(|e| e.to_string())?;
+        let v = validate(header, &batch, body_sha256(body), &ctx).map_err(|e| e.to_string())?;
+        Ok(v.readings.len() + v.registers.len())
+    };
+    let seeds = named_seeds();
+    assert!(seeds.iter().any(|(n, _)| n.starts_with("accept-")), "no seed to accept");
+    for (name, body) in &seeds {
+        match (name.starts_with("accept-"), judge(body)) {
+            (true, Ok(rows)) => assert!(rows > 0, "{name} holds nothing"),
+            (true, Err(e)) => panic!("{name} is refused: {e}"),
+            (false, Ok(_)) => panic!("{name} is accepted"),
+            (false, Err(e)) => assert!(e.contains(':'), "{name}'s refusal names no field: {e}"),
         }
     }
 }
@@ -108,7 +145,7 @@ proptest! {
 
     #[test]
     fn mutated_seeds_never_panic(
-        seed in 0usize..3,
+        seed in 0usize..64,
         ops in proptest::collection::vec((any::<u8>(), any::<usize>(), any::<u8>()), 1..12),
     ) {
         let s = seeds();
