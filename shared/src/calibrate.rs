@@ -83,7 +83,7 @@ impl CalibrationConfig {
             sets: 8,
             margin: 0.8,
             seed: DEFAULT_SEED,
-            alpha_kw: 15.0,
+            alpha_kw: crate::recovery::DEFAULT_ALPHA_KW,
             utility_rank: RankChoice::Fixed(10),
             events: standard_event_mix(),
             register_periods: Vec::new(),
@@ -105,7 +105,7 @@ impl CalibrationConfig {
         if t.profile_nrmse_max.is_some_and(|v| !(v > 0.0 && v <= 10.0)) {
             return Err(FieldError::new("profile_nrmse_max", "must be in (0, 10]"));
         }
-        if t.captured == 0 || t.captured * self.sets.max(1) > population {
+        if t.captured == 0 || t.captured.saturating_mul(self.sets.max(1)) > population {
             return Err(FieldError::new(
                 "captured",
                 format!("{} captured meters × {} sets exceed the feeder's {population} meters", t.captured, self.sets),

@@ -13,6 +13,7 @@ pub mod demo;
 pub mod error;
 pub mod ingest;
 pub mod jobs;
+pub mod jobspec;
 pub mod metrics;
 pub mod offline;
 pub mod records;

@@ -121,7 +121,7 @@ pub const DEFAULT_SEED: u64 = 11;
 impl Default for AuditConfig {
     fn default() -> Self {
         Self {
-            alpha_kw: 15.0,
+            alpha_kw: crate::recovery::DEFAULT_ALPHA_KW,
             events: standard_event_mix(),
             seed: DEFAULT_SEED,
             utility_rank: RecoveryParams::default().rank,

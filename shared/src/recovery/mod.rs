@@ -12,7 +12,7 @@ pub mod params;
 pub mod solver;
 pub mod table;
 
-pub use params::{RankChoice, RecoveryParams, ValidRecoveryParams};
+pub use params::{RankChoice, RecoveryParams, ValidRecoveryParams, DEFAULT_ALPHA_KW};
 pub use solver::{recover, Diagnostics, Flag, ProgressFn, Recovery, Stop};
 
 /// Marks a missing entry in a [`LevelMatrix`].

@@ -2,6 +2,11 @@
 
 use crate::error::FieldError;
 
+/// The service limit's default, kW: estimates are kept in [0, alpha]. A
+/// household's main fuse allows roughly this much (common practice: 60–80 A
+/// single-phase at 230 V, from memory).
+pub const DEFAULT_ALPHA_KW: f64 = 15.0;
+
 /// How the rank is chosen.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub enum RankChoice {
@@ -44,7 +49,7 @@ impl Default for RecoveryParams {
     fn default() -> Self {
         Self {
             rank: RankChoice::Auto(vec![2, 5, 10, 20, 40]),
-            alpha_kw: 15.0,
+            alpha_kw: DEFAULT_ALPHA_KW,
             max_iterations: 300,
             tolerance: 1e-5,
             holdout_fraction: 0.05,

@@ -6,7 +6,7 @@ use std::collections::HashMap;
 
 use anyhow::Context;
 use meterveil_shared::audit::{bootstrap, default_curve_counts, direct, select_rows, AuditConfig, Feeder};
-use meterveil_shared::calibrate::{calibrate, CalibrationConfig, Targets};
+use meterveil_shared::calibrate::{calibrate, CalibrationConfig};
 use meterveil_shared::recovery::outage::DayLayout;
 use meterveil_shared::recovery::{LevelMatrix, RankChoice, SumConstraint};
 use meterveil_shared::{DitherProfile, FeederId};
@@ -14,6 +14,7 @@ use nalgebra::DMatrix;
 
 use super::WorkContext;
 use crate::clock::now_s;
+use crate::jobspec::{AuditSpec, CalibrateSpec};
 use crate::store::queue::JobTable;
 
 /// A finished recovery, loaded back for analysis.
@@ -66,26 +67,14 @@ async fn load(s: &WorkContext, recovery_job: &str) -> anyhow::Result<Recovered> 
     })
 }
 
-#[derive(Debug, Clone)]
-pub struct AuditRequest {
-    pub recovery_job: String,
-    pub captured: Vec<String>,
-    pub seed: u64,
-    /// Audit as if the feeder sent register reads of this period (a what-if);
-    /// `None`: the period of the profile the readings were made with.
-    pub register_period: Option<meterveil_shared::RegisterPeriod>,
-    /// Whether to draw the curves over captured meters and days of history.
-    pub curves: bool,
-}
-
-pub async fn run_audit(state: WorkContext, job_id: String, req: AuditRequest) {
+pub async fn run_audit(state: WorkContext, job_id: String, req: AuditSpec) {
     if let Err(e) = audit_inner(&state, &job_id, &req).await {
         tracing::warn!(job = %job_id, error = %format!("{e:#}"), "audit job failed");
         let _ = state.store.fail(JobTable::Analysis, &job_id, &format!("{e:#}"), now_s()).await;
     }
 }
 
-async fn audit_inner(s: &WorkContext, job_id: &str, req: &AuditRequest) -> anyhow::Result<()> {
+async fn audit_inner(s: &WorkContext, job_id: &str, req: &AuditSpec) -> anyhow::Result<()> {
     s.store.set_progress(JobTable::Analysis, job_id, 0.0, "loading the recovery", now_s()).await?;
     let r = load(s, &req.recovery_job).await?;
     let index: HashMap<String, usize> = r.meters.iter().enumerate().map(|(i, m)| (m.clone(), i)).collect();
@@ -93,7 +82,7 @@ async fn audit_inner(s: &WorkContext, job_id: &str, req: &AuditRequest) -> anyho
         .captured
         .iter()
         .map(|m| {
-            index.get(m).copied().with_context(|| format!("meter {m} is not in recovery job {}", req.recovery_job))
+            index.get(m.as_str()).copied().with_context(|| format!("meter {m} is not in recovery job {}", req.recovery_job))
         })
         .collect::<anyhow::Result<_>>()?;
     // The stored levels and register days of the captured meters, for the direct mode.
@@ -149,23 +138,14 @@ async fn audit_inner(s: &WorkContext, job_id: &str, req: &AuditRequest) -> anyho
     Ok(())
 }
 
-#[derive(Debug, Clone)]
-pub struct CalibrationRequest {
-    pub recovery_job: String,
-    pub targets: Targets,
-    pub publish: bool,
-    pub seed: u64,
-    pub register_periods: Vec<meterveil_shared::RegisterPeriod>,
-}
-
-pub async fn run_calibration(state: WorkContext, job_id: String, req: CalibrationRequest) {
+pub async fn run_calibration(state: WorkContext, job_id: String, req: CalibrateSpec) {
     if let Err(e) = calibration_inner(&state, &job_id, &req).await {
         tracing::warn!(job = %job_id, error = %format!("{e:#}"), "calibration job failed");
         let _ = state.store.fail(JobTable::Analysis, &job_id, &format!("{e:#}"), now_s()).await;
     }
 }
 
-async fn calibration_inner(s: &WorkContext, job_id: &str, req: &CalibrationRequest) -> anyhow::Result<()> {
+async fn calibration_inner(s: &WorkContext, job_id: &str, req: &CalibrateSpec) -> anyhow::Result<()> {
     s.store.set_progress(JobTable::Analysis, job_id, 0.0, "loading the recovery", now_s()).await?;
     let r = load(s, &req.recovery_job).await?;
     let tz =

@@ -7,25 +7,18 @@ use serde_json::json;
 
 use super::WorkContext;
 use crate::clock::now_s;
+use crate::jobspec::ClusterSpec;
 use crate::store::analyses::Assignment;
 use crate::store::queue::JobTable;
 
-#[derive(Debug, Clone)]
-pub struct ClusterRequest {
-    /// Finished recovery jobs over one common window (one per feeder, typically).
-    pub recovery_jobs: Vec<String>,
-    /// Operator's cluster count, or `None` for the stability rule.
-    pub clusters: Option<usize>,
-}
-
-pub async fn run(state: WorkContext, job_id: String, req: ClusterRequest) {
+pub async fn run(state: WorkContext, job_id: String, req: ClusterSpec) {
     if let Err(e) = run_inner(&state, &job_id, &req).await {
         tracing::warn!(job = %job_id, error = %format!("{e:#}"), "clustering job failed");
         let _ = state.store.fail(JobTable::Analysis, &job_id, &format!("{e:#}"), now_s()).await;
     }
 }
 
-async fn run_inner(s: &WorkContext, job_id: &str, req: &ClusterRequest) -> anyhow::Result<()> {
+async fn run_inner(s: &WorkContext, job_id: &str, req: &ClusterSpec) -> anyhow::Result<()> {
     s.store.set_progress(JobTable::Analysis, job_id, 0.0, "loading recovered profiles", now_s()).await?;
     let mut meters: Vec<(String, String)> = Vec::new();
     let mut values: Vec<f64> = Vec::new();

@@ -4,27 +4,17 @@ use std::collections::HashMap;
 
 use anyhow::Context;
 use meterveil_shared::recovery::outage::DayLayout;
-use meterveil_shared::recovery::{recover, LevelMatrix, RankChoice, RecoveryParams, SumConstraint};
+use meterveil_shared::recovery::{band95, recover, LevelMatrix, RecoveryParams, SumConstraint};
 use meterveil_shared::FeederId;
 
-use meterveil_shared::recovery::band95;
 use super::WorkContext;
 use crate::clock::now_s;
+use crate::jobspec::RecoverSpec;
 use crate::store::queue::JobTable;
 use crate::store::recoveries::RecoveredRow;
 
-#[derive(Debug, Clone)]
-pub struct RecoveryRequest {
-    pub feeder: FeederId,
-    /// Window [from, to), UTC epoch seconds aligned to the interval length.
-    pub from: i64,
-    pub to: i64,
-    pub rank: RankChoice,
-    pub alpha_kw: f64,
-}
-
 /// Runs the job to completion, recording progress and the outcome in its row.
-pub async fn run(state: WorkContext, job_id: String, req: RecoveryRequest) {
+pub async fn run(state: WorkContext, job_id: String, req: RecoverSpec) {
     if let Err(e) = run_inner(&state, &job_id, &req).await {
         tracing::warn!(job = %job_id, error = %format!("{e:#}"), "recovery job failed");
         let _ = state.store.fail(JobTable::Recovery, &job_id, &format!("{e:#}"), now_s()).await;
@@ -86,14 +76,14 @@ pub async fn load_window(
     Ok(FeederWindow { meters, levels, profile, version, constraints, layout })
 }
 
-async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoveryRequest) -> anyhow::Result<()> {
+async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoverSpec) -> anyhow::Result<()> {
     let store = &s.store;
     store.set_progress(JobTable::Recovery, job_id, 0.0, "loading levels", now_s()).await?;
     let FeederWindow { meters, levels, profile, version, constraints, layout } =
-        load_window(store, &req.feeder, req.from, req.to).await?;
+        load_window(store, &req.feeder_id, req.from, req.to).await?;
     let step = i64::from(profile.interval().seconds());
     let cols = levels.cols();
-    let params = RecoveryParams { rank: req.rank.clone(), alpha_kw: req.alpha_kw, ..Default::default() }
+    let params = RecoveryParams { rank: req.rank.choice(), alpha_kw: req.alpha_kw, ..Default::default() }
         .check()
         .map_err(|e| anyhow::anyhow!("{e}"))?;
 

@@ -4,31 +4,10 @@
 
 use std::time::Duration;
 
-use meterveil_shared::calibrate::Targets;
-use meterveil_shared::recovery::RankChoice;
-use meterveil_shared::FeederId;
-use serde_json::Value;
-
 use super::WorkContext;
 use crate::clock::now_s;
+use crate::jobspec::JobSpec;
 use crate::store::queue::Claimed;
-use crate::store::queue::JobTable;
-
-/// Rebuilds a recovery request from its row.
-fn recovery_request(c: &Claimed) -> anyhow::Result<super::recover::RecoveryRequest> {
-    let feeder = FeederId::parse(c.feeder_id.as_deref().unwrap_or("")).map_err(|e| anyhow::anyhow!("{e}"))?;
-    let (from, to) = c.window.ok_or_else(|| anyhow::anyhow!("recovery job without a window"))?;
-    let rank = match &c.params["rank"] {
-        Value::Number(n) => RankChoice::Fixed(n.as_u64().unwrap_or(10) as usize),
-        _ => meterveil_shared::recovery::RecoveryParams::default().rank,
-    };
-    let alpha_kw = c.params["alpha_kw"].as_f64().unwrap_or(15.0);
-    Ok(super::recover::RecoveryRequest { feeder, from, to, rank, alpha_kw })
-}
-
-fn strings(v: &Value) -> Vec<String> {
-    v.as_array().map(|a| a.iter().filter_map(|s| s.as_str().map(str::to_owned)).collect()).unwrap_or_default()
-}
 
 /// Runs one claimed job to its end (done or failed), renewing its lease meanwhile.
 async fn execute(s: &WorkContext, c: Claimed) {
@@ -44,58 +23,20 @@ async fn execute(s: &WorkContext, c: Claimed) {
             }
         }
     });
-    tracing::info!(job = %c.job_id, kind = %c.kind, attempt = c.attempts, worker = %s.store.worker_id(), "job claimed");
     let id = c.job_id.clone();
-    let p = &c.params;
-    match c.kind.as_str() {
-        "recover" => match recovery_request(&c) {
-            Ok(req) => super::recover::run(s.clone(), id, req).await,
-            Err(e) => {
-                let _ = s.store.fail(JobTable::Recovery, &id, &format!("{e:#}"), now_s()).await;
+    match c.spec {
+        Ok(spec) => {
+            tracing::info!(job = %id, kind = spec.kind(), attempt = c.attempts, worker = %s.store.worker_id(), "job claimed");
+            match spec {
+                JobSpec::Recover(spec) => super::recover::run(s.clone(), id, spec).await,
+                JobSpec::Cluster(spec) => super::cluster::run(s.clone(), id, spec).await,
+                JobSpec::Audit(spec) => super::audit::run_audit(s.clone(), id, spec).await,
+                JobSpec::Calibrate(spec) => super::audit::run_calibration(s.clone(), id, spec).await,
             }
-        },
-        "cluster" => {
-            let req = super::cluster::ClusterRequest {
-                recovery_jobs: strings(&p["recovery_jobs"]),
-                clusters: p["clusters"].as_u64().map(|k| k as usize),
-            };
-            super::cluster::run(s.clone(), id, req).await;
         }
-        "audit" => {
-            let req = super::audit::AuditRequest {
-                recovery_job: p["recovery_job"].as_str().unwrap_or_default().to_owned(),
-                captured: strings(&p["captured"]),
-                seed: p["seed"].as_u64().unwrap_or(meterveil_shared::audit::DEFAULT_SEED),
-                register_period: p["register_period"]
-                    .as_str()
-                    .and_then(|v| meterveil_shared::RegisterPeriod::parse("register_period", v).ok()),
-                curves: p["curves"].as_bool().unwrap_or(true),
-            };
-            super::audit::run_audit(s.clone(), id, req).await;
-        }
-        "calibrate" => match serde_json::from_value::<Targets>(p["targets"].clone()) {
-            Ok(targets) => {
-                let req = super::audit::CalibrationRequest {
-                    recovery_job: p["recovery_job"].as_str().unwrap_or_default().to_owned(),
-                    targets,
-                    publish: p["publish"].as_bool().unwrap_or(false),
-                    seed: p["seed"].as_u64().unwrap_or(meterveil_shared::calibrate::DEFAULT_SEED),
-                    register_periods: p["register_periods"]
-                        .as_array()
-                        .into_iter()
-                        .flatten()
-                        .filter_map(|v| meterveil_shared::RegisterPeriod::parse("register_periods", v.as_str()?).ok())
-                        .collect(),
-                };
-                super::audit::run_calibration(s.clone(), id, req).await;
-            }
-            Err(e) => {
-                let _ =
-                    s.store.fail(JobTable::Analysis, &id, &format!("stored targets do not parse: {e}"), now_s()).await;
-            }
-        },
-        other => {
-            let _ = s.store.fail(JobTable::Analysis, &id, &format!("unknown job kind {other}"), now_s()).await;
+        Err(reason) => {
+            tracing::warn!(job = %id, %reason, "a claimed job's spec does not parse");
+            let _ = s.store.fail(c.table, &id, &reason, now_s()).await;
         }
     }
     heartbeat.abort();

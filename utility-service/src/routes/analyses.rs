@@ -13,6 +13,7 @@ use serde_json::{json, Value};
 
 use super::{now_s, parse_json, AppState, Operator};
 use crate::error::ApiError;
+use crate::jobspec::{AuditRequest, CalibrateRequest, ClusterRequest, JobSpec};
 use crate::jobs::new_job_id;
 use crate::store::analyses::AnalysisRecord;
 
@@ -26,41 +27,15 @@ pub fn router() -> Router<AppState> {
         .route("/v1/calibrations", post(start_calibration))
 }
 
-#[derive(Deserialize)]
-#[serde(deny_unknown_fields)]
-struct ClusteringWire {
-    recovery_jobs: Vec<String>,
-    #[serde(default)]
-    clusters: Option<Value>,
-}
-
-/// Parses `"auto"` / absent (the eigengap rule) or a count from 2 to 200.
-pub fn parse_cluster_count(v: &Option<Value>) -> Result<Option<usize>, ApiError> {
-    match v {
-        None => Ok(None),
-        Some(Value::String(a)) if a == "auto" => Ok(None),
-        Some(Value::Number(n)) if n.as_u64().is_some_and(|k| (2..=200).contains(&k)) => {
-            Ok(n.as_u64().map(|k| k as usize))
-        }
-        Some(other) => {
-            Err(ApiError::invalid("clusters", format!("{other} is neither \"auto\" nor a count from 2 to 200")))
-        }
-    }
-}
-
 async fn start_clustering(
     _: Operator,
     State(s): State<AppState>,
     body: Bytes,
 ) -> Result<(StatusCode, Json<Value>), ApiError> {
-    let w: ClusteringWire = parse_json(&body)?;
-    if w.recovery_jobs.is_empty() || w.recovery_jobs.len() > 100 {
-        return Err(ApiError::invalid("recovery_jobs", "give from 1 to 100 finished recovery job ids"));
-    }
-    let clusters = parse_cluster_count(&w.clusters)?;
+    let spec = parse_json::<ClusterRequest>(&body)?.check().map_err(ApiError::Invalid)?;
     let mut window = None;
     let mut feeders = std::collections::BTreeSet::new();
-    for id in &w.recovery_jobs {
+    for id in &spec.recovery_jobs {
         let Some(job) = s.store.job(id).await? else {
             return Err(ApiError::invalid("recovery_jobs", format!("no recovery job {id}")));
         };
@@ -83,8 +58,7 @@ async fn start_clustering(
     // One feeder's clustering goes to that feeder's shard; a town-wide one to an unsharded worker.
     let feeder = if feeders.len() == 1 { feeders.into_iter().next() } else { None };
     let job_id = new_job_id("clu");
-    let params = json!({ "recovery_jobs": w.recovery_jobs, "clusters": clusters });
-    s.store.create_analysis(&job_id, "cluster", feeder.as_deref(), &params, now_s()).await?;
+    s.store.create_analysis(&job_id, &JobSpec::Cluster(spec), feeder.as_deref(), now_s()).await?;
     s.wake.notify_one();
     Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
 }
@@ -103,81 +77,22 @@ async fn done_recovery(s: &AppState, id: &str) -> Result<crate::store::recoverie
     Ok(job)
 }
 
-#[derive(Deserialize)]
-#[serde(deny_unknown_fields)]
-struct AuditWire {
-    recovery_job: String,
-    captured: Vec<String>,
-    #[serde(default)]
-    seed: Option<u64>,
-    /// Audit as if the feeder sent register reads of this period.
-    #[serde(default)]
-    register_period: Option<String>,
-    #[serde(default = "yes")]
-    curves: bool,
-}
-
-fn yes() -> bool {
-    true
-}
-
 async fn start_audit(
     _: Operator,
     State(s): State<AppState>,
     body: Bytes,
 ) -> Result<(StatusCode, Json<Value>), ApiError> {
-    let w: AuditWire = parse_json(&body)?;
-    let job = done_recovery(&s, &w.recovery_job).await?;
-    if w.captured.is_empty() || w.captured.len() > 1000 {
-        return Err(ApiError::invalid("captured", "name from 1 to 1000 captured meters"));
-    }
+    let spec = parse_json::<AuditRequest>(&body)?.check().map_err(ApiError::Invalid)?;
+    let job = done_recovery(&s, &spec.recovery_job).await?;
     let feeder = meterveil_shared::FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
     let meters: std::collections::HashSet<String> = s.store.meters_of(&feeder).await?.into_iter().collect();
-    let mut seen = std::collections::HashSet::new();
-    for m in &w.captured {
-        if !meters.contains(m) {
-            return Err(ApiError::invalid("captured", format!("meter {m} is not on feeder {feeder}")));
-        }
-        if !seen.insert(m) {
-            return Err(ApiError::invalid("captured", format!("meter {m} is named twice")));
-        }
+    if let Some(m) = spec.captured.iter().find(|m| !meters.contains(m.as_str())) {
+        return Err(ApiError::invalid("captured", format!("meter {m} is not on feeder {feeder}")));
     }
-    let seed = w.seed.unwrap_or(meterveil_shared::audit::DEFAULT_SEED);
-    let period = w
-        .register_period
-        .as_deref()
-        .map(|p| meterveil_shared::RegisterPeriod::parse("register_period", p).map(|p| p.as_str()))
-        .transpose()
-        .map_err(ApiError::Invalid)?;
     let job_id = new_job_id("aud");
-    let params = json!({ "recovery_job": w.recovery_job, "captured": w.captured, "seed": seed,
-                         "register_period": period, "curves": w.curves });
-    s.store.create_analysis(&job_id, "audit", Some(&job.feeder_id), &params, now_s()).await?;
+    s.store.create_analysis(&job_id, &JobSpec::Audit(spec), Some(&job.feeder_id), now_s()).await?;
     s.wake.notify_one();
     Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
-}
-
-#[derive(Deserialize)]
-#[serde(deny_unknown_fields)]
-struct CalibrationWire {
-    recovery_job: String,
-    event_f1_max: f64,
-    #[serde(default = "one")]
-    captured: usize,
-    daily_energy_error_max: f64,
-    #[serde(default)]
-    profile_nrmse_max: Option<f64>,
-    #[serde(default)]
-    publish: bool,
-    #[serde(default)]
-    seed: Option<u64>,
-    /// Register periods to search with the scale and level set (default: the current one).
-    #[serde(default)]
-    register_periods: Vec<String>,
-}
-
-fn one() -> usize {
-    1
 }
 
 async fn start_calibration(
@@ -185,32 +100,14 @@ async fn start_calibration(
     State(s): State<AppState>,
     body: Bytes,
 ) -> Result<(StatusCode, Json<Value>), ApiError> {
-    use meterveil_shared::calibrate::{CalibrationConfig, Targets};
-    let w: CalibrationWire = parse_json(&body)?;
-    let job = done_recovery(&s, &w.recovery_job).await?;
-    let targets = Targets {
-        event_f1_max: w.event_f1_max,
-        captured: w.captured,
-        daily_energy_error_max: w.daily_energy_error_max,
-        profile_nrmse_max: w.profile_nrmse_max,
-    };
+    let spec = parse_json::<CalibrateRequest>(&body)?.check().map_err(ApiError::Invalid)?;
+    let job = done_recovery(&s, &spec.recovery_job).await?;
     let population = job.diagnostics.as_ref().and_then(|d| d["meters"].as_u64()).unwrap_or(0) as usize;
-    CalibrationConfig::new(targets.clone()).check(population).map_err(ApiError::Invalid)?;
-    let seed = w.seed.unwrap_or(meterveil_shared::calibrate::DEFAULT_SEED);
-    let periods: Vec<&str> = w
-        .register_periods
-        .iter()
-        .enumerate()
-        .map(|(i, p)| {
-            meterveil_shared::RegisterPeriod::parse(&format!("register_periods[{i}]"), p)
-                .map(|p| p.as_str())
-                .map_err(ApiError::Invalid)
-        })
-        .collect::<Result<_, _>>()?;
+    meterveil_shared::calibrate::CalibrationConfig::new(spec.targets.clone())
+        .check(population)
+        .map_err(ApiError::Invalid)?;
     let job_id = new_job_id("cal");
-    let params = json!({ "recovery_job": w.recovery_job, "targets": targets, "publish": w.publish, "seed": seed,
-                         "register_periods": periods });
-    s.store.create_analysis(&job_id, "calibrate", Some(&job.feeder_id), &params, now_s()).await?;
+    s.store.create_analysis(&job_id, &JobSpec::Calibrate(spec), Some(&job.feeder_id), now_s()).await?;
     s.wake.notify_one();
     Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
 }

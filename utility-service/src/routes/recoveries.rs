@@ -6,13 +6,13 @@ use axum::http::{header, StatusCode};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post};
 use axum::{Json, Router};
-use meterveil_shared::recovery::RankChoice;
 use meterveil_shared::{FeederId, FieldError};
 use serde::Deserialize;
 use serde_json::{json, Value};
 
 use super::{now_s, parse_json, AppState, Operator};
 use crate::error::ApiError;
+use crate::jobspec::RecoverRequest;
 use crate::store::recoveries::JobRecord;
 
 pub fn router() -> Router<AppState> {
@@ -23,58 +23,18 @@ pub fn router() -> Router<AppState> {
         .route("/v1/recoveries/{job_id}/daily", get(daily))
 }
 
-#[derive(Deserialize)]
-#[serde(deny_unknown_fields)]
-struct StartWire {
-    feeder_id: String,
-    from: i64,
-    to: i64,
-    #[serde(default)]
-    rank: Option<Value>,
-    #[serde(default)]
-    alpha_kw: Option<f64>,
-}
-
-/// Longest window one job may take: 93 days.
-const MAX_WINDOW_S: i64 = 93 * 86_400;
-
 async fn start(_: Operator, State(s): State<AppState>, body: Bytes) -> Result<(StatusCode, Json<Value>), ApiError> {
-    let w: StartWire = parse_json(&body)?;
-    let feeder = FeederId::parse(&w.feeder_id).map_err(ApiError::Invalid)?;
-    if !s.store.feeder_exists(&feeder).await? {
+    let spec = parse_json::<RecoverRequest>(&body)?.check().map_err(ApiError::Invalid)?;
+    let feeder = &spec.feeder_id;
+    if !s.store.feeder_exists(feeder).await? {
         return Err(ApiError::invalid("feeder_id", format!("feeder {feeder} is not registered")));
     }
-    if w.to <= w.from {
-        return Err(ApiError::invalid("to", "must be after from"));
-    }
-    if w.to - w.from > MAX_WINDOW_S {
-        return Err(ApiError::invalid("to", "the window may span at most 93 days"));
-    }
-    let rank = match &w.rank {
-        None => RankChoice::Auto(vec![2, 5, 10, 20, 40]),
-        Some(Value::String(a)) if a == "auto" => RankChoice::Auto(vec![2, 5, 10, 20, 40]),
-        Some(Value::Number(n)) if n.as_u64().is_some_and(|r| (1..=500).contains(&r)) => {
-            RankChoice::Fixed(n.as_u64().unwrap_or(1) as usize)
-        }
-        Some(other) => {
-            return Err(ApiError::invalid("rank", format!("{other} is neither \"auto\" nor a rank from 1 to 500")))
-        }
-    };
-    let alpha_kw = w.alpha_kw.unwrap_or(15.0);
-    if !(alpha_kw.is_finite() && alpha_kw > 0.0 && alpha_kw <= 10_000.0) {
-        return Err(ApiError::invalid("alpha_kw", "must be a positive number of kW up to 10000"));
-    }
     // Every profile version the window may hold must keep the fit's table bounded.
-    for p in s.store.profiles(&feeder).await? {
-        meterveil_shared::recovery::table::check_table_size(&p.profile, alpha_kw).map_err(ApiError::Invalid)?;
+    for p in s.store.profiles(feeder).await? {
+        meterveil_shared::recovery::table::check_table_size(&p.profile, spec.alpha_kw).map_err(ApiError::Invalid)?;
     }
     let job_id = crate::jobs::new_job_id("rec");
-    let rank = match rank {
-        RankChoice::Fixed(r) => json!(r),
-        RankChoice::Auto(_) => json!("auto"),
-    };
-    let params = json!({ "rank": rank, "alpha_kw": alpha_kw });
-    s.store.create_job(&job_id, &feeder, w.from, w.to, &params, now_s()).await?;
+    s.store.create_job(&job_id, &spec, now_s()).await?;
     s.wake.notify_one();
     Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
 }

@@ -34,9 +34,8 @@ impl Store {
     pub async fn create_analysis(
         &self,
         id: &str,
-        kind: &str,
+        spec: &crate::jobspec::JobSpec,
         feeder: Option<&str>,
-        params: &serde_json::Value,
         now: i64,
     ) -> Result<(), StoreError> {
         let _w = self.write_lock().await;
@@ -44,9 +43,9 @@ impl Store {
             "INSERT INTO analysis_jobs (job_id, kind, feeder_id, params, state, created_at) VALUES ($1, $2, $3, $4, 'queued', $5)",
         )
         .bind(id)
-        .bind(kind)
+        .bind(spec.kind())
         .bind(feeder)
-        .bind(params.to_string())
+        .bind(spec.params().to_string())
         .bind(now)
         .execute(&self.pool)
         .await?;

@@ -36,13 +36,9 @@ impl JobTable {
 pub struct Claimed {
     pub table: JobTable,
     pub job_id: String,
-    /// `recover`, `cluster`, `audit` or `calibrate`.
-    pub kind: String,
-    pub params: serde_json::Value,
+    /// What the job is to do, or why its stored spec does not parse.
+    pub spec: Result<crate::jobspec::JobSpec, String>,
     pub attempts: i64,
-    /// Recovery jobs: feeder and window.
-    pub feeder_id: Option<String>,
-    pub window: Option<(i64, i64)>,
 }
 
 /// One line of the job list.
@@ -163,15 +159,12 @@ impl Store {
                 let params: String = r.try_get("params")?;
                 let from: Option<i64> = r.try_get("window_start")?;
                 let to: Option<i64> = r.try_get("window_end")?;
-                return Ok(Some(Claimed {
-                    table,
-                    job_id: r.try_get("job_id")?,
-                    kind: r.try_get("kind")?,
-                    params: serde_json::from_str(&params).unwrap_or(serde_json::Value::Null),
-                    attempts: r.try_get("attempts")?,
-                    feeder_id: r.try_get("feeder_id")?,
-                    window: from.zip(to),
-                }));
+                let kind: String = r.try_get("kind")?;
+                let feeder: Option<String> = r.try_get("feeder_id")?;
+                let spec = serde_json::from_str(&params)
+                    .map_err(|e| format!("the stored {kind} job's params are not JSON: {e}"))
+                    .and_then(|p| crate::jobspec::JobSpec::from_stored(&kind, &p, feeder.as_deref(), from.zip(to)));
+                return Ok(Some(Claimed { table, job_id: r.try_get("job_id")?, spec, attempts: r.try_get("attempts")? }));
             }
         }
         Ok(None)

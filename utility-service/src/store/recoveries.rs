@@ -32,10 +32,7 @@ impl Store {
     pub async fn create_job(
         &self,
         id: &str,
-        feeder: &FeederId,
-        from: i64,
-        to: i64,
-        params: &serde_json::Value,
+        spec: &crate::jobspec::RecoverSpec,
         now: i64,
     ) -> Result<(), StoreError> {
         let _w = self.write_lock().await;
@@ -43,10 +40,10 @@ impl Store {
             "INSERT INTO recovery_jobs (job_id, feeder_id, window_start, window_end, params, state, created_at) VALUES ($1, $2, $3, $4, $5, 'queued', $6)",
         )
         .bind(id)
-        .bind(feeder.as_str())
-        .bind(from)
-        .bind(to)
-        .bind(params.to_string())
+        .bind(spec.feeder_id.as_str())
+        .bind(spec.from)
+        .bind(spec.to)
+        .bind(serde_json::to_string(spec).map_err(anyhow::Error::from)?)
         .bind(now)
         .execute(&self.pool)
         .await?;
