@@ -812,6 +812,9 @@ fn recover_command_on_files() {
     assert_eq!(summary["chosen_by"].as_str(), Some("stability"), "{summary}");
     let k = summary["clusters"].as_u64().expect("clusters") as usize;
     assert_eq!(summary["coherence"].as_array().map(Vec::len), Some(k), "{summary}");
+    // Both solvers say how they stopped: the fit and the (dense) eigensolver.
+    assert!(summary["input"].as_str().is_some_and(|n| n.contains("iterations, stopped: ")), "{summary}");
+    assert_eq!(summary["eigen"]["stop"].as_str(), Some("direct"), "{summary}");
     assert_eq!(std::fs::read_to_string(&clusters).expect("clusters").lines().count(), 61);
     // One input or the other, and a clear error without either.
     let run = std::process::Command::new(bin).args(["cluster", "--output"]).arg(&clusters).output().expect("run");
@@ -1184,6 +1187,15 @@ fn audit_and_calibrate_commands_on_files() {
     let c: Value = serde_json::from_str(&std::fs::read_to_string(p("calibration.json")).expect("c")).expect("json");
     let summary = last_json_line(&run.stdout);
     assert_eq!(summary["meets_targets"], c["meets_targets"]);
+    // Each level set's scale search says how it ended.
+    let searches = summary["searches"].as_array().expect("searches");
+    assert!(!searches.is_empty(), "{summary}");
+    for sc in searches {
+        let stop = &sc["stop"];
+        let known = ["converged", "max_iterations", "smallest_scale_meets", "no_scale_meets"];
+        assert!(stop.as_str().is_some_and(|v| known.contains(&v)), "unexpected stop {stop} in {summary}");
+        assert_eq!(sc["bracket_kw"].is_null(), sc["iterations"] == 0, "{sc}");
+    }
     if c["meets_targets"] == true {
         let rec = std::fs::read_to_string(p("recommended.json")).expect("recommended profile");
         meterveil_shared::DitherProfile::from_json(&rec).expect("a valid profile");
@@ -2331,6 +2343,7 @@ async fn killed_gateways_and_a_killed_service_lose_and_repeat_nothing() {
 /// jobs, and town-wide analyses go only to unsharded workers.
 #[tokio::test(flavor = "multi_thread", worker_threads = 4)]
 async fn several_workers_share_one_queue_and_claim_each_job_once() {
+    use meterveil_service::jobspec::{AuditSpec, ClusterSpec, JobSpec, RankSetting, RecoverSpec};
     use meterveil_service::store::Store;
     let dir = tempfile::tempdir().expect("tempdir");
     let db = test_database(dir.path()).await;
@@ -2342,16 +2355,25 @@ async fn several_workers_share_one_queue_and_claim_each_job_once() {
         setup.create_feeder(&fid, f, "UTC", now).await.expect("feeder");
         for i in 0..15 {
             let id = format!("rec-{f}-{i:02}");
-            setup.create_job(&id, &fid, 0, 86_400, &json!({}), now - 100 + i).await.expect("job");
+            let spec = RecoverSpec { feeder_id: fid.clone(), from: 0, to: 86_400, rank: RankSetting::AUTO, alpha_kw: 15.0 };
+            setup.create_job(&id, &spec, now - 100 + i).await.expect("job");
             want.insert(id, Some(f.to_owned()));
         }
         let id = format!("aud-{f}");
-        setup.create_analysis(&id, "audit", Some(f), &json!({}), now).await.expect("audit");
+        let audit = AuditSpec {
+            recovery_job: "rec-x".into(),
+            captured: vec![meterveil_shared::MeterId::parse("m1").expect("id")],
+            seed: 1,
+            register_period: None,
+            curves: false,
+        };
+        setup.create_analysis(&id, &JobSpec::Audit(audit), Some(f), now).await.expect("audit");
         want.insert(id, Some(f.to_owned()));
     }
     for i in 0..4 {
         let id = format!("clu-town-{i}");
-        setup.create_analysis(&id, "cluster", None, &json!({}), now).await.expect("cluster");
+        let spec = JobSpec::Cluster(ClusterSpec { recovery_jobs: vec!["rec-x".into()], clusters: None });
+        setup.create_analysis(&id, &spec, None, now).await.expect("cluster");
         want.insert(id, None);
     }
     let shards: [Option<Vec<String>>; 4] = [Some(vec!["F1".into()]), Some(vec!["F2".into()]), None, None];

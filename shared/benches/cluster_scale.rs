@@ -66,7 +66,7 @@ fn main() {
         drop(x);
         let layout = DayLayout { window_start: 1_673_222_400, interval_s: 900 };
         let t0 = Instant::now();
-        let z = representation(&levels, &profile, &[], layout, 15.0, &mut |_, _| {}).expect("fit");
+        let (z, _) = representation(&levels, &profile, &[], layout, 15.0, &mut |_, _| {}).expect("fit");
         let fit_s = t0.elapsed().as_secs_f64();
         drop(levels);
         let t1 = Instant::now();

@@ -153,6 +153,55 @@ pub struct Calibration {
     /// Every evaluated candidate, by level set then scale: the trade-off curves.
     pub curve: Vec<TradeoffPoint>,
     pub evaluations: usize,
+    /// How each level set's search for its smallest safe scale ended.
+    #[serde(default)]
+    pub searches: Vec<ScaleSearch>,
+}
+
+/// One level set's search between grid scales.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ScaleSearch {
+    pub register_period: RegisterPeriod,
+    pub levels: usize,
+    /// The grid scales that bracket the aim (kW), when some pair does.
+    pub bracket_kw: Option<(f64, f64)>,
+    /// Iterations of Brent's method inside the bracket.
+    pub iterations: u64,
+    pub stop: SearchStop,
+}
+
+/// Why a scale search ended.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum SearchStop {
+    /// Brent's method met its tolerance (1% of the bracket's upper scale).
+    Converged,
+    /// It used its iteration limit; the best grid or search point stands.
+    MaxIterations,
+    /// The smallest grid scale already meets the aim: nothing to narrow.
+    SmallestScaleMeets,
+    /// No grid scale meets the aim: nothing to narrow.
+    NoScaleMeets,
+    /// The search failed (the reason); the grid's feasible point stands.
+    Failed(String),
+}
+
+/// Runs Brent's method on `gap` inside `[lo, hi]`, at most 10 iterations.
+fn narrow(gap: Gap<'_>, lo: f64, hi: f64) -> (u64, SearchStop) {
+    use argmin::core::{State, TerminationReason, TerminationStatus};
+    let solver = BrentRoot::new(lo, hi, 0.01 * hi);
+    match Executor::new(gap, solver).configure(|s| s.max_iters(10)).run() {
+        Ok(r) => {
+            let st = r.state();
+            let stop = match st.get_termination_status() {
+                TerminationStatus::Terminated(TerminationReason::MaxItersReached) => SearchStop::MaxIterations,
+                TerminationStatus::Terminated(TerminationReason::SolverConverged) => SearchStop::Converged,
+                other => SearchStop::Failed(format!("{other:?}")),
+            };
+            (st.get_iter(), stop)
+        }
+        Err(e) => (0, SearchStop::Failed(e.to_string())),
+    }
 }
 
 /// The fixed random numbers of one calibration.
@@ -354,6 +403,7 @@ pub fn calibrate(
         periods.iter().flat_map(|p| sets.iter().map(move |b| (*p, b))).collect();
     let mut curve = Vec::new();
     let mut best_per_set: Vec<TradeoffPoint> = Vec::new();
+    let mut searches = Vec::with_capacity(candidates.len());
     let total = candidates.len() as f64;
     for (si, &(period, b)) in candidates.iter().enumerate() {
         progress(
@@ -369,12 +419,19 @@ pub fn calibrate(
             let s = seen.borrow();
             (0..s.len()).find(|&g| s[g..].iter().all(|p| p.attacker_event_f1 <= aim))
         };
-        if let Some(g) = first_ok.filter(|g| *g > 0) {
-            let gap = Gap { sim: &sim, period, boundaries: b, aim, seen: &seen };
-            let solver = BrentRoot::new(grid[g - 1], grid[g], 0.01 * grid[g]);
-            // A failure inside the bracket leaves the grid's feasible point.
-            let _ = Executor::new(gap, solver).configure(|s| s.max_iters(10)).run();
+        let mut search =
+            ScaleSearch { register_period: period, levels: b.len() + 1, bracket_kw: None, iterations: 0, stop: SearchStop::NoScaleMeets };
+        match first_ok {
+            Some(0) => search.stop = SearchStop::SmallestScaleMeets,
+            Some(g) => {
+                let gap = Gap { sim: &sim, period, boundaries: b, aim, seen: &seen };
+                // A failure inside the bracket leaves the grid's feasible point.
+                (search.iterations, search.stop) = narrow(gap, grid[g - 1], grid[g]);
+                search.bracket_kw = Some((grid[g - 1], grid[g]));
+            }
+            None => {}
         }
+        searches.push(search);
         let mut pts = seen.into_inner();
         pts.sort_by(|a, b| a.scale_kw.total_cmp(&b.scale_kw));
         pts.dedup_by(|a, b| a.scale_kw == b.scale_kw);
@@ -471,6 +528,7 @@ pub fn calibrate(
         targets: t.clone(),
         message,
         evaluations: curve.len(),
+        searches,
         curve,
     })
 }

@@ -28,21 +28,24 @@
 //! below the number of classes the classes are gone. [`representation`] fits
 //! the levels at [`CLUSTER_RANK`] for that purpose.
 
-use nalgebra::{DMatrix, DVector, SymmetricEigen};
-use rand::{Rng, SeedableRng};
+use nalgebra::{DMatrix, DVector};
+use rand::SeedableRng;
 use rayon::prelude::*;
 
 use crate::error::FieldError;
 use crate::recovery::linalg::truncate;
 use crate::recovery::outage::DayLayout;
-use crate::recovery::{recover, LevelMatrix, ProgressFn, RankChoice, RecoveryParams, SumConstraint};
+use crate::recovery::{recover, Diagnostics, LevelMatrix, ProgressFn, RankChoice, RecoveryParams, SumConstraint};
 use crate::DitherProfile;
 
 mod assignment;
 mod count;
+mod spectrum;
 
 pub use assignment::{coherence, merge, qr_assign};
 use assignment::{over_segment, own_share, Pieces};
+pub use spectrum::{EigenSolve, EigenStop};
+use spectrum::leading_eigen;
 pub use count::{adjusted_rand, count_stability, stable_count};
 use count::{merge_path, stability_of};
 
@@ -65,7 +68,7 @@ pub fn representation(
     layout: DayLayout,
     alpha_kw: f64,
     progress: ProgressFn<'_>,
-) -> Result<DMatrix<f64>, FieldError> {
+) -> Result<(DMatrix<f64>, Diagnostics), FieldError> {
     let params = RecoveryParams {
         rank: RankChoice::Fixed(CLUSTER_RANK),
         alpha_kw,
@@ -73,7 +76,8 @@ pub fn representation(
         ..Default::default()
     }
     .check()?;
-    Ok(recover(levels, profile, constraints, layout, &params, progress)?.x)
+    let fit = recover(levels, profile, constraints, layout, &params, progress)?;
+    Ok((fit.x, fit.diagnostics))
 }
 
 #[derive(Debug, Clone, PartialEq)]
@@ -223,6 +227,8 @@ pub struct Clustering {
     pub coherence: Vec<f64>,
     /// Leading eigenvalues of the normalised affinity, largest first.
     pub eigenvalues: Vec<f64>,
+    /// How the eigensolver stopped.
+    pub eigen: EigenSolve,
 }
 
 /// Unit-norm rows of the rank-`d` principal coordinates U·S of `profiles` (m, n).
@@ -330,68 +336,6 @@ fn affinity(c: &[Vec<(usize, f64)>]) -> Vec<Vec<(usize, f64)>> {
     w.into_iter().map(|r| r.into_iter().collect()).collect()
 }
 
-/// Leading `k` eigenpairs of the normalised affinity D^-1/2 W D^-1/2, by dense
-/// eigendecomposition for small populations and block subspace iteration on the
-/// sparse operator beyond.
-fn leading_eigen(w: &[Vec<(usize, f64)>], k: usize, seed: u64, dense_limit: usize) -> (Vec<f64>, DMatrix<f64>) {
-    let m = w.len();
-    let deg: Vec<f64> = w.iter().map(|r| r.iter().map(|e| e.1).sum::<f64>()).collect();
-    let inv_sqrt: Vec<f64> = deg.iter().map(|d| if *d > 0.0 { 1.0 / d.sqrt() } else { 0.0 }).collect();
-    let k = k.min(m);
-    if m <= dense_limit {
-        let mut a = DMatrix::<f64>::zeros(m, m);
-        for (i, row) in w.iter().enumerate() {
-            for &(j, v) in row {
-                a[(i, j)] = v * inv_sqrt[i] * inv_sqrt[j];
-            }
-        }
-        let eig = SymmetricEigen::new(a);
-        let mut order: Vec<usize> = (0..m).collect();
-        order.sort_by(|&a, &b| eig.eigenvalues[b].total_cmp(&eig.eigenvalues[a]));
-        let vals = order.iter().take(k).map(|&i| eig.eigenvalues[i]).collect();
-        let vecs = DMatrix::from_fn(m, k, |r, c| eig.eigenvectors[(r, order[c])]);
-        return (vals, vecs);
-    }
-    // Subspace iteration on (A + I)/2, whose spectrum is in [0, 1] with the same vectors.
-    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
-    let mut q = DMatrix::<f64>::from_fn(m, k, |_, _| rng.random_range(-1.0..1.0)).qr().q();
-    let apply = |q: &DMatrix<f64>| -> DMatrix<f64> {
-        let mut out = q * 0.5;
-        for (i, row) in w.iter().enumerate() {
-            for &(j, v) in row {
-                let a = 0.5 * v * inv_sqrt[i] * inv_sqrt[j];
-                for c in 0..q.ncols() {
-                    out[(i, c)] += a * q[(j, c)];
-                }
-            }
-        }
-        out
-    };
-    // Stop when the trace of QᵀAQ (the sum of the Ritz values, which rises to its
-    // maximum as Q reaches the leading subspace) settles; at most 1000 steps.
-    let mut last = f64::NEG_INFINITY;
-    for it in 1..=1000 {
-        let aq = apply(&q);
-        if it % 10 == 0 {
-            let trace: f64 = (0..k).map(|c| q.column(c).dot(&aq.column(c))).sum();
-            let settled = (trace - last).abs() < 1e-11 * k as f64;
-            last = trace;
-            if settled {
-                break;
-            }
-        }
-        q = aq.qr().q();
-    }
-    let aq = apply(&q);
-    let small = q.transpose() * &aq;
-    let eig = SymmetricEigen::new(small);
-    let mut order: Vec<usize> = (0..k).collect();
-    order.sort_by(|&a, &b| eig.eigenvalues[b].total_cmp(&eig.eigenvalues[a]));
-    let vals = order.iter().map(|&i| 2.0 * eig.eigenvalues[i] - 1.0).collect();
-    let rot = DMatrix::from_fn(k, k, |r, c| eig.eigenvectors[(r, order[c])]);
-    (vals, q * rot)
-}
-
 /// The sparse affinity `cluster` builds from `profiles`, as adjacency lists
 /// (each pair once in each direction), for comparison with other assignments.
 pub fn affinity_graph(profiles: &DMatrix<f64>, params: &ClusterParams) -> Vec<Vec<(usize, f64)>> {
@@ -435,13 +379,13 @@ pub fn cluster(profiles: &DMatrix<f64>, params: &ClusterParams) -> Result<Cluste
             (stable_count(&stability, params.min_stability), CountChoice::Stability)
         }
     };
-    let Pieces { w, vals, over, found } = pieces;
+    let Pieces { w, vals, eigen, over, found } = pieces;
     let labels = merge(&w, &over, found, target.min(found));
     let k = labels.iter().max().map_or(0, |v| v + 1);
     let confidence = own_share(&w, &labels);
     let assigned = confidence.iter().map(|c| *c >= params.min_confidence).collect();
     let coherence = coherence(&w, &labels, k);
-    Ok(Clustering { labels, confidence, assigned, clusters: k, chosen_by, coherence, eigenvalues: vals })
+    Ok(Clustering { labels, confidence, assigned, clusters: k, chosen_by, coherence, eigenvalues: vals, eigen })
 }
 
 /// A cluster's representative days: the mean over its members of their mean
@@ -578,6 +522,14 @@ mod tests {
         // Counted on a sample of 100, then all 150 merged to that count.
         let sampled = cluster(&x, &ClusterParams { dimension: 6, count_sample: 100, ..Default::default() }).unwrap();
         assert_eq!((sampled.clusters, sampled.chosen_by), (3, CountChoice::Stability));
+        // The dense eigensolver is direct; the subspace iteration reports its settling.
+        assert_eq!(c.eigen, EigenSolve { stop: EigenStop::Direct, iterations: 0 });
+        let sparse = cluster(&x, &ClusterParams { dimension: 6, max_clusters: 8, dense_limit: 50, ..Default::default() })
+            .unwrap();
+        // Nine vectors for three shapes: the 9th and 10th eigenvalues lie close
+        // together inside the shapes, so the iteration runs to its limit and says so.
+        assert_eq!(sparse.eigen, EigenSolve { stop: EigenStop::MaxIterations, iterations: 1000 });
+        assert_eq!(adjusted_rand(&sparse.labels, &c.labels), 1.0);
         let reps = representatives(&x, &c, 1_700_006_400, 900);
         assert_eq!(reps.iter().map(|r| r.size).sum::<usize>(), m);
         assert!(cluster(&DMatrix::zeros(1, 5), &ClusterParams::default()).is_err());

@@ -40,7 +40,7 @@ fn bdew_classes_are_found_in_true_and_recovered_profiles() {
     let p = gaussian_profile(0.3, &[1.0, 2.0]);
     let levels = quantize(&truth, &p, 0.05, &mut rng);
     let layout = DayLayout { window_start: 1_673_222_400, interval_s: 900 };
-    let rec = representation(&levels, &p, &[], layout, 15.0, &mut |_, _| {}).unwrap();
+    let (rec, _) = representation(&levels, &p, &[], layout, 15.0, &mut |_, _| {}).unwrap();
     let on_rec = cluster(&rec, &ClusterParams { clusters: Some(shapes.len()), ..params.clone() }).unwrap();
     let rfeats = features(&rec, params.dimension, params.seed);
     let r = clustering_scores(&class, &[("recovered", &on_rec.labels)], &rfeats, None, shapes.len());

@@ -93,7 +93,7 @@ fn run(name: &str, truth: &DMatrix<f64>, class: &[usize], k: usize) -> Figures {
     let p = gaussian_profile(0.3, &[1.0, 2.0]);
     let levels = quantize(truth, &p, 0.02, &mut rng);
     let layout = DayLayout { window_start: 1_673_222_400, interval_s: 900 };
-    let x = representation(&levels, &p, &[], layout, 15.0, &mut |_, _| {}).unwrap();
+    let (x, _) = representation(&levels, &p, &[], layout, 15.0, &mut |_, _| {}).unwrap();
     let params = ClusterParams::default();
     let auto = cluster(&x, &params).unwrap();
     let fixed = cluster(&x, &ClusterParams { clusters: Some(k), ..params.clone() }).unwrap();

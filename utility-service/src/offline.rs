@@ -380,9 +380,13 @@ pub fn run_cluster(
             }
             let (profile, w, constraints, _) = read_feeder(levels, profile, registers)?;
             let mut report = progress_reporter();
-            let z = representation(&w.levels, &profile, &constraints, w.layout(), alpha_kw, &mut report)
+            let (z, fit) = representation(&w.levels, &profile, &constraints, w.layout(), alpha_kw, &mut report)
                 .map_err(|e| anyhow::anyhow!("--{}: {}", e.field.replace('_', "-"), e.reason))?;
-            let note = format!("clustered a rank-{CLUSTER_RANK} fit of the levels");
+            let note = format!(
+                "clustered a rank-{CLUSTER_RANK} fit of the levels ({} iterations, stopped: {})",
+                fit.iterations,
+                serde_json::to_value(fit.stop).ok().and_then(|v| v.as_str().map(str::to_owned)).unwrap_or_default()
+            );
             let meters = w.meters.iter().map(|m| m.to_string()).collect::<Vec<String>>();
             (meters, w.start, w.interval_s, z, note)
         }
@@ -405,6 +409,7 @@ pub fn run_cluster(
         "unassigned": c.assigned.iter().filter(|a| !**a).count(),
         "input": note,
         "leading_eigenvalues": c.eigenvalues,
+        "eigen": c.eigen,
         "representatives": reps,
         "output": output.display().to_string(),
     }))
@@ -595,6 +600,7 @@ pub fn run_calibrate(a: &CalibrateFiles<'_>) -> anyhow::Result<serde_json::Value
         "message": c.message,
         "recommended": c.recommended,
         "evaluations": c.evaluations,
+        "searches": c.searches,
         "output": if c.meets_targets { serde_json::json!(a.output.display().to_string()) } else { serde_json::Value::Null },
     }))
 }

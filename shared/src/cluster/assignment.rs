@@ -11,6 +11,7 @@ pub(super) struct Pieces {
     pub w: Vec<Vec<(usize, f64)>>,
     /// Leading eigenvalues of the normalised affinity, largest first.
     pub vals: Vec<f64>,
+    pub eigen: super::EigenSolve,
     /// Piece of each customer, and the number of pieces found.
     pub over: Vec<usize>,
     pub found: usize,
@@ -19,9 +20,9 @@ pub(super) struct Pieces {
 /// Cuts the spectral embedding of `profiles` into at most `pieces` pieces.
 pub(super) fn over_segment(profiles: &DMatrix<f64>, params: &ClusterParams, pieces: usize) -> Pieces {
     let w = affinity_graph(profiles, params);
-    let (vals, vecs) = leading_eigen(&w, pieces + 1, params.seed, params.dense_limit);
+    let (vals, vecs, eigen) = leading_eigen(&w, pieces + 1, params.seed, params.dense_limit);
     let (over, found) = assign(&vecs, pieces);
-    Pieces { w, vals, over, found }
+    Pieces { w, vals, eigen, over, found }
 }
 
 /// Labels from the leading `k` eigenvectors (rows of `emb`) by the QR-based

@@ -9,6 +9,7 @@
 pub mod linalg;
 pub mod outage;
 pub mod params;
+pub mod restarts;
 pub mod solver;
 pub mod table;
 

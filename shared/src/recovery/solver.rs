@@ -8,6 +8,7 @@ use rayon::prelude::*;
 use serde::Serialize;
 
 use super::linalg::{truncate, LowRank};
+use super::restarts::RestartCounter;
 use super::table::LikelihoodTable;
 use super::{outage, LevelMatrix, RankChoice, SumConstraint, ValidRecoveryParams, MISSING};
 use crate::error::FieldError;
@@ -44,7 +45,9 @@ impl Flag {
 pub enum Stop {
     Converged,
     MaxIterations,
-    /// The objective stopped improving before the tolerance was met.
+    /// The objective stopped improving before the tolerance was met: the
+    /// momentum restarted [`super::restarts::BARREN_RESTARTS`] times in a row with no gain
+    /// between one restart and the next.
     Stalled,
     /// Nothing to fit (no rows, no columns or no readings).
     Empty,
@@ -54,6 +57,9 @@ pub enum Stop {
 pub struct Diagnostics {
     pub iterations: usize,
     pub stop: Stop,
+    /// Momentum restarts of the final fit (an overshooting step is retaken
+    /// without momentum).
+    pub restarts: usize,
     /// Mean log-likelihood per reading used in the final fit.
     pub log_likelihood_per_reading: f64,
     pub rank: usize,
@@ -151,6 +157,7 @@ struct Fit {
     lr: LowRank,
     iterations: usize,
     stop: Stop,
+    restarts: usize,
     objective: f64,
     corrupt: Vec<bool>,
 }
@@ -268,7 +275,7 @@ impl Ctx<'_> {
         let mut calm = 0;
         let mut stop = Stop::MaxIterations;
         let mut it = 0;
-        let mut stalls = 0;
+        let mut restarts = RestartCounter::new(p.tolerance);
         while it < max_iterations {
             it += 1;
             let t_next = 0.5 * (1.0 + (1.0 + 4.0 * t * t).sqrt());
@@ -282,8 +289,7 @@ impl Ctx<'_> {
                 // Momentum overshot: restart from x with a plain gradient step.
                 t = 1.0;
                 x_prev.copy_from(&x);
-                stalls += 1;
-                if stalls > 20 {
+                if restarts.restart(obj) {
                     stop = Stop::Stalled;
                     break;
                 }
@@ -318,7 +324,7 @@ impl Ctx<'_> {
                 calm = 0;
             }
         }
-        Fit { x, lr, iterations: it, stop, objective: obj, corrupt }
+        Fit { x, lr, iterations: it, stop, restarts: restarts.restarts, objective: obj, corrupt }
     }
 }
 
@@ -451,6 +457,7 @@ pub fn recover(
     let mut diagnostics = Diagnostics {
         iterations: 0,
         stop: Stop::Empty,
+        restarts: 0,
         log_likelihood_per_reading: 0.0,
         rank: 0,
         rank_scores: Vec::new(),
@@ -532,6 +539,7 @@ pub fn recover(
     let std_kw = uncertainty(&fit.lr, &used, &table, &x);
     diagnostics.iterations = fit.iterations;
     diagnostics.stop = fit.stop;
+    diagnostics.restarts = fit.restarts;
     diagnostics.log_likelihood_per_reading = -ctx.objective(&x, &used);
     diagnostics.rank = fit.lr.rank();
     diagnostics.corrected = fit.corrupt.iter().filter(|c| **c).count();

@@ -66,19 +66,21 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &ClusterSpec) -> anyhow::
     for (id, feeder, alpha) in &fits {
         let feeder = meterveil_shared::FeederId::parse(feeder)
             .map_err(|e| anyhow::anyhow!("feeder of recovery job {id}: {e}"))?;
-        windows.push((super::recover::load_window(&s.store, &feeder, from, to).await?, *alpha));
+        windows.push((super::recover::load_window(&s.store, &feeder, from, to).await?, *alpha, feeder));
     }
     let params = ClusterParams { clusters: req.clusters, ..ClusterParams::default() };
     let order: Vec<String> = meters.iter().map(|m| m.0.clone()).collect();
-    let (c, reps) = super::run_reporting(s, JobTable::Analysis, job_id, move |progress| {
+    let (c, reps, fit_stops) = super::run_reporting(s, JobTable::Analysis, job_id, move |progress| {
         let mut rows: std::collections::HashMap<String, Vec<f64>> = Default::default();
+        let mut fit_stops = Vec::with_capacity(windows.len());
         let total = windows.len().max(1) as f64;
-        for (done, (w, alpha)) in windows.iter().enumerate() {
+        for (done, (w, alpha, feeder)) in windows.iter().enumerate() {
             let base = 0.8 * done as f64 / total;
-            let z = representation(&w.levels, &w.profile, &w.constraints, w.layout, *alpha, &mut |_, f| {
+            let (z, fit) = representation(&w.levels, &w.profile, &w.constraints, w.layout, *alpha, &mut |_, f| {
                 progress("fitting at the clustering rank", base + 0.8 * f / total)
             })
             .map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
+            fit_stops.push(serde_json::json!({"feeder_id": feeder.as_str(), "iterations": fit.iterations, "stop": fit.stop}));
             for (i, m) in w.meters.iter().enumerate() {
                 rows.insert(m.clone(), z.row(i).iter().copied().collect());
             }
@@ -87,7 +89,7 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &ClusterSpec) -> anyhow::
         progress("clustering", 0.85);
         let c = cluster(&z, &params).map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
         let reps = representatives(&x, &c, from, interval_s);
-        Ok((c, reps))
+        Ok((c, reps, fit_stops))
     })
     .await?;
     let assignments: Vec<Assignment> = meters
@@ -108,6 +110,8 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &ClusterSpec) -> anyhow::
         "unassigned": c.assigned.iter().filter(|a| !**a).count(),
         "clustering_rank": CLUSTER_RANK,
         "leading_eigenvalues": c.eigenvalues,
+        "eigen": c.eigen,
+        "fits": fit_stops,
         "window_start": from,
         "window_end": to,
         "interval_s": interval_s,
