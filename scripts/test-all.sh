@@ -36,9 +36,11 @@ populations=$!
 source scripts/test-postgres.sh
 
 cargo fmt --all --check
-cargo clippy --workspace --all-targets -- -D warnings
+# Every feature: the demo (the only target that links the gateway crate) included.
+cargo clippy --workspace --all-targets --all-features -- -D warnings
+cargo clippy -p meterveil-service --all-targets -- -D warnings
 wait "$populations"
 # Every test, the end-to-end ones on SQLite...
-cargo test --workspace
+cargo test --workspace --all-features
 # ...then the end-to-end tests (store, jobs, crash and SIGKILL tests) again on PostgreSQL.
 METERVEIL_TEST_BACKEND=postgres cargo test -p meterveil-service --test end_to_end

@@ -169,3 +169,35 @@ fn shared_depends_on_no_runtime_database_or_http() {
         );
     }
 }
+
+/// The served binary does not link the edge: the gateway crate is an optional
+/// dependency that only the `demo` feature enables, and only the demo module
+/// (compiled with that feature) names it.
+#[test]
+fn only_the_demo_links_the_gateway() {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let toml = std::fs::read_to_string(root.join("Cargo.toml")).expect("Cargo.toml");
+    let section = |name: &str| -> String {
+        let head = format!("\n[{name}]\n");
+        toml.split(head.as_str()).nth(1).unwrap_or("").split("\n[").next().unwrap_or("").to_owned()
+    };
+    let deps = section("dependencies");
+    let gateway: Vec<&str> = deps.lines().filter(|l| l.trim_start().starts_with("meterveil-gateway")).collect();
+    assert_eq!(gateway.len(), 1, "meterveil-gateway in [dependencies]: {gateway:?}");
+    assert!(gateway[0].contains("optional = true"), "the gateway must be optional: {}", gateway[0]);
+    let features = section("features");
+    let enabling: Vec<&str> = features.lines().filter(|l| l.contains("dep:meterveil-gateway")).collect();
+    assert_eq!(enabling.len(), 1, "features enabling the gateway: {enabling:?}");
+    assert!(enabling[0].trim_start().starts_with("demo ="), "{}", enabling[0]);
+    assert!(!features.lines().any(|l| l.trim_start().starts_with("default")), "no default features: {features}");
+    let lib = std::fs::read_to_string(root.join("src/lib.rs")).expect("lib.rs");
+    assert!(lib.contains("#[cfg(feature = \"demo\")]\npub mod demo;"), "demo.rs must be compiled only with the feature");
+    let mut files = Vec::new();
+    sources(&root.join("src"), &mut files);
+    for f in files {
+        let code = code_of(&std::fs::read_to_string(&f).expect("source"));
+        if code.contains("meterveil_gateway") {
+            assert!(f.ends_with("demo.rs"), "{} names the gateway crate", f.display());
+        }
+    }
+}

@@ -8,7 +8,6 @@ use clap::{Parser, Subcommand};
 use meterveil_shared::recovery::{RankChoice, RecoveryParams};
 
 use crate::config::{Secret, ServiceConfig};
-use crate::demo::{self, DemoOptions};
 
 #[derive(Debug, Parser)]
 #[command(
@@ -85,7 +84,7 @@ pub enum Command {
         #[arg(long, default_value = "auto")]
         rank: String,
         /// Service limit in kW: estimates stay in [0, alpha].
-        #[arg(long, default_value_t = 15.0)]
+        #[arg(long, default_value_t = meterveil_shared::recovery::DEFAULT_ALPHA_KW)]
         alpha_kw: f64,
     },
     /// Group customers by load shape, from quantized levels (fitted at the
@@ -101,7 +100,7 @@ pub enum Command {
         #[arg(long, requires = "levels")]
         registers: Option<PathBuf>,
         /// Service limit in kW for the fit of the levels.
-        #[arg(long, default_value_t = 15.0)]
+        #[arg(long, default_value_t = meterveil_shared::recovery::DEFAULT_ALPHA_KW)]
         alpha_kw: f64,
         /// CSV with header meter_id,interval_start,kw,… (a recover output),
         /// clustered as it is; its rank must exceed the number of classes.
@@ -135,10 +134,10 @@ pub enum Command {
         /// Optional CSV of daily energies: meter_id,day_start,wh.
         #[arg(long)]
         registers: Option<PathBuf>,
-        #[arg(long, default_value_t = 15.0)]
+        #[arg(long, default_value_t = meterveil_shared::recovery::DEFAULT_ALPHA_KW)]
         alpha_kw: f64,
         /// Seed of the simulated events and dither (the audit is a reproducible simulation).
-        #[arg(long, default_value_t = 11)]
+        #[arg(long, default_value_t = meterveil_shared::audit::DEFAULT_SEED)]
         seed: u64,
     },
     /// Recommend a feeder's dither scale and level set for privacy and accuracy targets.
@@ -173,9 +172,9 @@ pub enum Command {
         /// Optional bound on the utility's interval nRMSE over the feeder.
         #[arg(long)]
         max_profile_nrmse: Option<f64>,
-        #[arg(long, default_value_t = 15.0)]
+        #[arg(long, default_value_t = meterveil_shared::recovery::DEFAULT_ALPHA_KW)]
         alpha_kw: f64,
-        #[arg(long, default_value_t = 5)]
+        #[arg(long, default_value_t = meterveil_shared::calibrate::DEFAULT_SEED)]
         seed: u64,
     },
     /// One command: a fresh service and the invented town of Quillmarsh, 28 days of
@@ -414,15 +413,27 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
             println!("{summary}");
             Ok(())
         }
-        Command::Demo { meters, days, dir, truth, exit } => {
-            use std::io::IsTerminal;
-            let stay_up = !exit && std::io::stdout().is_terminal();
-            let opts = DemoOptions { meters, days, dir, truth, stay_up };
-            let summary = demo::run(&opts).await?;
-            if !stay_up {
-                print!("{}", demo::render(&summary));
-            }
-            Ok(())
-        }
+        Command::Demo { meters, days, dir, truth, exit } => run_demo(meters, days, dir, truth, exit).await,
     }
+}
+
+#[cfg(feature = "demo")]
+async fn run_demo(meters: usize, days: u32, dir: Option<PathBuf>, truth: Option<PathBuf>, exit: bool) -> anyhow::Result<()> {
+    use std::io::IsTerminal;
+    let stay_up = !exit && std::io::stdout().is_terminal();
+    let opts = crate::demo::DemoOptions { meters, days, dir, truth, stay_up };
+    let summary = crate::demo::run(&opts).await?;
+    if !stay_up {
+        print!("{}", crate::demo::render(&summary));
+    }
+    Ok(())
+}
+
+/// A build without the `demo` feature (the served binary) has no town to run.
+#[cfg(not(feature = "demo"))]
+async fn run_demo(_: usize, _: u32, _: Option<PathBuf>, _: Option<PathBuf>, _: bool) -> anyhow::Result<()> {
+    anyhow::bail!(
+        "this build of utility-service has no demo (it links no gateway); run it with \
+         `cargo run --release -p meterveil-service --features demo -- demo`"
+    )
 }

@@ -9,6 +9,7 @@ pub mod cli;
 pub mod clock;
 pub mod committer;
 pub mod config;
+#[cfg(feature = "demo")]
 pub mod demo;
 pub mod error;
 pub mod ingest;
