@@ -1218,8 +1218,14 @@ fn audit_and_calibrate_commands_on_files() {
 
 /// A `utility-service serve` child process on a free port; returns it and its URL.
 fn serve_child(db: &str, lease_s: u32) -> (std::process::Child, String) {
+    serve_child_with(db, lease_s, &[])
+}
+
+/// [`serve_child`] with extra environment variables.
+fn serve_child_with(db: &str, lease_s: u32, env: &[(&str, &std::path::Path)]) -> (std::process::Child, String) {
     use std::io::BufRead;
     let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
+        .envs(env.iter().map(|(k, v)| (*k, *v)))
         .args(["serve", "--bind", "127.0.0.1:0", "--operator-token", TOKEN, "--job-lease-s", &lease_s.to_string()])
         .args(["--gateway-master-key", "test-master-key-0123456789abcdef0123456789"])
         .args(["--database-url", db])
@@ -1301,8 +1307,36 @@ async fn a_job_whose_worker_is_killed_is_retried_by_another_and_never_half_serve
         .expect("count");
     assert_eq!(partial, 0, "a killed worker left results behind");
 
-    // A second process takes the job over once the lease has run out.
-    let (mut second, url2) = serve_child(&db, 3);
+    // A second process takes the job over once the lease has run out, and is
+    // killed in the middle of writing the results (after its first 700 rows,
+    // inside the transaction): none of them may remain.
+    let marker = dir.path().join("paused-in-result-write");
+    let (mut second, _) = serve_child_with(&db, 3, &[("METERVEIL_TEST_PAUSE_RESULT_WRITE", &marker)]);
+    for _ in 0..1200 {
+        if marker.exists() {
+            break;
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+    }
+    assert!(marker.exists(), "the second worker never reached the result write");
+    second.kill().expect("SIGKILL");
+    second.wait().expect("reaped");
+    let (partial, state): (i64, String) = (
+        sqlx::query_scalar("SELECT COUNT(*) FROM recovered_intervals WHERE job_id = $1")
+            .bind(&id)
+            .fetch_one(store.pool())
+            .await
+            .expect("count"),
+        sqlx::query_scalar("SELECT state FROM recovery_jobs WHERE job_id = $1")
+            .bind(&id)
+            .fetch_one(store.pool())
+            .await
+            .expect("state"),
+    );
+    assert_eq!((partial, state.as_str()), (0, "running"), "a worker killed while writing left a half-written result");
+
+    // A third process takes it over and finishes it.
+    let (mut third, url2) = serve_child(&db, 3);
     let r = http.get(format!("{url2}/v1/recoveries/{id}/intervals")).bearer_auth(TOKEN).send().await.expect("get");
     assert_eq!(r.status().as_u16(), 409, "results are not served before the job is done");
     let mut done = Value::Null;
@@ -1313,29 +1347,29 @@ async fn a_job_whose_worker_is_killed_is_retried_by_another_and_never_half_serve
         }
         tokio::time::sleep(std::time::Duration::from_millis(100)).await;
     }
-    let _ = second.kill();
-    let _ = second.wait();
+    let _ = third.kill();
+    let _ = third.wait();
     assert_eq!(done["state"], "done", "{done}");
     let attempts: i64 = sqlx::query_scalar("SELECT attempts FROM recovery_jobs WHERE job_id = $1")
         .bind(&id)
         .fetch_one(store.pool())
         .await
         .expect("attempts");
-    assert_eq!(attempts, 2);
+    assert_eq!(attempts, 3);
     let rows: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM recovered_intervals WHERE job_id = $1")
         .bind(&id)
         .fetch_one(store.pool())
         .await
         .expect("count");
     assert_eq!(rows as usize, feeder_meters * 7 * 96);
-    // The operator's job list shows it, with its two attempts.
+    // The operator's job list shows it, with its three attempts.
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
         .args(["jobs", "--database-url", &db])
         .output()
         .expect("jobs");
     let text = String::from_utf8_lossy(&out.stdout);
     let line = text.lines().find(|l| l.starts_with(&id)).unwrap_or_else(|| panic!("{text}"));
-    assert!(line.contains(" done ") && line.contains("100%") && line.contains("  2  "), "{line}");
+    assert!(line.contains(" done ") && line.contains("100%") && line.contains("  3  "), "{line}");
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
         .args(["jobs", "--database-url", &db])
         .args(["cancel", &id])

@@ -28,6 +28,18 @@ pub struct JobRecord {
 
 pub use crate::records::RecoveredRow;
 
+/// A test's fail point: when `METERVEIL_TEST_PAUSE_RESULT_WRITE` names a file,
+/// a job's result write creates it after its first chunk of rows and then
+/// pauses for 60 s inside its transaction, so that the test can kill the
+/// process in the middle of the write. Unset (always, outside tests), nothing happens.
+async fn pause_for_a_test_kill() {
+    if let Some(path) = std::env::var_os("METERVEIL_TEST_PAUSE_RESULT_WRITE") {
+        if std::fs::write(&path, b"paused in the result write").is_ok() {
+            tokio::time::sleep(std::time::Duration::from_secs(60)).await;
+        }
+    }
+}
+
 impl Store {
     pub async fn create_job(
         &self,
@@ -80,7 +92,10 @@ impl Store {
                 format!("job {id} is no longer held by this worker; its results were discarded"),
             )));
         }
-        for chunk in rows.chunks(700) {
+        for (k, chunk) in rows.chunks(700).enumerate() {
+            if k == 1 {
+                pause_for_a_test_kill().await;
+            }
             let sql = super::values_sql(
                 self.backend,
                 "INSERT INTO recovered_intervals (job_id, meter_id, interval_start, estimate_kw, flag, band_low_kw, band_high_kw)",
