@@ -2389,7 +2389,8 @@ async fn several_workers_share_one_queue_and_claim_each_job_once() {
         setup.create_feeder(&fid, f, "UTC", now).await.expect("feeder");
         for i in 0..15 {
             let id = format!("rec-{f}-{i:02}");
-            let spec = RecoverSpec { feeder_id: fid.clone(), from: 0, to: 86_400, rank: RankSetting::AUTO, alpha_kw: 15.0 };
+            let spec =
+                RecoverSpec { feeder_id: fid.clone(), from: 0, to: 86_400, rank: RankSetting::AUTO, alpha_kw: 15.0 };
             setup.create_job(&id, &spec, now - 100 + i).await.expect("job");
             want.insert(id, Some(f.to_owned()));
         }

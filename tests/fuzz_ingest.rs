@@ -96,8 +96,13 @@ fn run(body: &[u8]) {
 #[test]
 fn seeds_are_accepted_or_refused_as_named() {
     let (profiles, known) = (profiles(), known());
-    let ctx =
-        IngestContext { profiles: &profiles, known_meters: &known, now: NOW, clock_tolerance_s: 300, stale_grace_s: 86_400 };
+    let ctx = IngestContext {
+        profiles: &profiles,
+        known_meters: &known,
+        now: NOW,
+        clock_tolerance_s: 300,
+        stale_grace_s: 86_400,
+    };
     let judge = |body: &[u8]| -> Result<usize, String> {
         let batch: BatchWire = parse_json(body).map_err(|e| e.to_string())?;
         let header = check_header(&batch).map_err(|e| e.to_string())?;

@@ -163,10 +163,7 @@ fn shared_depends_on_no_runtime_database_or_http() {
         .expect("shared/Cargo.toml");
     let deps = toml.split("[dependencies]").nth(1).unwrap_or("").split("\n[").next().unwrap_or("");
     for bad in ["tokio", "sqlx", "axum", "reqwest", "hyper"] {
-        assert!(
-            !deps.lines().any(|l| l.trim_start().starts_with(bad)),
-            "shared/Cargo.toml depends on {bad}"
-        );
+        assert!(!deps.lines().any(|l| l.trim_start().starts_with(bad)), "shared/Cargo.toml depends on {bad}");
     }
 }
 
@@ -191,7 +188,10 @@ fn only_the_demo_links_the_gateway() {
     assert!(enabling[0].trim_start().starts_with("demo ="), "{}", enabling[0]);
     assert!(!features.lines().any(|l| l.trim_start().starts_with("default")), "no default features: {features}");
     let lib = std::fs::read_to_string(root.join("src/lib.rs")).expect("lib.rs");
-    assert!(lib.contains("#[cfg(feature = \"demo\")]\npub mod demo;"), "demo.rs must be compiled only with the feature");
+    assert!(
+        lib.contains("#[cfg(feature = \"demo\")]\npub mod demo;"),
+        "demo.rs must be compiled only with the feature"
+    );
     let mut files = Vec::new();
     sources(&root.join("src"), &mut files);
     for f in files {

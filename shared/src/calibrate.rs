@@ -419,8 +419,13 @@ pub fn calibrate(
             let s = seen.borrow();
             (0..s.len()).find(|&g| s[g..].iter().all(|p| p.attacker_event_f1 <= aim))
         };
-        let mut search =
-            ScaleSearch { register_period: period, levels: b.len() + 1, bracket_kw: None, iterations: 0, stop: SearchStop::NoScaleMeets };
+        let mut search = ScaleSearch {
+            register_period: period,
+            levels: b.len() + 1,
+            bracket_kw: None,
+            iterations: 0,
+            stop: SearchStop::NoScaleMeets,
+        };
         match first_ok {
             Some(0) => search.stop = SearchStop::SmallestScaleMeets,
             Some(g) => {

@@ -44,10 +44,10 @@ mod spectrum;
 
 pub use assignment::{coherence, merge, qr_assign};
 use assignment::{over_segment, own_share, Pieces};
-pub use spectrum::{EigenSolve, EigenStop};
-use spectrum::leading_eigen;
 pub use count::{adjusted_rand, count_stability, stable_count};
 use count::{merge_path, stability_of};
+use spectrum::leading_eigen;
+pub use spectrum::{EigenSolve, EigenStop};
 
 /// Rank of the fit made for clustering: 2-3× the number of load-shape classes
 /// one expects on a feeder (10-15). Ranks 20, 30 and 40 separated the classes
@@ -524,8 +524,9 @@ mod tests {
         assert_eq!((sampled.clusters, sampled.chosen_by), (3, CountChoice::Stability));
         // The dense eigensolver is direct; the subspace iteration reports its settling.
         assert_eq!(c.eigen, EigenSolve { stop: EigenStop::Direct, iterations: 0 });
-        let sparse = cluster(&x, &ClusterParams { dimension: 6, max_clusters: 8, dense_limit: 50, ..Default::default() })
-            .unwrap();
+        let sparse =
+            cluster(&x, &ClusterParams { dimension: 6, max_clusters: 8, dense_limit: 50, ..Default::default() })
+                .unwrap();
         // Nine vectors for three shapes: the 9th and 10th eigenvalues lie close
         // together inside the shapes, so the iteration runs to its limit and says so.
         assert_eq!(sparse.eigen, EigenSolve { stop: EigenStop::MaxIterations, iterations: 1000 });

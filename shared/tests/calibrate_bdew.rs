@@ -58,6 +58,18 @@ fn calibration_is_repeatable_and_its_recommendation_holds_with_fresh_random_numb
     assert_eq!(a.recommended, b.recommended, "two runs disagree");
     assert_eq!(a.curve, b.curve);
     assert!(a.meets_targets, "{}", a.message);
+    // README: "F1 ≤ 0.6 with daily energy within 15% now needs σ about 1.4 kW".
+    assert!(
+        (a.recommended.scale_kw - 1.4).abs() <= 0.1,
+        "recommended σ {} kW, README states about 1.4",
+        a.recommended.scale_kw
+    );
+    // Every level set's search says how it ended; a bracketed one ran Brent's method.
+    assert!(!a.searches.is_empty());
+    for sc in &a.searches {
+        eprintln!("    search: {sc:?}");
+        assert_eq!(sc.bracket_kw.is_some(), sc.iterations > 0, "{sc:?}");
+    }
 
     // Independent check: a fresh simulation (new events, new captured meters' draws, new dither).
     let rec = DitherProfile::try_from(a.recommended.clone()).unwrap();

@@ -270,25 +270,7 @@ async fn shutdown_signal() {
 
 pub async fn execute(cli: Cli) -> anyhow::Result<()> {
     match cli.command {
-        Command::Work { database_url, job_lease_s, feeders } => {
-            for (i, f) in feeders.iter().enumerate() {
-                meterveil_shared::FeederId::parse(f).map_err(|e| anyhow::anyhow!("--feeder #{}: {e}", i + 1))?;
-            }
-            let store = crate::store::Store::open(&database_url).await?;
-            let mut config = ServiceConfig::local(database_url, Secret::new(""));
-            config.job_lease_s = job_lease_s;
-            config.job_feeders = (!feeders.is_empty()).then_some(feeders);
-            let state = crate::jobs::WorkContext::new(store, config);
-            match &state.config.job_feeders {
-                Some(f) => println!("worker {} started for feeders {}", state.store.worker_id(), f.join(", ")),
-                None => println!("worker {} started for every feeder", state.store.worker_id()),
-            }
-            tokio::select! {
-                _ = crate::jobs::worker::run(state) => {}
-                _ = tokio::signal::ctrl_c() => tracing::info!("Ctrl-C: the running job's lease will expire and another worker retries it"),
-            }
-            Ok(())
-        }
+        Command::Work { database_url, job_lease_s, feeders } => work(database_url, job_lease_s, feeders).await,
         Command::Jobs { database_url, action } => jobs_command(&database_url, action).await,
         Command::Serve {
             bind,
@@ -320,61 +302,76 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
             println!("listening on {}", svc.url());
             svc.wait().await
         }
-        Command::Recover { levels, profile, output, registers, rank, alpha_kw } => {
-            let rank = match rank.as_str() {
-                "auto" => RecoveryParams::default().rank,
-                n => RankChoice::Fixed(
-                    n.parse().map_err(|_| anyhow::anyhow!("--rank: {n:?} is neither a number nor \"auto\""))?,
-                ),
-            };
-            let params = RecoveryParams { rank, alpha_kw, ..RecoveryParams::default() };
-            let summary = tokio::task::spawn_blocking(move || {
-                crate::offline::run_recover(&levels, &profile, &output, registers.as_deref(), params)
-            })
-            .await??;
+        Command::Demo { meters, days, dir, truth, exit } => run_demo(meters, days, dir, truth, exit).await,
+        file_mode => {
+            let summary = tokio::task::spawn_blocking(move || run_file_mode(file_mode)).await??;
             println!("{summary}");
             Ok(())
+        }
+    }
+}
+
+/// `utility-service work`: a job worker without HTTP.
+async fn work(database_url: String, job_lease_s: i64, feeders: Vec<String>) -> anyhow::Result<()> {
+    for (i, f) in feeders.iter().enumerate() {
+        meterveil_shared::FeederId::parse(f).map_err(|e| anyhow::anyhow!("--feeder #{}: {e}", i + 1))?;
+    }
+    let store = crate::store::Store::open(&database_url).await?;
+    let mut config = ServiceConfig::local(database_url, Secret::new(""));
+    config.job_lease_s = job_lease_s;
+    config.job_feeders = (!feeders.is_empty()).then_some(feeders);
+    let state = crate::jobs::WorkContext::new(store, config);
+    match &state.config.job_feeders {
+        Some(f) => println!("worker {} started for feeders {}", state.store.worker_id(), f.join(", ")),
+        None => println!("worker {} started for every feeder", state.store.worker_id()),
+    }
+    tokio::select! {
+        _ = crate::jobs::worker::run(state) => {}
+        _ = tokio::signal::ctrl_c() => tracing::info!("Ctrl-C: the running job's lease will expire and another worker retries it"),
+    }
+    Ok(())
+}
+
+/// `"auto"` or a number, for a flag named `flag`.
+fn auto_or_number(flag: &str, v: &str) -> anyhow::Result<Option<usize>> {
+    match v {
+        "auto" => Ok(None),
+        n => n.parse().map(Some).map_err(|_| anyhow::anyhow!("--{flag}: {n:?} is neither a number nor \"auto\"")),
+    }
+}
+
+/// The file modes (recover, cluster, audit, calibrate), on the blocking pool;
+/// returns the summary printed as the last line.
+fn run_file_mode(command: Command) -> anyhow::Result<serde_json::Value> {
+    use crate::offline::{AuditFiles, CalibrateFiles, ClusterInput};
+    match command {
+        Command::Recover { levels, profile, output, registers, rank, alpha_kw } => {
+            let rank = auto_or_number("rank", &rank)?.map_or_else(|| RecoveryParams::default().rank, RankChoice::Fixed);
+            let params = RecoveryParams { rank, alpha_kw, ..RecoveryParams::default() };
+            crate::offline::run_recover(&levels, &profile, &output, registers.as_deref(), params)
         }
         Command::Cluster { levels, profile, registers, alpha_kw, profiles, output, clusters } => {
-            let clusters = match clusters.as_str() {
-                "auto" => None,
-                n => {
-                    Some(n.parse().map_err(|_| anyhow::anyhow!("--clusters: {n:?} is neither a number nor \"auto\""))?)
+            let clusters = auto_or_number("clusters", &clusters)?;
+            let input = match (&levels, &profile, &profiles) {
+                (Some(levels), Some(profile), _) => {
+                    ClusterInput::Levels { levels, profile, registers: registers.as_deref(), alpha_kw }
                 }
+                (_, _, Some(p)) => ClusterInput::Profiles(p),
+                _ => anyhow::bail!("--levels with --profile, or --profiles, is needed"),
             };
-            let summary = tokio::task::spawn_blocking(move || {
-                let input = match (&levels, &profile, &profiles) {
-                    (Some(levels), Some(profile), _) => crate::offline::ClusterInput::Levels {
-                        levels,
-                        profile,
-                        registers: registers.as_deref(),
-                        alpha_kw,
-                    },
-                    (_, _, Some(p)) => crate::offline::ClusterInput::Profiles(p),
-                    _ => anyhow::bail!("--levels with --profile, or --profiles, is needed"),
-                };
-                crate::offline::run_cluster(input, &output, clusters)
-            })
-            .await??;
-            println!("{summary}");
-            Ok(())
+            crate::offline::run_cluster(input, &output, clusters)
         }
         Command::Audit { levels, profile, captured, output, html, registers, alpha_kw, seed } => {
-            let summary = tokio::task::spawn_blocking(move || {
-                crate::offline::run_audit(&crate::offline::AuditFiles {
-                    levels: &levels,
-                    profile: &profile,
-                    captured: &captured,
-                    output: &output,
-                    html: html.as_deref(),
-                    registers: registers.as_deref(),
-                    alpha_kw,
-                    seed,
-                })
+            crate::offline::run_audit(&AuditFiles {
+                levels: &levels,
+                profile: &profile,
+                captured: &captured,
+                output: &output,
+                html: html.as_deref(),
+                registers: registers.as_deref(),
+                alpha_kw,
+                seed,
             })
-            .await??;
-            println!("{summary}");
-            Ok(())
         }
         Command::Calibrate {
             levels,
@@ -389,36 +386,34 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
             max_profile_nrmse,
             alpha_kw,
             seed,
-        } => {
-            let targets = meterveil_shared::calibrate::Targets {
+        } => crate::offline::run_calibrate(&CalibrateFiles {
+            levels: &levels,
+            profile: &profile,
+            output: &output,
+            report: report.as_deref(),
+            html: html.as_deref(),
+            registers: registers.as_deref(),
+            targets: meterveil_shared::calibrate::Targets {
                 event_f1_max: max_event_f1,
                 captured,
                 daily_energy_error_max: max_energy_error,
                 profile_nrmse_max: max_profile_nrmse,
-            };
-            let summary = tokio::task::spawn_blocking(move || {
-                crate::offline::run_calibrate(&crate::offline::CalibrateFiles {
-                    levels: &levels,
-                    profile: &profile,
-                    output: &output,
-                    report: report.as_deref(),
-                    html: html.as_deref(),
-                    registers: registers.as_deref(),
-                    targets,
-                    alpha_kw,
-                    seed,
-                })
-            })
-            .await??;
-            println!("{summary}");
-            Ok(())
-        }
-        Command::Demo { meters, days, dir, truth, exit } => run_demo(meters, days, dir, truth, exit).await,
+            },
+            alpha_kw,
+            seed,
+        }),
+        _ => anyhow::bail!("not a file mode"),
     }
 }
 
 #[cfg(feature = "demo")]
-async fn run_demo(meters: usize, days: u32, dir: Option<PathBuf>, truth: Option<PathBuf>, exit: bool) -> anyhow::Result<()> {
+async fn run_demo(
+    meters: usize,
+    days: u32,
+    dir: Option<PathBuf>,
+    truth: Option<PathBuf>,
+    exit: bool,
+) -> anyhow::Result<()> {
     use std::io::IsTerminal;
     let stay_up = !exit && std::io::stdout().is_terminal();
     let opts = crate::demo::DemoOptions { meters, days, dir, truth, stay_up };

@@ -194,7 +194,10 @@ impl Task {
 
     /// Reads the group's state, decides each upload and writes the accepted ones.
     /// `Ok(None)`: another writer got in first and nothing was written.
-    async fn attempt(&mut self, uploads: &[Upload]) -> Result<Option<Vec<Result<Committed, CommitError>>>, CommitError> {
+    async fn attempt(
+        &mut self,
+        uploads: &[Upload],
+    ) -> Result<Option<Vec<Result<Committed, CommitError>>>, CommitError> {
         let mut conn = match self.conn.take() {
             Some(c) => c,
             None => self.store.pool().acquire().await.map_err(StoreError::from)?,

@@ -423,8 +423,30 @@ async fn cluster_town(
 
 /// The printed summary.
 pub fn render(s: &DemoSummary) -> String {
-    let sim = &s.simulation;
     let mut o = String::new();
+    render_town(&mut o, s);
+    render_recoveries(&mut o, s);
+    render_clusters(&mut o, s);
+    if let Some(p) = &s.privacy {
+        render_privacy(&mut o, p);
+        render_calibration(&mut o, p);
+    }
+    render_feeder_audits(&mut o, s);
+    let _ = writeln!(o, "\n  database: {}", s.database.display());
+    let _ = writeln!(
+        o,
+        "\n  Stored are quantizer levels only. The dither hides what a household did in a\n  \
+         given interval from anyone who intercepts the uploads, but a long history still\n  \
+         shows its habits, and the utility's population model recovers daily shapes.\n  \
+         Dithering is a privacy measure with limits, not a guarantee: obligations follow\n  \
+         local regulation and the utility's privacy officer."
+    );
+    o
+}
+
+/// The town, its uploads and its feeders.
+fn render_town(o: &mut String, s: &DemoSummary) {
+    let sim = &s.simulation;
     let _ = writeln!(o, "\nMeterveil demo: the town of {} ({} days of 15-minute data)", sim.town, sim.days);
     let _ = writeln!(o, "  meters {}  feeders {}  gateways {}", sim.meters, sim.feeders, sim.gateways);
     let _ = writeln!(
@@ -450,6 +472,10 @@ pub fn render(s: &DemoSummary) -> String {
         let _ =
             writeln!(o, "  {:<16} {:>6} {:>9} {:>9}  {}", f.feeder_id, f.meters, f.readings, f.register_reads, profile);
     }
+}
+
+/// One recovery per feeder, scored against the simulated truth.
+fn render_recoveries(o: &mut String, s: &DemoSummary) {
     let _ = writeln!(
         o,
         "\n  Recovered profiles (one job per feeder; accuracy against the simulated truth, which only a demo has):"
@@ -473,6 +499,10 @@ pub fn render(s: &DemoSummary) -> String {
             100.0 * r.median_daily_energy_error
         );
     }
+}
+
+/// The town's load-shape clusters.
+fn render_clusters(o: &mut String, s: &DemoSummary) {
     let _ = writeln!(
         o,
         "\n  Load-shape clusters ({} found by the stability rule, from a rank-{} fit of each feeder's levels).\n  Coherence: the share of the members' self-expression weight that stays inside the cluster.\n  Unassigned: members with most of their weight elsewhere, fitting no cluster well.",
@@ -498,9 +528,10 @@ pub fn render(s: &DemoSummary) -> String {
             kinds.join(", ")
         );
     }
-    if let Some(p) = &s.privacy {
-        render_privacy(&mut o, p);
-    }
+}
+
+/// Each feeder audited at its own register period.
+fn render_feeder_audits(o: &mut String, s: &DemoSummary) {
     if !s.feeder_audits.is_empty() {
         let _ = writeln!(
             o,
@@ -518,16 +549,6 @@ pub fn render(s: &DemoSummary) -> String {
             );
         }
     }
-    let _ = writeln!(o, "\n  database: {}", s.database.display());
-    let _ = writeln!(
-        o,
-        "\n  Stored are quantizer levels only. The dither hides what a household did in a\n  \
-         given interval from anyone who intercepts the uploads, but a long history still\n  \
-         shows its habits, and the utility's population model recovers daily shapes.\n  \
-         Dithering is a privacy measure with limits, not a guarantee: obligations follow\n  \
-         local regulation and the utility's privacy officer."
-    );
-    o
 }
 
 fn render_privacy(o: &mut String, p: &PrivacyCheck) {
@@ -603,6 +624,10 @@ fn render_privacy(o: &mut String, p: &PrivacyCheck) {
             100.0 * a.daily_energy_error
         );
     }
+}
+
+/// The calibration of the audited feeder, and the reports written.
+fn render_calibration(o: &mut String, p: &PrivacyCheck) {
     let c = &p.calibration;
     let _ = writeln!(
         o,

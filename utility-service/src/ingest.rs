@@ -119,54 +119,51 @@ pub fn validate(
     if batch.readings.is_empty() && batch.registers.is_empty() {
         return Err(Refusal::invalid("readings", "batch is empty: it has no readings and no register reads"));
     }
+    let feeder = &header.feeder_id;
+    let (readings, versions_used) = validate_readings(feeder, &batch.readings, ctx)?;
+    let registers = validate_registers(feeder, &batch.registers, ctx)?;
+    Ok(ValidatedBatch {
+        batch_id: header.batch_id.to_string(),
+        gateway_id: header.gateway_id,
+        feeder_id: header.feeder_id,
+        body_sha256,
+        readings,
+        registers,
+        versions_used,
+    })
+}
+
+/// A meter id that parses and is registered on the feeder.
+fn known_meter(field: &str, raw: &str, feeder: &FeederId, ctx: &IngestContext<'_>) -> Result<MeterId, Refusal> {
+    let meter_id = MeterId::parse_field(field, raw).map_err(Refusal::Invalid)?;
+    if !ctx.known_meters.contains(raw) {
+        return Err(Refusal::invalid(field, format!("meter {meter_id} is not registered on feeder {feeder}")));
+    }
+    Ok(meter_id)
+}
+
+/// The interval readings, and the profile versions they use that were not yet
+/// marked in use.
+fn validate_readings(
+    feeder: &FeederId,
+    rows: &[meterveil_shared::wire::ReadingWire],
+    ctx: &IngestContext<'_>,
+) -> Result<(Vec<ValidReading>, Vec<u32>), Refusal> {
     let by_version: HashMap<u32, (usize, &ProfileRecord)> =
         ctx.profiles.iter().enumerate().map(|(i, p)| (p.version.0, (i, p))).collect();
-    let feeder = &header.feeder_id;
-    let mut seen: HashMap<(&str, i64), usize> = HashMap::with_capacity(batch.readings.len());
+    let mut seen: HashMap<(&str, i64), usize> = HashMap::with_capacity(rows.len());
     let mut versions_used: Vec<u32> = Vec::new();
-    let mut readings = Vec::with_capacity(batch.readings.len());
-
-    for (i, r) in batch.readings.iter().enumerate() {
+    let mut readings = Vec::with_capacity(rows.len());
+    for (i, r) in rows.iter().enumerate() {
         let at = |f: &str| format!("readings[{i}].{f}");
-        let meter_id = MeterId::parse_field(&at("meter_id"), &r.meter_id).map_err(Refusal::Invalid)?;
-        if !ctx.known_meters.contains(&r.meter_id) {
-            return Err(Refusal::invalid(
-                at("meter_id"),
-                format!("meter {meter_id} is not registered on feeder {feeder}"),
-            ));
-        }
+        let meter_id = known_meter(&at("meter_id"), &r.meter_id, feeder, ctx)?;
         let Some(&(idx, rec)) = by_version.get(&r.profile_version) else {
             return Err(Refusal::invalid(
                 at("profile_version"),
                 format!("feeder {feeder} has no profile version {}", r.profile_version),
             ));
         };
-        let len = rec.profile.interval();
-        IntervalStart::new_field(&at("interval_start"), r.interval_start, len).map_err(Refusal::Invalid)?;
-        let interval_end = r.interval_start + i64::from(len.seconds());
-        if interval_end > ctx.now + ctx.clock_tolerance_s {
-            return Err(Refusal::invalid(
-                at("interval_start"),
-                format!(
-                    "interval {} ends {} s in the future (server time {}); check the meter clock",
-                    r.interval_start,
-                    interval_end - ctx.now,
-                    ctx.now
-                ),
-            ));
-        }
-        if let Some(next) = ctx.profiles.get(idx + 1) {
-            let cutoff = next.created_at + ctx.stale_grace_s;
-            if r.interval_start >= cutoff {
-                return Err(Refusal::invalid(
-                    at("profile_version"),
-                    format!(
-                        "version {} is stale: it was superseded by version {} at {}, and readings from {} on must use the newer version",
-                        r.profile_version, next.version.0, next.created_at, cutoff
-                    ),
-                ));
-            }
-        }
+        check_reading_time(i, r.interval_start, r.profile_version, idx, rec, ctx)?;
         let k = rec.profile.levels();
         if usize::from(r.level) >= k {
             return Err(Refusal::invalid(
@@ -195,62 +192,72 @@ pub fn validate(
             profile_version: r.profile_version,
         });
     }
+    Ok((readings, versions_used))
+}
 
+/// Reading `i`'s interval: aligned to its profile's interval length, not in
+/// the future, and not made with a version superseded before it began.
+fn check_reading_time(
+    i: usize,
+    interval_start: i64,
+    version: u32,
+    idx: usize,
+    rec: &ProfileRecord,
+    ctx: &IngestContext<'_>,
+) -> Result<(), Refusal> {
+    let at = |f: &str| format!("readings[{i}].{f}");
+    let len = rec.profile.interval();
+    IntervalStart::new_field(&at("interval_start"), interval_start, len).map_err(Refusal::Invalid)?;
+    let interval_end = interval_start + i64::from(len.seconds());
+    if interval_end > ctx.now + ctx.clock_tolerance_s {
+        return Err(Refusal::invalid(
+            at("interval_start"),
+            format!(
+                "interval {} ends {} s in the future (server time {}); check the meter clock",
+                interval_start,
+                interval_end - ctx.now,
+                ctx.now
+            ),
+        ));
+    }
+    if let Some(next) = ctx.profiles.get(idx + 1) {
+        let cutoff = next.created_at + ctx.stale_grace_s;
+        if interval_start >= cutoff {
+            return Err(Refusal::invalid(
+                at("profile_version"),
+                format!(
+                    "version {} is stale: it was superseded by version {} at {}, and readings from {} on must use the newer version",
+                    version, next.version.0, next.created_at, cutoff
+                ),
+            ));
+        }
+    }
+    Ok(())
+}
+
+/// The register advances.
+fn validate_registers(
+    feeder: &FeederId,
+    rows: &[meterveil_shared::wire::RegisterWire],
+    ctx: &IngestContext<'_>,
+) -> Result<Vec<ValidRegister>, Refusal> {
     let registers_allowed = ctx.profiles.iter().any(|p| p.profile.send_registers());
-    let mut registers = Vec::with_capacity(batch.registers.len());
-    let mut seen_reg: HashSet<(&str, i64)> = HashSet::new();
-    for (i, g) in batch.registers.iter().enumerate() {
-        let at = |f: &str| format!("registers[{i}].{f}");
+    let step = ctx.profiles.iter().map(|p| i64::from(p.profile.interval().seconds())).max().unwrap_or(900);
+    let mut registers = Vec::with_capacity(rows.len());
+    let mut seen: HashSet<(&str, i64)> = HashSet::new();
+    for (i, g) in rows.iter().enumerate() {
         if !registers_allowed {
             return Err(Refusal::invalid(
                 format!("registers[{i}]"),
                 format!("no profile of feeder {feeder} allows register reads"),
             ));
         }
-        let meter_id = MeterId::parse_field(&at("meter_id"), &g.meter_id).map_err(Refusal::Invalid)?;
-        if !ctx.known_meters.contains(&g.meter_id) {
-            return Err(Refusal::invalid(
-                at("meter_id"),
-                format!("meter {meter_id} is not registered on feeder {feeder}"),
-            ));
-        }
-        if g.read_at < meterveil_shared::domain::EARLIEST_EPOCH_S {
-            return Err(Refusal::invalid(at("read_at"), format!("{} is before 2000-01-01T00:00:00Z", g.read_at)));
-        }
-        if g.read_at > ctx.now + ctx.clock_tolerance_s {
-            return Err(Refusal::invalid(
-                at("read_at"),
-                format!("{} is in the future (server time {})", g.read_at, ctx.now),
-            ));
-        }
-        if g.read_at <= g.period_start {
-            return Err(Refusal::invalid(
-                at("read_at"),
-                format!("{} is not after period_start {}: the advance runs backwards", g.read_at, g.period_start),
-            ));
-        }
-        // Saturating: period_start is unchecked input and may be any i64.
-        let span = g.read_at.saturating_sub(g.period_start);
-        if span > MAX_REGISTER_SPAN_S {
-            return Err(Refusal::invalid(
-                at("period_start"),
-                format!("spans {span} s to read_at; a register period is at most {MAX_REGISTER_SPAN_S} s"),
-            ));
-        }
-        let step = ctx.profiles.iter().map(|p| i64::from(p.profile.interval().seconds())).max().unwrap_or(900);
-        if g.period_start.rem_euclid(step) != 0 || g.read_at.rem_euclid(step) != 0 {
-            return Err(Refusal::invalid(
-                at("period_start"),
-                format!(
-                    "the period [{}, {}) is not aligned to the feeder's {step} s intervals",
-                    g.period_start, g.read_at
-                ),
-            ));
-        }
+        let meter_id = known_meter(&format!("registers[{i}].meter_id"), &g.meter_id, feeder, ctx)?;
+        check_register_span(i, g.period_start, g.read_at, step, ctx)?;
         if g.wh > i64::MAX as u64 {
-            return Err(Refusal::invalid(at("wh"), "is larger than any register can hold"));
+            return Err(Refusal::invalid(format!("registers[{i}].wh"), "is larger than any register can hold"));
         }
-        if !seen_reg.insert((g.meter_id.as_str(), g.read_at)) {
+        if !seen.insert((g.meter_id.as_str(), g.read_at)) {
             return Err(Refusal::invalid(
                 format!("registers[{i}]"),
                 "repeats an earlier register read (same meter_id and read_at)",
@@ -258,16 +265,46 @@ pub fn validate(
         }
         registers.push(ValidRegister { meter_id, period_start: g.period_start, read_at: g.read_at, wh: g.wh });
     }
+    Ok(registers)
+}
 
-    Ok(ValidatedBatch {
-        batch_id: header.batch_id.to_string(),
-        gateway_id: header.gateway_id,
-        feeder_id: header.feeder_id,
-        body_sha256,
-        readings,
-        registers,
-        versions_used,
-    })
+/// Register `i`'s period [period_start, read_at): after 2000, not in the future,
+/// forwards, at most [`MAX_REGISTER_SPAN_S`] long and aligned to `step`.
+fn check_register_span(
+    i: usize,
+    period_start: i64,
+    read_at: i64,
+    step: i64,
+    ctx: &IngestContext<'_>,
+) -> Result<(), Refusal> {
+    let at = |f: &str| format!("registers[{i}].{f}");
+    if read_at < meterveil_shared::domain::EARLIEST_EPOCH_S {
+        return Err(Refusal::invalid(at("read_at"), format!("{read_at} is before 2000-01-01T00:00:00Z")));
+    }
+    if read_at > ctx.now + ctx.clock_tolerance_s {
+        return Err(Refusal::invalid(at("read_at"), format!("{read_at} is in the future (server time {})", ctx.now)));
+    }
+    if read_at <= period_start {
+        return Err(Refusal::invalid(
+            at("read_at"),
+            format!("{read_at} is not after period_start {period_start}: the advance runs backwards"),
+        ));
+    }
+    // Saturating: period_start is unchecked input and may be any i64.
+    let span = read_at.saturating_sub(period_start);
+    if span > MAX_REGISTER_SPAN_S {
+        return Err(Refusal::invalid(
+            at("period_start"),
+            format!("spans {span} s to read_at; a register period is at most {MAX_REGISTER_SPAN_S} s"),
+        ));
+    }
+    if period_start.rem_euclid(step) != 0 || read_at.rem_euclid(step) != 0 {
+        return Err(Refusal::invalid(
+            at("period_start"),
+            format!("the period [{period_start}, {read_at}) is not aligned to the feeder's {step} s intervals"),
+        ));
+    }
+    Ok(())
 }
 
 /// The clock rules validation applies (from the service configuration).

@@ -477,7 +477,8 @@ mod tests {
             panic!("not a recovery")
         };
         assert_eq!((r.feeder_id.as_str(), r.from, r.to, r.rank), ("F2", 900, 1800, RankSetting::AUTO));
-        let old_audit = json!({"recovery_job": "r", "captured": ["m1"], "seed": 11, "register_period": null, "curves": true});
+        let old_audit =
+            json!({"recovery_job": "r", "captured": ["m1"], "seed": 11, "register_period": null, "curves": true});
         assert!(JobSpec::from_stored("audit", &old_audit, Some("F2"), None).is_ok());
         assert!(JobSpec::from_stored("sweep", &json!({}), None, None).unwrap_err().contains("unknown job kind"));
     }

@@ -62,4 +62,3 @@ pub struct RecoveredRow {
     pub kw_low: f64,
     pub kw_high: f64,
 }
-

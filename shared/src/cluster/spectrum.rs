@@ -95,7 +95,6 @@ pub(super) fn leading_eigen(
     (vals, q * rot, solve)
 }
 
-
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -108,12 +107,8 @@ mod tests {
         let (blocks, size) = (4, 30);
         let m = blocks * size;
         let mut w: Vec<Vec<(usize, f64)>> = vec![Vec::new(); m];
-        for i in 0..m {
-            for j in 0..m {
-                if i != j && i / size == j / size {
-                    w[i].push((j, 1.0));
-                }
-            }
+        for (i, row) in w.iter_mut().enumerate() {
+            row.extend((0..m).filter(|&j| i != j && i / size == j / size).map(|j| (j, 1.0)));
         }
         for b in 0..blocks {
             let (i, j) = (b * size, ((b + 1) % blocks) * size + 1);

@@ -82,7 +82,10 @@ async fn audit_inner(s: &WorkContext, job_id: &str, req: &AuditSpec) -> anyhow::
         .captured
         .iter()
         .map(|m| {
-            index.get(m.as_str()).copied().with_context(|| format!("meter {m} is not in recovery job {}", req.recovery_job))
+            index
+                .get(m.as_str())
+                .copied()
+                .with_context(|| format!("meter {m} is not in recovery job {}", req.recovery_job))
         })
         .collect::<anyhow::Result<_>>()?;
     // The stored levels and register days of the captured meters, for the direct mode.

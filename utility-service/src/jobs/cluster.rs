@@ -1,13 +1,12 @@
 //! Load-shape clustering of the profiles of finished recovery jobs.
 
 use meterveil_shared::cluster::{cluster, representation, representatives, ClusterParams, CLUSTER_RANK};
-use meterveil_shared::recovery::RecoveryParams;
 use nalgebra::DMatrix;
 use serde_json::json;
 
 use super::WorkContext;
 use crate::clock::now_s;
-use crate::jobspec::ClusterSpec;
+use crate::jobspec::{ClusterSpec, JobSpec};
 use crate::store::analyses::Assignment;
 use crate::store::queue::JobTable;
 
@@ -18,8 +17,19 @@ pub async fn run(state: WorkContext, job_id: String, req: ClusterSpec) {
     }
 }
 
-async fn run_inner(s: &WorkContext, job_id: &str, req: &ClusterSpec) -> anyhow::Result<()> {
-    s.store.set_progress(JobTable::Analysis, job_id, 0.0, "loading recovered profiles", now_s()).await?;
+/// The recovered profiles of a clustering's recovery jobs over their common window.
+struct Recovered {
+    /// (meter id, feeder id) of each row of `x`.
+    meters: Vec<(String, String)>,
+    x: DMatrix<f64>,
+    from: i64,
+    to: i64,
+    interval_s: u32,
+    /// Each recovery's id, feeder and service limit, for the clustering fit.
+    fits: Vec<(String, String, f64)>,
+}
+
+async fn load_recovered(s: &WorkContext, req: &ClusterSpec) -> anyhow::Result<Recovered> {
     let mut meters: Vec<(String, String)> = Vec::new();
     let mut values: Vec<f64> = Vec::new();
     let mut window: Option<(i64, i64)> = None;
@@ -28,7 +38,15 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &ClusterSpec) -> anyhow::
     let mut fits: Vec<(String, String, f64)> = Vec::with_capacity(req.recovery_jobs.len());
     for id in &req.recovery_jobs {
         let job = s.store.job(id).await?.ok_or_else(|| anyhow::anyhow!("recovery job {id} does not exist"))?;
-        let alpha = job.params.get("alpha_kw").and_then(|v| v.as_f64()).unwrap_or(RecoveryParams::default().alpha_kw);
+        let alpha = match JobSpec::from_stored(
+            "recover",
+            &job.params,
+            Some(&job.feeder_id),
+            Some((job.window_start, job.window_end)),
+        ) {
+            Ok(JobSpec::Recover(r)) => r.alpha_kw,
+            _ => anyhow::bail!("recovery job {id}'s stored parameters do not parse"),
+        };
         fits.push((id.clone(), job.feeder_id.clone(), alpha));
         anyhow::ensure!(job.state == "done", "recovery job {id} is {}, not done", job.state);
         let w = (job.window_start, job.window_end);
@@ -59,6 +77,13 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &ClusterSpec) -> anyhow::
     anyhow::ensure!(values.len() == meters.len() * cols, "recovered rows do not form a full meters × intervals table");
     let interval_s = ((to - from) / cols as i64) as u32;
     let x = DMatrix::from_row_slice(meters.len(), cols, &values);
+    Ok(Recovered { meters, x, from, to, interval_s, fits })
+}
+
+async fn run_inner(s: &WorkContext, job_id: &str, req: &ClusterSpec) -> anyhow::Result<()> {
+    s.store.set_progress(JobTable::Analysis, job_id, 0.0, "loading recovered profiles", now_s()).await?;
+    let Recovered { meters, x, from, to, interval_s, fits } = load_recovered(s, req).await?;
+    let cols = x.ncols();
     // The clustering representation: each recovery's levels fitted again at the
     // clustering rank (the profiles' own rank is chosen for accuracy, and below
     // the number of classes the classes are gone).
@@ -80,7 +105,9 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &ClusterSpec) -> anyhow::
                 progress("fitting at the clustering rank", base + 0.8 * f / total)
             })
             .map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
-            fit_stops.push(serde_json::json!({"feeder_id": feeder.as_str(), "iterations": fit.iterations, "stop": fit.stop}));
+            fit_stops.push(
+                serde_json::json!({"feeder_id": feeder.as_str(), "iterations": fit.iterations, "stop": fit.stop}),
+            );
             for (i, m) in w.meters.iter().enumerate() {
                 rows.insert(m.clone(), z.row(i).iter().copied().collect());
             }

@@ -71,7 +71,8 @@ pub async fn load_window(
         }
     }
     let reads = store.feeder_registers_between(feeder, from, to).await?;
-    let constraints = crate::settlement::register_constraints(&index, &levels, &reads, from, profile.interval().seconds());
+    let constraints =
+        crate::settlement::register_constraints(&index, &levels, &reads, from, profile.interval().seconds());
     let layout = DayLayout { window_start: from, interval_s: profile.interval().seconds() };
     Ok(FeederWindow { meters, levels, profile, version, constraints, layout })
 }

@@ -13,8 +13,8 @@ use serde_json::{json, Value};
 
 use super::{now_s, parse_json, AppState, Operator};
 use crate::error::ApiError;
-use crate::jobspec::{AuditRequest, CalibrateRequest, ClusterRequest, JobSpec};
 use crate::jobs::new_job_id;
+use crate::jobspec::{AuditRequest, CalibrateRequest, ClusterRequest, JobSpec};
 use crate::store::analyses::AnalysisRecord;
 
 pub fn router() -> Router<AppState> {

@@ -17,8 +17,8 @@ use meterveil_shared::FieldError;
 use serde::de::DeserializeOwned;
 
 use crate::error::ApiError;
-use crate::metrics::Metrics;
 use crate::jobs::WorkContext;
+use crate::metrics::Metrics;
 
 /// What the handlers share: the background work's context (store,
 /// configuration, the worker's wake-up), reached through `Deref`, and the

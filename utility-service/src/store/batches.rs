@@ -7,7 +7,6 @@
 //! another writer (a second process on the same database) is rolled back whole
 //! and the caller retries its uploads one by one.
 
-
 use meterveil_shared::wire::AckWire;
 use meterveil_shared::FeederId;
 use sqlx::{AnyConnection, Connection, Row};
@@ -134,10 +133,31 @@ impl Store {
         }
         let _w = self.write_lock().await;
         let mut tx = conn.begin().await?;
+        let (readings, stored_readings) = self.insert_readings(&mut tx, group).await?;
+        let (registers, stored_registers) = self.insert_registers(&mut tx, group).await?;
+        if group.len() > 1 && (stored_readings != readings || stored_registers != registers) {
+            tx.rollback().await?;
+            return Ok(None);
+        }
+        if !self.advance_sequences(&mut tx, group).await? {
+            tx.rollback().await?;
+            return Ok(None);
+        }
+        mark_versions_in_use(&mut tx, group).await?;
+        let acks = acks_for(group, stored_readings, stored_registers);
+        if !self.insert_batches(&mut tx, group, &acks, now).await? {
+            tx.rollback().await?;
+            return Ok(None);
+        }
+        tx.commit().await?;
+        Ok(Some(acks))
+    }
 
+    /// Inserts the group's readings; returns (readings, rows stored).
+    async fn insert_readings(&self, tx: &mut AnyConnection, group: &[Accepted]) -> Result<(u64, u64), StoreError> {
         let readings: Vec<_> =
             group.iter().flat_map(|a| a.batch.readings.iter().map(move |r| (r, a.batch.batch_id.as_str()))).collect();
-        let mut stored_readings = 0;
+        let mut stored = 0;
         for chunk in readings.chunks(INSERT_CHUNK) {
             let sql = values_sql(
                 self.backend,
@@ -155,11 +175,16 @@ impl Store {
                     .bind(i64::from(r.profile_version))
                     .bind(*batch_id);
             }
-            stored_readings += q.execute(&mut *tx).await?.rows_affected();
+            stored += q.execute(&mut *tx).await?.rows_affected();
         }
+        Ok((readings.len() as u64, stored))
+    }
+
+    /// Inserts the group's register advances; returns (advances, rows stored).
+    async fn insert_registers(&self, tx: &mut AnyConnection, group: &[Accepted]) -> Result<(u64, u64), StoreError> {
         let registers: Vec<_> =
             group.iter().flat_map(|a| a.batch.registers.iter().map(move |r| (r, a.batch.batch_id.as_str()))).collect();
-        let mut stored_registers = 0;
+        let mut stored = 0;
         for chunk in registers.chunks(INSERT_CHUNK) {
             let sql = values_sql(
                 self.backend,
@@ -173,13 +198,14 @@ impl Store {
                 // wh was checked to fit an i64 during validation.
                 q = q.bind(r.meter_id.as_str()).bind(r.period_start).bind(r.read_at).bind(r.wh as i64).bind(*batch_id);
             }
-            stored_registers += q.execute(&mut *tx).await?.rows_affected();
+            stored += q.execute(&mut *tx).await?.rows_affected();
         }
-        if group.len() > 1 && (stored_readings != readings.len() as u64 || stored_registers != registers.len() as u64) {
-            tx.rollback().await?;
-            return Ok(None);
-        }
+        Ok((registers.len() as u64, stored))
+    }
 
+    /// Moves each gateway's last sequence forward and records the sequence;
+    /// false when another writer got there first (the group is rolled back).
+    async fn advance_sequences(&self, tx: &mut AnyConnection, group: &[Accepted]) -> Result<bool, StoreError> {
         // Each gateway appears at most once in a group (the committer sees to it).
         let mut moved = 0;
         for chunk in group.chunks(INSERT_CHUNK) {
@@ -214,45 +240,18 @@ impl Store {
             }
             recorded += q.execute(&mut *tx).await?.rows_affected();
         }
-        if moved != group.len() as u64 || recorded != group.len() as u64 {
-            tx.rollback().await?;
-            return Ok(None);
-        }
+        Ok(moved == group.len() as u64 && recorded == group.len() as u64)
+    }
 
-        let mut first_use: Vec<(&str, u32)> = group
-            .iter()
-            .flat_map(|a| a.batch.versions_used.iter().map(move |v| (a.batch.feeder_id.as_str(), *v)))
-            .collect();
-        first_use.sort_unstable();
-        first_use.dedup();
-        for (feeder, v) in first_use {
-            sqlx::query("UPDATE dither_profiles SET in_use = 1 WHERE feeder_id = $1 AND version = $2 AND in_use = 0")
-                .bind(feeder)
-                .bind(i64::from(v))
-                .execute(&mut *tx)
-                .await?;
-        }
-
-        let acks: Vec<AckWire> = group
-            .iter()
-            .map(|a| {
-                let b = &a.batch;
-                // Alone, a batch's own counts are exact; in a larger group every row
-                // was new (checked above).
-                let (r, g) = if group.len() == 1 {
-                    (stored_readings, stored_registers)
-                } else {
-                    (b.readings.len() as u64, b.registers.len() as u64)
-                };
-                AckWire {
-                    batch_id: b.batch_id.clone(),
-                    stored_readings: r,
-                    duplicate_readings: b.readings.len() as u64 - r,
-                    stored_registers: g,
-                    duplicate_registers: b.registers.len() as u64 - g,
-                }
-            })
-            .collect();
+    /// Records each batch with its acknowledgement; false when one was
+    /// recorded by another writer first.
+    async fn insert_batches(
+        &self,
+        tx: &mut AnyConnection,
+        group: &[Accepted],
+        acks: &[AckWire],
+        now: i64,
+    ) -> Result<bool, StoreError> {
         let mut inserted = 0;
         for (chunk, chunk_acks) in group.chunks(INSERT_CHUNK).zip(acks.chunks(INSERT_CHUNK)) {
             let sql = values_sql(
@@ -275,11 +274,47 @@ impl Store {
             }
             inserted += q.execute(&mut *tx).await?.rows_affected();
         }
-        if inserted != group.len() as u64 {
-            tx.rollback().await?;
-            return Ok(None);
-        }
-        tx.commit().await?;
-        Ok(Some(acks))
+        Ok(inserted == group.len() as u64)
     }
+}
+
+/// Marks the profile versions the group's readings used for the first time.
+async fn mark_versions_in_use(tx: &mut AnyConnection, group: &[Accepted]) -> Result<(), StoreError> {
+    let mut first_use: Vec<(&str, u32)> = group
+        .iter()
+        .flat_map(|a| a.batch.versions_used.iter().map(move |v| (a.batch.feeder_id.as_str(), *v)))
+        .collect();
+    first_use.sort_unstable();
+    first_use.dedup();
+    for (feeder, v) in first_use {
+        sqlx::query("UPDATE dither_profiles SET in_use = 1 WHERE feeder_id = $1 AND version = $2 AND in_use = 0")
+            .bind(feeder)
+            .bind(i64::from(v))
+            .execute(&mut *tx)
+            .await?;
+    }
+    Ok(())
+}
+
+/// Each batch's acknowledgement. Alone, a batch's own counts are exact; in a
+/// larger group every row was new (checked before).
+fn acks_for(group: &[Accepted], stored_readings: u64, stored_registers: u64) -> Vec<AckWire> {
+    group
+        .iter()
+        .map(|a| {
+            let b = &a.batch;
+            let (r, g) = if group.len() == 1 {
+                (stored_readings, stored_registers)
+            } else {
+                (b.readings.len() as u64, b.registers.len() as u64)
+            };
+            AckWire {
+                batch_id: b.batch_id.clone(),
+                stored_readings: r,
+                duplicate_readings: b.readings.len() as u64 - r,
+                stored_registers: g,
+                duplicate_registers: b.registers.len() as u64 - g,
+            }
+        })
+        .collect()
 }

@@ -164,7 +164,12 @@ impl Store {
                 let spec = serde_json::from_str(&params)
                     .map_err(|e| format!("the stored {kind} job's params are not JSON: {e}"))
                     .and_then(|p| crate::jobspec::JobSpec::from_stored(&kind, &p, feeder.as_deref(), from.zip(to)));
-                return Ok(Some(Claimed { table, job_id: r.try_get("job_id")?, spec, attempts: r.try_get("attempts")? }));
+                return Ok(Some(Claimed {
+                    table,
+                    job_id: r.try_get("job_id")?,
+                    spec,
+                    attempts: r.try_get("attempts")?,
+                }));
             }
         }
         Ok(None)

@@ -41,12 +41,7 @@ async fn pause_for_a_test_kill() {
 }
 
 impl Store {
-    pub async fn create_job(
-        &self,
-        id: &str,
-        spec: &crate::jobspec::RecoverSpec,
-        now: i64,
-    ) -> Result<(), StoreError> {
+    pub async fn create_job(&self, id: &str, spec: &crate::jobspec::RecoverSpec, now: i64) -> Result<(), StoreError> {
         let _w = self.write_lock().await;
         sqlx::query(
             "INSERT INTO recovery_jobs (job_id, feeder_id, window_start, window_end, params, state, created_at) VALUES ($1, $2, $3, $4, $5, 'queued', $6)",
