@@ -5,9 +5,10 @@
 
 use std::collections::HashSet;
 
-use meterveil_service::ingest::{body_sha256, check_header, validate, IngestContext};
+use meterveil_service::ingest::{check_header, validate, IngestContext};
 use meterveil_service::records::ProfileRecord;
 use meterveil_service::routes::parse_json;
+use meterveil_shared::auth::body_sha256;
 use meterveil_shared::wire::BatchWire;
 use meterveil_shared::{DitherProfile, DitherProfileSpec, FeederId, ProfileVersion};
 use proptest::prelude::*;

@@ -44,25 +44,45 @@ impl Format {
     }
 }
 
-/// Column positions of a CSV source, learned from its header.
-#[derive(Debug, Clone, Copy)]
+/// The columns of a CSV source, learned from its header (names lowercased).
+#[derive(Debug, Clone)]
 pub struct CsvLayout {
+    header: csv::StringRecord,
     meter: usize,
-    start: usize,
-    value: usize,
     unit: Unit,
-    columns: usize,
+}
+
+/// One CSV data line, by column name; other columns are ignored.
+#[derive(serde::Deserialize)]
+struct CsvReading {
+    meter_id: String,
+    interval_start: i64,
+    #[serde(default)]
+    kw: Option<f64>,
+    #[serde(default)]
+    wh: Option<f64>,
+}
+
+/// One line of CSV as a record (quoted fields and all), through the csv crate.
+fn csv_record(line: &str) -> Result<csv::StringRecord, FieldError> {
+    let mut r = csv::ReaderBuilder::new().has_headers(false).trim(csv::Trim::All).from_reader(line.as_bytes());
+    let mut rec = csv::StringRecord::new();
+    match r.read_record(&mut rec) {
+        Ok(true) => Ok(rec),
+        Ok(false) => Err(FieldError::new("line", "is empty")),
+        Err(_) => Err(FieldError::new("line", "is not a CSV record")),
+    }
 }
 
 impl CsvLayout {
     pub fn from_header(header: &str) -> Result<Self, FieldError> {
-        let cols: Vec<String> = header.split(',').map(|c| c.trim().to_ascii_lowercase()).collect();
-        let find = |name: &str| cols.iter().position(|c| c == name);
+        let header: csv::StringRecord = csv_record(header)?.iter().map(str::to_ascii_lowercase).collect();
+        let find = |name: &str| header.iter().position(|c| c == name);
         let meter = find("meter_id").ok_or_else(|| FieldError::new("header", "has no meter_id column"))?;
-        let start = find("interval_start").ok_or_else(|| FieldError::new("header", "has no interval_start column"))?;
-        let (value, unit) = match (find("kw"), find("wh")) {
-            (Some(k), None) => (k, Unit::Kw),
-            (None, Some(w)) => (w, Unit::Wh),
+        find("interval_start").ok_or_else(|| FieldError::new("header", "has no interval_start column"))?;
+        let unit = match (find("kw"), find("wh")) {
+            (Some(_), None) => Unit::Kw,
+            (None, Some(_)) => Unit::Wh,
             (Some(_), Some(_)) => {
                 return Err(FieldError::new(
                     "header",
@@ -71,7 +91,12 @@ impl CsvLayout {
             }
             (None, None) => return Err(FieldError::new("header", "has neither a kw nor a wh column")),
         };
-        Ok(Self { meter, start, value, unit, columns: cols.len() })
+        Ok(Self { header, meter, unit })
+    }
+
+    /// The meter id a data line names, where it can be read.
+    fn meter_of(&self, line: &str) -> Option<String> {
+        csv_record(line).ok().and_then(|r| r.get(self.meter).map(str::to_owned))
     }
 }
 
@@ -117,17 +142,35 @@ fn finish(meter: &str, start: i64, kw: f64, unit: Unit, len: IntervalLength) -> 
     Ok(RawReading { meter_id, interval_start: start, kw })
 }
 
-/// Parses one CSV data line.
+/// Parses one CSV data line. A value that does not parse is named by its
+/// column, never quoted.
 pub fn parse_csv_line(layout: &CsvLayout, line: &str, len: IntervalLength) -> Result<RawReading, FieldError> {
-    let cells: Vec<&str> = line.split(',').map(str::trim).collect();
-    if cells.len() != layout.columns {
-        return Err(FieldError::new("line", format!("has {} columns; the header has {}", cells.len(), layout.columns)));
+    let rec = csv_record(line)?;
+    if rec.len() != layout.header.len() {
+        return Err(FieldError::new(
+            "line",
+            format!("has {} columns; the header has {}", rec.len(), layout.header.len()),
+        ));
     }
-    let start: i64 =
-        cells[layout.start].parse().map_err(|_| FieldError::new("interval_start", "is not an integer epoch second"))?;
+    let r: CsvReading = rec.deserialize(Some(&layout.header)).map_err(|e| {
+        let column = match e.kind() {
+            csv::ErrorKind::Deserialize { err, .. } => err.field().and_then(|i| layout.header.get(i as usize)),
+            _ => None,
+        };
+        match column {
+            Some("interval_start") => FieldError::new("interval_start", "is not an integer epoch second"),
+            Some(c @ ("kw" | "wh")) => FieldError::new(c, "is not a number"),
+            Some(c) => FieldError::new(c, "cannot be read"),
+            None => FieldError::new("line", "cannot be read"),
+        }
+    })?;
+    let value = match layout.unit {
+        Unit::Kw => r.kw,
+        Unit::Wh => r.wh,
+    };
     let value_name = if layout.unit == Unit::Kw { "kw" } else { "wh" };
-    let value: f64 = cells[layout.value].parse().map_err(|_| FieldError::new(value_name, "is not a number"))?;
-    finish(cells[layout.meter], start, value, layout.unit, len)
+    let value = value.ok_or_else(|| FieldError::new(value_name, "is empty"))?;
+    finish(&r.meter_id, r.interval_start, value, layout.unit, len)
 }
 
 #[derive(serde::Deserialize)]
@@ -178,7 +221,7 @@ impl LineParser {
         }
         let meter = || -> Option<String> {
             match (self.format, &self.layout) {
-                (Format::Csv, Some(l)) => t.split(',').nth(l.meter).map(|m| m.trim().to_owned()),
+                (Format::Csv, Some(l)) => l.meter_of(t),
                 (Format::Jsonl, _) => serde_json::from_str::<serde_json::Value>(t)
                     .ok()
                     .and_then(|v| v.get("meter_id").and_then(|m| m.as_str()).map(str::to_owned)),
@@ -215,6 +258,9 @@ mod tests {
         assert!(r.is_err());
         let r = p.next_line("m1,1699999200,500,x", Q).unwrap().unwrap();
         assert!((r.kw - 2.0).abs() < 1e-12, "500 Wh in 15 min is 2 kW");
+        // Quoted cells, as spreadsheet exports write them, with a comma inside a note.
+        let r = p.next_line("\"m1\",\"1699999200\",\"250\",\"read, then checked\"", Q).unwrap().unwrap();
+        assert!((r.kw - 1.0).abs() < 1e-12);
     }
 
     #[test]

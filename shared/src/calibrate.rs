@@ -17,7 +17,6 @@ use argmin::core::{CostFunction, Executor};
 use argmin::solver::brent::BrentRoot;
 use nalgebra::DMatrix;
 use rand::SeedableRng;
-use rand_distr::{Distribution, StandardNormal};
 use serde::{Deserialize, Serialize};
 
 use crate::audit::{
@@ -25,7 +24,7 @@ use crate::audit::{
     score_detector, select_rows, standard_event_mix, Attacker, EventCounts, EventKind, InjectedEvent, Strategy,
 };
 use crate::error::FieldError;
-use crate::profile::{DitherProfile, DitherProfileSpec, NoiseFamily, RegisterPeriod};
+use crate::profile::{DitherProfile, DitherProfileSpec, RegisterPeriod};
 use crate::recovery::outage::DayLayout;
 use crate::recovery::{recover, RankChoice, RecoveryParams};
 
@@ -219,16 +218,6 @@ pub struct Simulation {
     tz: crate::Tz,
 }
 
-fn standard_draw(noise: NoiseFamily, rng: &mut impl rand::Rng) -> f64 {
-    match noise {
-        NoiseFamily::Gaussian => StandardNormal.sample(rng),
-        NoiseFamily::Logistic => {
-            let u: f64 = rng.random_range(f64::EPSILON..1.0);
-            (u / (1.0 - u)).ln()
-        }
-    }
-}
-
 impl Simulation {
     /// Draws the events (into `sets` disjoint captured sets of `captured` meters,
     /// spread evenly over the feeder) and the standardized dither, from `seed`.
@@ -257,7 +246,7 @@ impl Simulation {
             );
         }
         let noise = current.noise();
-        let z = DMatrix::from_fn(m, n, |_, _| standard_draw(noise, &mut rng));
+        let z = DMatrix::from_fn(m, n, |_, _| crate::mechanism::standard_draw(noise, &mut rng));
         Self {
             truth,
             z,

@@ -415,7 +415,7 @@ pub fn representatives(
         out[l].size += 1;
         for j in 0..profiles.ncols() {
             let t = window_start + j as i64 * i64::from(interval_s);
-            let weekend = (t.div_euclid(86_400) + 3).rem_euclid(7) >= 5;
+            let weekend = crate::domain::utc_weekday(t) >= 5;
             let slot = (t.rem_euclid(86_400) / i64::from(interval_s)) as usize % per_day;
             let target = if weekend { &mut out[l].weekend_kw } else { &mut out[l].weekday_kw };
             target[slot] += profiles[(i, j)];

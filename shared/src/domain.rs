@@ -134,6 +134,12 @@ impl From<IntervalLength> for u32 {
     }
 }
 
+/// Day of the week of UTC epoch second `t`: 0 = Monday … 6 = Sunday
+/// (1970-01-01 was a Thursday).
+pub fn utc_weekday(t: i64) -> u32 {
+    (t.div_euclid(86_400) + 3).rem_euclid(7) as u32
+}
+
 /// Earliest interval start we accept: 2000-01-01T00:00:00Z. Anything earlier is a
 /// meter with an unset clock, not data.
 pub const EARLIEST_EPOCH_S: i64 = 946_684_800;

@@ -16,12 +16,13 @@ use crate::special::{log1m_exp, log_logistic_cdf, log_logistic_pdf, log_ndtr, lo
 /// Production callers pass an OS-seeded cryptographic generator (see
 /// [`secure_rng`]); tests pass a seeded one.
 pub fn draw_dither_kw(profile: &DitherProfile, rng: &mut impl Rng) -> f64 {
-    let s = profile.scale_kw();
-    match profile.noise() {
-        NoiseFamily::Gaussian => {
-            let z: f64 = StandardNormal.sample(rng);
-            s * z
-        }
+    profile.scale_kw() * standard_draw(profile.noise(), rng)
+}
+
+/// One draw of the noise family at unit scale.
+pub fn standard_draw(noise: NoiseFamily, rng: &mut impl Rng) -> f64 {
+    match noise {
+        NoiseFamily::Gaussian => StandardNormal.sample(rng),
         NoiseFamily::Logistic => {
             // Inverse CDF on the open interval (0, 1): u = 0 would give -inf.
             let u: f64 = loop {
@@ -30,7 +31,7 @@ pub fn draw_dither_kw(profile: &DitherProfile, rng: &mut impl Rng) -> f64 {
                     break u;
                 }
             };
-            s * (u / (1.0 - u)).ln()
+            (u / (1.0 - u)).ln()
         }
     }
 }

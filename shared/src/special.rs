@@ -4,7 +4,7 @@
 //! passes about 38, and loses all digits well before that. These forms keep full
 //! relative precision out to |z| of several hundred.
 
-use std::f64::consts::{LN_2, PI, SQRT_2};
+use std::f64::consts::{LN_2, SQRT_2};
 
 /// ln(√(2π)).
 const LN_SQRT_2PI: f64 = 0.918_938_533_204_672_8;
@@ -61,11 +61,6 @@ pub fn log1m_exp(d: f64) -> f64 {
     } else {
         (-d.exp()).ln_1p()
     }
-}
-
-/// The density of the standard normal at z, for tests and integration.
-pub fn npdf(z: f64) -> f64 {
-    (-0.5 * z * z).exp() / (2.0 * PI).sqrt()
 }
 
 #[cfg(test)]

@@ -5,7 +5,6 @@ use std::collections::{HashMap, HashSet};
 
 use meterveil_shared::wire::BatchWire;
 use meterveil_shared::{BatchId, FeederId, FieldError, GatewayId, IntervalStart, MeterId};
-use sha2::{Digest, Sha256};
 
 use crate::records::{GroupState, ProfileRecord, StoredBatch};
 
@@ -83,10 +82,6 @@ pub struct BatchHeader {
     pub batch_id: BatchId,
     pub gateway_id: GatewayId,
     pub feeder_id: FeederId,
-}
-
-pub fn body_sha256(body: &[u8]) -> String {
-    hex::encode(Sha256::digest(body))
 }
 
 pub fn check_header(b: &BatchWire) -> Result<BatchHeader, Refusal> {

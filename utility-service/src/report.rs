@@ -1,13 +1,11 @@
 //! Self-contained HTML reports of an audit and of a calibration: inline SVG
-//! charts drawn with plotters, no scripts, no external resources.
+//! charts drawn with plotters, no scripts, no external resources. Markup is
+//! written with maud, which escapes every value it inserts.
 
+use maud::{html, Markup, PreEscaped, DOCTYPE};
 use meterveil_shared::audit::{AuditReport, CurvePoint};
 use meterveil_shared::calibrate::Calibration;
 use plotters::prelude::*;
-
-pub(crate) fn esc(s: &str) -> String {
-    s.replace('&', "&amp;").replace('<', "&lt;").replace('>', "&gt;").replace('"', "&quot;")
-}
 
 /// A line chart of several series over a shared x axis, as an SVG string.
 pub(crate) fn line_chart(
@@ -64,150 +62,192 @@ pub(crate) const STYLE: &str = "body{font-family:sans-serif;max-width:58em;margi
 table{border-collapse:collapse}td,th{border:1px solid #bbb;padding:.25em .6em;text-align:right}\
 th:first-child,td:first-child{text-align:left}.caution{background:#fff4e0;border-left:4px solid #e0a030;padding:.6em 1em}";
 
+/// A whole report page: title, the shared style, and `body` under the heading.
+pub(crate) fn report_page(title: &str, body: Markup) -> String {
+    html! {
+        (DOCTYPE)
+        html lang="en" {
+            head { meta charset="utf-8"; title { (title) } style { (PreEscaped(STYLE)) } }
+            body { h1 { (title) } (body) }
+        }
+    }
+    .into_string()
+}
+
+/// A figure to three decimals, or a dash when there is none.
+fn opt3(v: Option<f64>) -> String {
+    v.map_or("–".into(), |v| format!("{v:.3}"))
+}
+
 /// The audit's report: a plain-language summary, its limits, tables and charts.
 pub fn audit_html(title: &str, r: &AuditReport) -> String {
+    report_page(
+        title,
+        html! {
+            (audit_summary(r))
+            h2 { "Assumptions" }
+            ul { @for a in &r.assumptions { li { (a) } } }
+            (audit_kinds(r))
+            (audit_strategies(r))
+            (audit_mechanism(r))
+            (audit_curves(r))
+            (audit_direct(r))
+        },
+    )
+}
+
+fn audit_summary(r: &AuditReport) -> Markup {
     let f1 = r.strongest.event_f1.unwrap_or(0.0);
-    let uf1 = r.utility.event_f1.unwrap_or(0.0);
-    let mut h = format!("<!doctype html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>{}</title><style>{STYLE}</style></head><body>", esc(title));
-    h += &format!("<h1>{}</h1>", esc(title));
-    h += &format!(
-        "<h2>In plain words</h2><p>If someone captured the uploads of {} of this feeder's {} meters for {} days, \
-         the strongest attack we know ({}) would find appliance events of the kind injected here with an F1 score of \
-         {:.2} (1 is every event and nothing else; 0 is nothing). Its best reconstruction of the meters' loads is off \
-         by {:.0}% (nRMSE). The utility, recovering the whole feeder, reaches {:.0}% and an event F1 of {:.2} on the same \
-         meters. Each reading carries {:.2} bits about the load, of at most {:.2}.</p>",
-        r.captured_meters,
-        r.population,
-        r.days,
-        esc(&r.strongest.strategy),
-        f1,
-        100.0 * r.strongest.nrmse,
-        100.0 * r.utility.nrmse,
-        uf1,
-        r.mechanism.mutual_information_bits,
-        r.mechanism.level_bits
-    );
-    h += &format!("<p>{}</p>", esc(&meterveil_shared::audit::kinds_in_words(&r.strongest)));
-    if let Some(t) = r.strongest.event_f1_tuned_elsewhere {
-        h += &format!(
-            "<p>With each strategy's threshold tuned on {} other simulated households instead of the captured ones, \
-             the strongest event F1 is {t:.2}: an attacker that cannot tune on the victim does about this well.</p>",
-            r.tuning_meters
-        );
-    }
-    if r.base_checks.iter().any(|c| c.replaced) {
-        h += "<p>The recovered profile of a captured meter predicted far more high readings than it sent; the audit \
-              used a per-slot estimate from its own uploads instead, so as not to understate the attacker.</p>";
-    }
-    h += "<p>A long history still shows a household's habits: folding a meter's own days together recovers its \
-          typical day whatever the dither, so the reconstruction error alone does not measure privacy. What dither \
-          protects is what happened on a given day.</p>";
-    h += &format!("<p class=\"caution\">{}</p>", esc(&r.caution));
-    h += "<h2>Assumptions</h2><ul>";
-    for a in &r.assumptions {
-        h += &format!("<li>{}</li>", esc(a));
-    }
-    h += "</ul>";
-    if !r.strongest.event_by_kind.is_empty() {
-        h += "<h2>Per event kind</h2><table><tr><th>event kind</th><th>events injected</th><th>strongest F1</th><th>recall</th></tr>";
-        for k in &r.strongest.event_by_kind {
-            h += &format!(
-                "<tr><td>{}</td><td>{}</td><td>{:.3}</td><td>{:.3}</td></tr>",
-                esc(&k.kind),
-                k.events,
-                k.f1,
-                k.recall
-            );
+    html! {
+        h2 { "In plain words" }
+        p {
+            (format!(
+                "If someone captured the uploads of {} of this feeder's {} meters for {} days, the strongest attack we \
+                 know ({}) would find appliance events of the kind injected here with an F1 score of {:.2} (1 is every \
+                 event and nothing else; 0 is nothing). Its best reconstruction of the meters' loads is off by {:.0}% \
+                 (nRMSE). The utility, recovering the whole feeder, reaches {:.0}% and an event F1 of {:.2} on the same \
+                 meters. Each reading carries {:.2} bits about the load, of at most {:.2}.",
+                r.captured_meters,
+                r.population,
+                r.days,
+                r.strongest.strategy,
+                f1,
+                100.0 * r.strongest.nrmse,
+                100.0 * r.utility.nrmse,
+                r.utility.event_f1.unwrap_or(0.0),
+                r.mechanism.mutual_information_bits,
+                r.mechanism.level_bits
+            ))
         }
-        h += "</table><p>Per kind, the best strategy's recall of that kind paired with its overall precision.</p>";
-    }
-    h += "<h2>Every strategy</h2><table><tr><th>strategy</th><th>nRMSE</th><th>habit nRMSE</th><th>daily energy error</th><th>event F1</th><th>at threshold</th><th>F1, threshold tuned elsewhere</th><th>F1 at 1 kW</th></tr>";
-    for s in &r.strategies {
-        let e = s.events.as_ref();
-        h += &format!(
-            "<tr><td>{}</td><td>{:.3}</td><td>{}</td><td>{:.1}%</td><td>{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
-            esc(&s.strategy),
-            s.nrmse,
-            s.habit_nrmse.map_or("–".into(), |v| format!("{v:.3}")),
-            100.0 * s.daily_energy_error,
-            e.map_or("–".into(), |e| format!("{:.3}", e.f1)),
-            e.map_or("–".into(), |e| esc(&format!("{} {}", e.best_threshold, e.threshold_unit))),
-            e.and_then(|e| e.f1_tuned_elsewhere).map_or("–".into(), |v| format!("{v:.3}")),
-            e.and_then(|e| e.f1_at_documented_threshold).map_or("–".into(), |v| format!("{v:.3}")),
-        );
-    }
-    h += &format!(
-        "<tr><td>utility (whole feeder)</td><td>{:.3}</td><td>{}</td><td>{:.1}%</td><td>{:.3}</td><td>–</td><td>–</td><td>{}</td></tr></table>",
-        r.utility.nrmse,
-        r.utility.habit_nrmse.map_or("–".into(), |v| format!("{v:.3}")),
-        100.0 * r.utility.daily_energy_error,
-        uf1,
-        r.utility.event_f1_at_documented_threshold.map_or("–".into(), |v| format!("{v:.3}")),
-    );
-    h += &format!(
-        "<h2>The mechanism alone</h2><p>Mutual information between a reading and its level: {:.3} bits. \
-         Local differential-privacy epsilon over [{}, {}] kW: {:.1}; over the feeder's usual range [0, {:.2}] kW: {:.1}. {}.</p>",
-        r.mechanism.mutual_information_bits,
-        r.mechanism.ldp_range_kw[0],
-        r.mechanism.ldp_range_kw[1],
-        r.mechanism.ldp_epsilon,
-        r.mechanism.ldp_typical_range_kw[1],
-        r.mechanism.ldp_epsilon_typical,
-        esc(&r.mechanism.note)
-    );
-    if !r.curve_captured.is_empty() {
-        h += "<h2>More captured meters</h2>";
-        h += &line_chart(
-            "Attacker and utility against captured meters",
-            "captured meters",
-            "F1 / nRMSE",
-            &curve_series(&r.curve_captured, |p| p.captured as f64),
-            1.2,
-        );
-    }
-    if !r.curve_days.is_empty() {
-        h += "<h2>Longer history</h2>";
-        h += &line_chart(
-            "Attacker and utility against days of history",
-            "days of history",
-            "F1 / nRMSE",
-            &curve_series(&r.curve_days, |p| p.days as f64),
-            1.2,
-        );
-    }
-    if let Some(d) = &r.direct {
-        h += &format!(
-            "<h2>On the stored data</h2><p>{}</p><table><tr><th>strategy</th><th>nRMSE to the utility's recovery</th><th>daily energy difference</th></tr>",
-            esc(&d.note)
-        );
-        for s in &d.strategies {
-            h += &format!(
-                "<tr><td>{}</td><td>{:.3}</td><td>{:.1}%</td></tr>",
-                esc(&s.strategy),
-                s.nrmse,
-                100.0 * s.daily_energy_error
-            );
+        p { (meterveil_shared::audit::kinds_in_words(&r.strongest)) }
+        @if let Some(t) = r.strongest.event_f1_tuned_elsewhere {
+            p {
+                (format!(
+                    "With each strategy's threshold tuned on {} other simulated households instead of the captured \
+                     ones, the strongest event F1 is {t:.2}: an attacker that cannot tune on the victim does about \
+                     this well.",
+                    r.tuning_meters
+                ))
+            }
         }
-        h += "</table>";
+        @if r.base_checks.iter().any(|c| c.replaced) {
+            p {
+                "The recovered profile of a captured meter predicted far more high readings than it sent; the audit \
+                 used a per-slot estimate from its own uploads instead, so as not to understate the attacker."
+            }
+        }
+        p {
+            "A long history still shows a household's habits: folding a meter's own days together recovers its \
+             typical day whatever the dither, so the reconstruction error alone does not measure privacy. What \
+             dither protects is what happened on a given day."
+        }
+        p.caution { (r.caution) }
     }
-    h + "</body></html>\n"
+}
+
+fn audit_kinds(r: &AuditReport) -> Markup {
+    html! {
+        @if !r.strongest.event_by_kind.is_empty() {
+            h2 { "Per event kind" }
+            table {
+                tr { th { "event kind" } th { "events injected" } th { "strongest F1" } th { "recall" } }
+                @for k in &r.strongest.event_by_kind {
+                    tr { td { (k.kind) } td { (k.events) } td { (format!("{:.3}", k.f1)) } td { (format!("{:.3}", k.recall)) } }
+                }
+            }
+            p { "Per kind, the best strategy's recall of that kind paired with its overall precision." }
+        }
+    }
+}
+
+fn audit_strategies(r: &AuditReport) -> Markup {
+    let u = &r.utility;
+    html! {
+        h2 { "Every strategy" }
+        table {
+            tr {
+                th { "strategy" } th { "nRMSE" } th { "habit nRMSE" } th { "daily energy error" } th { "event F1" }
+                th { "at threshold" } th { "F1, threshold tuned elsewhere" } th { "F1 at 1 kW" }
+            }
+            @for s in &r.strategies {
+                @let e = s.events.as_ref();
+                tr {
+                    td { (s.strategy) }
+                    td { (format!("{:.3}", s.nrmse)) }
+                    td { (opt3(s.habit_nrmse)) }
+                    td { (format!("{:.1}%", 100.0 * s.daily_energy_error)) }
+                    td { (opt3(e.map(|e| e.f1))) }
+                    td { (e.map_or("–".into(), |e| format!("{} {}", e.best_threshold, e.threshold_unit))) }
+                    td { (opt3(e.and_then(|e| e.f1_tuned_elsewhere))) }
+                    td { (opt3(e.and_then(|e| e.f1_at_documented_threshold))) }
+                }
+            }
+            tr {
+                td { "utility (whole feeder)" }
+                td { (format!("{:.3}", u.nrmse)) }
+                td { (opt3(u.habit_nrmse)) }
+                td { (format!("{:.1}%", 100.0 * u.daily_energy_error)) }
+                td { (format!("{:.3}", u.event_f1.unwrap_or(0.0))) }
+                td { "–" }
+                td { "–" }
+                td { (opt3(u.event_f1_at_documented_threshold)) }
+            }
+        }
+    }
+}
+
+fn audit_mechanism(r: &AuditReport) -> Markup {
+    let m = &r.mechanism;
+    html! {
+        h2 { "The mechanism alone" }
+        p {
+            (format!(
+                "Mutual information between a reading and its level: {:.3} bits. Local differential-privacy epsilon \
+                 over [{}, {}] kW: {:.1}; over the feeder's usual range [0, {:.2}] kW: {:.1}. {}.",
+                m.mutual_information_bits,
+                m.ldp_range_kw[0],
+                m.ldp_range_kw[1],
+                m.ldp_epsilon,
+                m.ldp_typical_range_kw[1],
+                m.ldp_epsilon_typical,
+                m.note
+            ))
+        }
+    }
+}
+
+fn audit_curves(r: &AuditReport) -> Markup {
+    let captured = curve_series(&r.curve_captured, |p| p.captured as f64);
+    let days = curve_series(&r.curve_days, |p| p.days as f64);
+    html! {
+        @if !r.curve_captured.is_empty() {
+            h2 { "More captured meters" }
+            (PreEscaped(line_chart("Attacker and utility against captured meters", "captured meters", "F1 / nRMSE", &captured, 1.2)))
+        }
+        @if !r.curve_days.is_empty() {
+            h2 { "Longer history" }
+            (PreEscaped(line_chart("Attacker and utility against days of history", "days of history", "F1 / nRMSE", &days, 1.2)))
+        }
+    }
+}
+
+fn audit_direct(r: &AuditReport) -> Markup {
+    html! {
+        @if let Some(d) = &r.direct {
+            h2 { "On the stored data" }
+            p { (d.note) }
+            table {
+                tr { th { "strategy" } th { "nRMSE to the utility's recovery" } th { "daily energy difference" } }
+                @for s in &d.strategies {
+                    tr { td { (s.strategy) } td { (format!("{:.3}", s.nrmse)) } td { (format!("{:.1}%", 100.0 * s.daily_energy_error)) } }
+                }
+            }
+        }
+    }
 }
 
 /// The calibration's report: the recommendation or why there is none, and the trade-off curves.
 pub fn calibration_html(title: &str, c: &Calibration) -> String {
-    let mut h = format!("<!doctype html><html lang=\"en\"><head><meta charset=\"utf-8\"><title>{}</title><style>{STYLE}</style></head><body>", esc(title));
-    h += &format!(
-        "<h1>{}</h1><p><strong>{}</strong></p><p>{}</p>",
-        esc(title),
-        if c.meets_targets { "Targets met." } else { "Targets not met." },
-        esc(&c.message)
-    );
-    h += &format!(
-        "<p>Recommended profile: {} dither, scale {:.2} kW, boundaries {:?} kW.</p>",
-        esc(&c.recommended.noise),
-        c.recommended.scale_kw,
-        c.recommended.boundaries_kw
-    );
     let mut sets: Vec<(meterveil_shared::RegisterPeriod, Vec<f64>)> = Vec::new();
     for p in &c.curve {
         let key = (p.register_period, p.boundaries_kw.clone());
@@ -226,22 +266,60 @@ pub fn calibration_html(title: &str, c: &Calibration) -> String {
         ));
     }
     let refs: Vec<(&str, Vec<(f64, f64)>)> = series.iter().map(|(n, v)| (n.as_str(), v.clone())).collect();
-    h += &line_chart("Trade-off against the dither scale", "scale (kW)", "F1 / 5 × energy error", &refs, 1.0);
-    h += "<table><tr><th>register reads</th><th>levels</th><th>scale kW</th><th>attacker F1</th><th>strategy</th><th>utility daily energy error</th></tr>";
-    for p in &c.curve {
-        h += &format!(
-            "<tr><td>{}</td><td>{}</td><td>{:.3}</td><td>{:.3}</td><td>{}</td><td>{:.1}%</td></tr>",
-            p.register_period.as_str(),
-            p.levels,
-            p.scale_kw,
-            p.attacker_event_f1,
-            esc(&p.attacker_strategy),
-            100.0 * p.utility_daily_energy_error
-        );
+    let chart = line_chart("Trade-off against the dither scale", "scale (kW)", "F1 / 5 × energy error", &refs, 1.0);
+    report_page(
+        title,
+        html! {
+            p { strong { (if c.meets_targets { "Targets met." } else { "Targets not met." }) } }
+            p { (c.message) }
+            p {
+                (format!(
+                    "Recommended profile: {} dither, scale {:.2} kW, boundaries {:?} kW.",
+                    c.recommended.noise, c.recommended.scale_kw, c.recommended.boundaries_kw
+                ))
+            }
+            (PreEscaped(chart))
+            table {
+                tr {
+                    th { "register reads" } th { "levels" } th { "scale kW" } th { "attacker F1" } th { "strategy" }
+                    th { "utility daily energy error" }
+                }
+                @for p in &c.curve {
+                    tr {
+                        td { (p.register_period.as_str()) }
+                        td { (p.levels) }
+                        td { (format!("{:.3}", p.scale_kw)) }
+                        td { (format!("{:.3}", p.attacker_event_f1)) }
+                        td { (p.attacker_strategy) }
+                        td { (format!("{:.1}%", 100.0 * p.utility_daily_energy_error)) }
+                    }
+                }
+            }
+            (calibration_searches(c))
+            p.caution { (meterveil_shared::audit::CAUTION) }
+        },
+    )
+}
+
+/// How each level set's search for its smallest safe scale ended.
+fn calibration_searches(c: &Calibration) -> Markup {
+    html! {
+        @if !c.searches.is_empty() {
+            h2 { "How each search ended" }
+            table {
+                tr { th { "register reads" } th { "levels" } th { "bracket kW" } th { "iterations" } th { "stop" } }
+                @for sc in &c.searches {
+                    tr {
+                        td { (sc.register_period.as_str()) }
+                        td { (sc.levels) }
+                        td { (sc.bracket_kw.map_or("–".into(), |(a, b)| format!("{a:.3} – {b:.3}"))) }
+                        td { (sc.iterations) }
+                        td { (serde_json::to_value(&sc.stop).ok().map(|v| v.to_string().trim_matches('"').to_owned()).unwrap_or_default()) }
+                    }
+                }
+            }
+        }
     }
-    h += "</table>";
-    h += &format!("<p class=\"caution\">{}</p>", esc(meterveil_shared::audit::CAUTION));
-    h + "</body></html>\n"
 }
 
 /// A meter's recovered profile with its band, and its stored levels drawn at

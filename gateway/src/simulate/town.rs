@@ -168,8 +168,7 @@ impl Town {
     /// The meter's load for day `d` (0-based), one value per 15-minute interval, kW.
     pub fn day_load(&self, h: &Household, d: u32) -> [f64; 96] {
         let day_epoch = self.start_day + i64::from(d) * 86_400;
-        // 1970-01-01 was a Thursday; 0 = Monday.
-        let weekday = ((day_epoch / 86_400 + 3) % 7) as u32;
+        let weekday = meterveil_shared::domain::utc_weekday(day_epoch);
         let temp = self.temperature_c.get(d as usize).copied().unwrap_or(5.0);
         h.day_load(d, weekday, temp)
     }

@@ -30,7 +30,7 @@ impl DayLayout {
     /// 0 = Monday … 6 = Sunday, for the UTC day of column `j`.
     pub fn weekday(&self, j: usize) -> u32 {
         let t = self.window_start + j as i64 * i64::from(self.interval_s);
-        ((t.div_euclid(86_400) + 3).rem_euclid(7)) as u32
+        crate::domain::utc_weekday(t)
     }
 }
 

@@ -18,7 +18,9 @@ use serde_json::{json, Value};
 
 use super::{now_s, AppState, Operator};
 use crate::error::ApiError;
-use crate::report::{esc, line_chart, profile_chart, STYLE};
+use maud::{html, Markup, PreEscaped, DOCTYPE};
+
+use crate::report::{line_chart, profile_chart, STYLE};
 
 const SESSION_COOKIE: &str = "mv_session";
 const SESSION_S: i64 = 8 * 3600;
@@ -104,13 +106,26 @@ impl FromRequestParts<AppState> for Viewer {
     }
 }
 
-fn page(title: &str, body: &str, refresh: bool) -> Html<String> {
-    let meta = if refresh { "<meta http-equiv=\"refresh\" content=\"5\">" } else { "" };
-    Html(format!(
-        "<!doctype html><html lang=\"en\"><head><meta charset=\"utf-8\">{meta}<title>{t}</title><style>{STYLE}</style></head>\
-         <body><p><a href=\"/dashboard\">Meterveil dashboard</a></p><h1>{t}</h1>{body}</body></html>\n",
-        t = esc(title)
-    ))
+fn page(title: &str, body: Markup, refresh: bool) -> Html<String> {
+    Html(
+        html! {
+            (DOCTYPE)
+            html lang="en" {
+                head {
+                    meta charset="utf-8";
+                    @if refresh { meta http-equiv="refresh" content="5"; }
+                    title { (title) }
+                    style { (PreEscaped(STYLE)) }
+                }
+                body {
+                    p { a href="/dashboard" { "Meterveil dashboard" } }
+                    h1 { (title) }
+                    (body)
+                }
+            }
+        }
+        .into_string(),
+    )
 }
 
 fn with_session(state: &AppState, to: &str) -> Response {
@@ -122,7 +137,13 @@ fn with_session(state: &AppState, to: &str) -> Response {
 async fn login_page() -> Html<String> {
     page(
         "Sign in",
-        "<form method=\"post\" action=\"/dashboard/login\"><label>Operator token <input type=\"password\" name=\"token\" autocomplete=\"off\"></label> <button type=\"submit\">Sign in</button></form>",
+        html! {
+            form method="post" action="/dashboard/login" {
+                label { "Operator token " input type="password" name="token" autocomplete="off"; }
+                " "
+                button type="submit" { "Sign in" }
+            }
+        },
         false,
     )
 }
@@ -140,7 +161,7 @@ async fn login(State(s): State<AppState>, Form(f): Form<LoginForm>) -> Response 
             StatusCode::UNAUTHORIZED,
             page(
                 "Sign in",
-                "<p>That operator token is wrong.</p><p><a href=\"/dashboard/login\">Try again</a></p>",
+                html! { p { "That operator token is wrong." } p { a href="/dashboard/login" { "Try again" } } },
                 false,
             ),
         )
@@ -183,13 +204,63 @@ async fn enter(State(s): State<AppState>, Query(q): Query<EnterQuery>) -> Respon
     if s.dashboard.redeem(&q.code) {
         with_session(&s, &safe_next(q.next.as_deref()))
     } else {
-        (StatusCode::UNAUTHORIZED, page("Sign in", "<p>This sign-in link was used or has expired.</p>", false))
+        (StatusCode::UNAUTHORIZED, page("Sign in", html! { p { "This sign-in link was used or has expired." } }, false))
             .into_response()
     }
 }
 
 async fn overview(_: Viewer, State(s): State<AppState>) -> Result<Html<String>, ApiError> {
-    let mut b = String::from("<h2>Feeders</h2><table><tr><th>feeder</th><th>time zone</th><th>meters</th><th>readings</th><th>completeness</th><th>register reads</th><th>dither profile</th></tr>");
+    let feeders = feeder_rows(&s).await?;
+    let jobs = s.store.list_jobs(30).await?;
+    let live = jobs.iter().any(|j| j.state == "running" || j.state == "queued");
+    let body = html! {
+        h2 { "Feeders" }
+        table {
+            tr {
+                th { "feeder" } th { "time zone" } th { "meters" } th { "readings" } th { "completeness" }
+                th { "register reads" } th { "dither profile" }
+            }
+            @for (f, tz, completeness, profile) in &feeders {
+                tr {
+                    td { (f.feeder_id) } td { (tz) } td { (f.meters) } td { (f.readings) } td { (completeness) }
+                    td { (f.register_reads) } td { (profile) }
+                }
+            }
+        }
+        h2 { "Jobs" }
+        table {
+            tr { th { "job" } th { "kind" } th { "state" } th { "progress" } th { "attempts" } th { "message" } }
+            @for j in &jobs {
+                @let page = match (j.kind.as_str(), j.state.as_str()) {
+                    ("recover", "done") => Some("recoveries"),
+                    ("cluster", "done") => Some("clusterings"),
+                    ("audit" | "calibrate", "done") => Some("analyses"),
+                    _ => None,
+                };
+                tr {
+                    td {
+                        @if let Some(page) = page {
+                            a href=(format!("/dashboard/{page}/{}", j.job_id)) { (j.job_id) }
+                        } @else {
+                            (j.job_id)
+                        }
+                    }
+                    td { (j.kind) }
+                    td { (j.state) }
+                    td { progress max="1" value=(format!("{:.3}", j.progress)) {} (format!(" {:.0}%", 100.0 * j.progress)) }
+                    td { (j.attempts) }
+                    td { (j.error.as_deref().unwrap_or(&j.message)) }
+                }
+            }
+        }
+        @if live { p { "This page refreshes every 5 seconds while jobs run." } }
+    };
+    Ok(page("Meterveil dashboard", body, live))
+}
+
+/// Each feeder's summary with its time zone, completeness and profile in words.
+async fn feeder_rows(s: &AppState) -> Result<Vec<(crate::store::FeederSummary, String, String, String)>, ApiError> {
+    let mut out = Vec::new();
     for f in s.store.feeder_summaries().await? {
         let id = FeederId::parse(&f.feeder_id).map_err(ApiError::Invalid)?;
         let tz = s.store.feeder_time_zone(&id).await?.unwrap_or_default();
@@ -209,41 +280,9 @@ async fn overview(_: Viewer, State(s): State<AppState>) -> Result<Html<String>, 
                 Err(e) => format!("v{}: invalid ({e})", p.version),
             })
             .unwrap_or_else(|| "none".into());
-        b += &format!(
-            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{completeness}</td><td>{}</td><td>{}</td></tr>",
-            esc(&f.feeder_id),
-            esc(&tz),
-            f.meters,
-            f.readings,
-            f.register_reads,
-            esc(&profile)
-        );
+        out.push((f, tz, completeness, profile));
     }
-    b += "</table><h2>Jobs</h2><table><tr><th>job</th><th>kind</th><th>state</th><th>progress</th><th>attempts</th><th>message</th></tr>";
-    let jobs = s.store.list_jobs(30).await?;
-    let live = jobs.iter().any(|j| j.state == "running" || j.state == "queued");
-    for j in &jobs {
-        let link = match (j.kind.as_str(), j.state.as_str()) {
-            ("recover", "done") => format!("<a href=\"/dashboard/recoveries/{0}\">{0}</a>", esc(&j.job_id)),
-            ("cluster", "done") => format!("<a href=\"/dashboard/clusterings/{0}\">{0}</a>", esc(&j.job_id)),
-            ("audit" | "calibrate", "done") => format!("<a href=\"/dashboard/analyses/{0}\">{0}</a>", esc(&j.job_id)),
-            _ => esc(&j.job_id),
-        };
-        b += &format!(
-            "<tr><td>{link}</td><td>{}</td><td>{}</td><td><progress max=\"1\" value=\"{:.3}\"></progress> {:.0}%</td><td>{}</td><td>{}</td></tr>",
-            esc(&j.kind),
-            esc(&j.state),
-            j.progress,
-            100.0 * j.progress,
-            j.attempts,
-            esc(j.error.as_deref().unwrap_or(&j.message))
-        );
-    }
-    b += "</table>";
-    if live {
-        b += "<p>This page refreshes every 5 seconds while jobs run.</p>";
-    }
-    Ok(page("Meterveil dashboard", &b, live))
+    Ok(out)
 }
 
 #[derive(Deserialize)]
@@ -259,7 +298,7 @@ async fn meter_page(
 ) -> Result<Html<String>, ApiError> {
     let job = super::recoveries::find(&s, &id).await?;
     if job.state != "done" {
-        return Ok(page(&format!("Recovery {id}"), &format!("<p>The job is {}.</p>", esc(&job.state)), true));
+        return Ok(page(&format!("Recovery {id}"), html! { p { "The job is " (job.state) "." } }, true));
     }
     let feeder = FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
     let meters = s.store.meters_of(&feeder).await?;
@@ -287,24 +326,28 @@ async fn meter_page(
         .into_iter()
         .map(|(t, l)| (t, if l == 0 { 0.0 } else { bounds.get(usize::from(l) - 1).copied().unwrap_or(0.0) }))
         .collect();
-    let mut b = format!(
-        "<p>Feeder {} · window starting {} (UTC epoch) · first 7 days shown.</p>",
-        esc(&job.feeder_id),
-        job.window_start
-    );
-    b += &profile_chart(&format!("Meter {meter}"), job.window_start, &recovered, &levels);
     let counts = |f: &str| rows.iter().filter(|r| r.flag == f).count();
-    b += &format!(
-        "<p>Intervals: {} derived, {} estimated (no reading), {} corrected (reading judged corrupt).</p><h2>Meters</h2><p>",
-        counts("derived"),
-        counts("estimated"),
-        counts("corrected")
-    );
-    for m in &meters {
-        b += &format!("<a href=\"/dashboard/recoveries/{}?meter_id={1}\">{1}</a> ", esc(&id), esc(m));
-    }
-    b += "</p>";
-    Ok(page(&format!("Recovered profile of {meter}"), &b, false))
+    let chart = profile_chart(&format!("Meter {meter}"), job.window_start, &recovered, &levels);
+    let body = html! {
+        p { "Feeder " (job.feeder_id) " · window starting " (job.window_start) " (UTC epoch) · first 7 days shown." }
+        (PreEscaped(chart))
+        p {
+            (format!(
+                "Intervals: {} derived, {} estimated (no reading), {} corrected (reading judged corrupt).",
+                counts("derived"),
+                counts("estimated"),
+                counts("corrected")
+            ))
+        }
+        h2 { "Meters" }
+        p {
+            @for m in &meters {
+                a href=(format!("/dashboard/recoveries/{id}?meter_id={m}")) { (m) }
+                " "
+            }
+        }
+    };
+    Ok(page(&format!("Recovered profile of {meter}"), body, false))
 }
 
 async fn clusters_page(_: Viewer, State(s): State<AppState>, Path(id): Path<String>) -> Result<Html<String>, ApiError> {
@@ -333,22 +376,31 @@ async fn clusters_page(_: Viewer, State(s): State<AppState>, Path(id): Path<Stri
             })
             .collect()
     };
-    let mut b = format!(
-        "<p>{} customers in {} clusters (count chosen by {}); {} customers fit no cluster well (unassigned: \
-         less than half of their self-expression weight inside their cluster). A cluster's coherence is the \
-         share of its members' weight that stays inside it; low coherence means it blends into others.</p>",
-        r["meters"],
-        r["clusters"],
-        esc(r["chosen_by"].as_str().unwrap_or("?")),
-        r["unassigned"].as_u64().map_or("an unknown number of".to_owned(), |n| n.to_string()),
-    );
-    for (key, title) in [("weekday_kw", "Representative working day"), ("weekend_kw", "Representative weekend day")] {
-        let series = series_of(key);
-        let y = series.iter().flat_map(|s| s.1.iter().map(|p| p.1)).fold(0.5f64, f64::max) * 1.1;
-        let refs: Vec<(&str, Vec<(f64, f64)>)> = series.iter().map(|(n, v)| (n.as_str(), v.clone())).collect();
-        b += &line_chart(title, "hour of the day (UTC)", "kW", &refs, y);
-    }
-    Ok(page(&format!("Load-shape clusters {id}"), &b, false))
+    let charts: Vec<String> =
+        [("weekday_kw", "Representative working day"), ("weekend_kw", "Representative weekend day")]
+            .into_iter()
+            .map(|(key, title)| {
+                let series = series_of(key);
+                let y = series.iter().flat_map(|s| s.1.iter().map(|p| p.1)).fold(0.5f64, f64::max) * 1.1;
+                let refs: Vec<(&str, Vec<(f64, f64)>)> = series.iter().map(|(n, v)| (n.as_str(), v.clone())).collect();
+                line_chart(title, "hour of the day (UTC)", "kW", &refs, y)
+            })
+            .collect();
+    let body = html! {
+        p {
+            (format!(
+                "{} customers in {} clusters (count chosen by {}); {} customers fit no cluster well (unassigned: \
+                 less than half of their self-expression weight inside their cluster). A cluster's coherence is the \
+                 share of its members' weight that stays inside it; low coherence means it blends into others.",
+                r["meters"],
+                r["clusters"],
+                r["chosen_by"].as_str().unwrap_or("?"),
+                r["unassigned"].as_u64().map_or("an unknown number of".to_owned(), |n| n.to_string()),
+            ))
+        }
+        @for c in &charts { (PreEscaped(c)) }
+    };
+    Ok(page(&format!("Load-shape clusters {id}"), body, false))
 }
 
 async fn analysis_page(_: Viewer, State(s): State<AppState>, Path(id): Path<String>) -> Result<Response, ApiError> {

@@ -16,7 +16,8 @@ use meterveil_shared::FieldError;
 use super::{now_s, AppState};
 use crate::committer::{Committed, Upload};
 use crate::error::ApiError;
-use crate::ingest::{body_sha256, check_header, sequence_reused, BatchHeader, KEY_MISMATCH};
+use crate::ingest::{check_header, sequence_reused, BatchHeader, KEY_MISMATCH};
+use meterveil_shared::auth::body_sha256;
 
 pub fn router() -> Router<AppState> {
     // Bodies may come gzip-compressed; the size limit applies to the decompressed

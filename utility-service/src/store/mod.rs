@@ -401,22 +401,6 @@ impl Store {
         Ok(out)
     }
 
-    /// Every stored level of a feeder as (meter_id, interval_start, level, profile_version),
-    /// ordered by meter and time.
-    pub async fn feeder_levels(&self, feeder: &FeederId) -> Result<Vec<(String, i64, u8, u32)>, StoreError> {
-        let rows = sqlx::query(
-            "SELECT r.meter_id, r.interval_start, r.level, r.profile_version
-             FROM readings r JOIN meters m ON m.meter_id = r.meter_id
-             WHERE m.feeder_id = $1 ORDER BY r.meter_id, r.interval_start",
-        )
-        .bind(feeder.as_str())
-        .fetch_all(&self.pool)
-        .await?;
-        rows.iter()
-            .map(|r| Ok((r.try_get(0)?, r.try_get(1)?, r.try_get::<i64, _>(2)? as u8, r.try_get::<i64, _>(3)? as u32)))
-            .collect()
-    }
-
     /// Names of every column of every table, for the audit that no raw value is stored.
     pub async fn schema_columns(&self) -> Result<Vec<(String, String, String)>, StoreError> {
         if self.backend == Backend::Postgres {
