@@ -228,40 +228,7 @@ impl Outbox {
                 (id, 0, seq)
             }
         };
-        let readings = sqlx::query(
-            "SELECT meter_id, interval_start, level, profile_version FROM pending_levels
-             WHERE batch_id = ? ORDER BY meter_id, interval_start",
-        )
-        .bind(&batch_id)
-        .fetch_all(&mut *tx)
-        .await?
-        .iter()
-        .map(|r| {
-            Ok(ReadingWire {
-                meter_id: r.try_get(0)?,
-                interval_start: r.try_get(1)?,
-                level: r.try_get::<i64, _>(2)? as u8,
-                profile_version: r.try_get::<i64, _>(3)? as u32,
-            })
-        })
-        .collect::<Result<Vec<_>, sqlx::Error>>()?;
-        let registers = sqlx::query(
-            "SELECT meter_id, period_start, read_at, wh FROM pending_registers WHERE batch_id = ?
-             ORDER BY meter_id, read_at",
-        )
-        .bind(&batch_id)
-        .fetch_all(&mut *tx)
-        .await?
-        .iter()
-        .map(|r| {
-            Ok(RegisterWire {
-                meter_id: r.try_get(0)?,
-                period_start: r.try_get(1)?,
-                read_at: r.try_get(2)?,
-                wh: r.try_get::<i64, _>(3)? as u64,
-            })
-        })
-        .collect::<Result<Vec<_>, sqlx::Error>>()?;
+        let (readings, registers) = batch_rows(&mut tx, &batch_id).await?;
         tx.commit().await?;
         Ok(Some(ClaimedBatch { batch_id, sequence, attempts, readings, registers }))
     }
@@ -343,4 +310,46 @@ async fn next_sequence(tx: &mut sqlx::Transaction<'_, sqlx::Sqlite>) -> anyhow::
     Ok(sqlx::query_scalar("UPDATE upload_sequence SET last = last + 1 WHERE id = 1 RETURNING last")
         .fetch_one(&mut **tx)
         .await?)
+}
+
+/// The readings and register advances a batch holds, in upload order.
+async fn batch_rows(
+    tx: &mut sqlx::SqliteConnection,
+    batch_id: &str,
+) -> anyhow::Result<(Vec<ReadingWire>, Vec<RegisterWire>)> {
+    let readings = sqlx::query(
+        "SELECT meter_id, interval_start, level, profile_version FROM pending_levels
+             WHERE batch_id = ? ORDER BY meter_id, interval_start",
+    )
+    .bind(batch_id)
+    .fetch_all(&mut *tx)
+    .await?
+    .iter()
+    .map(|r| {
+        Ok(ReadingWire {
+            meter_id: r.try_get(0)?,
+            interval_start: r.try_get(1)?,
+            level: r.try_get::<i64, _>(2)? as u8,
+            profile_version: r.try_get::<i64, _>(3)? as u32,
+        })
+    })
+    .collect::<Result<Vec<_>, sqlx::Error>>()?;
+    let registers = sqlx::query(
+        "SELECT meter_id, period_start, read_at, wh FROM pending_registers WHERE batch_id = ?
+             ORDER BY meter_id, read_at",
+    )
+    .bind(batch_id)
+    .fetch_all(&mut *tx)
+    .await?
+    .iter()
+    .map(|r| {
+        Ok(RegisterWire {
+            meter_id: r.try_get(0)?,
+            period_start: r.try_get(1)?,
+            read_at: r.try_get(2)?,
+            wh: r.try_get::<i64, _>(3)? as u64,
+        })
+    })
+    .collect::<Result<Vec<_>, sqlx::Error>>()?;
+    Ok((readings, registers))
 }

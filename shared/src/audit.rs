@@ -270,30 +270,8 @@ pub fn attack(
     }
     let wants = |s: Strategy| who.strategies.contains(&s);
     let (alpha, mix) = (who.alpha, who.mix);
-    let s = profile.scale_kw();
-    let table = LikelihoodTable::for_fit(profile, alpha)?;
-    // Per-reading strategies, each meter with its own fitted prior.
-    let mut pm = DMatrix::zeros(k, n);
-    for i in 0..k {
-        let mut row = LevelMatrix::missing(1, n);
-        for j in 0..n {
-            row.set(0, j, levels.get(i, j));
-        }
-        let cm = conditional_means(&table, alpha, &level_counts(&row, profile.levels()));
-        let observed: Vec<f64> = (0..n).filter_map(|j| levels.get(i, j).map(|l| cm[usize::from(l)])).collect();
-        let fill = if observed.is_empty() { 0.0 } else { observed.iter().sum::<f64>() / observed.len() as f64 };
-        for j in 0..n {
-            pm[(i, j)] = levels.get(i, j).map_or(fill, |l| cm[usize::from(l)]);
-        }
-    }
+    let pm = posterior_means(levels, profile, alpha)?;
     let b = profile.boundaries_kw();
-    let mid = |l: u8| -> f64 {
-        let l = usize::from(l);
-        let lo = if l == 0 { (b[0] - 2.0 * s).max(0.0) } else { b[l - 1] };
-        let hi = if l == b.len() { b[b.len() - 1] + 2.0 * s } else { b[l] };
-        (0.5 * (lo + hi)).clamp(0.0, alpha)
-    };
-    let midpoint = DMatrix::from_fn(k, n, |i, j| levels.get(i, j).map_or(pm[(i, j)], mid));
     let mut out = Vec::new();
     let mut push = |strategy: Strategy, x: DMatrix<f64>, detector: Detector| {
         if wants(strategy) {
@@ -306,7 +284,7 @@ pub fn attack(
         let stat = level_runs::top_level_runs(levels, top);
         push(
             Strategy::TopLevelRuns,
-            midpoint,
+            level_midpoints(levels, profile, alpha, &pm),
             Detector::Statistic { stat, grid: &level_runs::RUN_GRID, unit: "consecutive top-level readings" },
         );
     }
@@ -329,20 +307,7 @@ pub fn attack(
     let flayout = DayLayout { window_start: 0, interval_s: layout.interval_s };
     let mut baseline = None;
     if folds_alone {
-        // Each meter's own days.
-        let mut folded = DMatrix::zeros(k, n);
-        for i in 0..k {
-            let (f, days) = fold(levels, &[i], layout);
-            let own: Vec<SumConstraint> = constraints
-                .iter()
-                .filter(|c| c.row == i)
-                .map(|c| SumConstraint { row: 0, cols: c.cols.clone(), sum_kw: c.sum_kw })
-                .collect();
-            let fc = fold_constraints(&own, days, layout);
-            let grid = rank_grid(days, &[1, 2, 3, 5]);
-            let r = recover(&f, profile, &fc, flayout, &attacker_params(grid, alpha)?, quiet)?;
-            folded.row_mut(i).copy_from(&unfold(&r.x, 1, days, n, layout).row(0));
-        }
+        let folded = own_days_folded(levels, profile, constraints, layout, alpha)?;
         baseline = Some(folded.clone());
         push(Strategy::DayFolding, folded, Detector::AboveTypicalDay);
     }
@@ -363,6 +328,66 @@ pub fn attack(
         push(Strategy::FoldedWithReadings, combined, Detector::AboveTypicalDay);
     }
     Ok(out)
+}
+
+/// Per-reading posterior means, each meter with its own fitted prior; a
+/// missing reading takes the mean of the meter's others.
+fn posterior_means(levels: &LevelMatrix, profile: &DitherProfile, alpha: f64) -> Result<DMatrix<f64>, FieldError> {
+    let (k, n) = (levels.rows(), levels.cols());
+    let table = LikelihoodTable::for_fit(profile, alpha)?;
+    let mut pm = DMatrix::zeros(k, n);
+    for i in 0..k {
+        let mut row = LevelMatrix::missing(1, n);
+        for j in 0..n {
+            row.set(0, j, levels.get(i, j));
+        }
+        let cm = conditional_means(&table, alpha, &level_counts(&row, profile.levels()));
+        let observed: Vec<f64> = (0..n).filter_map(|j| levels.get(i, j).map(|l| cm[usize::from(l)])).collect();
+        let fill = if observed.is_empty() { 0.0 } else { observed.iter().sum::<f64>() / observed.len() as f64 };
+        for j in 0..n {
+            pm[(i, j)] = levels.get(i, j).map_or(fill, |l| cm[usize::from(l)]);
+        }
+    }
+    Ok(pm)
+}
+
+/// Each reading at the midpoint of its level's band (the outer bands reach two
+/// dither scales beyond their boundary); a missing one at its posterior mean.
+fn level_midpoints(levels: &LevelMatrix, profile: &DitherProfile, alpha: f64, pm: &DMatrix<f64>) -> DMatrix<f64> {
+    let (b, s) = (profile.boundaries_kw(), profile.scale_kw());
+    let mid = |l: u8| -> f64 {
+        let l = usize::from(l);
+        let lo = if l == 0 { (b[0] - 2.0 * s).max(0.0) } else { b[l - 1] };
+        let hi = if l == b.len() { b[b.len() - 1] + 2.0 * s } else { b[l] };
+        (0.5 * (lo + hi)).clamp(0.0, alpha)
+    };
+    DMatrix::from_fn(levels.rows(), levels.cols(), |i, j| levels.get(i, j).map_or(pm[(i, j)], mid))
+}
+
+/// Day folding of each meter on its own: its days as the rows of a low-rank fit.
+fn own_days_folded(
+    levels: &LevelMatrix,
+    profile: &DitherProfile,
+    constraints: &[SumConstraint],
+    layout: DayLayout,
+    alpha: f64,
+) -> Result<DMatrix<f64>, FieldError> {
+    let (k, n) = (levels.rows(), levels.cols());
+    let flayout = DayLayout { window_start: 0, interval_s: layout.interval_s };
+    let mut folded = DMatrix::zeros(k, n);
+    for i in 0..k {
+        let (f, days) = fold(levels, &[i], layout);
+        let own: Vec<SumConstraint> = constraints
+            .iter()
+            .filter(|c| c.row == i)
+            .map(|c| SumConstraint { row: 0, cols: c.cols.clone(), sum_kw: c.sum_kw })
+            .collect();
+        let fc = fold_constraints(&own, days, layout);
+        let grid = rank_grid(days, &[1, 2, 3, 5]);
+        let r = recover(&f, profile, &fc, flayout, &attacker_params(grid, alpha)?, &mut |_, _| {})?;
+        folded.row_mut(i).copy_from(&unfold(&r.x, 1, days, n, layout).row(0));
+    }
+    Ok(folded)
 }
 
 /// Scores reconstructions of rows `rows` of `reference` (events' rows index `rows`' positions).

@@ -372,14 +372,7 @@ pub fn calibrate(
 ) -> Result<Calibration, FieldError> {
     cfg.check(base.nrows())?;
     let sim = Simulation::new(base, current, layout, cfg, cfg.seed);
-    let mut sets = cfg.level_sets.clone();
-    if sets.is_empty() {
-        sets.push(current.boundaries_kw().to_vec());
-        sets.push(quantile_boundaries(base.as_slice(), &[0.5, 0.9]));
-        sets.push(quantile_boundaries(base.as_slice(), &[0.2, 0.35, 0.5, 0.65, 0.8, 0.9, 0.97]));
-    }
-    sets.retain(|b| !b.is_empty());
-    sets.dedup();
+    let sets = level_sets(base, current, cfg);
     let (lo, hi) = cfg.scale_range_kw;
     let grid: Vec<f64> = (0..cfg.grid).map(|g| lo * (hi / lo).powf(g as f64 / (cfg.grid - 1) as f64)).collect();
     let aim = cfg.margin * cfg.targets.event_f1_max;
@@ -399,36 +392,8 @@ pub fn calibrate(
             &format!("{} register reads, level set {} of {}", period.as_str(), si % sets.len() + 1, sets.len()),
             si as f64 / total,
         );
-        let seen = RefCell::new(Vec::new());
-        for &s in &grid {
-            seen.borrow_mut().push(sim.evaluate_with(b, s, period)?);
-        }
-        // The smallest grid scale from which the attacker's F1 stays at or under the aim.
-        let first_ok = {
-            let s = seen.borrow();
-            (0..s.len()).find(|&g| s[g..].iter().all(|p| p.attacker_event_f1 <= aim))
-        };
-        let mut search = ScaleSearch {
-            register_period: period,
-            levels: b.len() + 1,
-            bracket_kw: None,
-            iterations: 0,
-            stop: SearchStop::NoScaleMeets,
-        };
-        match first_ok {
-            Some(0) => search.stop = SearchStop::SmallestScaleMeets,
-            Some(g) => {
-                let gap = Gap { sim: &sim, period, boundaries: b, aim, seen: &seen };
-                // A failure inside the bracket leaves the grid's feasible point.
-                (search.iterations, search.stop) = narrow(gap, grid[g - 1], grid[g]);
-                search.bracket_kw = Some((grid[g - 1], grid[g]));
-            }
-            None => {}
-        }
+        let (pts, search) = search_scale(&sim, period, b, &grid, aim)?;
         searches.push(search);
-        let mut pts = seen.into_inner();
-        pts.sort_by(|a, b| a.scale_kw.total_cmp(&b.scale_kw));
-        pts.dedup_by(|a, b| a.scale_kw == b.scale_kw);
         // Accept a scale only when every evaluated larger scale also meets the aim:
         // Monte Carlo F1 is not monotone in the scale, and a lucky dip is no recommendation.
         if let Some(i) = (0..pts.len()).find(|&i| pts[i..].iter().all(|p| p.attacker_event_f1 <= aim)) {
@@ -437,78 +402,7 @@ pub fn calibrate(
         curve.extend(pts);
     }
     progress("done", 1.0);
-    let t = &cfg.targets;
-    let nrmse_max = t.profile_nrmse_max.unwrap_or(f64::INFINITY);
-    let accurate =
-        |p: &TradeoffPoint| p.utility_daily_energy_error <= t.daily_energy_error_max && p.utility_nrmse <= nrmse_max;
-    let feasible = best_per_set
-        .iter()
-        .filter(|p| accurate(p))
-        .min_by(|a, b| a.utility_daily_energy_error.total_cmp(&b.utility_daily_energy_error));
-    let (chosen, meets, message) = match feasible {
-        Some(p) => (
-            p.clone(),
-            true,
-            format!(
-                "{} levels at σ {:.3} kW, {} register reads: the strongest attacker holding {} meter(s) detects events with F1 {:.2} \
-                 (target ≤ {:.2}, searched at {:.2}); the utility's median daily-energy error is {:.1}% (target ≤ {:.1}%) \
-                 and its interval nRMSE {:.2}",
-                p.levels,
-                p.scale_kw,
-                p.register_period.as_str(),
-                t.captured,
-                p.attacker_event_f1,
-                t.event_f1_max,
-                aim,
-                100.0 * p.utility_daily_energy_error,
-                100.0 * t.daily_energy_error_max,
-                p.utility_nrmse
-            ),
-        ),
-        None => {
-            let worst = |p: &TradeoffPoint| {
-                (p.attacker_event_f1 / t.event_f1_max)
-                    .max(p.utility_daily_energy_error / t.daily_energy_error_max)
-                    .max(p.utility_nrmse / nrmse_max)
-            };
-            let p = curve.iter().min_by(|a, b| worst(a).total_cmp(&worst(b))).cloned().ok_or_else(|| {
-                FieldError::new("level_sets", "no candidate could be evaluated")
-            })?;
-            let why = if best_per_set.is_empty() {
-                format!("no scale up to {hi} kW brings the attacker's event F1 to {aim:.2}")
-            } else {
-                format!(
-                    "every scale that brings the attacker's event F1 to {aim:.2} leaves the utility's daily-energy error above {:.1}%{}",
-                    100.0 * t.daily_energy_error_max,
-                    t.profile_nrmse_max.map(|v| format!(" or its interval nRMSE above {v:.2}")).unwrap_or_default()
-                )
-            };
-            let nominal = p.attacker_event_f1 <= t.event_f1_max && accurate(&p);
-            let margin_note = if nominal {
-                format!(
-                    " It meets the stated bounds, but not the search's margin (F1 ≤ {aim:.2}) against Monte Carlo \
-                     scatter: a fresh simulation may exceed the F1 bound."
-                )
-            } else {
-                String::new()
-            };
-            let advice = if current.send_registers() {
-                "Relax a target."
-            } else {
-                "Relax a target, or send register reads (exact daily energy to the utility, and to an eavesdropper)."
-            };
-            let msg = format!(
-                "The targets cannot both be met: {why}. Closest trade-off: {} levels at σ {:.3} kW, attacker F1 {:.2}, \
-                 utility daily-energy error {:.1}%, interval nRMSE {:.2}.{margin_note} {advice}",
-                p.levels,
-                p.scale_kw,
-                p.attacker_event_f1,
-                100.0 * p.utility_daily_energy_error,
-                p.utility_nrmse
-            );
-            (p, false, msg)
-        }
-    };
+    let (chosen, meets, message) = choose(cfg, current, &curve, &best_per_set, aim)?;
     // Round the scale up to 0.01 kW: more dither, never less.
     let recommended = DitherProfileSpec {
         scale_kw: (chosen.scale_kw * 100.0).ceil() / 100.0,
@@ -519,12 +413,147 @@ pub fn calibrate(
         meets_targets: meets,
         recommended,
         chosen,
-        targets: t.clone(),
+        targets: cfg.targets.clone(),
         message,
         evaluations: curve.len(),
         searches,
         curve,
     })
+}
+
+/// The level sets searched: the operator's, or the current boundaries and two
+/// sets at the population's quantiles.
+fn level_sets(base: &DMatrix<f64>, current: &DitherProfile, cfg: &CalibrationConfig) -> Vec<Vec<f64>> {
+    let mut sets = cfg.level_sets.clone();
+    if sets.is_empty() {
+        sets.push(current.boundaries_kw().to_vec());
+        sets.push(quantile_boundaries(base.as_slice(), &[0.5, 0.9]));
+        sets.push(quantile_boundaries(base.as_slice(), &[0.2, 0.35, 0.5, 0.65, 0.8, 0.9, 0.97]));
+    }
+    sets.retain(|b| !b.is_empty());
+    sets.dedup();
+    sets
+}
+
+/// One level set and register period over the scale grid, then Brent's method
+/// between the grid scales that bracket the aim. Returns the evaluated points
+/// by scale, and how the search ended.
+fn search_scale(
+    sim: &Simulation,
+    period: RegisterPeriod,
+    b: &[f64],
+    grid: &[f64],
+    aim: f64,
+) -> Result<(Vec<TradeoffPoint>, ScaleSearch), FieldError> {
+    let seen = RefCell::new(Vec::new());
+    for &s in grid {
+        seen.borrow_mut().push(sim.evaluate_with(b, s, period)?);
+    }
+    // The smallest grid scale from which the attacker's F1 stays at or under the aim.
+    let first_ok = {
+        let s = seen.borrow();
+        (0..s.len()).find(|&g| s[g..].iter().all(|p| p.attacker_event_f1 <= aim))
+    };
+    let mut search = ScaleSearch {
+        register_period: period,
+        levels: b.len() + 1,
+        bracket_kw: None,
+        iterations: 0,
+        stop: SearchStop::NoScaleMeets,
+    };
+    match first_ok {
+        Some(0) => search.stop = SearchStop::SmallestScaleMeets,
+        Some(g) => {
+            let gap = Gap { sim, period, boundaries: b, aim, seen: &seen };
+            // A failure inside the bracket leaves the grid's feasible point.
+            (search.iterations, search.stop) = narrow(gap, grid[g - 1], grid[g]);
+            search.bracket_kw = Some((grid[g - 1], grid[g]));
+        }
+        None => {}
+    }
+    let mut pts = seen.into_inner();
+    pts.sort_by(|a, b| a.scale_kw.total_cmp(&b.scale_kw));
+    pts.dedup_by(|a, b| a.scale_kw == b.scale_kw);
+    Ok((pts, search))
+}
+
+/// The recommendation (the most accurate safe point), whether it meets the
+/// targets, and the message; or the closest trade-off and why none does.
+fn choose(
+    cfg: &CalibrationConfig,
+    current: &DitherProfile,
+    curve: &[TradeoffPoint],
+    best_per_set: &[TradeoffPoint],
+    aim: f64,
+) -> Result<(TradeoffPoint, bool, String), FieldError> {
+    let t = &cfg.targets;
+    let nrmse_max = t.profile_nrmse_max.unwrap_or(f64::INFINITY);
+    let accurate =
+        |p: &TradeoffPoint| p.utility_daily_energy_error <= t.daily_energy_error_max && p.utility_nrmse <= nrmse_max;
+    let feasible = best_per_set
+        .iter()
+        .filter(|p| accurate(p))
+        .min_by(|a, b| a.utility_daily_energy_error.total_cmp(&b.utility_daily_energy_error));
+    if let Some(p) = feasible {
+        let message = format!(
+            "{} levels at σ {:.3} kW, {} register reads: the strongest attacker holding {} meter(s) detects events with F1 {:.2} \
+             (target ≤ {:.2}, searched at {:.2}); the utility's median daily-energy error is {:.1}% (target ≤ {:.1}%) \
+             and its interval nRMSE {:.2}",
+            p.levels,
+            p.scale_kw,
+            p.register_period.as_str(),
+            t.captured,
+            p.attacker_event_f1,
+            t.event_f1_max,
+            aim,
+            100.0 * p.utility_daily_energy_error,
+            100.0 * t.daily_energy_error_max,
+            p.utility_nrmse
+        );
+        return Ok((p.clone(), true, message));
+    }
+    let worst = |p: &TradeoffPoint| {
+        (p.attacker_event_f1 / t.event_f1_max)
+            .max(p.utility_daily_energy_error / t.daily_energy_error_max)
+            .max(p.utility_nrmse / nrmse_max)
+    };
+    let p = curve
+        .iter()
+        .min_by(|a, b| worst(a).total_cmp(&worst(b)))
+        .cloned()
+        .ok_or_else(|| FieldError::new("level_sets", "no candidate could be evaluated"))?;
+    let why = if best_per_set.is_empty() {
+        format!("no scale up to {} kW brings the attacker's event F1 to {aim:.2}", cfg.scale_range_kw.1)
+    } else {
+        format!(
+            "every scale that brings the attacker's event F1 to {aim:.2} leaves the utility's daily-energy error above {:.1}%{}",
+            100.0 * t.daily_energy_error_max,
+            t.profile_nrmse_max.map(|v| format!(" or its interval nRMSE above {v:.2}")).unwrap_or_default()
+        )
+    };
+    let margin_note = if p.attacker_event_f1 <= t.event_f1_max && accurate(&p) {
+        format!(
+            " It meets the stated bounds, but not the search's margin (F1 ≤ {aim:.2}) against Monte Carlo \
+             scatter: a fresh simulation may exceed the F1 bound."
+        )
+    } else {
+        String::new()
+    };
+    let advice = if current.send_registers() {
+        "Relax a target."
+    } else {
+        "Relax a target, or send register reads (exact daily energy to the utility, and to an eavesdropper)."
+    };
+    let msg = format!(
+        "The targets cannot both be met: {why}. Closest trade-off: {} levels at σ {:.3} kW, attacker F1 {:.2}, \
+         utility daily-energy error {:.1}%, interval nRMSE {:.2}.{margin_note} {advice}",
+        p.levels,
+        p.scale_kw,
+        p.attacker_event_f1,
+        100.0 * p.utility_daily_energy_error,
+        p.utility_nrmse
+    );
+    Ok((p, false, msg))
 }
 
 #[cfg(test)]

@@ -390,6 +390,37 @@ fn tuned_thresholds(
         .collect())
 }
 
+/// The figures against more captured meters and against longer history.
+fn curves(
+    sim: &Simulated<'_>,
+    captured: &[usize],
+    cfg: &AuditConfig,
+    layout: DayLayout,
+) -> Result<(Vec<CurvePoint>, Vec<CurvePoint>), FieldError> {
+    let (m, n) = sim.draw.truth.shape();
+    let mut counts: Vec<usize> = cfg.curve_captured.iter().copied().filter(|c| (1..=m).contains(c)).collect();
+    counts.sort_unstable();
+    counts.dedup();
+    let mut curve_captured = Vec::new();
+    for c in counts.into_iter().filter(|c| *c <= sim.draw.curve_rows.len()) {
+        curve_captured.push(curve_point(sim, &sim.draw.curve_rows[..c], 0..n, layout)?);
+    }
+    let days = whole_days(layout, n);
+    let mut curve_days = Vec::new();
+    let mut ds: Vec<usize> = cfg.curve_days.iter().copied().filter(|d| (2..=days.len()).contains(d)).collect();
+    ds.sort_unstable();
+    ds.dedup();
+    for d in ds {
+        let cols = days[0].start..days[d - 1].end;
+        let lay = DayLayout {
+            window_start: layout.window_start + (cols.start as i64) * i64::from(layout.interval_s),
+            ..layout
+        };
+        curve_days.push(curve_point(sim, captured, cols, lay)?);
+    }
+    Ok((curve_captured, curve_days))
+}
+
 /// The parametric bootstrap: events injected into the captured meters of the
 /// utility's recovered profiles (the whole feeder, meters × intervals, checked
 /// against the captured meters' uploads where given), levels re-drawn for
@@ -442,26 +473,8 @@ pub fn bootstrap(
     };
     progress("curves", 0.7);
     let sim = Simulated { draw: &draw, utility: &util.x, profile, attacker: who, tz: cfg.tz };
-    let mut counts: Vec<usize> = cfg.curve_captured.iter().copied().filter(|c| (1..=m).contains(c)).collect();
-    counts.sort_unstable();
-    counts.dedup();
-    let mut curve_captured = Vec::new();
-    for c in counts.into_iter().filter(|c| *c <= draw.curve_rows.len()) {
-        curve_captured.push(curve_point(&sim, &draw.curve_rows[..c], full.clone(), layout)?);
-    }
+    let (curve_captured, curve_days) = curves(&sim, captured, cfg, layout)?;
     let days = whole_days(layout, n);
-    let mut curve_days = Vec::new();
-    let mut ds: Vec<usize> = cfg.curve_days.iter().copied().filter(|d| (2..=days.len()).contains(d)).collect();
-    ds.sort_unstable();
-    ds.dedup();
-    for d in ds {
-        let cols = days[0].start..days[d - 1].end;
-        let lay = DayLayout {
-            window_start: layout.window_start + (cols.start as i64) * i64::from(layout.interval_s),
-            ..layout
-        };
-        curve_days.push(curve_point(&sim, captured, cols, lay)?);
-    }
     progress("mechanism figures", 0.95);
     let mechanism = mechanism_figures(profile, feeder.base.as_slice(), cfg.alpha_kw);
     Ok(AuditReport {

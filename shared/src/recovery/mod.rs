@@ -11,6 +11,7 @@ pub mod outage;
 pub mod params;
 pub mod restarts;
 pub mod solver;
+pub mod start;
 pub mod table;
 
 pub use params::{RankChoice, RecoveryParams, ValidRecoveryParams, DEFAULT_ALPHA_KW};

@@ -133,19 +133,7 @@ pub fn fill_outages(x: &mut DMatrix<f64>, levels: &LevelMatrix, layout: DayLayou
             }
         }
     }
-    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(11);
-    let mut fit = DMatrix::zeros(rows, per_day);
-    let mut warm = None;
-    for _ in 0..EM_ROUNDS {
-        let lr = truncate(&f, DAY_RANK, 6, 1, warm.as_ref(), &mut rng);
-        lr.reconstruct_into(&mut fit);
-        for (idx, v) in f.as_mut_slice().iter_mut().enumerate() {
-            if !known[idx] {
-                *v = fit.as_slice()[idx];
-            }
-        }
-        warm = Some(lr.v);
-    }
+    let fit = complete_low_rank(&mut f, &known);
     let value = |i: usize, j: usize, f: &DMatrix<f64>| {
         let (d, t) = ((j + phase) / per_day, (j + phase) % per_day);
         base(i, d, t) + f[(i * days + d, t)]
@@ -164,6 +152,26 @@ pub fn fill_outages(x: &mut DMatrix<f64>, levels: &LevelMatrix, layout: DayLayou
         }
     }
     gap_cols
+}
+
+/// Low-rank EM on the folded residuals `f`: the unknown entries (not `known`,
+/// column-major) are replaced by a rank-[`DAY_RANK`] fit, [`EM_ROUNDS`] times.
+/// Returns the last fit.
+fn complete_low_rank(f: &mut DMatrix<f64>, known: &[bool]) -> DMatrix<f64> {
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(11);
+    let mut fit = DMatrix::zeros(f.nrows(), f.ncols());
+    let mut warm = None;
+    for _ in 0..EM_ROUNDS {
+        let lr = truncate(f, DAY_RANK, 6, 1, warm.as_ref(), &mut rng);
+        lr.reconstruct_into(&mut fit);
+        for (idx, v) in f.as_mut_slice().iter_mut().enumerate() {
+            if !known[idx] {
+                *v = fit.as_slice()[idx];
+            }
+        }
+        warm = Some(lr.v);
+    }
+    fit
 }
 
 /// The usual estimation rule of VEE practice, for comparison: gaps of up to

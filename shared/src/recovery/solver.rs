@@ -9,6 +9,7 @@ use serde::Serialize;
 
 use super::linalg::{truncate, LowRank};
 use super::restarts::RestartCounter;
+pub use super::start::{conditional_means, initial_estimate, level_counts};
 use super::table::LikelihoodTable;
 use super::{outage, LevelMatrix, RankChoice, SumConstraint, ValidRecoveryParams, MISSING};
 use crate::error::FieldError;
@@ -94,56 +95,6 @@ impl Recovery {
 
 /// Progress reports: (stage, fraction done of that stage).
 pub type ProgressFn<'a> = &'a mut dyn FnMut(&str, f64);
-
-/// Per-level conditional mean E[x | level] under a flat prior on [0, c], kW, for
-/// each c of a grid up to alpha: returns (level means, P(level)) per c.
-fn flat_prior_moments(table: &LikelihoodTable, c: f64) -> (Vec<f64>, Vec<f64>) {
-    let k = table.profile().levels();
-    let steps = 2000;
-    let mut num = vec![0.0; k];
-    let mut den = vec![0.0; k];
-    for i in 0..=steps {
-        let x = c * i as f64 / steps as f64;
-        let w = if i == 0 || i == steps { 0.5 } else { 1.0 };
-        for (level, (nu, de)) in num.iter_mut().zip(den.iter_mut()).enumerate() {
-            let p = table.eval(level as u8, x).0.exp() * w;
-            *nu += p * x;
-            *de += p;
-        }
-    }
-    let total: f64 = den.iter().sum();
-    let means = num.iter().zip(&den).map(|(n, d)| if *d > 0.0 { n / d } else { 0.5 * c }).collect();
-    (means, den.iter().map(|d| d / total).collect())
-}
-
-/// Per-level conditional means E[x | level] under a flat prior on [0, c], with
-/// c ∈ (0, alpha] chosen by maximum marginal likelihood of the observed level
-/// counts. A flat prior over the whole service range would put the top level's
-/// mean near alpha/2, far above any household; fitting c keeps it honest.
-pub fn conditional_means(table: &LikelihoodTable, alpha: f64, level_counts: &[u64]) -> Vec<f64> {
-    let grid = 60;
-    let mut best: Option<(f64, Vec<f64>)> = None;
-    for g in 1..=grid {
-        let c = alpha * g as f64 / grid as f64;
-        let (means, probs) = flat_prior_moments(table, c);
-        let ll: f64 = level_counts.iter().zip(&probs).map(|(&n, &p)| n as f64 * p.max(1e-300).ln()).sum();
-        if best.as_ref().is_none_or(|b| ll > b.0) {
-            best = Some((ll, means));
-        }
-    }
-    best.map(|b| b.1).unwrap_or_else(|| vec![0.5 * alpha; table.profile().levels()])
-}
-
-/// How many readings have each level.
-pub fn level_counts(levels: &LevelMatrix, k: usize) -> Vec<u64> {
-    let mut c = vec![0u64; k];
-    for &v in levels.as_slice() {
-        if v != MISSING && usize::from(v) < k {
-            c[usize::from(v)] += 1;
-        }
-    }
-    c
-}
 
 /// Which observed entries the fit uses.
 #[derive(Clone)]
@@ -254,6 +205,48 @@ impl Ctx<'_> {
         let e = self.p.corrupt_prior;
         let k = self.table.profile().levels() as f64;
         (e / (k * (1.0 - e))).ln()
+    }
+
+    /// The rank of `grid` (ranks above min(m, n) skipped) whose fit on a
+    /// training mask scores the held-out readings best; returns it with its fit.
+    fn choose_rank(
+        &self,
+        grid: &[usize],
+        observed: &[bool],
+        init: &DMatrix<f64>,
+        rng: &mut impl Rng,
+        progress: ProgressFn<'_>,
+        scores: &mut Vec<(usize, f64)>,
+    ) -> (usize, DMatrix<f64>) {
+        let (p, levels) = (self.p, self.levels);
+        let max_rank = levels.rows().min(levels.cols());
+        let mut grid: Vec<usize> = grid.iter().copied().filter(|r| *r <= max_rank).collect();
+        if grid.is_empty() {
+            grid.push(max_rank);
+        }
+        let held: Vec<bool> = observed.iter().map(|&o| o && rng.random_bool(p.holdout_fraction.max(1e-9))).collect();
+        let train = Mask { active: observed.iter().zip(&held).map(|(&o, &h)| o && !h).collect() };
+        let floor = self.corrupt_log_threshold();
+        let mut best: Option<(f64, usize, DMatrix<f64>)> = None;
+        for (gi, &r) in grid.iter().enumerate() {
+            progress("choosing rank", gi as f64 / grid.len() as f64);
+            let f = self.fit(&train, r, init, p.search_iterations, rng);
+            let (mut s, mut c) = (0.0, 0usize);
+            for (idx, &h) in held.iter().enumerate() {
+                if h {
+                    // Clipped at the corruption threshold so a few bad readings do not decide.
+                    s += self.table.eval(levels.as_slice()[idx], f.x.as_slice()[idx]).0.max(floor);
+                    c += 1;
+                }
+            }
+            let score = if c > 0 { s / c as f64 } else { -f.objective };
+            scores.push((r, score));
+            if best.as_ref().is_none_or(|b| score > b.0) {
+                best = Some((score, r, f.x));
+            }
+        }
+        let (_, r, x) = best.unwrap_or_else(|| (0.0, grid[0], init.clone()));
+        (r, x)
     }
 
     fn fit(&self, base: &Mask, rank: usize, init: &DMatrix<f64>, max_iterations: usize, rng: &mut impl Rng) -> Fit {
@@ -423,6 +416,27 @@ fn shift_to_sum(v: &mut [f64], target: f64, alpha: f64) -> bool {
     feasible
 }
 
+/// Levels within the profile's range, and constraints inside the window with finite sums.
+fn check_inputs(
+    levels: &LevelMatrix,
+    profile: &DitherProfile,
+    constraints: &[SumConstraint],
+) -> Result<(), FieldError> {
+    let (m, n, k) = (levels.rows(), levels.cols(), profile.levels());
+    if let Some(bad) = levels.as_slice().iter().find(|&&v| v != MISSING && usize::from(v) >= k) {
+        return Err(FieldError::new("level", format!("{bad} is out of range for a profile with {k} levels")));
+    }
+    for (ci, c) in constraints.iter().enumerate() {
+        if c.row >= m || c.cols.end > n || c.cols.start >= c.cols.end || !c.sum_kw.is_finite() {
+            return Err(FieldError::new(
+                format!("constraints[{ci}]"),
+                "refers to intervals outside the window or has no finite sum",
+            ));
+        }
+    }
+    Ok(())
+}
+
 /// Recovers every meter's profile. `levels` is meters × intervals; `constraints`
 /// fix sums of runs of a meter's intervals (from register reads); `cols_per_day`
 /// and `day_phase` (intervals from the window start to the first UTC midnight)
@@ -438,18 +452,7 @@ pub fn recover(
     let t0 = Instant::now();
     let p = params.get();
     let (m, n) = (levels.rows(), levels.cols());
-    let k = profile.levels();
-    if let Some(bad) = levels.as_slice().iter().find(|&&v| v != MISSING && usize::from(v) >= k) {
-        return Err(FieldError::new("level", format!("{bad} is out of range for a profile with {k} levels")));
-    }
-    for (ci, c) in constraints.iter().enumerate() {
-        if c.row >= m || c.cols.end > n || c.cols.start >= c.cols.end || !c.sum_kw.is_finite() {
-            return Err(FieldError::new(
-                format!("constraints[{ci}]"),
-                "refers to intervals outside the window or has no finite sum",
-            ));
-        }
-    }
+    check_inputs(levels, profile, constraints)?;
     let alpha = p.alpha_kw;
     let table = LikelihoodTable::for_fit(profile, alpha)?;
     let observed: Vec<bool> = levels.as_slice().iter().map(|&v| v != MISSING).collect();
@@ -488,33 +491,7 @@ pub fn recover(
     let (rank, warm_x) = match &p.rank {
         RankChoice::Fixed(r) => ((*r).min(max_rank), None),
         RankChoice::Auto(grid) => {
-            let mut grid: Vec<usize> = grid.iter().copied().filter(|r| *r <= max_rank).collect();
-            if grid.is_empty() {
-                grid.push(max_rank);
-            }
-            let held: Vec<bool> =
-                observed.iter().map(|&o| o && rng.random_bool(p.holdout_fraction.max(1e-9))).collect();
-            let train = Mask { active: observed.iter().zip(&held).map(|(&o, &h)| o && !h).collect() };
-            let floor = ctx.corrupt_log_threshold();
-            let mut best: Option<(f64, usize, DMatrix<f64>)> = None;
-            for (gi, &r) in grid.iter().enumerate() {
-                progress("choosing rank", gi as f64 / grid.len() as f64);
-                let f = ctx.fit(&train, r, &init, p.search_iterations, &mut rng);
-                let (mut s, mut c) = (0.0, 0usize);
-                for (idx, &h) in held.iter().enumerate() {
-                    if h {
-                        // Clipped at the corruption threshold so a few bad readings do not decide.
-                        s += table.eval(levels.as_slice()[idx], f.x.as_slice()[idx]).0.max(floor);
-                        c += 1;
-                    }
-                }
-                let score = if c > 0 { s / c as f64 } else { -f.objective };
-                diagnostics.rank_scores.push((r, score));
-                if best.as_ref().is_none_or(|b| score > b.0) {
-                    best = Some((score, r, f.x));
-                }
-            }
-            let (_, r, x) = best.expect("grid is non-empty");
+            let (r, x) = ctx.choose_rank(grid, &observed, &init, &mut rng, progress, &mut diagnostics.rank_scores);
             (r, Some(x))
         }
     };
@@ -545,41 +522,6 @@ pub fn recover(
     diagnostics.corrected = fit.corrupt.iter().filter(|c| **c).count();
     diagnostics.wall_s = t0.elapsed().as_secs_f64();
     Ok(Recovery { x, flags, std_kw, diagnostics })
-}
-
-/// Per-entry conditional means, missing entries filled by their interval's mean
-/// over the meters that reported (or the overall mean). The solver's start, and
-/// the per-reading baseline tests compare against.
-pub fn initial_estimate(levels: &LevelMatrix, table: &LikelihoodTable, alpha: f64) -> DMatrix<f64> {
-    let cm = conditional_means(table, alpha, &level_counts(levels, table.profile().levels()));
-    let (m, n) = (levels.rows(), levels.cols());
-    let mut x = DMatrix::zeros(m, n);
-    let mut total = (0.0, 0usize);
-    let mut col_means = vec![None; n];
-    for j in 0..n {
-        let (mut s, mut c) = (0.0, 0usize);
-        for i in 0..m {
-            if let Some(l) = levels.get(i, j) {
-                x[(i, j)] = cm[usize::from(l)];
-                s += x[(i, j)];
-                c += 1;
-            }
-        }
-        if c > 0 {
-            col_means[j] = Some(s / c as f64);
-            total.0 += s;
-            total.1 += c;
-        }
-    }
-    let overall = if total.1 > 0 { total.0 / total.1 as f64 } else { 0.0 };
-    for j in 0..n {
-        for i in 0..m {
-            if levels.get(i, j).is_none() {
-                x[(i, j)] = col_means[j].unwrap_or(overall);
-            }
-        }
-    }
-    x
 }
 
 /// First-order standard deviation of each estimate under the rank-r model.
