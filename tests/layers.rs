@@ -202,3 +202,103 @@ fn only_the_demo_links_the_gateway() {
         }
     }
 }
+
+/// Lines of each function in `code` (from its `fn` line to its closing brace),
+/// by brace counting outside comments, strings and character literals.
+fn function_lengths(code: &str) -> Vec<(String, usize, usize)> {
+    let lines: Vec<&str> = code.lines().collect();
+    let strip = |l: &str| -> String {
+        let mut out = String::new();
+        let mut chars = l.chars().peekable();
+        let mut in_str = false;
+        while let Some(c) = chars.next() {
+            match c {
+                '\\' if in_str => {
+                    chars.next();
+                }
+                '"' => in_str = !in_str,
+                '/' if !in_str && chars.peek() == Some(&'/') => break,
+                '\'' if !in_str => {
+                    // A character literal such as '{' (not a lifetime): skip it whole.
+                    let rest: String = chars.clone().take(3).collect();
+                    if rest.chars().nth(1) == Some('\'') {
+                        chars.next();
+                        chars.next();
+                    } else if rest.starts_with('\\') && rest.chars().nth(2) == Some('\'') {
+                        chars.next();
+                        chars.next();
+                        chars.next();
+                    }
+                }
+                _ if !in_str => out.push(c),
+                _ => {}
+            }
+        }
+        out
+    };
+    let mut out = Vec::new();
+    for (i, l) in lines.iter().enumerate() {
+        let t = l.trim_start();
+        let t = t.strip_prefix("pub(crate) ").or_else(|| t.strip_prefix("pub(super) ")).unwrap_or(t);
+        let t = t.strip_prefix("pub ").unwrap_or(t);
+        let t = t.strip_prefix("async ").unwrap_or(t);
+        let Some(rest) = t.strip_prefix("fn ") else { continue };
+        let name: String = rest.chars().take_while(|c| c.is_alphanumeric() || *c == '_').collect();
+        let (mut depth, mut started) = (0i64, false);
+        for (j, l2) in lines.iter().enumerate().skip(i) {
+            let code = strip(l2);
+            if !started && code.trim_end().ends_with(';') {
+                break; // a declaration without a body
+            }
+            for c in code.chars() {
+                match c {
+                    '{' => {
+                        depth += 1;
+                        started = true;
+                    }
+                    '}' => depth -= 1,
+                    _ => {}
+                }
+            }
+            if started && depth == 0 {
+                out.push((name.clone(), i + 1, j - i + 1));
+                break;
+            }
+        }
+    }
+    out
+}
+
+/// No source file over about 600 lines and no function over about 80, in the
+/// three crates' `src/` (tests and benches excepted).
+#[test]
+fn sources_and_functions_stay_small() {
+    const MAX_FILE: usize = 620;
+    const MAX_FN: usize = 85;
+    let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("..");
+    let mut files = Vec::new();
+    for krate in ["shared", "gateway", "utility-service"] {
+        sources(&root.join(krate).join("src"), &mut files);
+    }
+    let mut too_big = Vec::new();
+    for f in &files {
+        let text = std::fs::read_to_string(f).expect("source");
+        let n = text.lines().count();
+        if n > MAX_FILE {
+            too_big.push(format!("{}: {n} lines", f.display()));
+        }
+        for (name, line, len) in function_lengths(&text) {
+            if len > MAX_FN {
+                too_big.push(format!("{}:{line} fn {name}: {len} lines", f.display()));
+            }
+        }
+    }
+    assert!(files.len() > 50, "too few sources found ({})", files.len());
+    assert!(too_big.is_empty(), "over the size limits (files {MAX_FILE}, functions {MAX_FN}):\n{}", too_big.join("\n"));
+}
+
+#[test]
+fn function_lengths_count_braces_outside_strings() {
+    let code = "fn a() {\n    let s = \"{{\";\n    let c = '{';\n    // }\n}\nfn b();\npub async fn c(x: u8) -> u8 {\n    x\n}\n";
+    assert_eq!(function_lengths(code), vec![("a".to_owned(), 1, 5), ("c".to_owned(), 7, 3)]);
+}

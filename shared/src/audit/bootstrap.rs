@@ -134,6 +134,46 @@ impl Default for AuditConfig {
     }
 }
 
+impl AuditConfig {
+    /// Checks every field, naming the first bad one.
+    pub fn check(&self) -> Result<(), FieldError> {
+        if !(self.alpha_kw.is_finite() && self.alpha_kw > 0.0 && self.alpha_kw <= 10_000.0) {
+            return Err(FieldError::new("alpha_kw", "must be a positive number of kW up to 10000"));
+        }
+        if self.events.is_empty() || self.events.len() > 50 {
+            return Err(FieldError::new("events", "name from 1 to 50 event kinds"));
+        }
+        for (i, e) in self.events.iter().enumerate() {
+            let ok = e.kw.is_finite()
+                && e.kw > 0.0
+                && (1..=24 * 60).contains(&e.minutes)
+                && (0.0..24.0).contains(&e.earliest_h)
+                && e.earliest_h <= e.latest_h
+                && e.latest_h < 24.0
+                && (0.0..=1.0).contains(&e.daily_probability);
+            if !ok {
+                return Err(FieldError::new(
+                    format!("events[{i}]"),
+                    "needs kw > 0, minutes from 1 to 1440, 0 ≤ earliest_h ≤ latest_h < 24 and a probability in [0, 1]",
+                ));
+            }
+        }
+        if self.strategies.is_empty() {
+            return Err(FieldError::new("strategies", "name at least one strategy"));
+        }
+        if self.curve_captured.len() > 20 {
+            return Err(FieldError::new("curve_captured", "at most 20 points"));
+        }
+        if self.curve_days.len() > 20 {
+            return Err(FieldError::new("curve_days", "at most 20 points"));
+        }
+        if self.tuning_meters > 20 {
+            return Err(FieldError::new("tuning_meters", "must be at most 20"));
+        }
+        Ok(())
+    }
+}
+
 pub const CAUTION: &str = "These figures are estimates from simulated attacks under stated assumptions (the attacker \
 knows the mechanism and the profile, not the dither; events are injected from a documented mix), not a legal privacy \
 guarantee. A stronger attack than those tried here may exist. Dithering is a privacy measure with limits: a long \
@@ -280,6 +320,7 @@ pub fn simulate(feeder: &Feeder<'_>, captured: &[usize], cfg: &AuditConfig) -> R
     use rand::SeedableRng;
     let (base, profile, layout) = (feeder.base, feeder.profile, feeder.layout);
     let (m, n) = base.shape();
+    cfg.check()?;
     check_captured(captured, m)?;
     if whole_days(layout, n).len() < 2 {
         return Err(FieldError::new("window", "the audit needs at least two whole days"));
@@ -498,4 +539,36 @@ pub fn bootstrap(
         assumptions: assumptions(profile),
         caution: CAUTION.into(),
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn each_bad_audit_setting_is_named() {
+        let d = AuditConfig::default;
+        let bad_event = |f: fn(&mut EventKind)| {
+            let mut c = d();
+            f(&mut c.events[0]);
+            c
+        };
+        let cases = [
+            (AuditConfig { alpha_kw: 0.0, ..d() }, "alpha_kw"),
+            (AuditConfig { alpha_kw: f64::NAN, ..d() }, "alpha_kw"),
+            (AuditConfig { events: vec![], ..d() }, "events"),
+            (bad_event(|e| e.kw = -1.0), "events[0]"),
+            (bad_event(|e| e.minutes = 0), "events[0]"),
+            (bad_event(|e| e.latest_h = 25.0), "events[0]"),
+            (bad_event(|e| e.daily_probability = 1.5), "events[0]"),
+            (AuditConfig { strategies: vec![], ..d() }, "strategies"),
+            (AuditConfig { curve_captured: vec![1; 21], ..d() }, "curve_captured"),
+            (AuditConfig { curve_days: vec![7; 21], ..d() }, "curve_days"),
+            (AuditConfig { tuning_meters: 50, ..d() }, "tuning_meters"),
+        ];
+        for (c, field) in cases {
+            assert_eq!(c.check().unwrap_err().field, field);
+        }
+        assert!(d().check().is_ok());
+    }
 }
