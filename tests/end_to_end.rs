@@ -1378,6 +1378,72 @@ async fn a_job_whose_worker_is_killed_is_retried_by_another_and_never_half_serve
     assert!(!out.status.success() && String::from_utf8_lossy(&out.stderr).contains("already ended"));
 }
 
+/// Dashboard sessions live in the database: a session opened on one `serve`
+/// process is accepted by a second on the same database, and by both after
+/// they restart; a link minted by `utility-service dashboard-link` works on
+/// either, once. Only digests are stored.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn dashboard_sessions_hold_across_processes_and_restarts() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let db = test_database(dir.path()).await;
+    let http = reqwest::Client::builder().redirect(reqwest::redirect::Policy::none()).build().expect("client");
+    let (mut a, url_a) = serve_child(&db, 30);
+    let (mut b, url_b) = serve_child(&db, 30);
+    // Sign in on A with the operator token.
+    let r = http
+        .post(format!("{url_a}/dashboard/login"))
+        .header("content-type", "application/x-www-form-urlencoded")
+        .body(format!("token={TOKEN}"))
+        .send()
+        .await
+        .expect("login");
+    assert!(r.status().is_redirection(), "{}", r.status());
+    let set = r.headers()["set-cookie"].to_str().expect("cookie").to_owned();
+    let cookie = set.split(';').next().expect("name=value").to_owned();
+    let secret = cookie.split_once('=').expect("=").1.to_owned();
+    let overview = |url: String, cookie: String| {
+        let http = http.clone();
+        async move {
+            let r = http.get(format!("{url}/dashboard")).header("cookie", cookie).send().await.expect("get");
+            r.status().as_u16()
+        }
+    };
+    assert_eq!(overview(url_b.clone(), cookie.clone()).await, 200, "B does not know A's session");
+    assert_eq!(overview(url_b.clone(), format!("mv_session={}", "0".repeat(32))).await, 303, "a made-up session");
+    // Only the secret's digest is stored.
+    let store = meterveil_service::store::Store::open(&db).await.expect("open");
+    let stored: Vec<String> = sqlx::query_scalar("SELECT token_sha256 FROM dashboard_sessions")
+        .fetch_all(store.pool())
+        .await
+        .expect("sessions");
+    assert_eq!(stored, vec![meterveil_shared::auth::body_sha256(secret.as_bytes())]);
+    // Both restart: the session holds.
+    for c in [&mut a, &mut b] {
+        c.kill().expect("kill");
+        c.wait().expect("reaped");
+    }
+    let (mut a, url_a) = serve_child(&db, 30);
+    let (mut b, url_b) = serve_child(&db, 30);
+    assert_eq!(overview(url_a.clone(), cookie.clone()).await, 200, "the session did not survive a restart");
+    assert_eq!(overview(url_b.clone(), cookie.clone()).await, 200);
+    // A link minted from the command line opens a session on B, once.
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
+        .args(["dashboard-link", "--database-url", &db, "--url", &url_b])
+        .output()
+        .expect("dashboard-link");
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let link = String::from_utf8_lossy(&out.stdout).trim().to_owned();
+    assert!(link.starts_with(&format!("{url_b}/dashboard/enter?code=")), "{link}");
+    let r = http.get(&link).send().await.expect("enter");
+    assert!(r.status().is_redirection() && r.headers().contains_key("set-cookie"), "{}", r.status());
+    let r = http.get(link.replace(&url_b, &url_a)).send().await.expect("enter again");
+    assert_eq!(r.status().as_u16(), 401, "a one-time link worked twice");
+    for c in [&mut a, &mut b] {
+        let _ = c.kill();
+        let _ = c.wait();
+    }
+}
+
 /// Loads a page in headless Chromium (Debian's package, installed by the test
 /// command) twice, with two one-time sign-in links to it: a screenshot into
 /// `png`, then the rendered DOM. Returns (dom, both runs' log).

@@ -18,7 +18,6 @@ pub struct RunningService {
     pub addr: SocketAddr,
     pub store: Store,
     pub metrics: Arc<Metrics>,
-    dashboard: Arc<crate::routes::dashboard::Sessions>,
     shutdown: Option<oneshot::Sender<()>>,
     handle: JoinHandle<std::io::Result<()>>,
 }
@@ -30,8 +29,8 @@ impl RunningService {
     }
 
     /// A one-time dashboard sign-in path to `next`.
-    pub fn dashboard_link(&self, next: &str) -> String {
-        self.dashboard.one_time_link(next)
+    pub async fn dashboard_link(&self, next: &str) -> anyhow::Result<String> {
+        Ok(crate::routes::dashboard::one_time_link(&self.store, next).await?)
     }
 
     /// Stops accepting connections, finishes in-flight requests and returns.
@@ -75,11 +74,9 @@ pub async fn start_with_store(
     let state = AppState {
         work: crate::jobs::WorkContext::new(store.clone(), config),
         metrics: metrics.clone(),
-        dashboard: Default::default(),
         buckets: Default::default(),
         committer,
     };
-    let dashboard = state.dashboard.clone();
     let worker = state.config.run_worker.then(|| tokio::spawn(crate::jobs::worker::run(state.work.clone())));
     // A request that takes longer than this is answered 408 and dropped; a batch's
     // commit is one transaction, so nothing half-written remains.
@@ -109,5 +106,5 @@ pub async fn start_with_store(
         served
     });
     tracing::info!(%addr, "utility service listening");
-    Ok(RunningService { addr, store, metrics, dashboard, shutdown: Some(tx), handle })
+    Ok(RunningService { addr, store, metrics, shutdown: Some(tx), handle })
 }

@@ -59,6 +59,18 @@ pub enum Command {
         #[arg(long = "feeder", value_name = "FEEDER_ID")]
         feeders: Vec<String>,
     },
+    /// Print a fresh one-time dashboard sign-in link (valid two minutes) for
+    /// any `serve` process on this database.
+    DashboardLink {
+        #[arg(long, env = "DATABASE_URL", default_value = "sqlite:meterveil.sqlite")]
+        database_url: String,
+        /// The service's address, put in front of the link's path.
+        #[arg(long)]
+        url: Option<String>,
+        /// The dashboard page the link opens.
+        #[arg(long, default_value = "/dashboard")]
+        next: String,
+    },
     /// List, inspect or cancel jobs in the database.
     Jobs {
         #[arg(long, env = "DATABASE_URL", default_value = "sqlite:meterveil.sqlite")]
@@ -272,6 +284,12 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
     match cli.command {
         Command::Work { database_url, job_lease_s, feeders } => work(database_url, job_lease_s, feeders).await,
         Command::Jobs { database_url, action } => jobs_command(&database_url, action).await,
+        Command::DashboardLink { database_url, url, next } => {
+            let store = crate::store::Store::open(&database_url).await?;
+            let path = crate::routes::dashboard::one_time_link(&store, &next).await?;
+            println!("{}{path}", url.as_deref().unwrap_or("").trim_end_matches('/'));
+            Ok(())
+        }
         Command::Serve {
             bind,
             database_url,

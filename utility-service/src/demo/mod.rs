@@ -163,9 +163,17 @@ pub async fn run(opts: &DemoOptions) -> anyhow::Result<DemoSummary> {
 /// Prints the summary and a dashboard link, and waits for Ctrl-C.
 async fn stay_up(svc: &app::RunningService, summary: &DemoSummary) {
     print!("{}", render(summary));
-    let code = svc.dashboard_link("/dashboard");
+    match svc.dashboard_link("/dashboard").await {
+        Ok(code) => println!(
+            "\n  Dashboard: {}{code}\n  (a one-time sign-in link, valid for two minutes; the session it opens lasts eight hours)",
+            svc.url()
+        ),
+        Err(e) => println!("\n  No dashboard link: {e:#}"),
+    }
     println!(
-        "\n  Dashboard: {}{code}\n  (a one-time sign-in link, valid for two minutes; the session it opens lasts eight hours)",
+        "  A fresh link at any time, from another terminal:\n    \
+         cargo run --release -p meterveil-service -- dashboard-link --database-url sqlite:{} --url {}",
+        summary.database.display(),
         svc.url()
     );
     println!("  The service stays up until Ctrl-C.");

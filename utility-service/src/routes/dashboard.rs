@@ -1,10 +1,9 @@
 //! The operator dashboard: server-rendered HTML with inline SVG charts, no
 //! scripts and no external resources. Signing in takes the operator token
-//! (a form) or a one-time link minted with it (`POST /v1/dashboard/links`); the
-//! browser then holds a session cookie.
-
-use std::collections::HashMap;
-use std::sync::Mutex;
+//! (a form) or a one-time link minted with it (`POST /v1/dashboard/links`, or
+//! `utility-service dashboard-link`); the browser then holds a session cookie.
+//! Sessions and codes live in the database (as digests), so every `serve`
+//! process on it accepts them and they survive restarts.
 
 use axum::extract::{FromRequestParts, Path, Query, State};
 use axum::http::request::Parts;
@@ -16,63 +15,39 @@ use meterveil_shared::{DitherProfile, FeederId};
 use serde::Deserialize;
 use serde_json::{json, Value};
 
+use meterveil_shared::auth::body_sha256;
+
 use super::{now_s, AppState, Operator};
 use crate::error::ApiError;
+use crate::store::{Store, StoreError};
 use maud::{html, Markup, PreEscaped, DOCTYPE};
 
 use crate::report::{line_chart, profile_chart, STYLE};
 
 const SESSION_COOKIE: &str = "mv_session";
 const SESSION_S: i64 = 8 * 3600;
-const LINK_S: i64 = 120;
+/// How long a one-time sign-in link stays valid, seconds.
+pub const LINK_S: i64 = 120;
 
-/// Live sessions and unused one-time codes, each with its expiry (epoch seconds).
-#[derive(Default)]
-pub struct Sessions {
-    sessions: Mutex<HashMap<String, i64>>,
-    codes: Mutex<HashMap<String, i64>>,
-}
-
+/// A fresh secret: 128 random bits from the thread's cryptographic generator
+/// (seeded by the operating system), as hex.
 fn random_token() -> String {
     use rand::Rng;
     let mut r = rand::rng();
     format!("{:016x}{:016x}", r.random::<u64>(), r.random::<u64>())
 }
 
-impl Sessions {
-    fn open(&self) -> String {
-        let id = random_token();
-        if let Ok(mut s) = self.sessions.lock() {
-            let now = now_s();
-            s.retain(|_, exp| *exp > now);
-            s.insert(id.clone(), now + SESSION_S);
-        }
-        id
-    }
-    fn valid(&self, id: &str) -> bool {
-        self.sessions.lock().map(|s| s.get(id).is_some_and(|exp| *exp > now_s())).unwrap_or(false)
-    }
-    fn mint(&self) -> String {
-        let code = random_token();
-        if let Ok(mut c) = self.codes.lock() {
-            let now = now_s();
-            c.retain(|_, exp| *exp > now);
-            c.insert(code.clone(), now + LINK_S);
-        }
-        code
-    }
-    /// A one-time sign-in path to `next` (a dashboard path), valid for two minutes.
-    pub fn one_time_link(&self, next: &str) -> String {
-        let code = self.mint();
-        let next = safe_next(Some(next));
-        format!(
-            "/dashboard/enter?code={code}&next={}",
-            next.replace('&', "%26").replace('?', "%3F").replace('=', "%3D")
-        )
-    }
-    fn redeem(&self, code: &str) -> bool {
-        self.codes.lock().map(|mut c| c.remove(code).is_some_and(|exp| exp > now_s())).unwrap_or(false)
-    }
+/// Mints a one-time sign-in path to `next` (a dashboard path), valid for
+/// [`LINK_S`] seconds, on any `serve` process of this database.
+pub async fn one_time_link(store: &Store, next: &str) -> Result<String, StoreError> {
+    let code = random_token();
+    let now = now_s();
+    store.mint_code(&body_sha256(code.as_bytes()), now, now + LINK_S).await?;
+    let next = safe_next(Some(next));
+    Ok(format!(
+        "/dashboard/enter?code={code}&next={}",
+        next.replace('&', "%26").replace('?', "%3F").replace('=', "%3D")
+    ))
 }
 
 pub fn router() -> Router<AppState> {
@@ -94,10 +69,15 @@ impl FromRequestParts<AppState> for Viewer {
 
     async fn from_request_parts(parts: &mut Parts, state: &AppState) -> Result<Self, Response> {
         let cookies = parts.headers.get(header::COOKIE).and_then(|v| v.to_str().ok()).unwrap_or("");
-        let ok = cookies
-            .split(';')
-            .filter_map(|c| c.trim().split_once('='))
-            .any(|(k, v)| k == SESSION_COOKIE && state.dashboard.valid(v));
+        let mut ok = false;
+        for (_, v) in cookies.split(';').filter_map(|c| c.trim().split_once('=')).filter(|(k, _)| *k == SESSION_COOKIE)
+        {
+            match state.store.session_valid(&body_sha256(v.as_bytes()), now_s()).await {
+                Ok(true) => ok = true,
+                Ok(false) => {}
+                Err(e) => return Err(ApiError::from(e).into_response()),
+            }
+        }
         if ok {
             Ok(Viewer)
         } else {
@@ -128,8 +108,13 @@ fn page(title: &str, body: Markup, refresh: bool) -> Html<String> {
     )
 }
 
-fn with_session(state: &AppState, to: &str) -> Response {
-    let id = state.dashboard.open();
+/// Opens a session (stored as its digest) and sends the browser to `to` with its cookie.
+async fn with_session(state: &AppState, to: &str) -> Response {
+    let id = random_token();
+    let now = now_s();
+    if let Err(e) = state.store.open_session(&body_sha256(id.as_bytes()), now, now + SESSION_S).await {
+        return ApiError::from(e).into_response();
+    }
     let cookie = format!("{SESSION_COOKIE}={id}; HttpOnly; SameSite=Strict; Path=/dashboard; Max-Age={SESSION_S}");
     ([(header::SET_COOKIE, cookie)], Redirect::to(to)).into_response()
 }
@@ -155,7 +140,7 @@ struct LoginForm {
 
 async fn login(State(s): State<AppState>, Form(f): Form<LoginForm>) -> Response {
     if super::constant_time_eq(f.token.as_bytes(), s.config.operator_token.expose().as_bytes()) && !f.token.is_empty() {
-        with_session(&s, "/dashboard")
+        with_session(&s, "/dashboard").await
     } else {
         (
             StatusCode::UNAUTHORIZED,
@@ -185,12 +170,7 @@ fn safe_next(next: Option<&str>) -> String {
 /// A one-time sign-in link, valid for two minutes.
 async fn mint_link(_: Operator, State(s): State<AppState>, body: axum::body::Bytes) -> Result<Json<Value>, ApiError> {
     let w: LinkWire = if body.is_empty() { LinkWire { next: None } } else { super::parse_json(&body)? };
-    let code = s.dashboard.mint();
-    let next = safe_next(w.next.as_deref());
-    let url = format!(
-        "/dashboard/enter?code={code}&next={}",
-        next.replace('&', "%26").replace('?', "%3F").replace('=', "%3D")
-    );
+    let url = one_time_link(&s.store, w.next.as_deref().unwrap_or("/dashboard")).await?;
     Ok(Json(json!({ "url": url, "expires_in_s": LINK_S })))
 }
 
@@ -201,8 +181,12 @@ struct EnterQuery {
 }
 
 async fn enter(State(s): State<AppState>, Query(q): Query<EnterQuery>) -> Response {
-    if s.dashboard.redeem(&q.code) {
-        with_session(&s, &safe_next(q.next.as_deref()))
+    let redeemed = match s.store.redeem_code(&body_sha256(q.code.as_bytes()), now_s()).await {
+        Ok(r) => r,
+        Err(e) => return ApiError::from(e).into_response(),
+    };
+    if redeemed {
+        with_session(&s, &safe_next(q.next.as_deref())).await
     } else {
         (StatusCode::UNAUTHORIZED, page("Sign in", html! { p { "This sign-in link was used or has expired." } }, false))
             .into_response()

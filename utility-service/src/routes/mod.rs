@@ -27,8 +27,6 @@ use crate::metrics::Metrics;
 pub struct AppState {
     pub work: WorkContext,
     pub metrics: Arc<Metrics>,
-    /// Dashboard sessions and one-time sign-in codes.
-    pub dashboard: Arc<dashboard::Sessions>,
     /// Per-gateway upload rate buckets.
     pub buckets: Arc<ingest::Buckets>,
     /// Checks and writes uploads in groups.

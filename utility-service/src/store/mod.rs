@@ -42,6 +42,7 @@ pub mod analyses;
 pub mod batches;
 pub mod gateways;
 pub mod queue;
+pub mod sessions;
 
 pub mod recoveries;
 
