@@ -57,6 +57,11 @@ fn known() -> HashSet<String> {
     ["m1".to_owned(), "m2".to_owned()].into()
 }
 
+/// The validators' view of the test feeder at `NOW`.
+fn context<'a>(profiles: &'a [ProfileRecord], known: &'a HashSet<String>) -> IngestContext<'a> {
+    IngestContext { profiles, known_meters: known, now: NOW, clock_tolerance_s: 300, stale_grace_s: 86_400 }
+}
+
 /// Runs the whole decode-and-validate path; panics only on a broken invariant.
 fn run(body: &[u8]) {
     let profiles = profiles();
@@ -69,13 +74,7 @@ fn run(body: &[u8]) {
         Ok(h) => h,
         Err(e) => return assert!(!e.to_string().is_empty()),
     };
-    let ctx = IngestContext {
-        profiles: &profiles,
-        known_meters: &known,
-        now: NOW,
-        clock_tolerance_s: 300,
-        stale_grace_s: 86_400,
-    };
+    let ctx = context(&profiles, &known);
     match validate(header, &batch, body_sha256(body), &ctx) {
         Ok(v) => {
             assert!(!v.readings.is_empty() || !v.registers.is_empty());
@@ -97,13 +96,7 @@ fn run(body: &[u8]) {
 #[test]
 fn seeds_are_accepted_or_refused_as_named() {
     let (profiles, known) = (profiles(), known());
-    let ctx = IngestContext {
-        profiles: &profiles,
-        known_meters: &known,
-        now: NOW,
-        clock_tolerance_s: 300,
-        stale_grace_s: 86_400,
-    };
+    let ctx = context(&profiles, &known);
     let judge = |body: &[u8]| -> Result<usize, String> {
         let batch: BatchWire = parse_json(body).map_err(|e| e.to_string())?;
         let header = check_header(&batch).map_err(|e| e.to_string())?;

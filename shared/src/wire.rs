@@ -66,6 +66,16 @@ pub struct ProfileRecordWire {
     pub time_zone: String,
 }
 
+impl ProfileRecordWire {
+    /// "v3: gaussian scale 0.30 kW, …", or why the stored profile is invalid.
+    pub fn describe(&self) -> String {
+        match crate::DitherProfile::try_from(self.profile.clone()) {
+            Ok(d) => format!("v{}: {}", self.version, d.describe()),
+            Err(e) => format!("v{}: invalid ({e})", self.version),
+        }
+    }
+}
+
 fn utc() -> String {
     "UTC".into()
 }

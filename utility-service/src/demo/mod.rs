@@ -188,19 +188,11 @@ async fn recover_feeder(
     feeder: &str,
     town: &simulate::Town,
 ) -> anyhow::Result<FeederRecovery> {
-    let http = reqwest::Client::new();
     let to = town.start_day + i64::from(town.days) * 86_400;
     let body = serde_json::json!({ "feeder_id": feeder, "from": town.start_day, "to": to, "rank": "auto" });
     let job = run_job(base, token, "/v1/recoveries", body, "/v1/recoveries").await?;
     let job_id = job["job_id"].as_str().context("job id")?.to_owned();
-    let rows: Vec<serde_json::Value> = http
-        .get(format!("{base}/v1/recoveries/{job_id}/intervals"))
-        .bearer_auth(token)
-        .send()
-        .await?
-        .error_for_status()?
-        .json()
-        .await?;
+    let rows: Vec<serde_json::Value> = get_json(base, token, &format!("/v1/recoveries/{job_id}/intervals")).await?;
     let truth: std::collections::HashMap<&str, &simulate::town::Household> =
         town.households.iter().filter(|h| h.feeder_id == feeder).map(|h| (h.meter_id.as_str(), h)).collect();
     let (mut num, mut den) = (0.0, 0.0);
@@ -241,6 +233,18 @@ async fn recover_feeder(
         nrmse: (num / den.max(1e-300)).sqrt(),
         median_daily_energy_error: errs.get(errs.len() / 2).copied().unwrap_or(f64::NAN),
     })
+}
+
+/// GETs `path` of the service as the operator and parses its JSON.
+async fn get_json<T: serde::de::DeserializeOwned>(base: &str, token: &str, path: &str) -> anyhow::Result<T> {
+    Ok(reqwest::Client::new()
+        .get(format!("{base}{path}"))
+        .bearer_auth(token)
+        .send()
+        .await?
+        .error_for_status()?
+        .json()
+        .await?)
 }
 
 /// Starts a job by POSTing `body` to `path` and waits for it (its status at
@@ -384,7 +388,6 @@ async fn cluster_town(
     recoveries: &[FeederRecovery],
     town: &simulate::Town,
 ) -> anyhow::Result<Vec<TownCluster>> {
-    let http = reqwest::Client::new();
     let ids: Vec<&str> = recoveries.iter().map(|r| r.job_id.as_str()).collect();
     let job = run_job(
         base,
@@ -395,14 +398,7 @@ async fn cluster_town(
     )
     .await?;
     let job_id = job["job_id"].as_str().context("job id")?.to_owned();
-    let rows: Vec<serde_json::Value> = http
-        .get(format!("{base}/v1/clusterings/{job_id}/assignments"))
-        .bearer_auth(token)
-        .send()
-        .await?
-        .error_for_status()?
-        .json()
-        .await?;
+    let rows: Vec<serde_json::Value> = get_json(base, token, &format!("/v1/clusterings/{job_id}/assignments")).await?;
     let kind_of: std::collections::HashMap<&str, &str> =
         town.households.iter().map(|h| (h.meter_id.as_str(), h.kind.as_str())).collect();
     let per_hour = 3600 / job["result"]["interval_s"].as_u64().unwrap_or(900).max(1) as usize;

@@ -2,8 +2,6 @@
 
 use std::fmt::Write as _;
 
-use meterveil_shared::DitherProfile;
-
 use super::{DemoSummary, PrivacyCheck};
 
 /// The printed summary.
@@ -46,14 +44,7 @@ fn render_town(o: &mut String, s: &DemoSummary) {
     );
     let _ = writeln!(o, "\n  {:<16} {:>6} {:>9} {:>9}  dither profile", "feeder", "meters", "readings", "registers");
     for f in &s.feeders {
-        let profile = f
-            .current_profile
-            .as_ref()
-            .map(|p| match DitherProfile::try_from(p.profile.clone()) {
-                Ok(d) => format!("v{}: {}", p.version, d.describe()),
-                Err(e) => format!("v{}: invalid ({e})", p.version),
-            })
-            .unwrap_or_else(|| "none".into());
+        let profile = f.current_profile.as_ref().map_or_else(|| "none".into(), |p| p.describe());
         let _ =
             writeln!(o, "  {:<16} {:>6} {:>9} {:>9}  {}", f.feeder_id, f.meters, f.readings, f.register_reads, profile);
     }

@@ -11,7 +11,7 @@ use axum::http::{header, StatusCode};
 use axum::response::{Html, IntoResponse, Redirect, Response};
 use axum::routing::{get, post};
 use axum::{Form, Json, Router};
-use meterveil_shared::{DitherProfile, FeederId};
+use meterveil_shared::FeederId;
 use serde::Deserialize;
 use serde_json::{json, Value};
 
@@ -256,14 +256,7 @@ async fn feeder_rows(s: &AppState) -> Result<Vec<(crate::store::FeederSummary, S
             }
             None => "–".into(),
         };
-        let profile = f
-            .current_profile
-            .as_ref()
-            .map(|p| match DitherProfile::try_from(p.profile.clone()) {
-                Ok(d) => format!("v{}: {}", p.version, d.describe()),
-                Err(e) => format!("v{}: invalid ({e})", p.version),
-            })
-            .unwrap_or_else(|| "none".into());
+        let profile = f.current_profile.as_ref().map_or_else(|| "none".into(), |p| p.describe());
         out.push((f, tz, completeness, profile));
     }
     Ok(out)
