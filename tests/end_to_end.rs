@@ -1539,6 +1539,7 @@ async fn dashboard_pages_render_in_a_real_browser() {
         ("meter", format!("/dashboard/recoveries/{rec}?meter_id=QM-CHAPEL-ROW-0002"), "QM-CHAPEL-ROW-0002"),
         ("clusters", format!("/dashboard/clusterings/{clu}"), "Representative working day"),
         ("audit", format!("/dashboard/analyses/{aud}"), "In plain words"),
+        ("jobs", "/dashboard/jobs?feeder=QM-CHAPEL-ROW&kind=audit".to_owned(), aud.as_str()),
     ];
     for (name, path, expect) in pages {
         // Each Chromium run is a fresh browser: one one-time link per load.
@@ -1556,7 +1557,7 @@ async fn dashboard_pages_render_in_a_real_browser() {
             tokio::task::spawn_blocking(move || chromium(&u0, &u1, &png)).await.expect("browser")
         };
         assert!(dom.contains(expect), "{name}: page lacks {expect:?}: {}", &dom[..dom.len().min(600)]);
-        if name != "overview" {
+        if name != "overview" && name != "jobs" {
             assert!(dom.contains("<svg"), "{name}: no chart");
         }
         let console: Vec<&str> = log.lines().filter(|l| l.contains(":CONSOLE")).collect();
@@ -1567,6 +1568,35 @@ async fn dashboard_pages_render_in_a_real_browser() {
         // A used link does not sign in again.
         let r = plain.get(&urls[0]).send().await.expect("get");
         assert_eq!(r.status().as_u16(), 401);
+    }
+    jobs_page_filters_and_refuses_bad_input(&t, &plain, &rec, &aud).await;
+}
+
+/// The jobs page: filtered by kind, with feeder, window, times and duration;
+/// a bad filter gets the form back with the field named.
+async fn jobs_page_filters_and_refuses_bad_input(t: &TestService, plain: &reqwest::Client, rec: &str, aud: &str) {
+    let (_, b) = t.post_json("/v1/dashboard/links", &json!({}), true).await;
+    let r = plain.get(format!("{}{}", t.url(), b["url"].as_str().expect("url"))).send().await.expect("enter");
+    let cookie = r.headers()["set-cookie"].to_str().expect("cookie").split(';').next().expect("pair").to_owned();
+    let get = |q: &str| {
+        let (plain, cookie, url) = (plain.clone(), cookie.clone(), format!("{}/dashboard/jobs{q}", t.url()));
+        async move {
+            let r = plain.get(url).header("cookie", cookie).send().await.expect("get");
+            (r.status().as_u16(), r.text().await.expect("text"))
+        }
+    };
+    let (s, page) = get("?kind=recover").await;
+    assert_eq!(s, 200, "{page}");
+    assert!(page.contains(rec) && !page.contains(aud), "{page}");
+    assert!(page.contains("QM-CHAPEL-ROW") && page.contains(" UTC") && page.contains("1 jobs; page 1 of 1"), "{page}");
+    let (s, page) = get("").await;
+    assert!(s == 200 && page.contains(rec) && page.contains(aud) && page.contains("3 jobs"), "{page}");
+    for (q, field) in
+        [("?kind=sweep", "kind"), ("?feeder=QM-NOWHERE", "feeder"), ("?state=lost", "state"), ("?page=0", "page")]
+    {
+        let (s, page) = get(q).await;
+        assert_eq!(s, 400, "{q}: {page}");
+        assert!(page.contains(&format!("Not shown: {field}")) && page.contains("<form"), "{q}: {page}");
     }
 }
 

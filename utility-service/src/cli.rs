@@ -226,12 +226,13 @@ async fn jobs_command(database_url: &str, action: Option<JobsAction>) -> anyhow:
     let store = crate::store::Store::open(database_url).await?;
     match action.unwrap_or(JobsAction::List { limit: 50 }) {
         JobsAction::List { limit } => {
-            println!("{:<30} {:<9} {:<8} {:>5} {:>3}  message", "job", "kind", "state", "done", "try");
+            println!("{:<30} {:<16} {:<9} {:<8} {:>5} {:>3}  message", "job", "feeder", "kind", "state", "done", "try");
             for j in store.list_jobs(limit).await? {
                 let msg = j.error.clone().unwrap_or(j.message.clone());
                 println!(
-                    "{:<30} {:<9} {:<8} {:>4.0}% {:>3}  {}",
+                    "{:<30} {:<16} {:<9} {:<8} {:>4.0}% {:>3}  {}",
                     j.job_id,
+                    j.feeder_id.as_deref().unwrap_or("-"),
                     j.kind,
                     j.state,
                     100.0 * j.progress,

@@ -60,7 +60,8 @@ fn curve_series(points: &[CurvePoint], x: impl Fn(&CurvePoint) -> f64) -> Vec<(&
 
 pub(crate) const STYLE: &str = "body{font-family:sans-serif;max-width:58em;margin:2em auto;padding:0 1em;color:#222}\
 table{border-collapse:collapse}td,th{border:1px solid #bbb;padding:.25em .6em;text-align:right}\
-th:first-child,td:first-child{text-align:left}.caution{background:#fff4e0;border-left:4px solid #e0a030;padding:.6em 1em}";
+th:first-child,td:first-child{text-align:left}.caution{background:#fff4e0;border-left:4px solid #e0a030;padding:.6em 1em}\
+.problem{border-left:4px solid #b04040;padding:.4em 1em}";
 
 /// A whole report page: title, the shared style, and `body` under the heading.
 pub(crate) fn report_page(title: &str, body: Markup) -> String {

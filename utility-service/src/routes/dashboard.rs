@@ -19,6 +19,7 @@ use meterveil_shared::auth::body_sha256;
 
 use super::{now_s, AppState, Operator};
 use crate::error::ApiError;
+use crate::store::queue::{JobFilter, JobLine};
 use crate::store::{Store, StoreError};
 use maud::{html, Markup, PreEscaped, DOCTYPE};
 
@@ -59,6 +60,7 @@ pub fn router() -> Router<AppState> {
         .route("/dashboard/recoveries/{job_id}", get(meter_page))
         .route("/dashboard/clusterings/{job_id}", get(clusters_page))
         .route("/dashboard/analyses/{job_id}", get(analysis_page))
+        .route("/dashboard/jobs", get(jobs_page))
 }
 
 /// A signed-in dashboard user; otherwise a redirect to the sign-in page.
@@ -195,7 +197,7 @@ async fn enter(State(s): State<AppState>, Query(q): Query<EnterQuery>) -> Respon
 
 async fn overview(_: Viewer, State(s): State<AppState>) -> Result<Html<String>, ApiError> {
     let feeders = feeder_rows(&s).await?;
-    let jobs = s.store.list_jobs(30).await?;
+    let jobs = s.store.list_jobs(10).await?;
     let live = jobs.iter().any(|j| j.state == "running" || j.state == "queued");
     let body = html! {
         h2 { "Feeders" }
@@ -211,32 +213,9 @@ async fn overview(_: Viewer, State(s): State<AppState>) -> Result<Html<String>, 
                 }
             }
         }
-        h2 { "Jobs" }
-        table {
-            tr { th { "job" } th { "kind" } th { "state" } th { "progress" } th { "attempts" } th { "message" } }
-            @for j in &jobs {
-                @let page = match (j.kind.as_str(), j.state.as_str()) {
-                    ("recover", "done") => Some("recoveries"),
-                    ("cluster", "done") => Some("clusterings"),
-                    ("audit" | "calibrate", "done") => Some("analyses"),
-                    _ => None,
-                };
-                tr {
-                    td {
-                        @if let Some(page) = page {
-                            a href=(format!("/dashboard/{page}/{}", j.job_id)) { (j.job_id) }
-                        } @else {
-                            (j.job_id)
-                        }
-                    }
-                    td { (j.kind) }
-                    td { (j.state) }
-                    td { progress max="1" value=(format!("{:.3}", j.progress)) {} (format!(" {:.0}%", 100.0 * j.progress)) }
-                    td { (j.attempts) }
-                    td { (j.error.as_deref().unwrap_or(&j.message)) }
-                }
-            }
-        }
+        h2 { "Recent jobs" }
+        (jobs_table(&jobs))
+        p { a href="/dashboard/jobs" { "All jobs, by feeder, kind and state" } }
         @if live { p { "This page refreshes every 5 seconds while jobs run." } }
     };
     Ok(page("Meterveil dashboard", body, live))
@@ -260,6 +239,165 @@ async fn feeder_rows(s: &AppState) -> Result<Vec<(crate::store::FeederSummary, S
         out.push((f, tz, completeness, profile));
     }
     Ok(out)
+}
+
+/// A job's id, linked to its page once it is done.
+fn job_link(j: &JobLine) -> Markup {
+    let page = match (j.kind.as_str(), j.state.as_str()) {
+        ("recover", "done") => Some("recoveries"),
+        ("cluster", "done") => Some("clusterings"),
+        ("audit" | "calibrate", "done") => Some("analyses"),
+        _ => None,
+    };
+    html! {
+        @if let Some(page) = page {
+            a href=(format!("/dashboard/{page}/{}", j.job_id)) { (j.job_id) }
+        } @else {
+            (j.job_id)
+        }
+    }
+}
+
+/// UTC epoch seconds as `2026-12-03 18:53 UTC`.
+fn when(t: Option<i64>) -> String {
+    t.and_then(|t| chrono::DateTime::from_timestamp(t, 0))
+        .map_or_else(|| "–".into(), |d| d.format("%Y-%m-%d %H:%M UTC").to_string())
+}
+
+/// A span of seconds in words: `45 s`, `3 min 05 s`, `2 h 10 min`.
+fn duration(s: i64) -> String {
+    match s {
+        s if s < 60 => format!("{s} s"),
+        s if s < 3600 => format!("{} min {:02} s", s / 60, s % 60),
+        s => format!("{} h {:02} min", s / 3600, (s % 3600) / 60),
+    }
+}
+
+fn jobs_table(jobs: &[JobLine]) -> Markup {
+    let day =
+        |t: i64| chrono::DateTime::from_timestamp(t, 0).map_or_else(String::new, |d| d.format("%Y-%m-%d").to_string());
+    html! {
+        table {
+            tr {
+                th { "job" } th { "feeder" } th { "window (UTC days)" } th { "kind" } th { "state" } th { "progress" }
+                th { "started" } th { "finished" } th { "took" } th { "attempts" } th { "message" }
+            }
+            @for j in jobs {
+                tr {
+                    td { (job_link(j)) }
+                    td { (j.feeder_id.as_deref().unwrap_or("whole town")) }
+                    td { (j.window.map_or("–".into(), |(a, b)| format!("{} – {}", day(a), day(b - 1)))) }
+                    td { (j.kind) }
+                    td { (j.state) }
+                    td { progress max="1" value=(format!("{:.3}", j.progress)) {} (format!(" {:.0}%", 100.0 * j.progress)) }
+                    td { (when(j.started_at)) }
+                    td { (when(j.finished_at)) }
+                    td { (j.started_at.zip(j.finished_at).map_or("–".into(), |(a, b)| duration(b - a))) }
+                    td { (j.attempts) }
+                    td { (j.error.as_deref().unwrap_or(&j.message)) }
+                }
+            }
+        }
+    }
+}
+
+/// Jobs listed per page.
+const JOBS_PER_PAGE: i64 = 25;
+const JOB_KINDS: [&str; 4] = ["recover", "cluster", "audit", "calibrate"];
+const JOB_STATES: [&str; 4] = ["queued", "running", "done", "failed"];
+
+#[derive(Deserialize)]
+struct JobsQuery {
+    #[serde(default)]
+    feeder: String,
+    #[serde(default)]
+    kind: String,
+    #[serde(default)]
+    state: String,
+    #[serde(default)]
+    page: Option<String>,
+}
+
+/// The filter a jobs query asks for, or the field that is wrong and why.
+async fn job_filter(s: &AppState, q: &JobsQuery) -> Result<Result<(JobFilter, i64), (&'static str, String)>, ApiError> {
+    let pick = |v: &str| (!v.trim().is_empty()).then(|| v.trim().to_owned());
+    let (feeder, kind, state) = (pick(&q.feeder), pick(&q.kind), pick(&q.state));
+    if let Some(f) = &feeder {
+        let known = match FeederId::parse(f) {
+            Ok(id) => s.store.feeder_exists(&id).await?,
+            Err(_) => false,
+        };
+        if !known {
+            return Ok(Err(("feeder", format!("{f} is not a registered feeder"))));
+        }
+    }
+    if let Some(k) = kind.as_deref().filter(|k| !JOB_KINDS.contains(k)) {
+        return Ok(Err(("kind", format!("{k} is not one of {}", JOB_KINDS.join(", ")))));
+    }
+    if let Some(st) = state.as_deref().filter(|v| !JOB_STATES.contains(v)) {
+        return Ok(Err(("state", format!("{st} is not one of {}", JOB_STATES.join(", ")))));
+    }
+    let page = match q.page.as_deref().map(str::trim).filter(|p| !p.is_empty()) {
+        None => 1,
+        Some(p) => match p.parse::<i64>() {
+            Ok(n) if (1..=100_000).contains(&n) => n,
+            _ => return Ok(Err(("page", format!("{p} is not a page number from 1 to 100000")))),
+        },
+    };
+    let filter = JobFilter { feeder_id: feeder, kind, state, limit: JOBS_PER_PAGE, offset: (page - 1) * JOBS_PER_PAGE };
+    Ok(Ok((filter, page)))
+}
+
+/// Every job, filtered by feeder, kind and state, a page at a time.
+async fn jobs_page(_: Viewer, State(s): State<AppState>, Query(q): Query<JobsQuery>) -> Result<Response, ApiError> {
+    let feeders = s.store.feeder_summaries().await?;
+    let form = |problem: Option<(&str, &str)>| {
+        html! {
+            form method="get" action="/dashboard/jobs" {
+                label { "feeder " select name="feeder" {
+                    option value="" { "any" }
+                    @for f in &feeders { option value=(f.feeder_id) selected[q.feeder == f.feeder_id] { (f.feeder_id) } }
+                } }
+                " "
+                label { "kind " select name="kind" {
+                    option value="" { "any" }
+                    @for k in JOB_KINDS { option value=(k) selected[q.kind == k] { (k) } }
+                } }
+                " "
+                label { "state " select name="state" {
+                    option value="" { "any" }
+                    @for st in JOB_STATES { option value=(st) selected[q.state == st] { (st) } }
+                } }
+                " "
+                button type="submit" { "Show" }
+            }
+            @if let Some((field, reason)) = problem {
+                p.problem { strong { "Not shown: " (field) } ": " (reason) "." }
+            }
+        }
+    };
+    let (filter, at) = match job_filter(&s, &q).await? {
+        Ok(f) => f,
+        Err((field, reason)) => {
+            return Ok((StatusCode::BAD_REQUEST, page("Jobs", form(Some((field, &reason))), false)).into_response())
+        }
+    };
+    let (jobs, total) = (s.store.find_jobs(&filter).await?, s.store.count_jobs(&filter).await?);
+    let pages = ((total + JOBS_PER_PAGE - 1) / JOBS_PER_PAGE).max(1);
+    let link = |p: i64| {
+        format!("/dashboard/jobs?feeder={}&kind={}&state={}&page={p}", q.feeder.trim(), q.kind.trim(), q.state.trim())
+    };
+    let live = jobs.iter().any(|j| j.state == "running" || j.state == "queued");
+    let body = html! {
+        (form(None))
+        p { (format!("{total} jobs; page {at} of {pages}.")) }
+        (jobs_table(&jobs))
+        p {
+            @if at > 1 { a href=(link(at - 1)) { "newer" } " " }
+            @if at < pages { a href=(link(at + 1)) { "older" } }
+        }
+    };
+    Ok(page("Jobs", body, live).into_response())
 }
 
 #[derive(Deserialize)]

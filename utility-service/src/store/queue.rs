@@ -41,11 +41,49 @@ pub struct Claimed {
     pub attempts: i64,
 }
 
+/// Both job tables as one, with the columns the job list shows.
+const JOBS_SQL: &str =
+    "SELECT job_id, 'recover' AS kind, feeder_id, window_start, window_end, state, progress, message,
+        attempts, worker, created_at, started_at, finished_at, error FROM recovery_jobs
+     UNION ALL
+     SELECT job_id, kind, feeder_id, NULL AS window_start, NULL AS window_end, state, progress, message,
+        attempts, worker, created_at, started_at, finished_at, error FROM analysis_jobs";
+
+/// Which jobs to list, and which page.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct JobFilter {
+    pub feeder_id: Option<String>,
+    pub kind: Option<String>,
+    pub state: Option<String>,
+    pub limit: i64,
+    pub offset: i64,
+}
+
+impl JobFilter {
+    /// ` WHERE …` over the given filters (placeholders from `$first`), and their values.
+    fn where_sql(&self, first: usize) -> (String, Vec<String>) {
+        let mut terms = Vec::new();
+        let mut binds = Vec::new();
+        for (col, v) in [("feeder_id", &self.feeder_id), ("kind", &self.kind), ("state", &self.state)] {
+            if let Some(v) = v {
+                terms.push(format!("{col} = ${}", first + binds.len()));
+                binds.push(v.clone());
+            }
+        }
+        let sql = if terms.is_empty() { String::new() } else { format!(" WHERE {}", terms.join(" AND ")) };
+        (sql, binds)
+    }
+}
+
 /// One line of the job list.
 #[derive(Debug, Clone, Serialize)]
 pub struct JobLine {
     pub job_id: String,
     pub kind: String,
+    /// The feeder the job concerns (none for a town-wide clustering).
+    pub feeder_id: Option<String>,
+    /// Recovery jobs: the window [from, to), UTC epoch seconds.
+    pub window: Option<(i64, i64)>,
     pub state: String,
     pub progress: f64,
     pub message: String,
@@ -208,21 +246,34 @@ impl Store {
     }
 
     /// The most recent jobs of both tables, newest first.
+    /// The newest jobs first, `limit` of them.
     pub async fn list_jobs(&self, limit: i64) -> Result<Vec<JobLine>, StoreError> {
-        let rows = sqlx::query(
-            "SELECT job_id, 'recover' AS kind, state, progress, message, attempts, worker, created_at, started_at, finished_at, error FROM recovery_jobs
-             UNION ALL
-             SELECT job_id, kind, state, progress, message, attempts, worker, created_at, started_at, finished_at, error FROM analysis_jobs
-             ORDER BY created_at DESC, job_id LIMIT $1",
-        )
-        .bind(limit)
-        .fetch_all(&self.pool)
-        .await?;
+        self.find_jobs(&JobFilter { limit, ..JobFilter::default() }).await
+    }
+
+    /// Jobs matching `filter`, newest first, one page of them.
+    pub async fn find_jobs(&self, filter: &JobFilter) -> Result<Vec<JobLine>, StoreError> {
+        let (sql_where, binds) = filter.where_sql(1);
+        let n = binds.len();
+        let sql = format!(
+            "SELECT * FROM ({JOBS_SQL}) j{sql_where} ORDER BY created_at DESC, job_id LIMIT ${} OFFSET ${}",
+            n + 1,
+            n + 2
+        );
+        let mut q = sqlx::query(&sql);
+        for b in &binds {
+            q = q.bind(b.as_str());
+        }
+        let rows = q.bind(filter.limit.clamp(1, 500)).bind(filter.offset.max(0)).fetch_all(&self.pool).await?;
         rows.iter()
             .map(|r| {
+                let from: Option<i64> = r.try_get("window_start")?;
+                let to: Option<i64> = r.try_get("window_end")?;
                 Ok(JobLine {
                     job_id: r.try_get("job_id")?,
                     kind: r.try_get("kind")?,
+                    feeder_id: r.try_get("feeder_id")?,
+                    window: from.zip(to),
                     state: r.try_get("state")?,
                     progress: r.try_get("progress")?,
                     message: r.try_get("message")?,
@@ -235,5 +286,16 @@ impl Store {
                 })
             })
             .collect()
+    }
+
+    /// How many jobs match `filter` (all pages).
+    pub async fn count_jobs(&self, filter: &JobFilter) -> Result<i64, StoreError> {
+        let (sql_where, binds) = filter.where_sql(1);
+        let sql = format!("SELECT COUNT(*) FROM ({JOBS_SQL}) j{sql_where}");
+        let mut q = sqlx::query_scalar(&sql);
+        for b in &binds {
+            q = q.bind(b.as_str());
+        }
+        Ok(q.fetch_one(&self.pool).await?)
     }
 }
