@@ -1600,6 +1600,88 @@ async fn jobs_page_filters_and_refuses_bad_input(t: &TestService, plain: &reqwes
     }
 }
 
+/// Starting a recovery and cancelling a job from the dashboard: a form without
+/// the session's token is refused with 403 and changes nothing; bad input gets
+/// the form back naming the field, with nothing stored; a good form queues the
+/// job and records the action.
+#[tokio::test]
+async fn dashboard_actions_need_their_form_token() {
+    // No worker: the queued job stays queued until it is cancelled.
+    let t = spawn_service_with(|c| c.run_worker = false).await;
+    small_feeder(&t).await;
+    let plain = &reqwest::Client::builder().redirect(reqwest::redirect::Policy::none()).build().expect("client");
+    let (_, b) = t.post_json("/v1/dashboard/links", &json!({}), true).await;
+    let r = plain.get(format!("{}{}", t.url(), b["url"].as_str().expect("url"))).send().await.expect("enter");
+    let cookie = r.headers()["set-cookie"].to_str().expect("cookie").split(';').next().expect("pair").to_owned();
+    let cookie = cookie.as_str();
+    let post = |path: &str, form: String| {
+        let (plain, cookie, url) = (plain.clone(), cookie.to_owned(), format!("{}{path}", t.url()));
+        async move {
+            let r = plain
+                .post(url)
+                .header("cookie", cookie)
+                .header("content-type", "application/x-www-form-urlencoded")
+                .body(form)
+                .send()
+                .await
+                .expect("post");
+            (r.status().as_u16(), r.text().await.expect("text"))
+        }
+    };
+    let page = plain
+        .get(format!("{}/dashboard/jobs", t.url()))
+        .header("cookie", cookie)
+        .send()
+        .await
+        .expect("get")
+        .text()
+        .await
+        .expect("text");
+    let csrf = page.split("name=\"csrf\" value=\"").nth(1).and_then(|r| r.split('"').next()).expect("form token");
+    let before = t.count("SELECT COUNT(*) FROM recovery_jobs").await;
+    let good = "feeder_id=F1&from=2023-01-09&to=2023-01-11&rank=auto";
+    // A forged form (no token, or another token) changes nothing.
+    for form in [good.to_owned(), format!("csrf={}&{good}", "0".repeat(64))] {
+        let (s, body) = post("/dashboard/actions/recover", form).await;
+        assert_eq!(s, 403, "{body}");
+    }
+    assert_eq!(t.count("SELECT COUNT(*) FROM recovery_jobs").await, before, "a forged form queued a job");
+    for (form, field) in [
+        ("feeder_id=F1&from=2023-01-11&to=2023-01-09&rank=auto", "to"),
+        ("feeder_id=QM-NOWHERE&from=2023-01-09&to=2023-01-11&rank=auto", "feeder_id"),
+        ("feeder_id=F1&from=soon&to=2023-01-11&rank=auto", "from"),
+        ("feeder_id=F1&from=2023-01-09&to=2023-01-11&rank=many", "rank"),
+    ] {
+        let (s, body) = post("/dashboard/actions/recover", format!("csrf={csrf}&{form}")).await;
+        assert_eq!(s, 400, "{form}: {body}");
+        assert!(body.contains(&format!("Not started: {field}")), "{form}: {body}");
+    }
+    assert_eq!(t.count("SELECT COUNT(*) FROM recovery_jobs").await, before, "bad input stored a job");
+    let (s, body) = post("/dashboard/actions/recover", format!("csrf={csrf}&{good}")).await;
+    assert_eq!(s, 303, "{body}");
+    assert_eq!(t.count("SELECT COUNT(*) FROM recovery_jobs").await, before + 1);
+    let pool = t.svc.store.pool();
+    let id: String = sqlx::query_scalar("SELECT job_id FROM recovery_jobs ORDER BY created_at DESC, job_id LIMIT 1")
+        .fetch_one(pool)
+        .await
+        .expect("new job");
+    let (s, body) = post(&format!("/dashboard/actions/cancel/{id}"), String::new()).await;
+    assert_eq!(s, 403, "a cancel without its token: {body}");
+    let (s, body) = post(&format!("/dashboard/actions/cancel/{id}"), format!("csrf={csrf}")).await;
+    assert_eq!(s, 303, "{body}");
+    let error: Option<String> = sqlx::query_scalar("SELECT error FROM recovery_jobs WHERE job_id = $1")
+        .bind(&id)
+        .fetch_one(pool)
+        .await
+        .expect("job");
+    assert_eq!(error.as_deref(), Some("cancelled by the operator"));
+    let actions: Vec<String> = sqlx::query_scalar("SELECT action FROM dashboard_actions ORDER BY at, action")
+        .fetch_all(pool)
+        .await
+        .expect("actions");
+    assert_eq!(actions, ["cancel job", "start recovery"]);
+}
+
 /// Nothing of a refused upload is stored: no reading, no batch, no sequence number.
 async fn nothing_stored(t: &TestService) {
     assert_eq!(t.count("SELECT COUNT(*) FROM readings").await, 0, "nothing stored");

@@ -64,31 +64,35 @@ pub fn router() -> Router<AppState> {
 }
 
 /// A signed-in dashboard user; otherwise a redirect to the sign-in page.
-pub struct Viewer;
+pub struct Viewer {
+    /// The session's digest (who did what, in the action log).
+    pub session: String,
+    /// The session's form token: a digest of its secret under another label,
+    /// so that only a page served to this session can post its forms.
+    pub csrf: String,
+}
 
 impl FromRequestParts<AppState> for Viewer {
     type Rejection = Response;
 
     async fn from_request_parts(parts: &mut Parts, state: &AppState) -> Result<Self, Response> {
         let cookies = parts.headers.get(header::COOKIE).and_then(|v| v.to_str().ok()).unwrap_or("");
-        let mut ok = false;
         for (_, v) in cookies.split(';').filter_map(|c| c.trim().split_once('=')).filter(|(k, _)| *k == SESSION_COOKIE)
         {
-            match state.store.session_valid(&body_sha256(v.as_bytes()), now_s()).await {
-                Ok(true) => ok = true,
+            let session = body_sha256(v.as_bytes());
+            match state.store.session_valid(&session, now_s()).await {
+                Ok(true) => return Ok(Viewer { session, csrf: body_sha256(format!("form|{v}").as_bytes()) }),
                 Ok(false) => {}
                 Err(e) => return Err(ApiError::from(e).into_response()),
             }
         }
-        if ok {
-            Ok(Viewer)
-        } else {
+        {
             Err(Redirect::to("/dashboard/login").into_response())
         }
     }
 }
 
-fn page(title: &str, body: Markup, refresh: bool) -> Html<String> {
+pub(crate) fn page(title: &str, body: Markup, refresh: bool) -> Html<String> {
     Html(
         html! {
             (DOCTYPE)
@@ -349,7 +353,7 @@ async fn job_filter(s: &AppState, q: &JobsQuery) -> Result<Result<(JobFilter, i6
 }
 
 /// Every job, filtered by feeder, kind and state, a page at a time.
-async fn jobs_page(_: Viewer, State(s): State<AppState>, Query(q): Query<JobsQuery>) -> Result<Response, ApiError> {
+async fn jobs_page(v: Viewer, State(s): State<AppState>, Query(q): Query<JobsQuery>) -> Result<Response, ApiError> {
     let feeders = s.store.feeder_summaries().await?;
     let form = |problem: Option<(&str, &str)>| {
         html! {
@@ -389,9 +393,12 @@ async fn jobs_page(_: Viewer, State(s): State<AppState>, Query(q): Query<JobsQue
     };
     let live = jobs.iter().any(|j| j.state == "running" || j.state == "queued");
     let body = html! {
+        (super::actions::recovery_form(&feeders, &v, None))
+        h2 { "Jobs" }
         (form(None))
         p { (format!("{total} jobs; page {at} of {pages}.")) }
         (jobs_table(&jobs))
+        (super::actions::cancel_forms(&jobs, &v))
         p {
             @if at > 1 { a href=(link(at - 1)) { "newer" } " " }
             @if at < pages { a href=(link(at + 1)) { "older" } }

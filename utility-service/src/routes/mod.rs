@@ -1,6 +1,7 @@
 //! HTTP routes. Each module exports `router()`; handlers are short scripts over
 //! the store and the domain functions.
 
+pub mod actions;
 pub mod analyses;
 pub mod dashboard;
 pub mod feeders;
@@ -48,6 +49,7 @@ pub fn router(state: AppState) -> Router {
         .merge(recoveries::router())
         .merge(analyses::router())
         .merge(dashboard::router())
+        .merge(actions::router())
         .with_state(state)
 }
 

@@ -12,7 +12,7 @@ use serde_json::{json, Value};
 
 use super::{now_s, parse_json, AppState, Operator};
 use crate::error::ApiError;
-use crate::jobspec::RecoverRequest;
+use crate::jobspec::{RecoverRequest, RecoverSpec};
 use crate::store::recoveries::JobRecord;
 
 pub fn router() -> Router<AppState> {
@@ -25,6 +25,13 @@ pub fn router() -> Router<AppState> {
 
 async fn start(_: Operator, State(s): State<AppState>, body: Bytes) -> Result<(StatusCode, Json<Value>), ApiError> {
     let spec = parse_json::<RecoverRequest>(&body)?.check().map_err(ApiError::Invalid)?;
+    let job_id = queue_recovery(&s, &spec).await?;
+    Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
+}
+
+/// Queues a checked recovery after the checks that need the store (the feeder
+/// exists; every profile version keeps the fit's table bounded); its job id.
+pub(crate) async fn queue_recovery(s: &AppState, spec: &RecoverSpec) -> Result<String, ApiError> {
     let feeder = &spec.feeder_id;
     if !s.store.feeder_exists(feeder).await? {
         return Err(ApiError::invalid("feeder_id", format!("feeder {feeder} is not registered")));
@@ -34,9 +41,9 @@ async fn start(_: Operator, State(s): State<AppState>, body: Bytes) -> Result<(S
         meterveil_shared::recovery::table::check_table_size(&p.profile, spec.alpha_kw).map_err(ApiError::Invalid)?;
     }
     let job_id = crate::jobs::new_job_id("rec");
-    s.store.create_job(&job_id, &spec, now_s()).await?;
+    s.store.create_job(&job_id, spec, now_s()).await?;
     s.wake.notify_one();
-    Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
+    Ok(job_id)
 }
 
 /// A recovery job whose results may be served: 409 until it is done.

@@ -47,6 +47,25 @@ impl Store {
         Ok(())
     }
 
+    /// Records what a dashboard session did.
+    pub async fn record_action(
+        &self,
+        at: i64,
+        session_sha256: &str,
+        action: &str,
+        detail: &str,
+    ) -> Result<(), StoreError> {
+        let _w = self.write_lock().await;
+        sqlx::query("INSERT INTO dashboard_actions (at, session_sha256, action, detail) VALUES ($1, $2, $3, $4)")
+            .bind(at)
+            .bind(session_sha256)
+            .bind(action)
+            .bind(detail)
+            .execute(&self.pool)
+            .await?;
+        Ok(())
+    }
+
     /// Uses up a one-time code: true when it existed and had not expired. A
     /// code works once, whichever process redeems it.
     pub async fn redeem_code(&self, code_sha256: &str, now: i64) -> Result<bool, StoreError> {

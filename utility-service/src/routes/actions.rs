@@ -1,0 +1,187 @@
+//! What an operator can do from the dashboard: start a recovery for a feeder
+//! and a window of local dates, and cancel a job. Plain HTML forms; each
+//! carries the session's form token (`csrf`), and a form without it is refused
+//! with 403 before anything changes. Every action is recorded (when, which
+//! session, what) in `dashboard_actions`.
+
+use axum::extract::{Path, State};
+use axum::http::StatusCode;
+use axum::response::{IntoResponse, Redirect, Response};
+use axum::routing::post;
+use axum::{Form, Router};
+use chrono::{NaiveDate, TimeZone};
+use maud::{html, Markup};
+use serde::Deserialize;
+use serde_json::Value;
+
+use super::dashboard::{page, Viewer};
+use super::{now_s, AppState};
+use crate::error::ApiError;
+use crate::jobspec::RecoverRequest;
+use crate::store::queue::JobLine;
+use crate::store::FeederSummary;
+
+pub fn router() -> Router<AppState> {
+    Router::new()
+        .route("/dashboard/actions/recover", post(start_recovery))
+        .route("/dashboard/actions/cancel/{job_id}", post(cancel))
+}
+
+/// Whether a posted form token is this session's (compared in constant time).
+fn form_is_ours(v: &Viewer, token: &str) -> bool {
+    super::constant_time_eq(token.as_bytes(), v.csrf.as_bytes())
+}
+
+fn forged() -> Response {
+    let body = html! {
+        p.problem { strong { "Refused: " } "this form was not served to your session (its form token is missing or wrong). Nothing was changed." }
+        p { a href="/dashboard/jobs" { "Back to the jobs" } }
+    };
+    (StatusCode::FORBIDDEN, page("Refused", body, false)).into_response()
+}
+
+/// The form that starts a recovery, with a problem to show beside it.
+pub(crate) fn recovery_form(feeders: &[FeederSummary], v: &Viewer, problem: Option<(&str, &str)>) -> Markup {
+    html! {
+        h2 { "Start a recovery" }
+        form method="post" action="/dashboard/actions/recover" {
+            input type="hidden" name="csrf" value=(v.csrf);
+            label { "feeder " select name="feeder_id" {
+                @for f in feeders { option value=(f.feeder_id) { (f.feeder_id) } }
+            } }
+            " "
+            label { "from (local date) " input type="date" name="from" required; }
+            " "
+            label { "to, not included (local date) " input type="date" name="to" required; }
+            " "
+            label { "rank " input type="text" name="rank" value="auto" size="5"; }
+            " "
+            button type="submit" { "Start" }
+        }
+        p { "Dates are midnights in the feeder's own time zone; the rank is a number or auto." }
+        @if let Some((field, reason)) = problem {
+            p.problem { strong { "Not started: " (field) } ": " (reason) ". Nothing was stored." }
+        }
+    }
+}
+
+/// A cancel button for each queued or running job.
+pub(crate) fn cancel_forms(jobs: &[JobLine], v: &Viewer) -> Markup {
+    html! {
+        @for j in jobs.iter().filter(|j| j.state == "queued" || j.state == "running") {
+            form method="post" action=(format!("/dashboard/actions/cancel/{}", j.job_id)) {
+                input type="hidden" name="csrf" value=(v.csrf);
+                button type="submit" { "Cancel " (j.job_id) }
+            }
+        }
+    }
+}
+
+#[derive(Deserialize)]
+struct RecoveryForm {
+    #[serde(default)]
+    csrf: String,
+    #[serde(default)]
+    feeder_id: String,
+    #[serde(default)]
+    from: String,
+    #[serde(default)]
+    to: String,
+    #[serde(default)]
+    rank: String,
+}
+
+/// Midnight of a local date in the feeder's time zone, as UTC epoch seconds.
+fn local_midnight(field: &'static str, date: &str, tz: chrono_tz::Tz) -> Result<i64, (&'static str, String)> {
+    let d = NaiveDate::parse_from_str(date.trim(), "%Y-%m-%d")
+        .map_err(|_| (field, format!("{date:?} is not a date (YYYY-MM-DD)")))?;
+    let midnight = d.and_hms_opt(0, 0, 0).ok_or((field, "has no midnight".to_owned()))?;
+    tz.from_local_datetime(&midnight)
+        .earliest()
+        .map(|t| t.timestamp())
+        .ok_or((field, format!("midnight of {date} does not exist in {tz}")))
+}
+
+/// The recovery request a form asks for, or the field that is wrong and why.
+async fn recovery_request(s: &AppState, f: &RecoveryForm) -> Result<RecoverRequest, (&'static str, String)> {
+    let feeder = meterveil_shared::FeederId::parse(&f.feeder_id).map_err(|e| ("feeder_id", e.reason))?;
+    let tz = match s.store.feeder_time_zone(&feeder).await {
+        Ok(Some(tz)) => tz.parse::<chrono_tz::Tz>().unwrap_or(chrono_tz::UTC),
+        Ok(None) => return Err(("feeder_id", format!("{feeder} is not a registered feeder"))),
+        Err(e) => return Err(("feeder_id", e.to_string())),
+    };
+    let from = local_midnight("from", &f.from, tz)?;
+    let to = local_midnight("to", &f.to, tz)?;
+    let rank = match f.rank.trim() {
+        "" | "auto" => None,
+        r => Some(Value::from(r.parse::<u64>().map_err(|_| ("rank", format!("{r:?} is neither a number nor auto")))?)),
+    };
+    Ok(RecoverRequest { feeder_id: feeder.to_string(), from, to, rank, alpha_kw: None })
+}
+
+async fn start_recovery(
+    v: Viewer,
+    State(s): State<AppState>,
+    Form(f): Form<RecoveryForm>,
+) -> Result<Response, ApiError> {
+    if !form_is_ours(&v, &f.csrf) {
+        return Ok(forged());
+    }
+    let refuse = |feeders: Vec<FeederSummary>, field: &str, reason: &str| {
+        let body = recovery_form(&feeders, &v, Some((field, reason)));
+        (StatusCode::BAD_REQUEST, page("Start a recovery", body, false)).into_response()
+    };
+    let spec =
+        match recovery_request(&s, &f).await.and_then(|r| r.check().map_err(|e| (field_name(&e.field), e.reason))) {
+            Ok(spec) => spec,
+            Err((field, reason)) => return Ok(refuse(s.store.feeder_summaries().await?, field, &reason)),
+        };
+    let job_id = match super::recoveries::queue_recovery(&s, &spec).await {
+        Ok(id) => id,
+        Err(ApiError::Invalid(e)) => {
+            return Ok(refuse(s.store.feeder_summaries().await?, field_name(&e.field), &e.reason));
+        }
+        Err(e) => return Err(e),
+    };
+    let detail = format!("{job_id}: feeder {} from {} to {}", spec.feeder_id, f.from.trim(), f.to.trim());
+    s.store.record_action(now_s(), &v.session, "start recovery", &detail).await?;
+    Ok(Redirect::to("/dashboard/jobs").into_response())
+}
+
+/// The form's name for a field the request check named.
+fn field_name(f: &str) -> &'static str {
+    match f {
+        "feeder_id" => "feeder_id",
+        "from" => "from",
+        "to" => "to",
+        "rank" => "rank",
+        "alpha_kw" => "alpha_kw",
+        _ => "form",
+    }
+}
+
+#[derive(Deserialize)]
+struct CancelForm {
+    #[serde(default)]
+    csrf: String,
+}
+
+async fn cancel(
+    v: Viewer,
+    State(s): State<AppState>,
+    Path(id): Path<String>,
+    Form(f): Form<CancelForm>,
+) -> Result<Response, ApiError> {
+    if !form_is_ours(&v, &f.csrf) {
+        return Ok(forged());
+    }
+    if !s.store.cancel_job(&id, now_s()).await? {
+        let body = html! {
+            p.problem { strong { "Not cancelled: job_id" } ": " (id) " does not exist or has already ended." }
+            p { a href="/dashboard/jobs" { "Back to the jobs" } }
+        };
+        return Ok((StatusCode::BAD_REQUEST, page("Cancel a job", body, false)).into_response());
+    }
+    s.store.record_action(now_s(), &v.session, "cancel job", &id).await?;
+    Ok(Redirect::to("/dashboard/jobs").into_response())
+}
