@@ -1535,7 +1535,8 @@ async fn dashboard_pages_render_in_a_real_browser() {
     let shots = std::path::Path::new(env!("CARGO_TARGET_TMPDIR")).join("screenshots");
     std::fs::create_dir_all(&shots).expect("screenshot dir");
     let pages = [
-        ("overview", "/dashboard".to_owned(), "QM-CHAPEL-ROW"),
+        // The audited feeder's row shows the audit's F1 and, without targets, says so.
+        ("overview", "/dashboard".to_owned(), "– no targets set"),
         ("meter", format!("/dashboard/recoveries/{rec}?meter_id=QM-CHAPEL-ROW-0002"), "QM-CHAPEL-ROW-0002"),
         ("clusters", format!("/dashboard/clusterings/{clu}"), "Representative working day"),
         ("audit", format!("/dashboard/analyses/{aud}"), "In plain words"),
@@ -1675,11 +1676,42 @@ async fn dashboard_actions_need_their_form_token() {
         .await
         .expect("job");
     assert_eq!(error.as_deref(), Some("cancelled by the operator"));
-    let actions: Vec<String> = sqlx::query_scalar("SELECT action FROM dashboard_actions ORDER BY at, action")
-        .fetch_all(pool)
-        .await
-        .expect("actions");
-    assert_eq!(actions, ["cancel job", "start recovery"]);
+    // Targets: forged, then bad, then good.
+    let (s, body) =
+        post("/dashboard/actions/targets/F1", "event_f1_max=0.5&daily_energy_error_max_percent=10".into()).await;
+    assert_eq!(s, 403, "{body}");
+    for (form, field) in [
+        ("event_f1_max=abc&daily_energy_error_max_percent=10", "event_f1_max"),
+        ("event_f1_max=1.5&daily_energy_error_max_percent=10", "event_f1_max"),
+        ("event_f1_max=0.5&daily_energy_error_max_percent=500", "daily_energy_error_max_percent"),
+    ] {
+        let (s, body) = post("/dashboard/actions/targets/F1", format!("csrf={csrf}&{form}")).await;
+        assert_eq!(s, 400, "{form}: {body}");
+        assert!(body.contains(&format!("Not set: {field}")), "{form}: {body}");
+    }
+    let (s, body) = post(
+        "/dashboard/actions/targets/F9",
+        format!("csrf={csrf}&event_f1_max=0.5&daily_energy_error_max_percent=10"),
+    )
+    .await;
+    assert!(s == 400 && body.contains("Not set: feeder_id"), "{body}");
+    assert_eq!(t.count("SELECT COUNT(*) FROM feeder_targets").await, 0, "bad targets were stored");
+    let (s, body) = post(
+        "/dashboard/actions/targets/F1",
+        format!("csrf={csrf}&event_f1_max=0.5&daily_energy_error_max_percent=10"),
+    )
+    .await;
+    assert_eq!(s, 303, "{body}");
+    let home = plain.get(format!("{}/dashboard", t.url())).header("cookie", cookie).send().await.expect("get");
+    let home = home.text().await.expect("text");
+    assert!(
+        home.contains("value=\"0.50\"") && home.contains("value=\"10.0\"") && home.contains("– not audited yet"),
+        "{home}"
+    );
+    let mut actions: Vec<String> =
+        sqlx::query_scalar("SELECT action FROM dashboard_actions").fetch_all(pool).await.expect("actions");
+    actions.sort();
+    assert_eq!(actions, ["cancel job", "set targets", "start recovery"]);
 }
 
 /// Nothing of a refused upload is stored: no reading, no batch, no sequence number.

@@ -28,11 +28,11 @@ pub fn router() -> Router<AppState> {
 }
 
 /// Whether a posted form token is this session's (compared in constant time).
-fn form_is_ours(v: &Viewer, token: &str) -> bool {
+pub(crate) fn form_is_ours(v: &Viewer, token: &str) -> bool {
     super::constant_time_eq(token.as_bytes(), v.csrf.as_bytes())
 }
 
-fn forged() -> Response {
+pub(crate) fn forged() -> Response {
     let body = html! {
         p.problem { strong { "Refused: " } "this form was not served to your session (its form token is missing or wrong). Nothing was changed." }
         p { a href="/dashboard/jobs" { "Back to the jobs" } }

@@ -199,50 +199,19 @@ async fn enter(State(s): State<AppState>, Query(q): Query<EnterQuery>) -> Respon
     }
 }
 
-async fn overview(_: Viewer, State(s): State<AppState>) -> Result<Html<String>, ApiError> {
-    let feeders = feeder_rows(&s).await?;
+async fn overview(v: Viewer, State(s): State<AppState>) -> Result<Html<String>, ApiError> {
+    let feeders = super::overview::feeder_rows(&s).await?;
     let jobs = s.store.list_jobs(10).await?;
     let live = jobs.iter().any(|j| j.state == "running" || j.state == "queued");
     let body = html! {
         h2 { "Feeders" }
-        table {
-            tr {
-                th { "feeder" } th { "time zone" } th { "meters" } th { "readings" } th { "completeness" }
-                th { "register reads" } th { "dither profile" }
-            }
-            @for (f, tz, completeness, profile) in &feeders {
-                tr {
-                    td { (f.feeder_id) } td { (tz) } td { (f.meters) } td { (f.readings) } td { (completeness) }
-                    td { (f.register_reads) } td { (profile) }
-                }
-            }
-        }
+        (super::overview::feeder_table(&feeders, &v))
         h2 { "Recent jobs" }
         (jobs_table(&jobs))
         p { a href="/dashboard/jobs" { "All jobs, by feeder, kind and state" } }
         @if live { p { "This page refreshes every 5 seconds while jobs run." } }
     };
     Ok(page("Meterveil dashboard", body, live))
-}
-
-/// Each feeder's summary with its time zone, completeness and profile in words.
-async fn feeder_rows(s: &AppState) -> Result<Vec<(crate::store::FeederSummary, String, String, String)>, ApiError> {
-    let mut out = Vec::new();
-    for f in s.store.feeder_summaries().await? {
-        let id = FeederId::parse(&f.feeder_id).map_err(ApiError::Invalid)?;
-        let tz = s.store.feeder_time_zone(&id).await?.unwrap_or_default();
-        let completeness = match s.store.feeder_span(&id).await? {
-            Some((a, z)) => {
-                let step = f.current_profile.as_ref().map_or(900, |p| i64::from(p.profile.interval_s.max(1)));
-                let expected = f.meters * ((z - a) / step + 1);
-                format!("{:.1}%", 100.0 * f.readings as f64 / expected.max(1) as f64)
-            }
-            None => "–".into(),
-        };
-        let profile = f.current_profile.as_ref().map_or_else(|| "none".into(), |p| p.describe());
-        out.push((f, tz, completeness, profile));
-    }
-    Ok(out)
 }
 
 /// A job's id, linked to its page once it is done.
@@ -263,7 +232,7 @@ fn job_link(j: &JobLine) -> Markup {
 }
 
 /// UTC epoch seconds as `2026-12-03 18:53 UTC`.
-fn when(t: Option<i64>) -> String {
+pub(crate) fn when(t: Option<i64>) -> String {
     t.and_then(|t| chrono::DateTime::from_timestamp(t, 0))
         .map_or_else(|| "–".into(), |d| d.format("%Y-%m-%d %H:%M UTC").to_string())
 }
@@ -277,7 +246,7 @@ fn duration(s: i64) -> String {
     }
 }
 
-fn jobs_table(jobs: &[JobLine]) -> Markup {
+pub(crate) fn jobs_table(jobs: &[JobLine]) -> Markup {
     let day =
         |t: i64| chrono::DateTime::from_timestamp(t, 0).map_or_else(String::new, |d| d.format("%Y-%m-%d").to_string());
     html! {

@@ -7,6 +7,7 @@ pub mod dashboard;
 pub mod feeders;
 pub mod health;
 pub mod ingest;
+pub mod overview;
 pub mod recoveries;
 
 use std::sync::Arc;
@@ -50,6 +51,7 @@ pub fn router(state: AppState) -> Router {
         .merge(analyses::router())
         .merge(dashboard::router())
         .merge(actions::router())
+        .merge(overview::router())
         .with_state(state)
 }
 
