@@ -1708,10 +1708,54 @@ async fn dashboard_actions_need_their_form_token() {
         home.contains("value=\"0.50\"") && home.contains("value=\"10.0\"") && home.contains("– not audited yet"),
         "{home}"
     );
+    // Publishing: two finished calibrations as a worker would store them, one
+    // that met its targets and one that did not.
+    for (id, meets) in [("cal-meets", true), ("cal-misses", false)] {
+        let point = json!({"register_period": "daily", "levels": 3, "boundaries_kw": [1.0, 2.0], "scale_kw": 1.1,
+            "attacker_event_f1": 0.45, "attacker_strategy": "event_posterior", "utility_daily_energy_error": 0.02,
+            "utility_nrmse": 0.5});
+        let result = json!({"meets_targets": meets, "message": "test calibration", "feeder_id": "F1",
+            "recommended": {"noise": "gaussian", "scale_kw": 1.1, "boundaries_kw": [1.0, 2.0], "interval_s": 900,
+                "send_registers": true},
+            "chosen": point, "targets": {"event_f1_max": 0.6, "captured": 1, "daily_energy_error_max": 0.1},
+            "curve": [point], "evaluations": 1, "published_version": null});
+        sqlx::query(
+            "INSERT INTO analysis_jobs (job_id, kind, feeder_id, params, state, created_at, finished_at, result)
+             VALUES ($1, 'calibrate', 'F1', '{}', 'done', $2, $2, $3)",
+        )
+        .bind(id)
+        .bind(now_s())
+        .bind(result.to_string())
+        .execute(pool)
+        .await
+        .expect("calibration row");
+    }
+    let versions = || t.count("SELECT COUNT(*) FROM dither_profiles WHERE feeder_id = 'F1'");
+    let before = versions().await;
+    let home = plain.get(format!("{}/dashboard", t.url())).header("cookie", cookie).send().await.expect("get");
+    let home = home.text().await.expect("text");
+    assert!(!home.contains("/dashboard/publish/cal-misses"), "a recommendation that missed is offered: {home}");
+    let confirm = plain.get(format!("{}/dashboard/publish/cal-meets", t.url())).header("cookie", cookie).send().await;
+    let confirm = confirm.expect("get").text().await.expect("text");
+    assert!(
+        confirm.contains("0.45 (target ≤ 0.60)") && confirm.contains("Publish as the next profile version"),
+        "{confirm}"
+    );
+    let (s, body) = post("/dashboard/actions/publish/cal-meets", String::new()).await;
+    assert_eq!(s, 403, "a publish without its token: {body}");
+    let (s, body) = post("/dashboard/actions/publish/cal-misses", format!("csrf={csrf}")).await;
+    assert!(s == 400 && body.contains("Not published: meets_targets"), "{body}");
+    assert_eq!(versions().await, before, "a refused publish stored a profile");
+    let (s, body) = post("/dashboard/actions/publish/cal-meets", format!("csrf={csrf}")).await;
+    assert_eq!(s, 303, "{body}");
+    assert_eq!(versions().await, before + 1, "publishing creates the next profile version");
+    let (s, body) = post("/dashboard/actions/publish/cal-meets", format!("csrf={csrf}")).await;
+    assert!(s == 400 && body.contains("published before"), "{body}");
+    assert_eq!(versions().await, before + 1);
     let mut actions: Vec<String> =
         sqlx::query_scalar("SELECT action FROM dashboard_actions").fetch_all(pool).await.expect("actions");
     actions.sort();
-    assert_eq!(actions, ["cancel job", "set targets", "start recovery"]);
+    assert_eq!(actions, ["cancel job", "publish recommendation", "set targets", "start recovery"]);
 }
 
 /// Nothing of a refused upload is stored: no reading, no batch, no sequence number.

@@ -8,6 +8,7 @@ pub mod feeders;
 pub mod health;
 pub mod ingest;
 pub mod overview;
+pub mod publish;
 pub mod recoveries;
 
 use std::sync::Arc;
@@ -52,6 +53,7 @@ pub fn router(state: AppState) -> Router {
         .merge(dashboard::router())
         .merge(actions::router())
         .merge(overview::router())
+        .merge(publish::router())
         .with_state(state)
 }
 

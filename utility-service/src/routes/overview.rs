@@ -33,6 +33,8 @@ pub(crate) struct FeederRow {
     pub audit: Option<(f64, f64)>,
     pub targets: Option<FeederTargets>,
     pub recommendation: String,
+    /// A finished calibration whose recommendation meets its targets and is not published.
+    pub publishable: Option<String>,
 }
 
 impl FeederRow {
@@ -99,7 +101,14 @@ pub(crate) async fn feeder_rows(s: &AppState) -> Result<Vec<FeederRow>, ApiError
             let r = a.result?;
             Some((r["strongest"]["event_f1"].as_f64()?, r["utility"]["daily_energy_error"].as_f64()?))
         });
-        let recommendation = match s.store.latest_analysis(id.as_str(), "calibrate").await?.and_then(|a| a.result) {
+        let latest_calibration = s.store.latest_analysis(id.as_str(), "calibrate").await?;
+        let publishable = latest_calibration
+            .as_ref()
+            .filter(|a| {
+                a.result.as_ref().is_some_and(|r| r["meets_targets"] == true && r["published_version"].is_null())
+            })
+            .map(|a| a.job_id.clone());
+        let recommendation = match latest_calibration.and_then(|a| a.result) {
             Some(r) if r["meets_targets"] == true && r["published_version"].is_null() => format!(
                 "σ {} kW, boundaries {} kW: meets its targets, not published",
                 r["recommended"]["scale_kw"], r["recommended"]["boundaries_kw"]
@@ -109,7 +118,16 @@ pub(crate) async fn feeder_rows(s: &AppState) -> Result<Vec<FeederRow>, ApiError
             None => "–".into(),
         };
         let targets = s.store.feeder_targets(id.as_str()).await?;
-        out.push(FeederRow { summary: f, completeness, profile, recovery, audit, targets, recommendation });
+        out.push(FeederRow {
+            summary: f,
+            completeness,
+            profile,
+            recovery,
+            audit,
+            targets,
+            recommendation,
+            publishable,
+        });
     }
     Ok(out)
 }
@@ -136,7 +154,12 @@ pub(crate) fn feeder_table(rows: &[FeederRow], v: &Viewer) -> Markup {
                     }
                     td { (targets_form(&r.summary.feeder_id, r.targets, v)) }
                     td { (r.status()) }
-                    td { (r.recommendation) }
+                    td {
+                        (r.recommendation)
+                        @if let Some(id) = &r.publishable {
+                            " " a href=(format!("/dashboard/publish/{id}")) { "review and publish" }
+                        }
+                    }
                 }
             }
         }

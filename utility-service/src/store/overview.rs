@@ -46,6 +46,44 @@ impl Store {
         }
     }
 
+    /// Publishes a finished calibration's recommendation as the feeder's next
+    /// profile version and marks the calibration published, in one
+    /// transaction; `Conflict` when it was published before (by anyone).
+    pub async fn publish_recommendation(
+        &self,
+        calibration: &str,
+        feeder: &meterveil_shared::FeederId,
+        profile: &meterveil_shared::DitherProfile,
+        now: i64,
+    ) -> Result<i64, StoreError> {
+        let _w = self.write_lock().await;
+        let mut tx = self.pool.begin().await?;
+        let lock = if self.backend == super::Backend::Postgres { " FOR UPDATE" } else { "" };
+        let stored: Option<String> =
+            sqlx::query_scalar(&format!("SELECT result FROM analysis_jobs WHERE job_id = $1{lock}"))
+                .bind(calibration)
+                .fetch_optional(&mut *tx)
+                .await?
+                .flatten();
+        let mut result: serde_json::Value =
+            stored.and_then(|s| serde_json::from_str(&s).ok()).unwrap_or(serde_json::Value::Null);
+        if !result["published_version"].is_null() {
+            return Err(StoreError::Conflict(meterveil_shared::FieldError::new(
+                "job_id",
+                format!("calibration {calibration} was published before, as version {}", result["published_version"]),
+            )));
+        }
+        let version = super::insert_profile(self.backend, &mut tx, feeder, profile, now).await?;
+        result["published_version"] = version.into();
+        sqlx::query("UPDATE analysis_jobs SET result = $1 WHERE job_id = $2")
+            .bind(result.to_string())
+            .bind(calibration)
+            .execute(&mut *tx)
+            .await?;
+        tx.commit().await?;
+        Ok(version)
+    }
+
     pub async fn feeder_targets(&self, feeder: &str) -> Result<Option<FeederTargets>, StoreError> {
         let row = sqlx::query("SELECT event_f1_max, daily_energy_error_max FROM feeder_targets WHERE feeder_id = $1")
             .bind(feeder)
