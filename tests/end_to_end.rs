@@ -1592,6 +1592,20 @@ async fn jobs_page_filters_and_refuses_bad_input(t: &TestService, plain: &reqwes
     assert!(page.contains("QM-CHAPEL-ROW") && page.contains(" UTC") && page.contains("1 jobs; page 1 of 1"), "{page}");
     let (s, page) = get("").await;
     assert!(s == 200 && page.contains(rec) && page.contains(aud) && page.contains("3 jobs"), "{page}");
+    // The meter view: a day in local time with UTC beside it, the meter list searched, a bad span refused.
+    let view = |q: String| {
+        let (plain, cookie, url) =
+            (plain.clone(), cookie.clone(), format!("{}/dashboard/recoveries/{rec}{q}", t.url()));
+        async move {
+            let r = plain.get(url).header("cookie", cookie).send().await.expect("get");
+            (r.status().as_u16(), r.text().await.expect("text"))
+        }
+    };
+    let (s, page) = view("?meter_id=QM-CHAPEL-ROW-0002&span=day&start_day=1&q=0002".into()).await;
+    assert_eq!(s, 200, "{page}");
+    assert!(page.contains(" UTC)") && page.contains("1 of 12 meters match") && page.contains("<svg"), "{page}");
+    let (s, page) = view("?span=month".into()).await;
+    assert!(s == 400 && page.contains("Not shown: span"), "{page}");
     for (q, field) in
         [("?kind=sweep", "kind"), ("?feeder=QM-NOWHERE", "feeder"), ("?state=lost", "state"), ("?page=0", "page")]
     {

@@ -325,7 +325,13 @@ fn calibration_searches(c: &Calibration) -> Markup {
 
 /// A meter's recovered profile with its band, and its stored levels drawn at
 /// their band's lower boundary, over hours from `t0`.
-pub(crate) fn profile_chart(title: &str, t0: i64, recovered: &[(i64, f64, f64, f64)], levels: &[(i64, f64)]) -> String {
+pub(crate) fn profile_chart(
+    title: &str,
+    x_label: &str,
+    t0: i64,
+    recovered: &[(i64, f64, f64, f64)],
+    levels: &[(i64, f64)],
+) -> String {
     let mut svg = String::new();
     {
         let root = SVGBackend::with_string(&mut svg, (900, 360)).into_drawing_area();
@@ -333,14 +339,14 @@ pub(crate) fn profile_chart(title: &str, t0: i64, recovered: &[(i64, f64, f64, f
             root.fill(&WHITE)?;
             let h = |t: i64| (t - t0) as f64 / 3600.0;
             let x1 = recovered.last().map_or(24.0, |r| h(r.0)).max(1.0);
-            let y1 = recovered.iter().map(|r| r.3).chain(levels.iter().map(|l| l.1)).fold(1.0f64, f64::max) * 1.1;
+            let y1 = recovered.iter().map(|r| r.3).chain(levels.iter().map(|l| l.1)).fold(1.0f64, f64::max) * 1.45;
             let mut chart = ChartBuilder::on(&root)
                 .caption(title, ("sans-serif", 18))
                 .margin(12)
                 .x_label_area_size(40)
                 .y_label_area_size(52)
                 .build_cartesian_2d(0.0..x1, 0.0..y1)?;
-            chart.configure_mesh().x_desc("hours from the window start").y_desc("kW").draw()?;
+            chart.configure_mesh().x_desc(x_label).y_desc("kW").draw()?;
             let band: Vec<(f64, f64)> =
                 recovered.iter().map(|r| (h(r.0), r.3)).chain(recovered.iter().rev().map(|r| (h(r.0), r.2))).collect();
             chart
@@ -355,7 +361,13 @@ pub(crate) fn profile_chart(title: &str, t0: i64, recovered: &[(i64, f64, f64, f
                 .draw_series(levels.iter().map(|l| Circle::new((h(l.0), l.1), 2, RED.mix(0.6).filled())))?
                 .label("stored level (its lower boundary, kW)")
                 .legend(|(x, y)| Circle::new((x + 9, y), 3, RED.filled()));
-            chart.configure_series_labels().background_style(WHITE.mix(0.85)).border_style(BLACK).draw()?;
+            // Headroom above the data keeps the legend, top right, off it.
+            chart
+                .configure_series_labels()
+                .position(SeriesLabelPosition::UpperRight)
+                .background_style(WHITE.mix(0.85))
+                .border_style(BLACK)
+                .draw()?;
             root.present()?;
             Ok(())
         };

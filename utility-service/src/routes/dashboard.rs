@@ -23,7 +23,7 @@ use crate::store::queue::{JobFilter, JobLine};
 use crate::store::{Store, StoreError};
 use maud::{html, Markup, PreEscaped, DOCTYPE};
 
-use crate::report::{line_chart, profile_chart, STYLE};
+use crate::report::{line_chart, STYLE};
 
 const SESSION_COOKIE: &str = "mv_session";
 const SESSION_S: i64 = 8 * 3600;
@@ -57,7 +57,7 @@ pub fn router() -> Router<AppState> {
         .route("/dashboard/enter", get(enter))
         .route("/v1/dashboard/links", post(mint_link))
         .route("/dashboard", get(overview))
-        .route("/dashboard/recoveries/{job_id}", get(meter_page))
+        .route("/dashboard/recoveries/{job_id}", get(super::meter_view::meter_page))
         .route("/dashboard/clusterings/{job_id}", get(clusters_page))
         .route("/dashboard/analyses/{job_id}", get(analysis_page))
         .route("/dashboard/jobs", get(jobs_page))
@@ -374,71 +374,6 @@ async fn jobs_page(v: Viewer, State(s): State<AppState>, Query(q): Query<JobsQue
         }
     };
     Ok(page("Jobs", body, live).into_response())
-}
-
-#[derive(Deserialize)]
-struct MeterQuery {
-    meter_id: Option<String>,
-}
-
-async fn meter_page(
-    _: Viewer,
-    State(s): State<AppState>,
-    Path(id): Path<String>,
-    Query(q): Query<MeterQuery>,
-) -> Result<Html<String>, ApiError> {
-    let job = super::recoveries::find(&s, &id).await?;
-    if job.state != "done" {
-        return Ok(page(&format!("Recovery {id}"), html! { p { "The job is " (job.state) "." } }, true));
-    }
-    let feeder = FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
-    let meters = s.store.meters_of(&feeder).await?;
-    let meter = q.meter_id.filter(|m| meters.contains(m)).or_else(|| meters.first().cloned()).unwrap_or_default();
-    let rows = s.store.job_rows(&id, Some(&meter)).await?;
-    tracing::info!(job = %id, meter = %meter, "dashboard per-meter view");
-    let week_end = job.window_start + 7 * 86_400;
-    let recovered: Vec<(i64, f64, f64, f64)> = rows
-        .iter()
-        .filter(|r| r.interval_start < week_end)
-        .map(|r| (r.interval_start, r.kw, r.kw_low, r.kw_high))
-        .collect();
-    let profile = s
-        .store
-        .profiles(&feeder)
-        .await?
-        .into_iter()
-        .find(|p| Some(i64::from(p.version.0)) == job.profile_version)
-        .map(|p| p.profile);
-    let bounds: Vec<f64> = profile.as_ref().map(|p| p.boundaries_kw().to_vec()).unwrap_or_default();
-    let levels: Vec<(i64, f64)> = s
-        .store
-        .meter_levels_between(&meter, job.window_start, week_end.min(job.window_end))
-        .await?
-        .into_iter()
-        .map(|(t, l)| (t, if l == 0 { 0.0 } else { bounds.get(usize::from(l) - 1).copied().unwrap_or(0.0) }))
-        .collect();
-    let counts = |f: &str| rows.iter().filter(|r| r.flag == f).count();
-    let chart = profile_chart(&format!("Meter {meter}"), job.window_start, &recovered, &levels);
-    let body = html! {
-        p { "Feeder " (job.feeder_id) " · window starting " (job.window_start) " (UTC epoch) · first 7 days shown." }
-        (PreEscaped(chart))
-        p {
-            (format!(
-                "Intervals: {} derived, {} estimated (no reading), {} corrected (reading judged corrupt).",
-                counts("derived"),
-                counts("estimated"),
-                counts("corrected")
-            ))
-        }
-        h2 { "Meters" }
-        p {
-            @for m in &meters {
-                a href=(format!("/dashboard/recoveries/{id}?meter_id={m}")) { (m) }
-                " "
-            }
-        }
-    };
-    Ok(page(&format!("Recovered profile of {meter}"), body, false))
 }
 
 async fn clusters_page(_: Viewer, State(s): State<AppState>, Path(id): Path<String>) -> Result<Html<String>, ApiError> {

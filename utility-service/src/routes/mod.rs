@@ -7,6 +7,7 @@ pub mod dashboard;
 pub mod feeders;
 pub mod health;
 pub mod ingest;
+pub mod meter_view;
 pub mod overview;
 pub mod publish;
 pub mod recoveries;
