@@ -546,11 +546,15 @@ async fn batches_are_idempotent_and_used_profiles_immutable() {
 /// Allowed columns of each schema whose names mention a unit. Anything else with
 /// a unit name, and any REAL column but the profile's own scale, fails.
 /// (`wh` is a completed register period's advance; no running total may exist.)
-const UNIT_COLUMNS: [&str; 6] = ["scale_kw", "boundaries_kw", "wh", "estimate_kw", "band_low_kw", "band_high_kw"];
+/// (`daily_energy_error_max` is an operator's target, a fraction.)
+const UNIT_COLUMNS: [&str; 7] =
+    ["scale_kw", "boundaries_kw", "wh", "estimate_kw", "band_low_kw", "band_high_kw", "daily_energy_error_max"];
 
 /// REAL columns that hold configuration or the population model's estimates, never a reading.
-const REAL_COLUMNS: [(&str, &str); 7] = [
+const REAL_COLUMNS: [(&str, &str); 9] = [
     ("dither_profiles", "scale_kw"),
+    ("feeder_targets", "event_f1_max"),
+    ("feeder_targets", "daily_energy_error_max"),
     ("recovery_jobs", "progress"),
     ("analysis_jobs", "progress"),
     ("cluster_assignments", "confidence"),
