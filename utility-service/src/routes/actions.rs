@@ -11,6 +11,7 @@ use axum::routing::post;
 use axum::{Form, Router};
 use chrono::{NaiveDate, TimeZone};
 use maud::{html, Markup};
+use meterveil_shared::FieldError;
 use serde::Deserialize;
 use serde_json::Value;
 
@@ -92,29 +93,31 @@ struct RecoveryForm {
 }
 
 /// Midnight of a local date in the feeder's time zone, as UTC epoch seconds.
-fn local_midnight(field: &'static str, date: &str, tz: chrono_tz::Tz) -> Result<i64, (&'static str, String)> {
+fn local_midnight(field: &str, date: &str, tz: chrono_tz::Tz) -> Result<i64, FieldError> {
     let d = NaiveDate::parse_from_str(date.trim(), "%Y-%m-%d")
-        .map_err(|_| (field, format!("{date:?} is not a date (YYYY-MM-DD)")))?;
-    let midnight = d.and_hms_opt(0, 0, 0).ok_or((field, "has no midnight".to_owned()))?;
+        .map_err(|_| FieldError::new(field, format!("{date:?} is not a date (YYYY-MM-DD)")))?;
+    let midnight = d.and_hms_opt(0, 0, 0).ok_or_else(|| FieldError::new(field, "has no midnight"))?;
     tz.from_local_datetime(&midnight)
         .earliest()
         .map(|t| t.timestamp())
-        .ok_or((field, format!("midnight of {date} does not exist in {tz}")))
+        .ok_or_else(|| FieldError::new(field, format!("midnight of {date} does not exist in {tz}")))
 }
 
 /// The recovery request a form asks for, or the field that is wrong and why.
-async fn recovery_request(s: &AppState, f: &RecoveryForm) -> Result<RecoverRequest, (&'static str, String)> {
-    let feeder = meterveil_shared::FeederId::parse(&f.feeder_id).map_err(|e| ("feeder_id", e.reason))?;
+async fn recovery_request(s: &AppState, f: &RecoveryForm) -> Result<RecoverRequest, FieldError> {
+    let feeder = meterveil_shared::FeederId::parse(&f.feeder_id)?;
     let tz = match s.store.feeder_time_zone(&feeder).await {
         Ok(Some(tz)) => tz.parse::<chrono_tz::Tz>().unwrap_or(chrono_tz::UTC),
-        Ok(None) => return Err(("feeder_id", format!("{feeder} is not a registered feeder"))),
-        Err(e) => return Err(("feeder_id", e.to_string())),
+        Ok(None) => return Err(FieldError::new("feeder_id", format!("{feeder} is not a registered feeder"))),
+        Err(e) => return Err(FieldError::new("feeder_id", e.to_string())),
     };
     let from = local_midnight("from", &f.from, tz)?;
     let to = local_midnight("to", &f.to, tz)?;
     let rank = match f.rank.trim() {
         "" | "auto" => None,
-        r => Some(Value::from(r.parse::<u64>().map_err(|_| ("rank", format!("{r:?} is neither a number nor auto")))?)),
+        r => Some(Value::from(
+            r.parse::<u64>().map_err(|_| FieldError::new("rank", format!("{r:?} is neither a number nor auto")))?,
+        )),
     };
     Ok(RecoverRequest { feeder_id: feeder.to_string(), from, to, rank, alpha_kw: None })
 }
@@ -131,33 +134,18 @@ async fn start_recovery(
         let body = recovery_form(&feeders, &v, Some((field, reason)));
         (StatusCode::BAD_REQUEST, page("Start a recovery", body, false)).into_response()
     };
-    let spec =
-        match recovery_request(&s, &f).await.and_then(|r| r.check().map_err(|e| (field_name(&e.field), e.reason))) {
-            Ok(spec) => spec,
-            Err((field, reason)) => return Ok(refuse(s.store.feeder_summaries().await?, field, &reason)),
-        };
-    let job_id = match super::recoveries::queue_recovery(&s, &spec).await {
-        Ok(id) => id,
-        Err(ApiError::Invalid(e)) => {
-            return Ok(refuse(s.store.feeder_summaries().await?, field_name(&e.field), &e.reason));
-        }
+    let checked = match recovery_request(&s, &f).await.and_then(RecoverRequest::check) {
+        Ok(spec) => super::recoveries::queue_recovery(&s, &spec).await.map(|id| (spec, id)),
+        Err(e) => Err(ApiError::Invalid(e)),
+    };
+    let (spec, job_id) = match checked {
+        Ok(done) => done,
+        Err(ApiError::Invalid(e)) => return Ok(refuse(s.store.feeder_summaries().await?, &e.field, &e.reason)),
         Err(e) => return Err(e),
     };
     let detail = format!("{job_id}: feeder {} from {} to {}", spec.feeder_id, f.from.trim(), f.to.trim());
     s.store.record_action(now_s(), &v.session, "start recovery", &detail).await?;
     Ok(Redirect::to("/dashboard/jobs").into_response())
-}
-
-/// The form's name for a field the request check named.
-fn field_name(f: &str) -> &'static str {
-    match f {
-        "feeder_id" => "feeder_id",
-        "from" => "from",
-        "to" => "to",
-        "rank" => "rank",
-        "alpha_kw" => "alpha_kw",
-        _ => "form",
-    }
 }
 
 #[derive(Deserialize)]

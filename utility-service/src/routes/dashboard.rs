@@ -237,6 +237,11 @@ pub(crate) fn when(t: Option<i64>) -> String {
         .map_or_else(|| "–".into(), |d| d.format("%Y-%m-%d %H:%M UTC").to_string())
 }
 
+/// The UTC date of epoch second `t`, `2026-12-03`.
+pub(crate) fn utc_day(t: i64) -> String {
+    chrono::DateTime::from_timestamp(t, 0).map_or_else(String::new, |d| d.format("%Y-%m-%d").to_string())
+}
+
 /// A span of seconds in words: `45 s`, `3 min 05 s`, `2 h 10 min`.
 fn duration(s: i64) -> String {
     match s {
@@ -247,8 +252,6 @@ fn duration(s: i64) -> String {
 }
 
 pub(crate) fn jobs_table(jobs: &[JobLine]) -> Markup {
-    let day =
-        |t: i64| chrono::DateTime::from_timestamp(t, 0).map_or_else(String::new, |d| d.format("%Y-%m-%d").to_string());
     html! {
         table {
             tr {
@@ -259,7 +262,7 @@ pub(crate) fn jobs_table(jobs: &[JobLine]) -> Markup {
                 tr {
                     td { (job_link(j)) }
                     td { (j.feeder_id.as_deref().unwrap_or("whole town")) }
-                    td { (j.window.map_or("–".into(), |(a, b)| format!("{} – {}", day(a), day(b - 1)))) }
+                    td { (j.window.map_or("–".into(), |(a, b)| format!("{} – {}", utc_day(a), utc_day(b - 1)))) }
                     td { (j.kind) }
                     td { (j.state) }
                     td { progress max="1" value=(format!("{:.3}", j.progress)) {} (format!(" {:.0}%", 100.0 * j.progress)) }

@@ -13,7 +13,7 @@ use maud::{html, Markup};
 use meterveil_shared::FeederId;
 use serde::Deserialize;
 
-use super::dashboard::{page, when, Viewer};
+use super::dashboard::{page, utc_day, when, Viewer};
 use super::{now_s, AppState};
 use crate::error::ApiError;
 use crate::store::overview::FeederTargets;
@@ -67,15 +67,13 @@ impl FeederRow {
 
 /// The latest finished recovery in a phrase: when, its window, rank, stop, corrections.
 fn recovery_phrase(j: &crate::store::recoveries::JobRecord) -> String {
-    let day =
-        |t: i64| chrono::DateTime::from_timestamp(t, 0).map_or_else(String::new, |d| d.format("%Y-%m-%d").to_string());
     let d = j.diagnostics.clone().unwrap_or_default();
     let readings = d["readings"].as_f64().unwrap_or(0.0).max(1.0);
     format!(
         "ran {}; days {} – {}; rank {}, {}, {:.1}% of readings corrected",
         when(j.finished_at),
-        day(j.window_start),
-        day(j.window_end - 1),
+        utc_day(j.window_start),
+        utc_day(j.window_end - 1),
         d["rank"],
         d["stop"].as_str().unwrap_or("?"),
         100.0 * d["corrected"].as_f64().unwrap_or(0.0) / readings

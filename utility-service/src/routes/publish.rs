@@ -67,7 +67,7 @@ fn refused(field: &str, reason: &str) -> Response {
 }
 
 fn trade_off(p: &Publishable) -> Markup {
-    let c = &p.chosen();
+    let c = &p.calibration.chosen;
     html! {
         table {
             tr { th { "" } th { "recommended" } }
@@ -77,12 +77,6 @@ fn trade_off(p: &Publishable) -> Markup {
             tr { td { "utility's interval nRMSE" } td { (format!("{:.2}", c.utility_nrmse)) } }
         }
         p { (p.calibration.message) }
-    }
-}
-
-impl Publishable {
-    fn chosen(&self) -> &meterveil_shared::calibrate::TradeoffPoint {
-        &self.calibration.chosen
     }
 }
 
