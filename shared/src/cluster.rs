@@ -398,14 +398,16 @@ pub struct Representative {
     pub weekend_kw: Vec<f64>,
 }
 
-/// Representative shapes of each cluster. `window_start` is the UTC epoch second
-/// of column 0; `interval_s` divides a day.
+/// Representative shapes of each cluster over a local day in `tz`: slot 0 is
+/// local midnight, and weekends are local Saturdays and Sundays. `window_start`
+/// is the UTC epoch second of column 0; `interval_s` divides a day.
 pub fn representatives(
     profiles: &DMatrix<f64>,
     c: &Clustering,
-    window_start: i64,
+    (window_start, tz): (i64, crate::Tz),
     interval_s: u32,
 ) -> Vec<Representative> {
+    use chrono::{Datelike, Offset, TimeZone};
     let per_day = (86_400 / interval_s.max(1)) as usize;
     let mut out: Vec<Representative> = (0..c.clusters)
         .map(|k| Representative { cluster: k, size: 0, weekday_kw: vec![0.0; per_day], weekend_kw: vec![0.0; per_day] })
@@ -415,8 +417,10 @@ pub fn representatives(
         out[l].size += 1;
         for j in 0..profiles.ncols() {
             let t = window_start + j as i64 * i64::from(interval_s);
-            let weekend = crate::domain::utc_weekday(t) >= 5;
-            let slot = (t.rem_euclid(86_400) / i64::from(interval_s)) as usize % per_day;
+            let local = tz.timestamp_opt(t, 0).single();
+            let offset = local.map_or(0, |d| i64::from(d.offset().fix().local_minus_utc()));
+            let weekend = local.map_or(crate::domain::utc_weekday(t) >= 5, |d| d.weekday().number_from_monday() >= 6);
+            let slot = ((t + offset).rem_euclid(86_400) / i64::from(interval_s)) as usize % per_day;
             let target = if weekend { &mut out[l].weekend_kw } else { &mut out[l].weekday_kw };
             target[slot] += profiles[(i, j)];
             counts[l][usize::from(weekend)][slot] += 1;
@@ -531,7 +535,7 @@ mod tests {
         // together inside the shapes, so the iteration runs to its limit and says so.
         assert_eq!(sparse.eigen, EigenSolve { stop: EigenStop::MaxIterations, iterations: 1000 });
         assert_eq!(adjusted_rand(&sparse.labels, &c.labels), 1.0);
-        let reps = representatives(&x, &c, 1_700_006_400, 900);
+        let reps = representatives(&x, &c, (1_700_006_400, crate::Tz::UTC), 900);
         assert_eq!(reps.iter().map(|r| r.size).sum::<usize>(), m);
         assert!(cluster(&DMatrix::zeros(1, 5), &ClusterParams::default()).is_err());
         // Two or three customers: too few eigenvalues for a gap, still no panic.
@@ -539,5 +543,32 @@ mod tests {
             let c = cluster(&x.rows(0, m).clone_owned(), &ClusterParams::default()).unwrap();
             assert!(c.clusters >= 1 && c.clusters <= m && c.labels.len() == m);
         }
+    }
+
+    #[test]
+    fn representative_days_are_local_days() {
+        // One customer, 2 days of hourly columns from Friday 2023-01-06 00:00
+        // UTC, drawing 5 kW only at 00:00 UTC. In Paris (UTC+1 in winter, a
+        // fact of the zone) that is 01:00 local; Saturday starts at 23:00 UTC
+        // on Friday, so the second spike falls on a local weekend day.
+        let start = 1_672_963_200;
+        let x = DMatrix::from_fn(1, 48, |_, j| if j % 24 == 0 { 5.0 } else { 1.0 });
+        let c = Clustering {
+            labels: vec![0],
+            confidence: vec![1.0],
+            assigned: vec![true],
+            clusters: 1,
+            chosen_by: CountChoice::Operator,
+            coherence: vec![1.0],
+            eigenvalues: vec![],
+            eigen: EigenSolve { stop: EigenStop::Direct, iterations: 0 },
+        };
+        let paris: crate::Tz = "Europe/Paris".parse().unwrap();
+        let local = representatives(&x, &c, (start, paris), 3600);
+        assert_eq!((local[0].weekday_kw[1], local[0].weekday_kw[2]), (5.0, 1.0));
+        assert_eq!((local[0].weekend_kw[0], local[0].weekend_kw[1]), (1.0, 5.0));
+        let utc = representatives(&x, &c, (start, crate::Tz::UTC), 3600);
+        assert_eq!((utc[0].weekday_kw[0], utc[0].weekday_kw[1]), (5.0, 1.0));
+        assert_eq!((utc[0].weekend_kw[0], utc[0].weekend_kw[1]), (5.0, 1.0));
     }
 }

@@ -28,9 +28,9 @@ impl RunningService {
         format!("http://{}", self.addr)
     }
 
-    /// A one-time dashboard sign-in path to `next`.
-    pub async fn dashboard_link(&self, next: &str) -> anyhow::Result<String> {
-        Ok(crate::routes::dashboard::one_time_link(&self.store, next).await?)
+    /// A one-time dashboard sign-in path to `next` for the operator `who`.
+    pub async fn dashboard_link(&self, next: &str, who: &str) -> anyhow::Result<String> {
+        crate::routes::dashboard::one_time_link(&self.store, next, who).await.map_err(|e| anyhow::anyhow!("{e}"))
     }
 
     /// Stops accepting connections, finishes in-flight requests and returns.

@@ -70,6 +70,9 @@ pub enum Command {
         /// The dashboard page the link opens.
         #[arg(long, default_value = "/dashboard")]
         next: String,
+        /// The operator's name, shown in the action log and the profile history.
+        #[arg(long, default_value = "operator")]
+        who: String,
     },
     /// List, inspect or cancel jobs in the database.
     Jobs {
@@ -285,9 +288,11 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
     match cli.command {
         Command::Work { database_url, job_lease_s, feeders } => work(database_url, job_lease_s, feeders).await,
         Command::Jobs { database_url, action } => jobs_command(&database_url, action).await,
-        Command::DashboardLink { database_url, url, next } => {
+        Command::DashboardLink { database_url, url, next, who } => {
             let store = crate::store::Store::open(&database_url).await?;
-            let path = crate::routes::dashboard::one_time_link(&store, &next).await?;
+            let path = crate::routes::dashboard::one_time_link(&store, &next, &who)
+                .await
+                .map_err(|e| anyhow::anyhow!("{e}"))?;
             println!("{}{path}", url.as_deref().unwrap_or("").trim_end_matches('/'));
             Ok(())
         }

@@ -15,6 +15,10 @@ pub struct ProfileRecord {
     pub created_at: i64,
     pub profile: DitherProfile,
     pub in_use: bool,
+    /// Who published it: the HTTP API, a dashboard operator by name, or a calibration.
+    pub published_by: String,
+    /// When an upload first used it (UTC epoch seconds), if one has.
+    pub first_used_at: Option<i64>,
 }
 
 impl ProfileRecord {

@@ -17,18 +17,20 @@ pub(crate) fn line_chart(
 ) -> String {
     let mut svg = String::new();
     {
-        let root = SVGBackend::with_string(&mut svg, (640, 360)).into_drawing_area();
+        let root = SVGBackend::with_string(&mut svg, (720, 420)).into_drawing_area();
         let draw = || -> Result<(), Box<dyn std::error::Error + '_>> {
             root.fill(&WHITE)?;
             let xs: Vec<f64> = series.iter().flat_map(|s| s.1.iter().map(|p| p.0)).collect();
             let (x0, x1) = xs.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), x| (a.min(*x), b.max(*x)));
             let (x0, x1) = if x0.is_finite() && x1 > x0 { (x0, x1) } else { (0.0, 1.0) };
+            // Headroom above the data, one legend row per series, keeps the legend off it.
+            let top = y_max * (1.05 + 0.09 * series.len() as f64);
             let mut chart = ChartBuilder::on(&root)
                 .caption(title, ("sans-serif", 18))
                 .margin(12)
                 .x_label_area_size(40)
                 .y_label_area_size(52)
-                .build_cartesian_2d(x0..x1, 0.0..y_max)?;
+                .build_cartesian_2d(x0..x1, 0.0..top)?;
             chart.configure_mesh().x_desc(x_label).y_desc(y_label).light_line_style(WHITE.mix(0.0)).draw()?;
             for (i, (name, pts)) in series.iter().enumerate() {
                 let color = Palette99::pick(i).to_rgba();
@@ -38,7 +40,12 @@ pub(crate) fn line_chart(
                     .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], color.stroke_width(2)));
                 chart.draw_series(pts.iter().map(|p| Circle::new(*p, 3, color.filled())))?;
             }
-            chart.configure_series_labels().background_style(WHITE.mix(0.85)).border_style(BLACK).draw()?;
+            chart
+                .configure_series_labels()
+                .position(SeriesLabelPosition::UpperRight)
+                .background_style(WHITE.mix(0.85))
+                .border_style(BLACK)
+                .draw()?;
             root.present()?;
             Ok(())
         };
@@ -362,6 +369,77 @@ pub(crate) fn profile_chart(
                 .label("stored level (its lower boundary, kW)")
                 .legend(|(x, y)| Circle::new((x + 9, y), 3, RED.filled()));
             // Headroom above the data keeps the legend, top right, off it.
+            chart
+                .configure_series_labels()
+                .position(SeriesLabelPosition::UpperRight)
+                .background_style(WHITE.mix(0.85))
+                .border_style(BLACK)
+                .draw()?;
+            root.present()?;
+            Ok(())
+        };
+        if let Err(e) = draw() {
+            tracing::warn!(error = %e, "chart could not be drawn");
+        }
+    }
+    svg
+}
+
+/// The privacy trade-off across profile versions: the strongest attacker's
+/// event F1 (y) against the utility's daily-energy error in percent (x), one
+/// marked point per audit, grouped by the profile version it audited; a
+/// calibration's candidate settings as a line; the operator's targets as a
+/// dashed box (the acceptable corner is below and left of it).
+pub(crate) fn tradeoff_chart(
+    audits: &[(String, Vec<(f64, f64)>)],
+    candidates: Option<(&str, &[(f64, f64)])>,
+    targets: Option<(f64, f64)>,
+) -> String {
+    let mut svg = String::new();
+    {
+        let root = SVGBackend::with_string(&mut svg, (760, 400)).into_drawing_area();
+        let draw = || -> Result<(), Box<dyn std::error::Error + '_>> {
+            root.fill(&WHITE)?;
+            let xs = audits.iter().flat_map(|a| a.1.iter().map(|p| p.0));
+            let xs = xs.chain(candidates.iter().flat_map(|c| c.1.iter().map(|p| p.0)));
+            let x1 = xs.chain(targets.map(|t| t.0)).fold(1.0f64, f64::max) * 1.15;
+            let rows = audits.len() + usize::from(candidates.is_some()) + usize::from(targets.is_some());
+            // One legend row per series, in headroom above F1 = 1.
+            let y1 = 1.05 + 0.09 * rows as f64;
+            let mut chart = ChartBuilder::on(&root)
+                .caption("Attacker event F1 against the utility's error, by profile version", ("sans-serif", 17))
+                .margin(12)
+                .x_label_area_size(42)
+                .y_label_area_size(52)
+                .build_cartesian_2d(0.0..x1, 0.0..y1)?;
+            chart
+                .configure_mesh()
+                .x_desc("utility daily-energy error (%)")
+                .y_desc("strongest attacker's event F1")
+                .light_line_style(WHITE.mix(0.0))
+                .draw()?;
+            if let Some((name, pts)) = candidates {
+                let grey = RGBColor(120, 120, 120);
+                chart
+                    .draw_series(LineSeries::new(pts.iter().copied(), grey.stroke_width(1)))?
+                    .label(name)
+                    .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], grey.stroke_width(1)));
+                chart.draw_series(pts.iter().map(|p| Cross::new(*p, 3, grey.stroke_width(1))))?;
+            }
+            for (i, (name, pts)) in audits.iter().enumerate() {
+                let color = Palette99::pick(i).to_rgba();
+                chart
+                    .draw_series(pts.iter().map(|p| Circle::new(*p, 5, color.filled())))?
+                    .label(name.as_str())
+                    .legend(move |(x, y)| Circle::new((x + 9, y), 5, color.filled()));
+            }
+            if let Some((tx, ty)) = targets {
+                let edge = vec![(0.0, ty), (tx, ty), (tx, 0.0)];
+                chart
+                    .draw_series(DashedLineSeries::new(edge, 6, 4, BLACK.stroke_width(1)))?
+                    .label("targets (meet them below and left)")
+                    .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLACK.stroke_width(1)));
+            }
             chart
                 .configure_series_labels()
                 .position(SeriesLabelPosition::UpperRight)

@@ -163,7 +163,7 @@ pub async fn run(opts: &DemoOptions) -> anyhow::Result<DemoSummary> {
 /// Prints the summary and a dashboard link, and waits for Ctrl-C.
 async fn stay_up(svc: &app::RunningService, summary: &DemoSummary) {
     print!("{}", render(summary));
-    match svc.dashboard_link("/dashboard").await {
+    match svc.dashboard_link("/dashboard", "demo operator").await {
         Ok(code) => println!(
             "\n  Dashboard: {}{code}\n  (a one-time sign-in link, valid for two minutes; the session it opens lasts eight hours)",
             svc.url()

@@ -93,6 +93,13 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &ClusterSpec) -> anyhow::
             .map_err(|e| anyhow::anyhow!("feeder of recovery job {id}: {e}"))?;
         windows.push((super::recover::load_window(&s.store, &feeder, from, to).await?, *alpha, feeder));
     }
+    // Representative days are local days of the feeders' zone (UTC when they differ).
+    let mut zones = std::collections::BTreeSet::new();
+    for (_, _, feeder) in &windows {
+        zones.insert(s.store.feeder_time_zone(feeder).await?.unwrap_or_else(|| "UTC".into()));
+    }
+    let zone_name = if zones.len() == 1 { zones.pop_first().unwrap_or_default() } else { "UTC".into() };
+    let tz: meterveil_shared::Tz = zone_name.parse().unwrap_or(meterveil_shared::Tz::UTC);
     let params = ClusterParams { clusters: req.clusters, ..ClusterParams::default() };
     let order: Vec<String> = meters.iter().map(|m| m.0.clone()).collect();
     let (c, reps, fit_stops) = super::run_reporting(s, JobTable::Analysis, job_id, move |progress| {
@@ -115,7 +122,7 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &ClusterSpec) -> anyhow::
         let z = DMatrix::from_fn(order.len(), cols, |i, j| rows.get(&order[i]).map_or(0.0, |r| r[j]));
         progress("clustering", 0.85);
         let c = cluster(&z, &params).map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
-        let reps = representatives(&x, &c, from, interval_s);
+        let reps = representatives(&x, &c, (from, tz), interval_s);
         Ok((c, reps, fit_stops))
     })
     .await?;
@@ -142,6 +149,7 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &ClusterSpec) -> anyhow::
         "window_start": from,
         "window_end": to,
         "interval_s": interval_s,
+        "time_zone": tz.name(),
         "recovery_jobs": req.recovery_jobs,
         "representatives": reps,
     });

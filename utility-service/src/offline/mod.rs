@@ -131,7 +131,7 @@ pub fn run_cluster(
     };
     let c = cluster(&z, &params).map_err(|e| anyhow::anyhow!("--{}: {}", e.field, e.reason))?;
     write_clusters(output, &meters, &c)?;
-    let reps = representatives(&z, &c, start, interval_s);
+    let reps = representatives(&z, &c, (start, meterveil_shared::Tz::UTC), interval_s);
     Ok(serde_json::json!({
         "meters": meters.len(),
         "clusters": c.clusters,

@@ -144,7 +144,7 @@ async fn start_recovery(
         Err(e) => return Err(e),
     };
     let detail = format!("{job_id}: feeder {} from {} to {}", spec.feeder_id, f.from.trim(), f.to.trim());
-    s.store.record_action(now_s(), &v.session, "start recovery", &detail).await?;
+    s.store.record_action(now_s(), v.actor(), "start recovery", &detail).await?;
     Ok(Redirect::to("/dashboard/jobs").into_response())
 }
 
@@ -170,6 +170,6 @@ async fn cancel(
         };
         return Ok((StatusCode::BAD_REQUEST, page("Cancel a job", body, false)).into_response());
     }
-    s.store.record_action(now_s(), &v.session, "cancel job", &id).await?;
+    s.store.record_action(now_s(), v.actor(), "cancel job", &id).await?;
     Ok(Redirect::to("/dashboard/jobs").into_response())
 }

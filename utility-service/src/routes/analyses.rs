@@ -14,7 +14,7 @@ use serde_json::{json, Value};
 use super::{now_s, parse_json, AppState, Operator};
 use crate::error::ApiError;
 use crate::jobs::new_job_id;
-use crate::jobspec::{AuditRequest, CalibrateRequest, ClusterRequest, JobSpec};
+use crate::jobspec::{AuditRequest, AuditSpec, CalibrateRequest, CalibrateSpec, ClusterRequest, JobSpec};
 use crate::store::analyses::AnalysisRecord;
 
 pub fn router() -> Router<AppState> {
@@ -83,7 +83,14 @@ async fn start_audit(
     body: Bytes,
 ) -> Result<(StatusCode, Json<Value>), ApiError> {
     let spec = parse_json::<AuditRequest>(&body)?.check().map_err(ApiError::Invalid)?;
-    let job = done_recovery(&s, &spec.recovery_job).await?;
+    let job_id = queue_audit(&s, spec).await?;
+    Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
+}
+
+/// Queues a checked audit of a finished recovery whose feeder holds every
+/// captured meter; returns the job id. The HTTP API and the dashboard share it.
+pub(crate) async fn queue_audit(s: &AppState, spec: AuditSpec) -> Result<String, ApiError> {
+    let job = done_recovery(s, &spec.recovery_job).await?;
     let feeder = meterveil_shared::FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
     let meters: std::collections::HashSet<String> = s.store.meters_of(&feeder).await?.into_iter().collect();
     if let Some(m) = spec.captured.iter().find(|m| !meters.contains(m.as_str())) {
@@ -92,7 +99,7 @@ async fn start_audit(
     let job_id = new_job_id("aud");
     s.store.create_analysis(&job_id, &JobSpec::Audit(spec), Some(&job.feeder_id), now_s()).await?;
     s.wake.notify_one();
-    Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
+    Ok(job_id)
 }
 
 async fn start_calibration(
@@ -101,7 +108,14 @@ async fn start_calibration(
     body: Bytes,
 ) -> Result<(StatusCode, Json<Value>), ApiError> {
     let spec = parse_json::<CalibrateRequest>(&body)?.check().map_err(ApiError::Invalid)?;
-    let job = done_recovery(&s, &spec.recovery_job).await?;
+    let job_id = queue_calibration(&s, spec).await?;
+    Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
+}
+
+/// Queues a checked calibration of a finished recovery whose population the
+/// targets fit; returns the job id. The HTTP API and the dashboard share it.
+pub(crate) async fn queue_calibration(s: &AppState, spec: CalibrateSpec) -> Result<String, ApiError> {
+    let job = done_recovery(s, &spec.recovery_job).await?;
     let population = job.diagnostics.as_ref().and_then(|d| d["meters"].as_u64()).unwrap_or(0) as usize;
     meterveil_shared::calibrate::CalibrationConfig::new(spec.targets.clone())
         .check(population)
@@ -109,7 +123,7 @@ async fn start_calibration(
     let job_id = new_job_id("cal");
     s.store.create_analysis(&job_id, &JobSpec::Calibrate(spec), Some(&job.feeder_id), now_s()).await?;
     s.wake.notify_one();
-    Ok((StatusCode::ACCEPTED, Json(json!({ "job_id": job_id, "state": "queued" }))))
+    Ok(job_id)
 }
 
 /// The HTML report of a finished audit or calibration.

@@ -11,7 +11,7 @@ use axum::http::{header, StatusCode};
 use axum::response::{Html, IntoResponse, Redirect, Response};
 use axum::routing::{get, post};
 use axum::{Form, Json, Router};
-use meterveil_shared::FeederId;
+use meterveil_shared::{FeederId, FieldError};
 use serde::Deserialize;
 use serde_json::{json, Value};
 
@@ -20,10 +20,12 @@ use meterveil_shared::auth::body_sha256;
 use super::{now_s, AppState, Operator};
 use crate::error::ApiError;
 use crate::store::queue::{JobFilter, JobLine};
-use crate::store::{Store, StoreError};
+use crate::store::Store;
 use maud::{html, Markup, PreEscaped, DOCTYPE};
 
+use super::local_time::{local_days, local_when, zone};
 use crate::report::{line_chart, STYLE};
+use std::collections::HashMap;
 
 const SESSION_COOKIE: &str = "mv_session";
 const SESSION_S: i64 = 8 * 3600;
@@ -38,12 +40,28 @@ fn random_token() -> String {
     format!("{:016x}{:016x}", r.random::<u64>(), r.random::<u64>())
 }
 
-/// Mints a one-time sign-in path to `next` (a dashboard path), valid for
-/// [`LINK_S`] seconds, on any `serve` process of this database.
-pub async fn one_time_link(store: &Store, next: &str) -> Result<String, StoreError> {
+/// The name an operator signs in with, checked: the action log and the
+/// profile history show it. 1 to 60 letters, digits, spaces or `.-_@'`.
+pub fn check_who(field: &str, who: &str) -> Result<String, FieldError> {
+    let w = who.trim();
+    let fine = |c: char| c.is_alphanumeric() || " .-_@'".contains(c);
+    if w.is_empty() || w.chars().count() > 60 || !w.chars().all(fine) {
+        return Err(FieldError::new(
+            field,
+            "give a name of 1 to 60 letters, digits, spaces or .-_@' (it names you in the action log)",
+        ));
+    }
+    Ok(w.to_owned())
+}
+
+/// Mints a one-time sign-in path to `next` (a dashboard path) for the
+/// operator `who`, valid for [`LINK_S`] seconds, on any `serve` process of
+/// this database.
+pub async fn one_time_link(store: &Store, next: &str, who: &str) -> Result<String, ApiError> {
+    let who = check_who("who", who).map_err(ApiError::Invalid)?;
     let code = random_token();
     let now = now_s();
-    store.mint_code(&body_sha256(code.as_bytes()), now, now + LINK_S).await?;
+    store.mint_code(&body_sha256(code.as_bytes()), &who, now, now + LINK_S).await?;
     let next = safe_next(Some(next));
     Ok(format!(
         "/dashboard/enter?code={code}&next={}",
@@ -61,12 +79,15 @@ pub fn router() -> Router<AppState> {
         .route("/dashboard/clusterings/{job_id}", get(clusters_page))
         .route("/dashboard/analyses/{job_id}", get(analysis_page))
         .route("/dashboard/jobs", get(jobs_page))
+        .route("/dashboard/feeders/{feeder_id}", get(super::feeder_page::feeder_page))
 }
 
 /// A signed-in dashboard user; otherwise a redirect to the sign-in page.
 pub struct Viewer {
-    /// The session's digest (who did what, in the action log).
+    /// The session's digest (which session did what, in the action log).
     pub session: String,
+    /// The name the operator signed in with.
+    pub who: String,
     /// The session's form token: a digest of its secret under another label,
     /// so that only a page served to this session can post its forms.
     pub csrf: String,
@@ -80,15 +101,20 @@ impl FromRequestParts<AppState> for Viewer {
         for (_, v) in cookies.split(';').filter_map(|c| c.trim().split_once('=')).filter(|(k, _)| *k == SESSION_COOKIE)
         {
             let session = body_sha256(v.as_bytes());
-            match state.store.session_valid(&session, now_s()).await {
-                Ok(true) => return Ok(Viewer { session, csrf: body_sha256(format!("form|{v}").as_bytes()) }),
-                Ok(false) => {}
+            match state.store.session_who(&session, now_s()).await {
+                Ok(Some(who)) => return Ok(Viewer { session, who, csrf: body_sha256(format!("form|{v}").as_bytes()) }),
+                Ok(None) => {}
                 Err(e) => return Err(ApiError::from(e).into_response()),
             }
         }
-        {
-            Err(Redirect::to("/dashboard/login").into_response())
-        }
+        Err(Redirect::to("/dashboard/login").into_response())
+    }
+}
+
+impl Viewer {
+    /// Who acts, for the action log: the session's digest and the operator's name.
+    pub fn actor(&self) -> (&str, &str) {
+        (&self.session, &self.who)
     }
 }
 
@@ -115,21 +141,24 @@ pub(crate) fn page(title: &str, body: Markup, refresh: bool) -> Html<String> {
 }
 
 /// Opens a session (stored as its digest) and sends the browser to `to` with its cookie.
-async fn with_session(state: &AppState, to: &str) -> Response {
+async fn with_session(state: &AppState, who: &str, to: &str) -> Response {
     let id = random_token();
     let now = now_s();
-    if let Err(e) = state.store.open_session(&body_sha256(id.as_bytes()), now, now + SESSION_S).await {
+    if let Err(e) = state.store.open_session(&body_sha256(id.as_bytes()), who, now, now + SESSION_S).await {
         return ApiError::from(e).into_response();
     }
     let cookie = format!("{SESSION_COOKIE}={id}; HttpOnly; SameSite=Strict; Path=/dashboard; Max-Age={SESSION_S}");
     ([(header::SET_COOKIE, cookie)], Redirect::to(to)).into_response()
 }
 
-async fn login_page() -> Html<String> {
+fn login_form(problem: Option<&str>) -> Html<String> {
     page(
         "Sign in",
         html! {
+            @if let Some(p) = problem { p.problem { (p) } }
             form method="post" action="/dashboard/login" {
+                label { "Your name " input type="text" name="who" autocomplete="name" required; }
+                " "
                 label { "Operator token " input type="password" name="token" autocomplete="off"; }
                 " "
                 button type="submit" { "Sign in" }
@@ -139,31 +168,42 @@ async fn login_page() -> Html<String> {
     )
 }
 
+async fn login_page() -> Html<String> {
+    login_form(None)
+}
+
 #[derive(Deserialize)]
 struct LoginForm {
+    #[serde(default)]
+    who: String,
+    #[serde(default)]
     token: String,
 }
 
 async fn login(State(s): State<AppState>, Form(f): Form<LoginForm>) -> Response {
+    let who = match check_who("who", &f.who) {
+        Ok(w) => w,
+        Err(e) => {
+            let problem = format!("Not signed in: {}: {}.", e.field, e.reason);
+            return (StatusCode::BAD_REQUEST, login_form(Some(&problem))).into_response();
+        }
+    };
     if super::constant_time_eq(f.token.as_bytes(), s.config.operator_token.expose().as_bytes()) && !f.token.is_empty() {
-        with_session(&s, "/dashboard").await
+        with_session(&s, &who, "/dashboard").await
     } else {
-        (
-            StatusCode::UNAUTHORIZED,
-            page(
-                "Sign in",
-                html! { p { "That operator token is wrong." } p { a href="/dashboard/login" { "Try again" } } },
-                false,
-            ),
-        )
+        (StatusCode::UNAUTHORIZED, login_form(Some("Not signed in: token: that operator token is wrong.")))
             .into_response()
     }
 }
 
 #[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
 struct LinkWire {
     #[serde(default)]
     next: Option<String>,
+    /// The operator the link signs in (default `operator`).
+    #[serde(default)]
+    who: Option<String>,
 }
 
 fn safe_next(next: Option<&str>) -> String {
@@ -175,8 +215,10 @@ fn safe_next(next: Option<&str>) -> String {
 
 /// A one-time sign-in link, valid for two minutes.
 async fn mint_link(_: Operator, State(s): State<AppState>, body: axum::body::Bytes) -> Result<Json<Value>, ApiError> {
-    let w: LinkWire = if body.is_empty() { LinkWire { next: None } } else { super::parse_json(&body)? };
-    let url = one_time_link(&s.store, w.next.as_deref().unwrap_or("/dashboard")).await?;
+    let w: LinkWire = if body.is_empty() { LinkWire { next: None, who: None } } else { super::parse_json(&body)? };
+    let url =
+        one_time_link(&s.store, w.next.as_deref().unwrap_or("/dashboard"), w.who.as_deref().unwrap_or("operator"))
+            .await?;
     Ok(Json(json!({ "url": url, "expires_in_s": LINK_S })))
 }
 
@@ -191,8 +233,8 @@ async fn enter(State(s): State<AppState>, Query(q): Query<EnterQuery>) -> Respon
         Ok(r) => r,
         Err(e) => return ApiError::from(e).into_response(),
     };
-    if redeemed {
-        with_session(&s, &safe_next(q.next.as_deref())).await
+    if let Some(who) = redeemed {
+        with_session(&s, &who, &safe_next(q.next.as_deref())).await
     } else {
         (StatusCode::UNAUTHORIZED, page("Sign in", html! { p { "This sign-in link was used or has expired." } }, false))
             .into_response()
@@ -201,13 +243,15 @@ async fn enter(State(s): State<AppState>, Query(q): Query<EnterQuery>) -> Respon
 
 async fn overview(v: Viewer, State(s): State<AppState>) -> Result<Html<String>, ApiError> {
     let feeders = super::overview::feeder_rows(&s).await?;
+    let zones: HashMap<String, chrono_tz::Tz> =
+        feeders.iter().map(|f| (f.summary.feeder_id.clone(), zone(&f.summary.time_zone))).collect();
     let jobs = s.store.list_jobs(10).await?;
     let live = jobs.iter().any(|j| j.state == "running" || j.state == "queued");
     let body = html! {
         h2 { "Feeders" }
         (super::overview::feeder_table(&feeders, &v))
         h2 { "Recent jobs" }
-        (jobs_table(&jobs))
+        (jobs_table(&jobs, &zones))
         p { a href="/dashboard/jobs" { "All jobs, by feeder, kind and state" } }
         @if live { p { "This page refreshes every 5 seconds while jobs run." } }
     };
@@ -231,15 +275,9 @@ fn job_link(j: &JobLine) -> Markup {
     }
 }
 
-/// UTC epoch seconds as `2026-12-03 18:53 UTC`.
-pub(crate) fn when(t: Option<i64>) -> String {
-    t.and_then(|t| chrono::DateTime::from_timestamp(t, 0))
-        .map_or_else(|| "–".into(), |d| d.format("%Y-%m-%d %H:%M UTC").to_string())
-}
-
-/// The UTC date of epoch second `t`, `2026-12-03`.
-pub(crate) fn utc_day(t: i64) -> String {
-    chrono::DateTime::from_timestamp(t, 0).map_or_else(String::new, |d| d.format("%Y-%m-%d").to_string())
+/// Each feeder's time zone, for the job lists (a town-wide job's is UTC).
+pub(crate) fn zones(feeders: &[crate::store::FeederSummary]) -> HashMap<String, chrono_tz::Tz> {
+    feeders.iter().map(|f| (f.feeder_id.clone(), zone(&f.time_zone))).collect()
 }
 
 /// A span of seconds in words: `45 s`, `3 min 05 s`, `2 h 10 min`.
@@ -251,23 +289,24 @@ fn duration(s: i64) -> String {
     }
 }
 
-pub(crate) fn jobs_table(jobs: &[JobLine]) -> Markup {
+pub(crate) fn jobs_table(jobs: &[JobLine], zones: &HashMap<String, chrono_tz::Tz>) -> Markup {
     html! {
         table {
             tr {
-                th { "job" } th { "feeder" } th { "window (UTC days)" } th { "kind" } th { "state" } th { "progress" }
+                th { "job" } th { "feeder" } th { "window (the feeder's local days)" } th { "kind" } th { "state" } th { "progress" }
                 th { "started" } th { "finished" } th { "took" } th { "attempts" } th { "message" }
             }
             @for j in jobs {
+                @let tz = j.feeder_id.as_ref().and_then(|f| zones.get(f)).copied().unwrap_or(chrono_tz::UTC);
                 tr {
                     td { (job_link(j)) }
                     td { (j.feeder_id.as_deref().unwrap_or("whole town")) }
-                    td { (j.window.map_or("–".into(), |(a, b)| format!("{} – {}", utc_day(a), utc_day(b - 1)))) }
+                    td { (j.window.map_or("–".into(), |(a, b)| local_days(a, b, tz))) }
                     td { (j.kind) }
                     td { (j.state) }
                     td { progress max="1" value=(format!("{:.3}", j.progress)) {} (format!(" {:.0}%", 100.0 * j.progress)) }
-                    td { (when(j.started_at)) }
-                    td { (when(j.finished_at)) }
+                    td { (local_when(j.started_at, tz)) }
+                    td { (local_when(j.finished_at, tz)) }
                     td { (j.started_at.zip(j.finished_at).map_or("–".into(), |(a, b)| duration(b - a))) }
                     td { (j.attempts) }
                     td { (j.error.as_deref().unwrap_or(&j.message)) }
@@ -369,7 +408,7 @@ async fn jobs_page(v: Viewer, State(s): State<AppState>, Query(q): Query<JobsQue
         h2 { "Jobs" }
         (form(None))
         p { (format!("{total} jobs; page {at} of {pages}.")) }
-        (jobs_table(&jobs))
+        (jobs_table(&jobs, &zones(&feeders)))
         (super::actions::cancel_forms(&jobs, &v))
         p {
             @if at > 1 { a href=(link(at - 1)) { "newer" } " " }
@@ -383,6 +422,8 @@ async fn clusters_page(_: Viewer, State(s): State<AppState>, Path(id): Path<Stri
     let job = super::analyses::find(&s, &id).await?;
     let r = job.result.unwrap_or(Value::Null);
     let interval_s = r["interval_s"].as_u64().unwrap_or(900).max(1) as f64;
+    // Clusterings stored before days were local carry no zone: their days are UTC days.
+    let zone_name = r["time_zone"].as_str().unwrap_or("UTC").to_owned();
     let reps = r["representatives"].as_array().cloned().unwrap_or_default();
     let series_of = |key: &str| -> Vec<(String, Vec<(f64, f64)>)> {
         reps.iter()
@@ -412,7 +453,7 @@ async fn clusters_page(_: Viewer, State(s): State<AppState>, Path(id): Path<Stri
                 let series = series_of(key);
                 let y = series.iter().flat_map(|s| s.1.iter().map(|p| p.1)).fold(0.5f64, f64::max) * 1.1;
                 let refs: Vec<(&str, Vec<(f64, f64)>)> = series.iter().map(|(n, v)| (n.as_str(), v.clone())).collect();
-                line_chart(title, "hour of the day (UTC)", "kW", &refs, y)
+                line_chart(title, &format!("hour of the local day ({zone_name})"), "kW", &refs, y)
             })
             .collect();
     let body = html! {

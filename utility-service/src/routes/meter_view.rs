@@ -10,6 +10,7 @@ use meterveil_shared::FeederId;
 use serde::Deserialize;
 
 use super::dashboard::{page, Viewer};
+use super::local_time::local_and_utc;
 use super::AppState;
 use crate::error::ApiError;
 use crate::report::profile_chart;
@@ -61,12 +62,6 @@ fn parse(q: &MeterQuery, days: i64) -> Result<(Option<i64>, i64, usize), (&'stat
     Ok((span, start, page))
 }
 
-/// Local date and time of `t` in `tz`, with its UTC beside it.
-fn local_and_utc(t: i64, tz: chrono_tz::Tz) -> String {
-    let utc = chrono::DateTime::from_timestamp(t, 0).unwrap_or_default();
-    format!("{} ({tz}; {} UTC)", utc.with_timezone(&tz).format("%Y-%m-%d %H:%M"), utc.format("%Y-%m-%d %H:%M"))
-}
-
 pub(crate) async fn meter_page(
     _: Viewer,
     State(s): State<AppState>,
@@ -78,12 +73,7 @@ pub(crate) async fn meter_page(
         return Ok(page(&format!("Recovery {id}"), html! { p { "The job is " (job.state) "." } }, true).into_response());
     }
     let feeder = FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
-    let tz = s
-        .store
-        .feeder_time_zone(&feeder)
-        .await?
-        .and_then(|t| t.parse::<chrono_tz::Tz>().ok())
-        .unwrap_or(chrono_tz::UTC);
+    let tz = super::local_time::zone(&s.store.feeder_time_zone(&feeder).await?.unwrap_or_default());
     let days = (job.window_end - job.window_start).div_euclid(86_400).max(1);
     let (span, start_day, list_page) = match parse(&q, days) {
         Ok(p) => p,

@@ -3,10 +3,13 @@
 
 pub mod actions;
 pub mod analyses;
+pub mod analysis_forms;
 pub mod dashboard;
+pub mod feeder_page;
 pub mod feeders;
 pub mod health;
 pub mod ingest;
+pub mod local_time;
 pub mod meter_view;
 pub mod overview;
 pub mod publish;
@@ -53,6 +56,7 @@ pub fn router(state: AppState) -> Router {
         .merge(analyses::router())
         .merge(dashboard::router())
         .merge(actions::router())
+        .merge(analysis_forms::router())
         .merge(overview::router())
         .merge(publish::router())
         .with_state(state)

@@ -13,7 +13,8 @@ use maud::{html, Markup};
 use meterveil_shared::FeederId;
 use serde::Deserialize;
 
-use super::dashboard::{page, utc_day, when, Viewer};
+use super::dashboard::{page, Viewer};
+use super::local_time::{local_days, local_when, zone};
 use super::{now_s, AppState};
 use crate::error::ApiError;
 use crate::store::overview::FeederTargets;
@@ -37,43 +38,40 @@ pub(crate) struct FeederRow {
     pub publishable: Option<String>,
 }
 
-impl FeederRow {
-    /// Whether the latest audit meets the targets, in words with a plain mark.
-    fn status(&self) -> String {
-        let (Some((f1, energy)), Some(t)) = (self.audit, self.targets) else {
-            return match (self.audit, self.targets) {
-                (None, _) => "– not audited yet".into(),
-                _ => "– no targets set".into(),
-            };
+/// Whether an audit's figures meet the targets, in words with a plain mark.
+pub(crate) fn status_words(audit: Option<(f64, f64)>, targets: Option<FeederTargets>) -> String {
+    let (Some((f1, energy)), Some(t)) = (audit, targets) else {
+        return match audit {
+            None => "– not audited yet".into(),
+            Some(_) => "– no targets set".into(),
         };
-        let mut misses = Vec::new();
-        if f1 > t.event_f1_max {
-            misses.push(format!("event F1 {f1:.2} above {:.2}", t.event_f1_max));
-        }
-        if energy > t.daily_energy_error_max {
-            misses.push(format!(
-                "daily energy error {:.1}% above {:.1}%",
-                100.0 * energy,
-                100.0 * t.daily_energy_error_max
-            ));
-        }
-        if misses.is_empty() {
-            "✓ meets both targets".into()
-        } else {
-            format!("✗ misses: {}", misses.join("; "))
-        }
+    };
+    let mut misses = Vec::new();
+    if f1 > t.event_f1_max {
+        misses.push(format!("event F1 {f1:.2} above {:.2}", t.event_f1_max));
+    }
+    if energy > t.daily_energy_error_max {
+        misses.push(format!(
+            "daily energy error {:.1}% above {:.1}%",
+            100.0 * energy,
+            100.0 * t.daily_energy_error_max
+        ));
+    }
+    if misses.is_empty() {
+        "✓ meets both targets".into()
+    } else {
+        format!("✗ misses: {}", misses.join("; "))
     }
 }
 
 /// The latest finished recovery in a phrase: when, its window, rank, stop, corrections.
-fn recovery_phrase(j: &crate::store::recoveries::JobRecord) -> String {
+fn recovery_phrase(j: &crate::store::recoveries::JobRecord, tz: chrono_tz::Tz) -> String {
     let d = j.diagnostics.clone().unwrap_or_default();
     let readings = d["readings"].as_f64().unwrap_or(0.0).max(1.0);
     format!(
-        "ran {}; days {} – {}; rank {}, {}, {:.1}% of readings corrected",
-        when(j.finished_at),
-        utc_day(j.window_start),
-        utc_day(j.window_end - 1),
+        "finished {}; local days {}; rank {}, {}, {:.1}% of readings corrected",
+        local_when(j.finished_at, tz),
+        local_days(j.window_start, j.window_end, tz),
         d["rank"],
         d["stop"].as_str().unwrap_or("?"),
         100.0 * d["corrected"].as_f64().unwrap_or(0.0) / readings
@@ -93,12 +91,16 @@ pub(crate) async fn feeder_rows(s: &AppState) -> Result<Vec<FeederRow>, ApiError
             None => "–".into(),
         };
         let profile = f.current_profile.as_ref().map_or_else(|| "none".into(), |p| p.describe());
-        let recovery =
-            s.store.latest_recovery(id.as_str()).await?.map_or("– none yet".into(), |j| recovery_phrase(&j));
-        let audit = s.store.latest_analysis(id.as_str(), "audit").await?.and_then(|a| {
-            let r = a.result?;
-            Some((r["strongest"]["event_f1"].as_f64()?, r["utility"]["daily_energy_error"].as_f64()?))
-        });
+        let recovery = s
+            .store
+            .latest_recovery(id.as_str())
+            .await?
+            .map_or("– none yet".into(), |j| recovery_phrase(&j, zone(&f.time_zone)));
+        let audit = s
+            .store
+            .latest_analysis(id.as_str(), "audit")
+            .await?
+            .and_then(|a| super::feeder_page::audit_figures(a.result.as_ref()?));
         let latest_calibration = s.store.latest_analysis(id.as_str(), "calibrate").await?;
         let publishable = latest_calibration
             .as_ref()
@@ -140,7 +142,7 @@ pub(crate) fn feeder_table(rows: &[FeederRow], v: &Viewer) -> Markup {
             }
             @for r in rows {
                 tr {
-                    td { (r.summary.feeder_id) }
+                    td { a href=(format!("/dashboard/feeders/{}", r.summary.feeder_id)) { (r.summary.feeder_id) } }
                     td { (r.profile) }
                     td { (r.summary.meters) }
                     td { (r.completeness) }
@@ -151,7 +153,7 @@ pub(crate) fn feeder_table(rows: &[FeederRow], v: &Viewer) -> Markup {
                         } @else { "–" }
                     }
                     td { (targets_form(&r.summary.feeder_id, r.targets, v)) }
-                    td { (r.status()) }
+                    td { (status_words(r.audit, r.targets)) }
                     td {
                         (r.recommendation)
                         @if let Some(id) = &r.publishable {
@@ -238,6 +240,6 @@ async fn set_targets(
         targets.event_f1_max,
         100.0 * targets.daily_energy_error_max
     );
-    s.store.record_action(now_s(), &v.session, "set targets", &detail).await?;
+    s.store.record_action(now_s(), v.actor(), "set targets", &detail).await?;
     Ok(Redirect::to("/dashboard").into_response())
 }

@@ -119,12 +119,12 @@ async fn publish(
         Ok(p) => p,
         Err((field, reason)) => return Ok(refused(field, &reason)),
     };
-    let version = match s.store.publish_recommendation(&id, &p.feeder, &p.profile, now_s()).await {
+    let version = match s.store.publish_recommendation(&id, &p.feeder, &p.profile, (now_s(), &v.who)).await {
         Ok(v) => v,
         Err(crate::store::StoreError::Conflict(e)) => return Ok(refused("job_id", &e.reason)),
         Err(e) => return Err(e.into()),
     };
     let detail = format!("{id}: feeder {} version {version}: {}", p.feeder, p.profile.describe());
-    s.store.record_action(now_s(), &v.session, "publish recommendation", &detail).await?;
+    s.store.record_action(now_s(), v.actor(), "publish recommendation", &detail).await?;
     Ok(Redirect::to("/dashboard").into_response())
 }

@@ -126,7 +126,10 @@ impl Store {
         let _w = self.write_lock().await;
         let mut tx = self.pool.begin().await?;
         let version = match publish {
-            Some((f, p)) => Some(super::insert_profile(self.backend, &mut tx, f, p, now).await?),
+            Some((f, p)) => {
+                let by = format!("calibration {id} (published when it finished)");
+                Some(super::insert_profile(self.backend, &mut tx, f, p, (now, &by)).await?)
+            }
             None => None,
         };
         let mut result = result.clone();
@@ -137,25 +140,9 @@ impl Store {
     }
 
     pub async fn analysis(&self, id: &str) -> Result<Option<AnalysisRecord>, StoreError> {
-        let Some(r) =
-            sqlx::query("SELECT * FROM analysis_jobs WHERE job_id = $1").bind(id).fetch_optional(&self.pool).await?
-        else {
-            return Ok(None);
-        };
-        let json = |s: Option<String>| s.and_then(|s| serde_json::from_str(&s).ok());
-        Ok(Some(AnalysisRecord {
-            job_id: r.try_get("job_id")?,
-            kind: r.try_get("kind")?,
-            params: json(r.try_get("params")?).unwrap_or(serde_json::Value::Null),
-            state: r.try_get("state")?,
-            progress: r.try_get("progress")?,
-            message: r.try_get("message")?,
-            created_at: r.try_get("created_at")?,
-            started_at: r.try_get("started_at")?,
-            finished_at: r.try_get("finished_at")?,
-            result: json(r.try_get("result")?),
-            error: r.try_get("error")?,
-        }))
+        let r =
+            sqlx::query("SELECT * FROM analysis_jobs WHERE job_id = $1").bind(id).fetch_optional(&self.pool).await?;
+        r.as_ref().map(analysis_from_row).transpose()
     }
 
     pub async fn assignments(&self, id: &str) -> Result<Vec<Assignment>, StoreError> {
@@ -176,4 +163,22 @@ impl Store {
             })
             .collect()
     }
+}
+
+/// An `analysis_jobs` row (`SELECT *`) as a record.
+pub(super) fn analysis_from_row(r: &sqlx::any::AnyRow) -> Result<AnalysisRecord, StoreError> {
+    let json = |s: Option<String>| s.and_then(|s| serde_json::from_str(&s).ok());
+    Ok(AnalysisRecord {
+        job_id: r.try_get("job_id")?,
+        kind: r.try_get("kind")?,
+        params: json(r.try_get("params")?).unwrap_or(serde_json::Value::Null),
+        state: r.try_get("state")?,
+        progress: r.try_get("progress")?,
+        message: r.try_get("message")?,
+        created_at: r.try_get("created_at")?,
+        started_at: r.try_get("started_at")?,
+        finished_at: r.try_get("finished_at")?,
+        result: json(r.try_get("result")?),
+        error: r.try_get("error")?,
+    })
 }

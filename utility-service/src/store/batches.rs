@@ -89,8 +89,8 @@ impl Store {
         }
         for chunk in keys.feeders.chunks(IN_CHUNK) {
             let sql = format!(
-                "SELECT feeder_id, version, noise, scale_kw, boundaries_kw, interval_s, send_registers, register_period, created_at, in_use
-                 FROM dither_profiles WHERE feeder_id IN ({}) ORDER BY feeder_id, version",
+                "SELECT feeder_id, version, noise, scale_kw, boundaries_kw, interval_s, send_registers, register_period, created_at, in_use,
+                 published_by, first_used_at FROM dither_profiles WHERE feeder_id IN ({}) ORDER BY feeder_id, version",
                 placeholders(1, chunk.len())
             );
             let mut q = sqlx::query(&sql).persistent(chunk.len() == IN_CHUNK);
@@ -143,7 +143,7 @@ impl Store {
             tx.rollback().await?;
             return Ok(None);
         }
-        mark_versions_in_use(&mut tx, group).await?;
+        mark_versions_in_use(&mut tx, group, now).await?;
         let acks = acks_for(group, stored_readings, stored_registers);
         if !self.insert_batches(&mut tx, group, &acks, now).await? {
             tx.rollback().await?;
@@ -279,7 +279,7 @@ impl Store {
 }
 
 /// Marks the profile versions the group's readings used for the first time.
-async fn mark_versions_in_use(tx: &mut AnyConnection, group: &[Accepted]) -> Result<(), StoreError> {
+async fn mark_versions_in_use(tx: &mut AnyConnection, group: &[Accepted], now: i64) -> Result<(), StoreError> {
     let mut first_use: Vec<(&str, u32)> = group
         .iter()
         .flat_map(|a| a.batch.versions_used.iter().map(move |v| (a.batch.feeder_id.as_str(), *v)))
@@ -287,9 +287,12 @@ async fn mark_versions_in_use(tx: &mut AnyConnection, group: &[Accepted]) -> Res
     first_use.sort_unstable();
     first_use.dedup();
     for (feeder, v) in first_use {
-        sqlx::query("UPDATE dither_profiles SET in_use = 1 WHERE feeder_id = $1 AND version = $2 AND in_use = 0")
-            .bind(feeder)
-            .bind(i64::from(v))
+        sqlx::query(
+            "UPDATE dither_profiles SET in_use = 1, first_used_at = $3 WHERE feeder_id = $1 AND version = $2 AND in_use = 0",
+        )
+        .bind(feeder)
+        .bind(i64::from(v))
+        .bind(now)
             .execute(&mut *tx)
             .await?;
     }

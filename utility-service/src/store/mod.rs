@@ -41,6 +41,7 @@ pub enum StoreError {
 pub mod analyses;
 pub mod batches;
 pub mod gateways;
+pub mod history;
 pub mod overview;
 pub mod queue;
 pub mod sessions;
@@ -110,6 +111,8 @@ pub struct FeederSummary {
     pub readings: i64,
     pub register_reads: i64,
     pub current_profile: Option<meterveil_shared::wire::ProfileRecordWire>,
+    /// The feeder's IANA time zone.
+    pub time_zone: String,
 }
 
 #[derive(Clone)]
@@ -290,8 +293,8 @@ impl Store {
     /// All versions of a feeder's profile, oldest first.
     pub async fn profiles(&self, feeder: &FeederId) -> Result<Vec<ProfileRecord>, StoreError> {
         let rows = sqlx::query(
-            "SELECT version, noise, scale_kw, boundaries_kw, interval_s, send_registers, register_period, created_at, in_use
-             FROM dither_profiles WHERE feeder_id = $1 ORDER BY version",
+            "SELECT version, noise, scale_kw, boundaries_kw, interval_s, send_registers, register_period, created_at, in_use,
+             published_by, first_used_at FROM dither_profiles WHERE feeder_id = $1 ORDER BY version",
         )
         .bind(feeder.as_str())
         .fetch_all(&self.pool)
@@ -303,7 +306,7 @@ impl Store {
         Ok(self.profiles(feeder).await?.pop())
     }
 
-    /// Publishes `profile` as the feeder's next version.
+    /// Publishes `profile` as the feeder's next version (through the HTTP API).
     pub async fn publish_profile(
         &self,
         feeder: &FeederId,
@@ -312,7 +315,7 @@ impl Store {
     ) -> Result<ProfileRecord, StoreError> {
         let _w = self.write_lock().await;
         let mut tx = self.pool.begin().await?;
-        let next = insert_profile(self.backend, &mut tx, feeder, profile, now).await?;
+        let next = insert_profile(self.backend, &mut tx, feeder, profile, (now, PUBLISHED_BY_API)).await?;
         tx.commit().await?;
         Ok(ProfileRecord {
             feeder_id: feeder.clone(),
@@ -320,6 +323,8 @@ impl Store {
             created_at: now,
             profile: profile.clone(),
             in_use: false,
+            published_by: PUBLISHED_BY_API.into(),
+            first_used_at: None,
         })
     }
 
@@ -398,6 +403,7 @@ impl Store {
                 meters: r.try_get(2)?,
                 readings: r.try_get(3)?,
                 register_reads: r.try_get(4)?,
+                time_zone: tz,
             });
         }
         Ok(out)
@@ -448,6 +454,8 @@ fn profile_from_row(feeder: &FeederId, r: &AnyRow) -> Result<ProfileRecord, Stor
         created_at: r.try_get("created_at")?,
         profile,
         in_use: r.try_get::<i64, _>("in_use")? != 0,
+        published_by: r.try_get("published_by")?,
+        first_used_at: r.try_get("first_used_at")?,
     })
 }
 
@@ -460,12 +468,15 @@ fn stored_batch_from_row(r: &AnyRow) -> Result<StoredBatch, StoreError> {
 }
 
 /// Inserts `profile` as the feeder's next version inside `tx`; returns the version.
+/// Who published a version through the HTTP API (the operator token names no one).
+pub const PUBLISHED_BY_API: &str = "operator (HTTP API)";
+
 pub(crate) async fn insert_profile(
     backend: Backend,
     tx: &mut sqlx::Transaction<'_, Any>,
     feeder: &FeederId,
     profile: &DitherProfile,
-    now: i64,
+    (now, by): (i64, &str),
 ) -> Result<i64, StoreError> {
     Store::lock_feeder(backend, tx, feeder).await?;
     let next: i64 =
@@ -475,8 +486,8 @@ pub(crate) async fn insert_profile(
             .await?;
     let spec = profile.to_spec();
     sqlx::query(
-        "INSERT INTO dither_profiles (feeder_id, version, noise, scale_kw, boundaries_kw, interval_s, send_registers, created_at, register_period)
-         VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9)",
+        "INSERT INTO dither_profiles (feeder_id, version, noise, scale_kw, boundaries_kw, interval_s, send_registers, created_at, register_period, published_by)
+         VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10)",
     )
     .bind(feeder.as_str())
     .bind(next)
@@ -487,6 +498,7 @@ pub(crate) async fn insert_profile(
     .bind(i64::from(spec.send_registers))
     .bind(now)
     .bind(profile.register_period().as_str())
+    .bind(by)
     .execute(&mut **tx)
     .await?;
     Ok(next)

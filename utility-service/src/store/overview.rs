@@ -54,7 +54,7 @@ impl Store {
         calibration: &str,
         feeder: &meterveil_shared::FeederId,
         profile: &meterveil_shared::DitherProfile,
-        now: i64,
+        (now, who): (i64, &str),
     ) -> Result<i64, StoreError> {
         let _w = self.write_lock().await;
         let mut tx = self.pool.begin().await?;
@@ -73,7 +73,8 @@ impl Store {
                 format!("calibration {calibration} was published before, as version {}", result["published_version"]),
             )));
         }
-        let version = super::insert_profile(self.backend, &mut tx, feeder, profile, now).await?;
+        let by = format!("{who} (dashboard), from calibration {calibration}");
+        let version = super::insert_profile(self.backend, &mut tx, feeder, profile, (now, &by)).await?;
         result["published_version"] = version.into();
         sqlx::query("UPDATE analysis_jobs SET result = $1 WHERE job_id = $2")
             .bind(result.to_string())

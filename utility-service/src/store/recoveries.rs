@@ -116,28 +116,9 @@ impl Store {
     }
 
     pub async fn job(&self, id: &str) -> Result<Option<JobRecord>, StoreError> {
-        let Some(r) =
-            sqlx::query("SELECT * FROM recovery_jobs WHERE job_id = $1").bind(id).fetch_optional(&self.pool).await?
-        else {
-            return Ok(None);
-        };
-        let json = |s: Option<String>| s.and_then(|s| serde_json::from_str(&s).ok());
-        Ok(Some(JobRecord {
-            job_id: r.try_get("job_id")?,
-            feeder_id: r.try_get("feeder_id")?,
-            window_start: r.try_get("window_start")?,
-            window_end: r.try_get("window_end")?,
-            params: json(r.try_get("params")?).unwrap_or(serde_json::Value::Null),
-            profile_version: r.try_get("profile_version")?,
-            state: r.try_get("state")?,
-            progress: r.try_get("progress")?,
-            message: r.try_get("message")?,
-            created_at: r.try_get("created_at")?,
-            started_at: r.try_get("started_at")?,
-            finished_at: r.try_get("finished_at")?,
-            diagnostics: json(r.try_get("diagnostics")?),
-            error: r.try_get("error")?,
-        }))
+        let r =
+            sqlx::query("SELECT * FROM recovery_jobs WHERE job_id = $1").bind(id).fetch_optional(&self.pool).await?;
+        r.as_ref().map(job_from_row).transpose()
     }
 
     pub async fn job_rows(&self, id: &str, meter: Option<&str>) -> Result<Vec<RecoveredRow>, StoreError> {
@@ -239,4 +220,25 @@ impl Store {
             .map(|(meter_id, period_start, read_at, wh)| Advance { meter_id, period_start, read_at, wh })
             .collect())
     }
+}
+
+/// A `recovery_jobs` row (`SELECT *`) as a record.
+pub(super) fn job_from_row(r: &sqlx::any::AnyRow) -> Result<JobRecord, StoreError> {
+    let json = |s: Option<String>| s.and_then(|s| serde_json::from_str(&s).ok());
+    Ok(JobRecord {
+        job_id: r.try_get("job_id")?,
+        feeder_id: r.try_get("feeder_id")?,
+        window_start: r.try_get("window_start")?,
+        window_end: r.try_get("window_end")?,
+        params: json(r.try_get("params")?).unwrap_or(serde_json::Value::Null),
+        profile_version: r.try_get("profile_version")?,
+        state: r.try_get("state")?,
+        progress: r.try_get("progress")?,
+        message: r.try_get("message")?,
+        created_at: r.try_get("created_at")?,
+        started_at: r.try_get("started_at")?,
+        finished_at: r.try_get("finished_at")?,
+        diagnostics: json(r.try_get("diagnostics")?),
+        error: r.try_get("error")?,
+    })
 }
