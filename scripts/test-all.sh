@@ -1,16 +1,16 @@
 #!/usr/bin/env bash
 # The full test suite, runnable on a fresh machine with only the Rust toolchain
-# and CPython: it installs what its tests need itself (Debian's chromium and
+# and CPython: it installs what its tests need itself (Debian's chromium, chromium-driver and
 # postgresql, the Python reference packages), starts a private PostgreSQL server,
 # and runs the end-to-end tests once per database backend.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 
-# Debian's Chromium for the dashboard's browser test.
-if ! command -v chromium >/dev/null 2>&1; then
+# Debian's Chromium and its WebDriver server for the dashboard's browser test.
+if ! command -v chromium >/dev/null 2>&1 || ! command -v chromedriver >/dev/null 2>&1; then
     if [ "$(id -u)" = 0 ]; then apt_get="apt-get"; else apt_get="sudo apt-get"; fi
     $apt_get update -q
-    DEBIAN_FRONTEND=noninteractive $apt_get install -y -q chromium
+    DEBIAN_FRONTEND=noninteractive $apt_get install -y -q chromium chromium-driver
 fi
 
 venv=target/reference-venv

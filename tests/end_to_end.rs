@@ -1393,14 +1393,22 @@ async fn dashboard_sessions_hold_across_processes_and_restarts() {
     let http = reqwest::Client::builder().redirect(reqwest::redirect::Policy::none()).build().expect("client");
     let (mut a, url_a) = serve_child(&db, 30);
     let (mut b, url_b) = serve_child(&db, 30);
-    // Sign in on A with the operator token.
-    let r = http
-        .post(format!("{url_a}/dashboard/login"))
-        .header("content-type", "application/x-www-form-urlencoded")
-        .body(format!("token={TOKEN}"))
-        .send()
-        .await
-        .expect("login");
+    // Sign in on A with a name and the operator token; without a name, the form comes back naming it.
+    let login = |body: String| {
+        let (http, url) = (http.clone(), format!("{url_a}/dashboard/login"));
+        async move {
+            http.post(url)
+                .header("content-type", "application/x-www-form-urlencoded")
+                .body(body)
+                .send()
+                .await
+                .expect("login")
+        }
+    };
+    let r = login(format!("token={TOKEN}")).await;
+    assert_eq!(r.status().as_u16(), 400);
+    assert!(r.text().await.expect("text").contains("Not signed in: who"));
+    let r = login(format!("who=wren+on+duty&token={TOKEN}")).await;
     assert!(r.status().is_redirection(), "{}", r.status());
     let set = r.headers()["set-cookie"].to_str().expect("cookie").to_owned();
     let cookie = set.split(';').next().expect("name=value").to_owned();
@@ -1421,6 +1429,9 @@ async fn dashboard_sessions_hold_across_processes_and_restarts() {
         .await
         .expect("sessions");
     assert_eq!(stored, vec![meterveil_shared::auth::body_sha256(secret.as_bytes())]);
+    let who: String =
+        sqlx::query_scalar("SELECT who FROM dashboard_sessions").fetch_one(store.pool()).await.expect("who");
+    assert_eq!(who, "wren on duty");
     // Both restart: the session holds.
     for c in [&mut a, &mut b] {
         c.kill().expect("kill");
@@ -1448,44 +1459,147 @@ async fn dashboard_sessions_hold_across_processes_and_restarts() {
     }
 }
 
-/// Loads a page in headless Chromium (Debian's package, installed by the test
-/// command) twice, with two one-time sign-in links to it: a screenshot into
-/// `png`, then the rendered DOM. Returns (dom, both runs' log).
-fn chromium(shot_url: &str, dom_url: &str, png: &std::path::Path) -> (String, String) {
-    let bin = std::env::var("METERVEIL_CHROMIUM").unwrap_or_else(|_| "chromium".into());
-    let profile = tempfile::tempdir().expect("profile dir");
-    let common = [
-        "--headless",
-        "--no-sandbox",
-        "--disable-gpu",
-        "--disable-quic",
-        "--no-first-run",
-        "--disable-background-networking",
-        "--disable-component-update",
-        "--disable-sync",
-        "--enable-logging=stderr",
-        "--v=0",
-        "--window-size=1280,1400",
-    ];
-    let run = |extra: &[String]| {
-        std::process::Command::new(&bin)
-            .args(common)
-            .arg(format!("--user-data-dir={}", profile.path().display()))
-            .args(extra)
-            .output()
-            .unwrap_or_else(|e| panic!("cannot run {bin}: {e}; the README test command installs Debian's chromium"))
-    };
-    let shot = run(&[format!("--screenshot={}", png.display()), shot_url.to_owned()]);
-    assert!(shot.status.success(), "{}", String::from_utf8_lossy(&shot.stderr));
-    let dom = run(&["--dump-dom".to_owned(), dom_url.to_owned()]);
-    let mut log = String::from_utf8_lossy(&shot.stderr).into_owned();
-    log += &String::from_utf8_lossy(&dom.stderr);
-    (String::from_utf8_lossy(&dom.stdout).into_owned(), log)
+/// Headless Chromium driven through WebDriver (Debian's chromium and
+/// chromium-driver, installed by the test command): it loads pages, fills and
+/// clicks the dashboard's forms as a person would, and takes screenshots.
+struct Browser {
+    client: fantoccini::Client,
+    driver: std::process::Child,
+    shots: std::path::PathBuf,
+    base: String,
+}
+
+impl Browser {
+    async fn start(base: String) -> Browser {
+        let port = std::net::TcpListener::bind("127.0.0.1:0").expect("port").local_addr().expect("addr").port();
+        let bin = std::env::var("METERVEIL_CHROMEDRIVER").unwrap_or_else(|_| "chromedriver".into());
+        let driver = std::process::Command::new(&bin)
+            .arg(format!("--port={port}"))
+            .stdout(std::process::Stdio::null())
+            .stderr(std::process::Stdio::null())
+            .spawn()
+            .unwrap_or_else(|e| panic!("cannot run {bin}: {e}; the README test command installs chromium-driver"));
+        let mut caps = serde_json::Map::new();
+        let chromium = std::env::var("METERVEIL_CHROMIUM").unwrap_or_else(|_| "/usr/bin/chromium".into());
+        caps.insert(
+            "goog:chromeOptions".into(),
+            json!({"binary": chromium, "args": ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
+                "--no-first-run", "--disable-background-networking", "--disable-component-update", "--disable-sync",
+                "--window-size=1280,1600"]}),
+        );
+        let mut last = String::new();
+        for _ in 0..100 {
+            let mut connector =
+                fantoccini::ClientBuilder::new(hyper_util::client::legacy::connect::HttpConnector::new());
+            match connector.capabilities(caps.clone()).connect(&format!("http://127.0.0.1:{port}")).await {
+                Ok(client) => {
+                    let shots = std::path::Path::new(env!("CARGO_TARGET_TMPDIR")).join("screenshots");
+                    std::fs::create_dir_all(&shots).expect("screenshot dir");
+                    return Browser { client, driver, shots, base };
+                }
+                Err(e) => last = e.to_string(),
+            }
+            tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+        }
+        panic!("chromedriver did not start: {last}");
+    }
+
+    async fn open(&self, path: &str) -> String {
+        self.client.goto(&format!("{}{path}", self.base)).await.expect("goto");
+        self.source().await
+    }
+
+    async fn source(&self) -> String {
+        self.client.source().await.expect("page source")
+    }
+
+    /// The path of the page the browser is on.
+    async fn at(&self) -> String {
+        self.client.current_url().await.expect("url").path().to_owned()
+    }
+
+    /// Fills the form posting to `action` and clicks its button; the page that follows.
+    async fn submit(&self, action: &str, fields: &[(&str, &str)]) -> String {
+        let css = format!("form[action='{action}']");
+        let form = self.client.form(fantoccini::Locator::Css(&css)).await.unwrap_or_else(|e| panic!("{css}: {e}"));
+        for (name, value) in fields {
+            form.set_by_name(name, value).await.unwrap_or_else(|e| panic!("{css} {name}: {e}"));
+        }
+        let button = format!("{css} button");
+        let button = self.client.find(fantoccini::Locator::Css(&button)).await.expect("button");
+        button.click().await.expect("click");
+        self.left(&button).await
+    }
+
+    async fn click_link(&self, text: &str) -> String {
+        let link = self.client.find(fantoccini::Locator::LinkText(text)).await;
+        let link = link.unwrap_or_else(|e| panic!("no link {text:?}: {e}"));
+        link.click().await.expect("click");
+        self.left(&link).await
+    }
+
+    /// Waits until the page that held `clicked` has been replaced; the new page's source.
+    async fn left(&self, clicked: &fantoccini::elements::Element) -> String {
+        for _ in 0..200 {
+            if clicked.tag_name().await.is_err() {
+                return self.source().await;
+            }
+            tokio::time::sleep(std::time::Duration::from_millis(50)).await;
+        }
+        panic!("the click led nowhere");
+    }
+
+    /// A screenshot of the window into target/tmp/screenshots/NAME.png.
+    async fn shot(&self, name: &str) {
+        let png = self.client.screenshot().await.expect("screenshot");
+        assert!(png.len() > 10_000, "{name}: screenshot of {} bytes", png.len());
+        let file = self.shots.join(format!("{name}.png"));
+        std::fs::write(&file, &png).expect("write screenshot");
+        eprintln!("dashboard {name}: screenshot {} ({} bytes)", file.display(), png.len());
+    }
+
+    async fn close(mut self) {
+        let _ = self.client.close().await;
+        let _ = self.driver.kill();
+        let _ = self.driver.wait();
+    }
+}
+
+/// Waits until the job at `path` (a status endpoint) has finished, and returns it.
+async fn finished(t: &TestService, path: &str) -> Value {
+    for _ in 0..3000 {
+        let j: Value = t
+            .http
+            .get(format!("{}{path}", t.url()))
+            .bearer_auth(TOKEN)
+            .send()
+            .await
+            .expect("get")
+            .json()
+            .await
+            .expect("json");
+        if j["state"] == "done" || j["state"] == "failed" {
+            assert_eq!(j["state"], "done", "{j}");
+            return j;
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+    }
+    panic!("{path} did not finish");
+}
+
+/// The newest analysis job of `kind`.
+async fn newest_analysis(t: &TestService, kind: &str) -> String {
+    sqlx::query_scalar("SELECT job_id FROM analysis_jobs WHERE kind = $1 ORDER BY created_at DESC, job_id DESC LIMIT 1")
+        .bind(kind)
+        .fetch_one(t.svc.store.pool())
+        .await
+        .expect("newest job")
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn dashboard_pages_render_in_a_real_browser() {
-    let t = spawn_service().await;
+async fn dashboard_pages_and_actions_in_a_real_browser() {
+    // The worker serves Chapel Row only, so a job on Millpond stays queued until it is cancelled.
+    let t = spawn_service_with(|c| c.job_feeders = Some(vec!["QM-CHAPEL-ROW".into()])).await;
     let work = tempfile::tempdir().expect("tempdir");
     let mut opts = SimulateOptions::new(t.url(), work.path().join("outboxes"));
     opts.operator_token = Some(TOKEN.into());
@@ -1493,41 +1607,18 @@ async fn dashboard_pages_render_in_a_real_browser() {
     opts.days = 4;
     let report = simulate::run(&opts).await.expect("simulation");
     let (from, to) = (report.first_day, report.first_day + 4 * 86_400);
-    let wait = |path: String| {
-        let http = t.http.clone();
-        let base = t.url();
-        async move {
-            for _ in 0..1200 {
-                let j: Value = http
-                    .get(format!("{base}{path}"))
-                    .bearer_auth(TOKEN)
-                    .send()
-                    .await
-                    .expect("get")
-                    .json()
-                    .await
-                    .expect("json");
-                if j["state"] == "done" || j["state"] == "failed" {
-                    assert_eq!(j["state"], "done", "{j}");
-                    return j;
-                }
-                tokio::time::sleep(std::time::Duration::from_millis(100)).await;
-            }
-            panic!("{path} did not finish");
-        }
-    };
     let (_, b) = t
         .post_json("/v1/recoveries", &json!({"feeder_id": "QM-CHAPEL-ROW", "from": from, "to": to, "rank": 5}), true)
         .await;
     let rec = b["job_id"].as_str().expect("id").to_owned();
-    wait(format!("/v1/recoveries/{rec}")).await;
+    finished(&t, &format!("/v1/recoveries/{rec}")).await;
     let (_, b) = t.post_json("/v1/clusterings", &json!({"recovery_jobs": [rec], "clusters": 3}), true).await;
     let clu = b["job_id"].as_str().expect("id").to_owned();
-    wait(format!("/v1/analyses/{clu}")).await;
+    finished(&t, &format!("/v1/analyses/{clu}")).await;
     let (_, b) =
         t.post_json("/v1/audits", &json!({"recovery_job": rec, "captured": ["QM-CHAPEL-ROW-0001"]}), true).await;
     let aud = b["job_id"].as_str().expect("id").to_owned();
-    wait(format!("/v1/analyses/{aud}")).await;
+    finished(&t, &format!("/v1/analyses/{aud}")).await;
 
     // Without a session the dashboard sends the browser to the sign-in page.
     let plain = reqwest::Client::builder().redirect(reqwest::redirect::Policy::none()).build().expect("client");
@@ -1536,45 +1627,132 @@ async fn dashboard_pages_render_in_a_real_browser() {
     let (s, _) = t.post_json("/v1/dashboard/links", &json!({}), false).await;
     assert_eq!(s, StatusCode::UNAUTHORIZED, "links need the operator token");
 
-    let shots = std::path::Path::new(env!("CARGO_TARGET_TMPDIR")).join("screenshots");
-    std::fs::create_dir_all(&shots).expect("screenshot dir");
+    let web = Browser::start(t.url()).await;
+    let (s, b) = t.post_json("/v1/dashboard/links", &json!({"who": "wren on duty"}), true).await;
+    assert_eq!(s, StatusCode::OK, "{b}");
+    let link = b["url"].as_str().expect("url").to_owned();
+    let home = web.open(&link).await;
+    assert_eq!(web.at().await, "/dashboard");
+    // The audited feeder's row shows the audit's F1 and, without targets, says so.
+    let f1 = t.svc.store.analysis(&aud).await.expect("audit").and_then(|a| a.result).expect("result")["strongest"]
+        ["event_f1"]
+        .as_f64()
+        .expect("f1");
+    assert!(home.contains(&format!("event F1 {f1:.2}")) && home.contains("– no targets set"), "{home}");
+    web.shot("overview").await;
+    let r = plain.get(format!("{}{link}", t.url())).send().await.expect("get");
+    assert_eq!(r.status().as_u16(), 401, "a used link signed in again");
+
+    // A forged targets form (a token that is not the session's) is refused and changes nothing.
+    let forged =
+        [("csrf", "0".repeat(64)), ("event_f1_max", "0.5".into()), ("daily_energy_error_max_percent", "9".into())];
+    let forged: Vec<(&str, &str)> = forged.iter().map(|(k, v)| (*k, v.as_str())).collect();
+    let refused = web.submit("/dashboard/actions/targets/QM-CHAPEL-ROW", &forged).await;
+    assert!(refused.contains("Refused: "), "{refused}");
+    assert_eq!(t.count("SELECT COUNT(*) FROM feeder_targets").await, 0, "a forged form stored targets");
+    web.open("/dashboard").await;
+    let bad = web
+        .submit(
+            "/dashboard/actions/targets/QM-CHAPEL-ROW",
+            &[("event_f1_max", "most"), ("daily_energy_error_max_percent", "60")],
+        )
+        .await;
+    assert!(bad.contains("Not set: event_f1_max"), "{bad}");
+    assert_eq!(t.count("SELECT COUNT(*) FROM feeder_targets").await, 0, "a bad form stored targets");
+    web.open("/dashboard").await;
+    let home = web
+        .submit(
+            "/dashboard/actions/targets/QM-CHAPEL-ROW",
+            &[("event_f1_max", "1"), ("daily_energy_error_max_percent", "60")],
+        )
+        .await;
+    assert!(home.contains("✓ meets both targets"), "{home}");
+
+    // The feeder page: profile history, the trade-off chart, the audit.
+    let feeder = web.click_link("QM-CHAPEL-ROW").await;
+    assert_eq!(web.at().await, "/dashboard/feeders/QM-CHAPEL-ROW");
+    for expect in
+        ["Profile history", "v1 (current)", "operator (HTTP API)", "<svg", aud.as_str(), "audits of profile v1"]
+    {
+        assert!(feeder.contains(expect), "feeder page lacks {expect:?}");
+    }
+    web.shot("feeder").await;
+    analyses_from_the_feeder_page(&t, &web).await;
+
+    // Publishing the calibration's recommendation after its confirmation.
+    let cal = newest_analysis(&t, "calibrate").await;
+    web.open("/dashboard/feeders/QM-CHAPEL-ROW").await;
+    let confirm = web.click_link("review and publish").await;
+    assert!(confirm.contains("Publish as the next profile version"), "{confirm}");
+    web.shot("publish").await;
+    let home = web.submit(&format!("/dashboard/actions/publish/{cal}"), &[]).await;
+    assert!(home.contains("published as version 2"), "{home}");
+    let feeder = web.open("/dashboard/feeders/QM-CHAPEL-ROW").await;
+    assert!(feeder.contains("v2 (current)"), "{feeder}");
+    assert!(feeder.contains(&format!("wren on duty (dashboard), from calibration {cal}")), "{feeder}");
+    web.shot("feeder-published").await;
+
+    // The other pages.
     let pages = [
-        // The audited feeder's row shows the audit's F1 and, without targets, says so.
-        ("overview", "/dashboard".to_owned(), "– no targets set"),
-        ("meter", format!("/dashboard/recoveries/{rec}?meter_id=QM-CHAPEL-ROW-0002"), "QM-CHAPEL-ROW-0002"),
-        ("clusters", format!("/dashboard/clusterings/{clu}"), "Representative working day"),
+        ("meter", format!("/dashboard/recoveries/{rec}?meter_id=QM-CHAPEL-ROW-0002&span=day"), "QM-CHAPEL-ROW-0002"),
+        ("clusters", format!("/dashboard/clusterings/{clu}"), "hour of the local day (Europe/London)"),
         ("audit", format!("/dashboard/analyses/{aud}"), "In plain words"),
-        ("jobs", "/dashboard/jobs?feeder=QM-CHAPEL-ROW&kind=audit".to_owned(), aud.as_str()),
     ];
     for (name, path, expect) in pages {
-        // Each Chromium run is a fresh browser: one one-time link per load.
-        let mut urls = Vec::new();
-        for _ in 0..2 {
-            let (s, b) = t.post_json("/v1/dashboard/links", &json!({ "next": path }), true).await;
-            assert_eq!(s, StatusCode::OK, "{b}");
-            urls.push(format!("{}{}", t.url(), b["url"].as_str().expect("url")));
-        }
-        let png = shots.join(format!("{name}.png"));
-        let _ = std::fs::remove_file(&png);
-        let (dom, log) = {
-            let (u0, u1) = (urls[0].clone(), urls[1].clone());
-            let png = png.clone();
-            tokio::task::spawn_blocking(move || chromium(&u0, &u1, &png)).await.expect("browser")
-        };
-        assert!(dom.contains(expect), "{name}: page lacks {expect:?}: {}", &dom[..dom.len().min(600)]);
-        if name != "overview" && name != "jobs" {
-            assert!(dom.contains("<svg"), "{name}: no chart");
-        }
-        let console: Vec<&str> = log.lines().filter(|l| l.contains(":CONSOLE")).collect();
-        assert!(console.is_empty(), "{name}: console messages {console:?}");
-        let size = std::fs::metadata(&png).map(|m| m.len()).unwrap_or(0);
-        assert!(size > 10_000, "{name}: screenshot {} is {size} bytes", png.display());
-        eprintln!("dashboard {name}: screenshot {} ({size} bytes)", png.display());
-        // A used link does not sign in again.
-        let r = plain.get(&urls[0]).send().await.expect("get");
-        assert_eq!(r.status().as_u16(), 401);
+        let html = web.open(&path).await;
+        assert!(html.contains(expect) && html.contains("<svg"), "{name}: page lacks {expect:?}");
+        web.shot(name).await;
     }
+    jobs_from_the_browser(&t, &web, from).await;
+    web.close().await;
+    let mut actions: Vec<(String, String)> =
+        sqlx::query_as("SELECT who, action FROM dashboard_actions").fetch_all(t.svc.store.pool()).await.expect("log");
+    actions.sort();
+    let expected =
+        ["cancel job", "publish recommendation", "set targets", "start audit", "start calibration", "start recovery"];
+    assert_eq!(actions, expected.map(|a| ("wren on duty".to_owned(), a.to_owned())));
     jobs_page_filters_and_refuses_bad_input(&t, &plain, &rec, &aud).await;
+}
+
+/// From the feeder page: an audit refused for a meter of no feeder (nothing
+/// stored), then an audit and a calibration started and finished.
+async fn analyses_from_the_feeder_page(t: &TestService, web: &Browser) {
+    let before = t.count("SELECT COUNT(*) FROM analysis_jobs").await;
+    let bad = web.submit("/dashboard/actions/audit", &[("captured", "QM-NOWHERE-0001")]).await;
+    assert!(bad.contains("Not started: captured"), "{bad}");
+    assert_eq!(t.count("SELECT COUNT(*) FROM analysis_jobs").await, before, "a refused audit was stored");
+    web.open("/dashboard/feeders/QM-CHAPEL-ROW").await;
+    let page = web.submit("/dashboard/actions/audit", &[("captured", "QM-CHAPEL-ROW-0003")]).await;
+    assert_eq!(web.at().await, "/dashboard/feeders/QM-CHAPEL-ROW", "{page}");
+    let audit = newest_analysis(t, "audit").await;
+    finished(t, &format!("/v1/analyses/{audit}")).await;
+    let page = web
+        .submit("/dashboard/actions/calibrate", &[("event_f1_max", "1"), ("daily_energy_error_max_percent", "60")])
+        .await;
+    assert_eq!(web.at().await, "/dashboard/feeders/QM-CHAPEL-ROW", "{page}");
+    let cal = newest_analysis(t, "calibrate").await;
+    finished(t, &format!("/v1/analyses/{cal}")).await;
+    let page = web.open("/dashboard/feeders/QM-CHAPEL-ROW").await;
+    assert!(page.contains(&audit) && page.contains(&cal) && page.contains("wren on duty"), "{page}");
+}
+
+/// From the jobs page: a recovery on Millpond started (it stays queued: the
+/// worker serves Chapel Row only) and cancelled.
+async fn jobs_from_the_browser(t: &TestService, web: &Browser, from: i64) {
+    web.open("/dashboard/jobs").await;
+    let day = |t: i64| chrono::DateTime::from_timestamp(t, 0).expect("day").format("%Y-%m-%d").to_string();
+    let fields = [("feeder_id", "QM-MILLPOND".to_owned()), ("from", day(from)), ("to", day(from + 2 * 86_400))];
+    let fields: Vec<(&str, &str)> = fields.iter().map(|(k, v)| (*k, v.as_str())).collect();
+    let jobs = web.submit("/dashboard/actions/recover", &fields).await;
+    assert_eq!(web.at().await, "/dashboard/jobs", "{jobs}");
+    let id: String = sqlx::query_scalar("SELECT job_id FROM recovery_jobs WHERE feeder_id = 'QM-MILLPOND'")
+        .fetch_one(t.svc.store.pool())
+        .await
+        .expect("queued recovery");
+    assert!(jobs.contains(&format!("Cancel {id}")), "{jobs}");
+    web.shot("jobs").await;
+    let jobs = web.submit(&format!("/dashboard/actions/cancel/{id}"), &[]).await;
+    assert!(jobs.contains("cancelled by the operator"), "{jobs}");
 }
 
 /// The jobs page: filtered by kind, with feeder, window, times and duration;
@@ -1593,9 +1771,9 @@ async fn jobs_page_filters_and_refuses_bad_input(t: &TestService, plain: &reqwes
     let (s, page) = get("?kind=recover").await;
     assert_eq!(s, 200, "{page}");
     assert!(page.contains(rec) && !page.contains(aud), "{page}");
-    assert!(page.contains("QM-CHAPEL-ROW") && page.contains(" UTC") && page.contains("1 jobs; page 1 of 1"), "{page}");
+    assert!(page.contains("QM-CHAPEL-ROW") && page.contains(" UTC") && page.contains("2 jobs; page 1 of 1"), "{page}");
     let (s, page) = get("").await;
-    assert!(s == 200 && page.contains(rec) && page.contains(aud) && page.contains("3 jobs"), "{page}");
+    assert!(s == 200 && page.contains(rec) && page.contains(aud) && page.contains("6 jobs"), "{page}");
     // The meter view: a day in local time with UTC beside it, the meter list searched, a bad span refused.
     let view = |q: String| {
         let (plain, cookie, url) =

@@ -50,6 +50,8 @@ fn profiles() -> Vec<ProfileRecord> {
         created_at: NOW - 86_400 * 400,
         profile: p,
         in_use: true,
+        published_by: "operator (HTTP API)".into(),
+        first_used_at: Some(NOW - 86_400 * 399),
     }]
 }
 

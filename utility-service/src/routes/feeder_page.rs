@@ -22,6 +22,9 @@ use crate::store::history::ActionLine;
 use crate::store::overview::FeederTargets;
 use crate::store::recoveries::JobRecord;
 
+/// Chart points: (utility error in %, attacker event F1).
+type Points = Vec<(f64, f64)>;
+
 /// How many of each kind of job the page lists.
 const HISTORY: i64 = 25;
 
@@ -76,7 +79,7 @@ impl FeederHistory {
 
     /// Audits grouped by the version they audited, as chart points (error in %, F1).
     fn audit_points(&self) -> Vec<(String, Vec<(f64, f64)>)> {
-        let mut by_version: Vec<(Option<i64>, Vec<(f64, f64)>)> = Vec::new();
+        let mut by_version: Vec<(Option<i64>, Points)> = Vec::new();
         for a in self.audits.iter().rev() {
             let Some((f1, err)) = a.result.as_ref().and_then(audit_figures) else { continue };
             let v = self.version_of(a);
