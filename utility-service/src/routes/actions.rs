@@ -19,8 +19,8 @@ use super::dashboard::{page, Viewer};
 use super::{now_s, AppState};
 use crate::error::ApiError;
 use crate::jobspec::RecoverRequest;
+use crate::store::overview::FeederHeader;
 use crate::store::queue::JobLine;
-use crate::store::FeederSummary;
 
 pub fn router() -> Router<AppState> {
     Router::new()
@@ -42,7 +42,7 @@ pub(crate) fn forged() -> Response {
 }
 
 /// The form that starts a recovery, with a problem to show beside it.
-pub(crate) fn recovery_form(feeders: &[FeederSummary], v: &Viewer, problem: Option<(&str, &str)>) -> Markup {
+pub(crate) fn recovery_form(feeders: &[FeederHeader], v: &Viewer, problem: Option<(&str, &str)>) -> Markup {
     html! {
         h2 { "Start a recovery" }
         form method="post" action="/dashboard/actions/recover" {
@@ -130,7 +130,7 @@ async fn start_recovery(
     if !form_is_ours(&v, &f.csrf) {
         return Ok(forged());
     }
-    let refuse = |feeders: Vec<FeederSummary>, field: &str, reason: &str| {
+    let refuse = |feeders: Vec<FeederHeader>, field: &str, reason: &str| {
         let body = recovery_form(&feeders, &v, Some((field, reason)));
         (StatusCode::BAD_REQUEST, page("Start a recovery", body, false)).into_response()
     };
@@ -140,7 +140,7 @@ async fn start_recovery(
     };
     let (spec, job_id) = match checked {
         Ok(done) => done,
-        Err(ApiError::Invalid(e)) => return Ok(refuse(s.store.feeder_summaries().await?, &e.field, &e.reason)),
+        Err(ApiError::Invalid(e)) => return Ok(refuse(s.store.feeder_headers().await?, &e.field, &e.reason)),
         Err(e) => return Err(e),
     };
     let detail = format!("{job_id}: feeder {} from {} to {}", spec.feeder_id, f.from.trim(), f.to.trim());

@@ -276,7 +276,7 @@ fn job_link(j: &JobLine) -> Markup {
 }
 
 /// Each feeder's time zone, for the job lists (a town-wide job's is UTC).
-pub(crate) fn zones(feeders: &[crate::store::FeederSummary]) -> HashMap<String, chrono_tz::Tz> {
+pub(crate) fn zones(feeders: &[crate::store::overview::FeederHeader]) -> HashMap<String, chrono_tz::Tz> {
     feeders.iter().map(|f| (f.feeder_id.clone(), zone(&f.time_zone))).collect()
 }
 
@@ -365,7 +365,7 @@ async fn job_filter(s: &AppState, q: &JobsQuery) -> Result<Result<(JobFilter, i6
 
 /// Every job, filtered by feeder, kind and state, a page at a time.
 async fn jobs_page(v: Viewer, State(s): State<AppState>, Query(q): Query<JobsQuery>) -> Result<Response, ApiError> {
-    let feeders = s.store.feeder_summaries().await?;
+    let feeders = s.store.feeder_headers().await?;
     let form = |problem: Option<(&str, &str)>| {
         html! {
             form method="get" action="/dashboard/jobs" {

@@ -230,7 +230,7 @@ pub(crate) async fn feeder_page(
     Path(feeder_id): Path<String>,
 ) -> Result<Html<String>, ApiError> {
     let h = read_history(&s, &feeder_id).await?;
-    let summaries = s.store.feeder_summaries().await?;
+    let summaries = s.store.feeder_headers().await?;
     let this: Vec<_> = summaries.into_iter().filter(|f| f.feeder_id == h.feeder.as_str()).collect();
     let done: Vec<&JobRecord> = h.recoveries.iter().filter(|j| j.state == "done").collect();
     let body = html! {

@@ -17,8 +17,8 @@ use super::dashboard::{page, Viewer};
 use super::local_time::{local_days, local_when, zone};
 use super::{now_s, AppState};
 use crate::error::ApiError;
+use crate::store::overview::FeederHeader;
 use crate::store::overview::FeederTargets;
-use crate::store::FeederSummary;
 
 pub fn router() -> Router<AppState> {
     Router::new().route("/dashboard/actions/targets/{feeder_id}", post(set_targets))
@@ -26,7 +26,7 @@ pub fn router() -> Router<AppState> {
 
 /// Everything one feeder row shows.
 pub(crate) struct FeederRow {
-    pub summary: FeederSummary,
+    pub summary: FeederHeader,
     pub completeness: String,
     pub profile: String,
     pub recovery: String,
@@ -80,15 +80,17 @@ fn recovery_phrase(j: &crate::store::recoveries::JobRecord, tz: chrono_tz::Tz) -
 
 pub(crate) async fn feeder_rows(s: &AppState) -> Result<Vec<FeederRow>, ApiError> {
     let mut out = Vec::new();
-    for f in s.store.feeder_summaries().await? {
+    for f in s.store.feeder_headers().await? {
         let id = FeederId::parse(&f.feeder_id).map_err(ApiError::Invalid)?;
-        let completeness = match s.store.feeder_span(&id).await? {
-            Some((a, z)) => {
+        // Completeness of the 24 hours that end with the newest stored interval.
+        let completeness = match s.store.newest_reading(id.as_str()).await? {
+            Some(newest) => {
                 let step = f.current_profile.as_ref().map_or(900, |p| i64::from(p.profile.interval_s.max(1)));
-                let expected = f.meters * ((z - a) / step + 1);
-                format!("{:.1}%", 100.0 * f.readings as f64 / expected.max(1) as f64)
+                let got = s.store.readings_between(id.as_str(), newest - 86_400, newest).await?;
+                let expected = f.meters * (86_400 / step);
+                format!("{:.1}% of the last 24 h", 100.0 * got as f64 / expected.max(1) as f64)
             }
-            None => "–".into(),
+            None => "– no readings".into(),
         };
         let profile = f.current_profile.as_ref().map_or_else(|| "none".into(), |p| p.describe());
         let recovery = s

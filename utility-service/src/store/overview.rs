@@ -7,6 +7,17 @@ use super::analyses::AnalysisRecord;
 use super::recoveries::JobRecord;
 use super::{Store, StoreError};
 
+/// What the dashboard lists about a feeder: nothing that grows with its
+/// stored readings, so that the pages stay quick at utility size.
+#[derive(Debug, Clone)]
+pub struct FeederHeader {
+    pub feeder_id: String,
+    pub meters: i64,
+    /// The feeder's IANA time zone.
+    pub time_zone: String,
+    pub current_profile: Option<meterveil_shared::wire::ProfileRecordWire>,
+}
+
 /// A feeder's privacy and accuracy targets.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct FeederTargets {
@@ -15,6 +26,55 @@ pub struct FeederTargets {
 }
 
 impl Store {
+    /// Every feeder with its meter count, zone and current profile.
+    pub async fn feeder_headers(&self) -> Result<Vec<FeederHeader>, StoreError> {
+        let rows = sqlx::query(
+            "SELECT f.feeder_id, f.time_zone, (SELECT COUNT(*) FROM meters m WHERE m.feeder_id = f.feeder_id)
+             FROM feeders f ORDER BY f.feeder_id",
+        )
+        .fetch_all(&self.pool)
+        .await?;
+        let mut out = Vec::with_capacity(rows.len());
+        for r in rows {
+            let feeder_id: String = r.try_get(0)?;
+            let tz: Option<String> = r.try_get(1)?;
+            let tz = tz.unwrap_or_else(|| "UTC".into());
+            let id =
+                meterveil_shared::FeederId::parse(&feeder_id).map_err(|e| anyhow::anyhow!("stored feeder id: {e}"))?;
+            out.push(FeederHeader {
+                current_profile: self.current_profile(&id).await?.map(|p| p.to_wire(&tz)),
+                meters: r.try_get(2)?,
+                time_zone: tz,
+                feeder_id,
+            });
+        }
+        Ok(out)
+    }
+
+    /// The start of the feeder's newest stored interval: one index seek per meter.
+    pub async fn newest_reading(&self, feeder: &str) -> Result<Option<i64>, StoreError> {
+        Ok(sqlx::query_scalar(
+            "SELECT MAX(newest) FROM (SELECT (SELECT MAX(r.interval_start) FROM readings r WHERE r.meter_id = m.meter_id)
+             AS newest FROM meters m WHERE m.feeder_id = $1) AS per_meter",
+        )
+        .bind(feeder)
+        .fetch_one(&self.pool)
+        .await?)
+    }
+
+    /// How many of the feeder's readings start in (after, upto].
+    pub async fn readings_between(&self, feeder: &str, after: i64, upto: i64) -> Result<i64, StoreError> {
+        Ok(sqlx::query_scalar(
+            "SELECT COUNT(*) FROM readings r JOIN meters m ON m.meter_id = r.meter_id
+             WHERE m.feeder_id = $1 AND r.interval_start > $2 AND r.interval_start <= $3",
+        )
+        .bind(feeder)
+        .bind(after)
+        .bind(upto)
+        .fetch_one(&self.pool)
+        .await?)
+    }
+
     /// The feeder's newest finished recovery.
     pub async fn latest_recovery(&self, feeder: &str) -> Result<Option<JobRecord>, StoreError> {
         let id: Option<String> = sqlx::query_scalar(

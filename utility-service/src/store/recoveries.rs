@@ -122,14 +122,24 @@ impl Store {
     }
 
     pub async fn job_rows(&self, id: &str, meter: Option<&str>) -> Result<Vec<RecoveredRow>, StoreError> {
-        let rows = sqlx::query(
-            "SELECT meter_id, interval_start, estimate_kw, flag, band_low_kw, band_high_kw FROM recovered_intervals
-             WHERE job_id = $1 AND ($2 IS NULL OR meter_id = $2) ORDER BY meter_id, interval_start",
-        )
-        .bind(id)
-        .bind(meter)
-        .fetch_all(&self.pool)
-        .await?;
+        // Two statements, so that one meter's rows are a seek on the key (job_id, meter_id, …).
+        const COLUMNS: &str = "SELECT meter_id, interval_start, estimate_kw, flag, band_low_kw, band_high_kw \
+                               FROM recovered_intervals WHERE job_id = $1";
+        let rows = match meter {
+            Some(m) => {
+                sqlx::query(&format!("{COLUMNS} AND meter_id = $2 ORDER BY interval_start"))
+                    .bind(id)
+                    .bind(m)
+                    .fetch_all(&self.pool)
+                    .await?
+            }
+            None => {
+                sqlx::query(&format!("{COLUMNS} ORDER BY meter_id, interval_start"))
+                    .bind(id)
+                    .fetch_all(&self.pool)
+                    .await?
+            }
+        };
         rows.iter()
             .map(|r| {
                 let flag: String = r.try_get(3)?;
