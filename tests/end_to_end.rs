@@ -1430,7 +1430,7 @@ async fn dashboard_sessions_hold_across_processes_and_restarts() {
         .expect("sessions");
     assert_eq!(stored, vec![meterveil_shared::auth::body_sha256(secret.as_bytes())]);
     let who: String =
-        sqlx::query_scalar("SELECT who FROM dashboard_sessions").fetch_one(store.pool()).await.expect("who");
+        sqlx::query_scalar("SELECT operator_name FROM dashboard_sessions").fetch_one(store.pool()).await.expect("who");
     assert_eq!(who, "wren on duty");
     // Both restart: the session holds.
     for c in [&mut a, &mut b] {
@@ -1706,7 +1706,7 @@ async fn dashboard_pages_and_actions_in_a_real_browser() {
     jobs_from_the_browser(&t, &web, from).await;
     web.close().await;
     let mut actions: Vec<(String, String)> =
-        sqlx::query_as("SELECT who, action FROM dashboard_actions").fetch_all(t.svc.store.pool()).await.expect("log");
+        sqlx::query_as("SELECT operator_name, action FROM dashboard_actions").fetch_all(t.svc.store.pool()).await.expect("log");
     actions.sort();
     let expected =
         ["cancel job", "publish recommendation", "set targets", "start audit", "start calibration", "start recovery"];

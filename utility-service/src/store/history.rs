@@ -61,7 +61,7 @@ impl Store {
     /// The newest `limit` actions whose details name `needle` (a feeder id).
     pub async fn actions_naming(&self, needle: &str, limit: i64) -> Result<Vec<ActionLine>, StoreError> {
         let rows = sqlx::query(
-            "SELECT at, who, action, detail FROM dashboard_actions WHERE detail LIKE $1 ORDER BY at DESC LIMIT $2",
+            "SELECT at, operator_name, action, detail FROM dashboard_actions WHERE detail LIKE $1 ORDER BY at DESC LIMIT $2",
         )
         .bind(format!("%{needle}%"))
         .bind(limit)
@@ -71,7 +71,7 @@ impl Store {
             .map(|r| {
                 Ok(ActionLine {
                     at: r.try_get("at")?,
-                    who: r.try_get("who")?,
+                    who: r.try_get("operator_name")?,
                     action: r.try_get("action")?,
                     detail: r.try_get("detail")?,
                 })

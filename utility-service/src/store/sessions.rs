@@ -18,7 +18,7 @@ impl Store {
         let mut tx = self.pool.begin().await?;
         sqlx::query("DELETE FROM dashboard_sessions WHERE expires_at <= $1").bind(now).execute(&mut *tx).await?;
         sqlx::query(
-            "INSERT INTO dashboard_sessions (token_sha256, created_at, expires_at, who) VALUES ($1, $2, $3, $4)",
+            "INSERT INTO dashboard_sessions (token_sha256, created_at, expires_at, operator_name) VALUES ($1, $2, $3, $4)",
         )
         .bind(token_sha256)
         .bind(now)
@@ -33,7 +33,7 @@ impl Store {
     /// The name a session signed in with, when a session with this digest
     /// exists and has not expired.
     pub async fn session_who(&self, token_sha256: &str, now: i64) -> Result<Option<String>, StoreError> {
-        Ok(sqlx::query_scalar("SELECT who FROM dashboard_sessions WHERE token_sha256 = $1 AND expires_at > $2")
+        Ok(sqlx::query_scalar("SELECT operator_name FROM dashboard_sessions WHERE token_sha256 = $1 AND expires_at > $2")
             .bind(token_sha256)
             .bind(now)
             .fetch_optional(&self.pool)
@@ -46,7 +46,7 @@ impl Store {
         let _w = self.write_lock().await;
         let mut tx = self.pool.begin().await?;
         sqlx::query("DELETE FROM dashboard_codes WHERE expires_at <= $1").bind(now).execute(&mut *tx).await?;
-        sqlx::query("INSERT INTO dashboard_codes (code_sha256, expires_at, who) VALUES ($1, $2, $3)")
+        sqlx::query("INSERT INTO dashboard_codes (code_sha256, expires_at, operator_name) VALUES ($1, $2, $3)")
             .bind(code_sha256)
             .bind(expires_at)
             .bind(who)
@@ -66,7 +66,7 @@ impl Store {
     ) -> Result<(), StoreError> {
         let _w = self.write_lock().await;
         sqlx::query(
-            "INSERT INTO dashboard_actions (at, session_sha256, who, action, detail) VALUES ($1, $2, $3, $4, $5)",
+            "INSERT INTO dashboard_actions (at, session_sha256, operator_name, action, detail) VALUES ($1, $2, $3, $4, $5)",
         )
         .bind(at)
         .bind(session_sha256)
@@ -84,7 +84,7 @@ impl Store {
         let _w = self.write_lock().await;
         let mut tx = self.pool.begin().await?;
         let who: Option<String> =
-            sqlx::query_scalar("SELECT who FROM dashboard_codes WHERE code_sha256 = $1 AND expires_at > $2")
+            sqlx::query_scalar("SELECT operator_name FROM dashboard_codes WHERE code_sha256 = $1 AND expires_at > $2")
                 .bind(code_sha256)
                 .bind(now)
                 .fetch_optional(&mut *tx)
