@@ -1705,8 +1705,10 @@ async fn dashboard_pages_and_actions_in_a_real_browser() {
     }
     jobs_from_the_browser(&t, &web, from).await;
     web.close().await;
-    let mut actions: Vec<(String, String)> =
-        sqlx::query_as("SELECT operator_name, action FROM dashboard_actions").fetch_all(t.svc.store.pool()).await.expect("log");
+    let mut actions: Vec<(String, String)> = sqlx::query_as("SELECT operator_name, action FROM dashboard_actions")
+        .fetch_all(t.svc.store.pool())
+        .await
+        .expect("log");
     actions.sort();
     let expected =
         ["cancel job", "publish recommendation", "set targets", "start audit", "start calibration", "start recovery"];
@@ -1726,6 +1728,14 @@ async fn analyses_from_the_feeder_page(t: &TestService, web: &Browser) {
     assert_eq!(web.at().await, "/dashboard/feeders/QM-CHAPEL-ROW", "{page}");
     let audit = newest_analysis(t, "audit").await;
     finished(t, &format!("/v1/analyses/{audit}")).await;
+    web.open("/dashboard/feeders/QM-CHAPEL-ROW").await;
+    let before = t.count("SELECT COUNT(*) FROM analysis_jobs").await;
+    let bad = web
+        .submit("/dashboard/actions/calibrate", &[("event_f1_max", "most"), ("daily_energy_error_max_percent", "60")])
+        .await;
+    assert!(bad.contains("Not started: event_f1_max"), "{bad}");
+    assert_eq!(t.count("SELECT COUNT(*) FROM analysis_jobs").await, before, "a refused calibration was stored");
+    web.open("/dashboard/feeders/QM-CHAPEL-ROW").await;
     let page = web
         .submit("/dashboard/actions/calibrate", &[("event_f1_max", "1"), ("daily_energy_error_max_percent", "60")])
         .await;
@@ -1872,6 +1882,18 @@ async fn dashboard_actions_need_their_form_token() {
         .await
         .expect("job");
     assert_eq!(error.as_deref(), Some("cancelled by the operator"));
+    // Audits and calibrations: forged forms are refused before anything is read; a
+    // recovery that is not the feeder's is named; an unknown feeder's page is 404.
+    for action in ["audit", "calibrate"] {
+        let form = "feeder_id=F1&recovery_job=rec-none&captured=M1&event_f1_max=0.5&daily_energy_error_max_percent=5";
+        let (s, body) = post(&format!("/dashboard/actions/{action}"), form.into()).await;
+        assert_eq!(s, 403, "{action} without its token: {body}");
+        let (s, body) = post(&format!("/dashboard/actions/{action}"), format!("csrf={csrf}&{form}")).await;
+        assert!(s == 400 && body.contains("Not started: recovery_job"), "{action}: {body}");
+    }
+    assert_eq!(t.count("SELECT COUNT(*) FROM analysis_jobs").await, 0, "a refused analysis was stored");
+    let r = plain.get(format!("{}/dashboard/feeders/QM-NOWHERE", t.url())).header("cookie", cookie).send().await;
+    assert_eq!(r.expect("get").status().as_u16(), 404);
     // Targets: forged, then bad, then good.
     let (s, body) =
         post("/dashboard/actions/targets/F1", "event_f1_max=0.5&daily_energy_error_max_percent=10".into()).await;

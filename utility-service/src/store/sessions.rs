@@ -33,11 +33,13 @@ impl Store {
     /// The name a session signed in with, when a session with this digest
     /// exists and has not expired.
     pub async fn session_who(&self, token_sha256: &str, now: i64) -> Result<Option<String>, StoreError> {
-        Ok(sqlx::query_scalar("SELECT operator_name FROM dashboard_sessions WHERE token_sha256 = $1 AND expires_at > $2")
-            .bind(token_sha256)
-            .bind(now)
-            .fetch_optional(&self.pool)
-            .await?)
+        Ok(sqlx::query_scalar(
+            "SELECT operator_name FROM dashboard_sessions WHERE token_sha256 = $1 AND expires_at > $2",
+        )
+        .bind(token_sha256)
+        .bind(now)
+        .fetch_optional(&self.pool)
+        .await?)
     }
 
     /// Records a one-time sign-in code (by its digest) until `expires_at`, and
