@@ -7,6 +7,39 @@ use meterveil_shared::audit::{AuditReport, CurvePoint};
 use meterveil_shared::calibrate::Calibration;
 use plotters::prelude::*;
 
+type Area<'a> = DrawingArea<SVGBackend<'a>, plotters::coord::Shift>;
+type Plot<'a, 'b> = ChartContext<
+    'a,
+    SVGBackend<'b>,
+    Cartesian2d<plotters::coord::types::RangedCoordf64, plotters::coord::types::RangedCoordf64>,
+>;
+type Drawn = Result<(), Box<dyn std::error::Error>>;
+
+/// An SVG chart of `size` pixels drawn by `draw` on white. A drawing error is
+/// logged and leaves what was drawn before it.
+fn svg(size: (u32, u32), draw: impl FnOnce(&Area) -> Drawn) -> String {
+    let mut out = String::new();
+    {
+        let root = SVGBackend::with_string(&mut out, size).into_drawing_area();
+        let drawn = root.fill(&WHITE).map_err(Into::into).and_then(|()| draw(&root));
+        if let Err(e) = drawn.and_then(|()| root.present().map_err(Into::into)) {
+            tracing::warn!(error = %e, "chart could not be drawn");
+        }
+    }
+    out
+}
+
+/// The legend, top right, over the headroom each chart leaves above its data.
+fn legend<'a, 'b: 'a>(chart: &mut Plot<'a, 'b>) -> Drawn {
+    chart
+        .configure_series_labels()
+        .position(SeriesLabelPosition::UpperRight)
+        .background_style(WHITE.mix(0.85))
+        .border_style(BLACK)
+        .draw()?;
+    Ok(())
+}
+
 /// A line chart of several series over a shared x axis, as an SVG string.
 pub(crate) fn line_chart(
     title: &str,
@@ -15,45 +48,29 @@ pub(crate) fn line_chart(
     series: &[(&str, Vec<(f64, f64)>)],
     y_max: f64,
 ) -> String {
-    let mut svg = String::new();
-    {
-        let root = SVGBackend::with_string(&mut svg, (720, 420)).into_drawing_area();
-        let draw = || -> Result<(), Box<dyn std::error::Error + '_>> {
-            root.fill(&WHITE)?;
-            let xs: Vec<f64> = series.iter().flat_map(|s| s.1.iter().map(|p| p.0)).collect();
-            let (x0, x1) = xs.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), x| (a.min(*x), b.max(*x)));
-            let (x0, x1) = if x0.is_finite() && x1 > x0 { (x0, x1) } else { (0.0, 1.0) };
-            // Headroom above the data, one legend row per series, keeps the legend off it.
-            let top = y_max * (1.05 + 0.09 * series.len() as f64);
-            let mut chart = ChartBuilder::on(&root)
-                .caption(title, ("sans-serif", 18))
-                .margin(12)
-                .x_label_area_size(40)
-                .y_label_area_size(52)
-                .build_cartesian_2d(x0..x1, 0.0..top)?;
-            chart.configure_mesh().x_desc(x_label).y_desc(y_label).light_line_style(WHITE.mix(0.0)).draw()?;
-            for (i, (name, pts)) in series.iter().enumerate() {
-                let color = Palette99::pick(i).to_rgba();
-                chart
-                    .draw_series(LineSeries::new(pts.iter().copied(), color.stroke_width(2)))?
-                    .label(*name)
-                    .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], color.stroke_width(2)));
-                chart.draw_series(pts.iter().map(|p| Circle::new(*p, 3, color.filled())))?;
-            }
+    svg((720, 420), |root| {
+        let xs: Vec<f64> = series.iter().flat_map(|s| s.1.iter().map(|p| p.0)).collect();
+        let (x0, x1) = xs.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), x| (a.min(*x), b.max(*x)));
+        let (x0, x1) = if x0.is_finite() && x1 > x0 { (x0, x1) } else { (0.0, 1.0) };
+        // Headroom above the data, one legend row per series, keeps the legend off it.
+        let top = y_max * (1.05 + 0.09 * series.len() as f64);
+        let mut chart = ChartBuilder::on(root)
+            .caption(title, ("sans-serif", 18))
+            .margin(12)
+            .x_label_area_size(40)
+            .y_label_area_size(52)
+            .build_cartesian_2d(x0..x1, 0.0..top)?;
+        chart.configure_mesh().x_desc(x_label).y_desc(y_label).light_line_style(WHITE.mix(0.0)).draw()?;
+        for (i, (name, pts)) in series.iter().enumerate() {
+            let color = Palette99::pick(i).to_rgba();
             chart
-                .configure_series_labels()
-                .position(SeriesLabelPosition::UpperRight)
-                .background_style(WHITE.mix(0.85))
-                .border_style(BLACK)
-                .draw()?;
-            root.present()?;
-            Ok(())
-        };
-        if let Err(e) = draw() {
-            tracing::warn!(error = %e, "chart could not be drawn");
+                .draw_series(LineSeries::new(pts.iter().copied(), color.stroke_width(2)))?
+                .label(*name)
+                .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], color.stroke_width(2)));
+            chart.draw_series(pts.iter().map(|p| Circle::new(*p, 3, color.filled())))?;
         }
-    }
-    svg
+        legend(&mut chart)
+    })
 }
 
 fn curve_series(points: &[CurvePoint], x: impl Fn(&CurvePoint) -> f64) -> Vec<(&'static str, Vec<(f64, f64)>)> {
@@ -339,50 +356,34 @@ pub(crate) fn profile_chart(
     recovered: &[(i64, f64, f64, f64)],
     levels: &[(i64, f64)],
 ) -> String {
-    let mut svg = String::new();
-    {
-        let root = SVGBackend::with_string(&mut svg, (900, 360)).into_drawing_area();
-        let draw = || -> Result<(), Box<dyn std::error::Error + '_>> {
-            root.fill(&WHITE)?;
-            let h = |t: i64| (t - t0) as f64 / 3600.0;
-            let x1 = recovered.last().map_or(24.0, |r| h(r.0)).max(1.0);
-            let y1 = recovered.iter().map(|r| r.3).chain(levels.iter().map(|l| l.1)).fold(1.0f64, f64::max) * 1.45;
-            let mut chart = ChartBuilder::on(&root)
-                .caption(title, ("sans-serif", 18))
-                .margin(12)
-                .x_label_area_size(40)
-                .y_label_area_size(52)
-                .build_cartesian_2d(0.0..x1, 0.0..y1)?;
-            chart.configure_mesh().x_desc(x_label).y_desc("kW").draw()?;
-            let band: Vec<(f64, f64)> =
-                recovered.iter().map(|r| (h(r.0), r.3)).chain(recovered.iter().rev().map(|r| (h(r.0), r.2))).collect();
-            chart
-                .draw_series(std::iter::once(Polygon::new(band, BLUE.mix(0.18).filled())))?
-                .label("95% band")
-                .legend(|(x, y)| Rectangle::new([(x, y - 5), (x + 18, y + 5)], BLUE.mix(0.18).filled()));
-            chart
-                .draw_series(LineSeries::new(recovered.iter().map(|r| (h(r.0), r.1)), BLUE.stroke_width(2)))?
-                .label("recovered kW")
-                .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLUE.stroke_width(2)));
-            chart
-                .draw_series(levels.iter().map(|l| Circle::new((h(l.0), l.1), 2, RED.mix(0.6).filled())))?
-                .label("stored level (its lower boundary, kW)")
-                .legend(|(x, y)| Circle::new((x + 9, y), 3, RED.filled()));
-            // Headroom above the data keeps the legend, top right, off it.
-            chart
-                .configure_series_labels()
-                .position(SeriesLabelPosition::UpperRight)
-                .background_style(WHITE.mix(0.85))
-                .border_style(BLACK)
-                .draw()?;
-            root.present()?;
-            Ok(())
-        };
-        if let Err(e) = draw() {
-            tracing::warn!(error = %e, "chart could not be drawn");
-        }
-    }
-    svg
+    svg((900, 360), |root| {
+        let h = |t: i64| (t - t0) as f64 / 3600.0;
+        let x1 = recovered.last().map_or(24.0, |r| h(r.0)).max(1.0);
+        let y1 = recovered.iter().map(|r| r.3).chain(levels.iter().map(|l| l.1)).fold(1.0f64, f64::max) * 1.45;
+        let mut chart = ChartBuilder::on(root)
+            .caption(title, ("sans-serif", 18))
+            .margin(12)
+            .x_label_area_size(40)
+            .y_label_area_size(52)
+            .build_cartesian_2d(0.0..x1, 0.0..y1)?;
+        chart.configure_mesh().x_desc(x_label).y_desc("kW").draw()?;
+        let band: Vec<(f64, f64)> =
+            recovered.iter().map(|r| (h(r.0), r.3)).chain(recovered.iter().rev().map(|r| (h(r.0), r.2))).collect();
+        chart
+            .draw_series(std::iter::once(Polygon::new(band, BLUE.mix(0.18).filled())))?
+            .label("95% band")
+            .legend(|(x, y)| Rectangle::new([(x, y - 5), (x + 18, y + 5)], BLUE.mix(0.18).filled()));
+        chart
+            .draw_series(LineSeries::new(recovered.iter().map(|r| (h(r.0), r.1)), BLUE.stroke_width(2)))?
+            .label("recovered kW")
+            .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLUE.stroke_width(2)));
+        chart
+            .draw_series(levels.iter().map(|l| Circle::new((h(l.0), l.1), 2, RED.mix(0.6).filled())))?
+            .label("stored level (its lower boundary, kW)")
+            .legend(|(x, y)| Circle::new((x + 9, y), 3, RED.filled()));
+        // Headroom above the data keeps the legend, top right, off it.
+        legend(&mut chart)
+    })
 }
 
 /// The privacy trade-off across profile versions: the strongest attacker's
@@ -395,63 +396,47 @@ pub(crate) fn tradeoff_chart(
     candidates: Option<(&str, &[(f64, f64)])>,
     targets: Option<(f64, f64)>,
 ) -> String {
-    let mut svg = String::new();
-    {
-        let root = SVGBackend::with_string(&mut svg, (760, 400)).into_drawing_area();
-        let draw = || -> Result<(), Box<dyn std::error::Error + '_>> {
-            root.fill(&WHITE)?;
-            let xs = audits.iter().flat_map(|a| a.1.iter().map(|p| p.0));
-            let xs = xs.chain(candidates.iter().flat_map(|c| c.1.iter().map(|p| p.0)));
-            let x1 = xs.chain(targets.map(|t| t.0)).fold(1.0f64, f64::max) * 1.15;
-            let rows = audits.len() + usize::from(candidates.is_some()) + usize::from(targets.is_some());
-            // One legend row per series, in headroom above F1 = 1.
-            let y1 = 1.05 + 0.09 * rows as f64;
-            let mut chart = ChartBuilder::on(&root)
-                .caption("Attacker event F1 against the utility's error, by profile version", ("sans-serif", 17))
-                .margin(12)
-                .x_label_area_size(42)
-                .y_label_area_size(52)
-                .build_cartesian_2d(0.0..x1, 0.0..y1)?;
+    svg((760, 400), |root| {
+        let xs = audits.iter().flat_map(|a| a.1.iter().map(|p| p.0));
+        let xs = xs.chain(candidates.iter().flat_map(|c| c.1.iter().map(|p| p.0)));
+        let x1 = xs.chain(targets.map(|t| t.0)).fold(1.0f64, f64::max) * 1.15;
+        let rows = audits.len() + usize::from(candidates.is_some()) + usize::from(targets.is_some());
+        // One legend row per series, in headroom above F1 = 1.
+        let y1 = 1.05 + 0.09 * rows as f64;
+        let mut chart = ChartBuilder::on(root)
+            .caption("Attacker event F1 against the utility's error, by profile version", ("sans-serif", 17))
+            .margin(12)
+            .x_label_area_size(42)
+            .y_label_area_size(52)
+            .build_cartesian_2d(0.0..x1, 0.0..y1)?;
+        chart
+            .configure_mesh()
+            .x_desc("utility daily-energy error (%)")
+            .y_desc("strongest attacker's event F1")
+            .light_line_style(WHITE.mix(0.0))
+            .draw()?;
+        if let Some((name, pts)) = candidates {
+            let grey = RGBColor(120, 120, 120);
             chart
-                .configure_mesh()
-                .x_desc("utility daily-energy error (%)")
-                .y_desc("strongest attacker's event F1")
-                .light_line_style(WHITE.mix(0.0))
-                .draw()?;
-            if let Some((name, pts)) = candidates {
-                let grey = RGBColor(120, 120, 120);
-                chart
-                    .draw_series(LineSeries::new(pts.iter().copied(), grey.stroke_width(1)))?
-                    .label(name)
-                    .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], grey.stroke_width(1)));
-                chart.draw_series(pts.iter().map(|p| Cross::new(*p, 3, grey.stroke_width(1))))?;
-            }
-            for (i, (name, pts)) in audits.iter().enumerate() {
-                let color = Palette99::pick(i).to_rgba();
-                chart
-                    .draw_series(pts.iter().map(|p| Circle::new(*p, 5, color.filled())))?
-                    .label(name.as_str())
-                    .legend(move |(x, y)| Circle::new((x + 9, y), 5, color.filled()));
-            }
-            if let Some((tx, ty)) = targets {
-                let edge = vec![(0.0, ty), (tx, ty), (tx, 0.0)];
-                chart
-                    .draw_series(DashedLineSeries::new(edge, 6, 4, BLACK.stroke_width(1)))?
-                    .label("targets (meet them below and left)")
-                    .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLACK.stroke_width(1)));
-            }
-            chart
-                .configure_series_labels()
-                .position(SeriesLabelPosition::UpperRight)
-                .background_style(WHITE.mix(0.85))
-                .border_style(BLACK)
-                .draw()?;
-            root.present()?;
-            Ok(())
-        };
-        if let Err(e) = draw() {
-            tracing::warn!(error = %e, "chart could not be drawn");
+                .draw_series(LineSeries::new(pts.iter().copied(), grey.stroke_width(1)))?
+                .label(name)
+                .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], grey.stroke_width(1)));
+            chart.draw_series(pts.iter().map(|p| Cross::new(*p, 3, grey.stroke_width(1))))?;
         }
-    }
-    svg
+        for (i, (name, pts)) in audits.iter().enumerate() {
+            let color = Palette99::pick(i).to_rgba();
+            chart
+                .draw_series(pts.iter().map(|p| Circle::new(*p, 5, color.filled())))?
+                .label(name.as_str())
+                .legend(move |(x, y)| Circle::new((x + 9, y), 5, color.filled()));
+        }
+        if let Some((tx, ty)) = targets {
+            let edge = vec![(0.0, ty), (tx, ty), (tx, 0.0)];
+            chart
+                .draw_series(DashedLineSeries::new(edge, 6, 4, BLACK.stroke_width(1)))?
+                .label("targets (meet them below and left)")
+                .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLACK.stroke_width(1)));
+        }
+        legend(&mut chart)
+    })
 }

@@ -31,8 +31,12 @@ pub fn router() -> Router<AppState> {
 /// The register periods an audit may assume instead of the profile's own.
 const PERIODS: [&str; 4] = ["none", "daily", "weekly", "monthly"];
 
-fn recovery_choice(done: &[&JobRecord], tz: chrono_tz::Tz) -> Markup {
+/// The fields every analysis form starts with: the session's form token, the
+/// feeder, and the choice of its finished recoveries.
+fn form_head(feeder: &FeederId, done: &[&JobRecord], tz: chrono_tz::Tz, v: &Viewer) -> Markup {
     html! {
+        input type="hidden" name="csrf" value=(v.csrf);
+        input type="hidden" name="feeder_id" value=(feeder);
         label { "recovery " select name="recovery_job" {
             @for j in done {
                 option value=(j.job_id) { (j.job_id) ", " (local_days(j.window_start, j.window_end, tz)) }
@@ -62,9 +66,7 @@ pub(crate) fn audit_form(
         @if done.is_empty() { p { "An audit needs a finished recovery of this feeder." } }
         @else {
             form method="post" action="/dashboard/actions/audit" {
-                input type="hidden" name="csrf" value=(v.csrf);
-                input type="hidden" name="feeder_id" value=(feeder);
-                (recovery_choice(done, tz))
+                (form_head(feeder, done, tz, v))
                 " "
                 label { "captured meters " input type="text" name="captured" size="40" placeholder="meter ids, by commas or spaces" required; }
                 " "
@@ -97,9 +99,7 @@ pub(crate) fn calibration_form(
         @if done.is_empty() { p { "A calibration needs a finished recovery of this feeder." } }
         @else {
             form method="post" action="/dashboard/actions/calibrate" {
-                input type="hidden" name="csrf" value=(v.csrf);
-                input type="hidden" name="feeder_id" value=(feeder);
-                (recovery_choice(done, tz))
+                (form_head(feeder, done, tz, v))
                 " "
                 label { "event F1 ≤ " input type="text" name="event_f1_max" size="4" value=(f1) required; }
                 " "

@@ -381,10 +381,14 @@ impl Store {
         row.map(|r| stored_batch_from_row(&r)).transpose()
     }
 
+    /// Every feeder with its header (see `feeder_headers`) and its stored
+    /// reading and register counts: the counts grow with the data, so the
+    /// dashboard does not use this.
     pub async fn feeder_summaries(&self) -> Result<Vec<FeederSummary>, StoreError> {
+        let mut headers: std::collections::HashMap<String, overview::FeederHeader> =
+            self.feeder_headers().await?.into_iter().map(|h| (h.feeder_id.clone(), h)).collect();
         let rows = sqlx::query(
             "SELECT f.feeder_id, f.name,
-                    (SELECT COUNT(*) FROM meters m WHERE m.feeder_id = f.feeder_id),
                     (SELECT COUNT(*) FROM readings r JOIN meters m ON m.meter_id = r.meter_id WHERE m.feeder_id = f.feeder_id),
                     (SELECT COUNT(*) FROM register_advances g JOIN meters m ON m.meter_id = g.meter_id WHERE m.feeder_id = f.feeder_id)
              FROM feeders f ORDER BY f.feeder_id",
@@ -394,16 +398,16 @@ impl Store {
         let mut out = Vec::with_capacity(rows.len());
         for r in rows {
             let feeder_id: String = r.try_get(0)?;
-            let fid = FeederId::parse(&feeder_id).map_err(|e| anyhow::anyhow!("stored feeder id: {e}"))?;
-            let tz = self.feeder_time_zone(&fid).await?.unwrap_or_else(|| "UTC".into());
+            // A feeder registered between the two reads has no header yet: listed next time.
+            let Some(h) = headers.remove(&feeder_id) else { continue };
             out.push(FeederSummary {
-                current_profile: self.current_profile(&fid).await?.map(|p| p.to_wire(&tz)),
                 feeder_id,
                 name: r.try_get(1)?,
-                meters: r.try_get(2)?,
-                readings: r.try_get(3)?,
-                register_reads: r.try_get(4)?,
-                time_zone: tz,
+                meters: h.meters,
+                readings: r.try_get(2)?,
+                register_reads: r.try_get(3)?,
+                current_profile: h.current_profile,
+                time_zone: h.time_zone,
             });
         }
         Ok(out)
