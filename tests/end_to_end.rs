@@ -765,7 +765,7 @@ fn recover_command_on_files() {
     for r in &body {
         let (kw, lo, hi): (f64, f64, f64) =
             (r[2].parse().expect("kw"), r[4].parse().expect("lo"), r[5].parse().expect("hi"));
-        assert!(["derived", "estimated", "corrected"].contains(&r[3]), "{r:?}");
+        assert!(["derived", "estimated", "corrected", "atypical"].contains(&r[3]), "{r:?}");
         assert!(0.0 <= lo && lo <= kw + 1e-4 && kw <= hi + 1e-4 && hi <= 15.0, "{r:?}");
         let t: i64 = r[1].parse().expect("t");
         *day_sum.entry((r[0].to_owned(), t - t.rem_euclid(86_400))).or_default() += kw * 250.0;

@@ -45,6 +45,8 @@ pub struct DailyEnergy {
     pub derived: usize,
     pub estimated: usize,
     pub corrected: usize,
+    /// Readings left out as loads the population's shape does not hold.
+    pub atypical: usize,
 }
 
 fn utc_date(t: i64) -> String {
@@ -134,6 +136,7 @@ pub fn daily(rows: &[RecoveredRow], reads: &[Advance], interval_s: u32) -> Vec<D
                 derived: count("derived"),
                 estimated: count("estimated"),
                 corrected: count("corrected"),
+                atypical: count("atypical"),
                 meter_id: meter,
             }
         })
@@ -142,12 +145,12 @@ pub fn daily(rows: &[RecoveredRow], reads: &[Advance], interval_s: u32) -> Vec<D
 
 pub fn daily_csv(days: &[DailyEnergy]) -> String {
     let mut out = String::from(
-        "meter_id,day_start,day,energy_wh,uncertainty_wh,source,quality,recovered_wh,register_wh,intervals,derived,estimated,corrected\n",
+        "meter_id,day_start,day,energy_wh,uncertainty_wh,source,quality,recovered_wh,register_wh,intervals,derived,estimated,corrected,atypical\n",
     );
     for d in days {
         let _ = writeln!(
             out,
-            "{},{},{},{:.1},{:.1},{},{},{:.1},{},{},{},{},{}",
+            "{},{},{},{:.1},{:.1},{},{},{:.1},{},{},{},{},{},{}",
             d.meter_id,
             d.day_start,
             d.day,
@@ -160,7 +163,8 @@ pub fn daily_csv(days: &[DailyEnergy]) -> String {
             d.intervals,
             d.derived,
             d.estimated,
-            d.corrected
+            d.corrected,
+            d.atypical
         );
     }
     out
@@ -199,7 +203,8 @@ pub fn interval_csv(rows: &[RecoveredRow], tz: Tz, interval_s: u32) -> String {
 /// ESPI quality codes (QualityOfReading) of a recovery flag: `derived` → 11
 /// (calculated), `estimated` (no reading) → 8 (machine estimate from historical
 /// data), `corrected` (reading judged corrupt and replaced) → 10 (failed a check)
-/// and 8.
+/// and 8, `atypical` (a genuine reading the fit left out; the value is the
+/// population's estimate, the reading was not judged wrong) → 8 alone.
 pub fn espi_quality(flag: &str) -> &'static [u16] {
     match flag {
         "derived" => &[11],

@@ -29,6 +29,12 @@ pub enum Flag {
     Estimated,
     /// A reading arrived but was judged corrupt; replaced by the population's estimate.
     Corrected,
+    /// A reading arrived that the population's low-rank shape does not hold
+    /// (a genuine appliance event or absence, judged so because its meter has
+    /// far more such readings than corruption at the prior rate would make):
+    /// the reading is not judged wrong, but the fit leaves it out, so the
+    /// interval's estimate is the population's.
+    Atypical,
 }
 
 impl Flag {
@@ -37,6 +43,7 @@ impl Flag {
             Flag::Derived => "derived",
             Flag::Estimated => "estimated",
             Flag::Corrected => "corrected",
+            Flag::Atypical => "atypical",
         }
     }
 }
@@ -67,7 +74,10 @@ pub struct Diagnostics {
     /// Held-out mean log-likelihood per rank tried (automatic rank only).
     pub rank_scores: Vec<(usize, f64)>,
     pub readings: usize,
+    /// Readings judged corrupt (flag `corrected`).
     pub corrected: usize,
+    /// Readings left out of the fit as loads its shape does not hold (flag `atypical`).
+    pub atypical: usize,
     /// Intervals in which no meter reported, filled from the meters' own days.
     pub outage_intervals: usize,
     /// Register constraints that could not be met inside [0, alpha] (met as closely as possible).
@@ -110,7 +120,8 @@ struct Fit {
     stop: Stop,
     restarts: usize,
     objective: f64,
-    corrupt: Vec<bool>,
+    /// Readings left out of the fit as implausible under it.
+    excluded: Vec<bool>,
 }
 
 struct Ctx<'a> {
@@ -172,9 +183,11 @@ impl Ctx<'_> {
         project_box_and_sums(x, self.constraints, self.alpha)
     }
 
-    /// Marks as corrupt the observed entries least probable under `x` (below the
-    /// probability threshold), at most `max_corrupt_fraction` of them.
-    fn corrupt_entries(&self, x: &DMatrix<f64>, base: &Mask) -> Vec<bool> {
+    /// The observed entries the fit leaves out: those least probable under `x`
+    /// (below the probability threshold), at most `max_corrupt_fraction` of
+    /// them. Corrupt readings are among them, and so are genuine loads the
+    /// low-rank shape does not hold; [`Ctx::judge_corrupt`] tells them apart.
+    fn implausible_entries(&self, x: &DMatrix<f64>, base: &Mask) -> Vec<bool> {
         let lv = self.levels.as_slice();
         let thresh = self.corrupt_log_threshold();
         let mut cand: Vec<(f64, usize)> = Vec::new();
@@ -198,6 +211,41 @@ impl Ctx<'_> {
             out[idx] = true;
         }
         out
+    }
+
+    /// Which of the left-out entries `excluded` are corrupt, judged on the
+    /// final `x`. A reading is judged corrupt only where corruption at the prior rate is
+    /// the likelier explanation of its meter's implausible readings. Corruption
+    /// at rate ε makes about ε × (the meter's exposure: per reading, the share
+    /// of other levels that would be implausible there) of them. A meter with
+    /// more than twice that many is a meter whose genuine load (appliance
+    /// events, absences) the population's low-rank shape does not hold: its
+    /// implausible readings are kept as loads, not "corrected".
+    fn judge_corrupt(&self, x: &DMatrix<f64>, base: &Mask, excluded: &[bool]) -> Vec<bool> {
+        let lv = self.levels.as_slice();
+        let m = x.nrows();
+        let thresh = self.corrupt_log_threshold();
+        let k = self.table.profile().levels();
+        let share = 1.0 / (k - 1).max(1) as f64;
+        let mut exposure = vec![0.0f64; m];
+        let mut implausible = vec![0usize; m];
+        for (idx, &xv) in x.as_slice().iter().enumerate() {
+            if !base.active[idx] {
+                continue;
+            }
+            let own = lv[idx];
+            exposure[idx % m] +=
+                share * (0..k as u8).filter(|w| *w != own && self.table.eval(*w, xv).0 < thresh).count() as f64;
+            if self.table.eval(own, xv).0 < thresh {
+                implausible[idx % m] += 1;
+            }
+        }
+        let eps = self.p.corrupt_prior;
+        excluded
+            .iter()
+            .enumerate()
+            .map(|(idx, &e)| e && implausible[idx % m] as f64 <= 2.0 * eps * exposure[idx % m])
+            .collect()
     }
 
     /// ln of the probability below which corruption is the likelier explanation.
@@ -296,7 +344,7 @@ impl Ctx<'_> {
             obj = obj_new;
             // Re-judge corrupt readings every 10 iterations after a warm-up.
             if p.max_corrupt_fraction > 0.0 && it >= 10 && it % 10 == 0 {
-                let c = self.corrupt_entries(&x, base);
+                let c = self.implausible_entries(&x, base);
                 if c != corrupt {
                     corrupt = c;
                     for (a, (&b, &cc)) in mask.active.iter_mut().zip(base.active.iter().zip(&corrupt)) {
@@ -317,7 +365,7 @@ impl Ctx<'_> {
                 calm = 0;
             }
         }
-        Fit { x, lr, iterations: it, stop, restarts: restarts.restarts, objective: obj, corrupt }
+        Fit { x, lr, iterations: it, stop, restarts: restarts.restarts, objective: obj, excluded: corrupt }
     }
 }
 
@@ -466,6 +514,7 @@ pub fn recover(
         rank_scores: Vec::new(),
         readings: n_obs,
         corrected: 0,
+        atypical: 0,
         outage_intervals: 0,
         infeasible_constraints: 0,
         wall_s: 0.0,
@@ -502,24 +551,28 @@ pub fn recover(
     drop(start);
     progress("fitting", 1.0);
 
+    let corrupt = ctx.judge_corrupt(&fit.x, &full, &fit.excluded);
     let mut x = fit.x;
     let mut flags: Vec<Flag> = observed.iter().map(|&o| if o { Flag::Derived } else { Flag::Estimated }).collect();
-    for (f, &c) in flags.iter_mut().zip(&fit.corrupt) {
-        if c {
-            *f = Flag::Corrected;
+    for ((f, &e), &c) in flags.iter_mut().zip(&fit.excluded).zip(&corrupt) {
+        match (e, c) {
+            (_, true) => *f = Flag::Corrected,
+            (true, false) => *f = Flag::Atypical,
+            _ => {}
         }
     }
     let outage_cols = outage::fill_outages(&mut x, levels, layout);
     diagnostics.outage_intervals = outage_cols;
     diagnostics.infeasible_constraints = ctx.project(&mut x);
-    let used = Mask { active: observed.iter().zip(&fit.corrupt).map(|(&o, &c)| o && !c).collect() };
+    let used = Mask { active: observed.iter().zip(&fit.excluded).map(|(&o, &c)| o && !c).collect() };
     let std_kw = uncertainty(&fit.lr, &used, &table, &x);
     diagnostics.iterations = fit.iterations;
     diagnostics.stop = fit.stop;
     diagnostics.restarts = fit.restarts;
     diagnostics.log_likelihood_per_reading = -ctx.objective(&x, &used);
     diagnostics.rank = fit.lr.rank();
-    diagnostics.corrected = fit.corrupt.iter().filter(|c| **c).count();
+    diagnostics.corrected = corrupt.iter().filter(|c| **c).count();
+    diagnostics.atypical = fit.excluded.iter().filter(|c| **c).count() - diagnostics.corrected;
     diagnostics.wall_s = t0.elapsed().as_secs_f64();
     Ok(Recovery { x, flags, std_kw, diagnostics })
 }

@@ -34,6 +34,8 @@ pub struct FeederRecovery {
     pub iterations: u64,
     pub wall_s: f64,
     pub corrected: u64,
+    /// Readings left out of the fit as genuine loads its shape does not hold.
+    pub atypical: u64,
     pub register_days: u64,
     /// The first meter of the recovery (in meter order), the one the demo audits.
     pub first_meter: String,
@@ -228,6 +230,7 @@ async fn recover_feeder(
         iterations: d["iterations"].as_u64().unwrap_or(0),
         wall_s: d["wall_s"].as_f64().unwrap_or(0.0),
         corrected: d["corrected"].as_u64().unwrap_or(0),
+        atypical: d["atypical"].as_u64().unwrap_or(0),
         register_days: d["register_days"].as_u64().unwrap_or(0),
         first_meter: rows.first().and_then(|r| r["meter_id"].as_str()).unwrap_or_default().to_owned(),
         nrmse: (num / den.max(1e-300)).sqrt(),

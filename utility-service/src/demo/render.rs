@@ -58,18 +58,19 @@ fn render_recoveries(o: &mut String, s: &DemoSummary) {
     );
     let _ = writeln!(
         o,
-        "  {:<16} {:>4} {:>5} {:>7} {:>9} {:>13} {:>7} {:>14}",
-        "feeder", "rank", "iters", "time s", "corrected", "reg. periods", "nRMSE", "day energy err"
+        "  {:<16} {:>4} {:>5} {:>7} {:>9} {:>8} {:>13} {:>7} {:>14}",
+        "feeder", "rank", "iters", "time s", "corrected", "atypical", "reg. periods", "nRMSE", "day energy err"
     );
     for r in &s.recoveries {
         let _ = writeln!(
             o,
-            "  {:<16} {:>4} {:>5} {:>7.1} {:>9} {:>13} {:>7.3} {:>13.1}%",
+            "  {:<16} {:>4} {:>5} {:>7.1} {:>9} {:>8} {:>13} {:>7.3} {:>13.1}%",
             r.feeder_id,
             r.rank,
             r.iterations,
             r.wall_s,
             r.corrected,
+            r.atypical,
             r.register_days,
             r.nrmse,
             100.0 * r.median_daily_energy_error

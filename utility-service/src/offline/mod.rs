@@ -78,6 +78,7 @@ pub fn run_recover(
         "stop": d.stop,
         "log_likelihood_per_reading": d.log_likelihood_per_reading,
         "corrected": d.corrected,
+        "atypical": d.atypical,
         "outage_intervals": d.outage_intervals,
         "infeasible_constraints": d.infeasible_constraints,
         "wall_s": d.wall_s,

@@ -115,10 +115,12 @@ pub(crate) async fn meter_page(
         (PreEscaped(chart))
         p {
             (format!(
-                "Intervals of the window: {} derived, {} estimated (no reading), {} corrected (reading judged corrupt).",
+                "Intervals of the window: {} derived, {} estimated (no reading), {} corrected (reading judged corrupt), \
+                 {} atypical (a genuine load the population's shape does not hold: left out of the fit, not judged wrong).",
                 counts("derived"),
                 counts("estimated"),
-                counts("corrected")
+                counts("corrected"),
+                counts("atypical")
             ))
         }
         (meter_list(&id, &meters, &q, list_page))

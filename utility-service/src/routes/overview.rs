@@ -69,12 +69,13 @@ fn recovery_phrase(j: &crate::store::recoveries::JobRecord, tz: chrono_tz::Tz) -
     let d = j.diagnostics.clone().unwrap_or_default();
     let readings = d["readings"].as_f64().unwrap_or(0.0).max(1.0);
     format!(
-        "finished {}; local days {}; rank {}, {}, {:.1}% of readings corrected",
+        "finished {}; local days {}; rank {}, {}, {:.1}% of readings corrected, {:.1}% atypical",
         local_when(j.finished_at, tz),
         local_days(j.window_start, j.window_end, tz),
         d["rank"],
         d["stop"].as_str().unwrap_or("?"),
-        100.0 * d["corrected"].as_f64().unwrap_or(0.0) / readings
+        100.0 * d["corrected"].as_f64().unwrap_or(0.0) / readings,
+        100.0 * d["atypical"].as_f64().unwrap_or(0.0) / readings
     )
 }
 

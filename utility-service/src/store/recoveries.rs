@@ -150,6 +150,7 @@ impl Store {
                     flag: match flag.as_str() {
                         "derived" => "derived",
                         "corrected" => "corrected",
+                        "atypical" => "atypical",
                         _ => "estimated",
                     },
                     kw_low: r.try_get(4)?,
