@@ -1628,6 +1628,10 @@ async fn dashboard_pages_and_actions_in_a_real_browser() {
     assert_eq!(s, StatusCode::UNAUTHORIZED, "links need the operator token");
 
     let web = Browser::start(t.url()).await;
+    let login = web.open("/dashboard").await;
+    assert_eq!(web.at().await, "/dashboard/login");
+    assert!(login.contains("Your name") && login.contains("Operator token"), "{login}");
+    web.shot("sign-in").await;
     let (s, b) = t.post_json("/v1/dashboard/links", &json!({"who": "wren on duty"}), true).await;
     assert_eq!(s, StatusCode::OK, "{b}");
     let link = b["url"].as_str().expect("url").to_owned();
@@ -1697,6 +1701,7 @@ async fn dashboard_pages_and_actions_in_a_real_browser() {
         ("meter", format!("/dashboard/recoveries/{rec}?meter_id=QM-CHAPEL-ROW-0002&span=day"), "QM-CHAPEL-ROW-0002"),
         ("clusters", format!("/dashboard/clusterings/{clu}"), "hour of the local day (Europe/London)"),
         ("audit", format!("/dashboard/analyses/{aud}"), "In plain words"),
+        ("calibration", format!("/dashboard/analyses/{cal}"), "Recommended profile"),
     ];
     for (name, path, expect) in pages {
         let html = web.open(&path).await;
