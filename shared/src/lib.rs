@@ -2,6 +2,7 @@
 //! privacy mechanism (used identically by gateway and service) and the numerical
 //! core. Pure computation: no async runtime, no database, no HTTP.
 
+pub mod aggregate;
 pub mod audit;
 pub mod auth;
 pub mod calibrate;
