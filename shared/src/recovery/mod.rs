@@ -6,6 +6,7 @@
 //! a randomized rank-r truncation warm-started from the previous subspace, then the
 //! exact projection onto the box and the register constraints.
 
+mod corrupt;
 pub mod linalg;
 pub mod outage;
 pub mod params;

@@ -108,9 +108,9 @@ pub type ProgressFn<'a> = &'a mut dyn FnMut(&str, f64);
 
 /// Which observed entries the fit uses.
 #[derive(Clone)]
-struct Mask {
+pub(super) struct Mask {
     /// Column-major: true where the entry's level is used by the gradient.
-    active: Vec<bool>,
+    pub(super) active: Vec<bool>,
 }
 
 struct Fit {
@@ -124,13 +124,13 @@ struct Fit {
     excluded: Vec<bool>,
 }
 
-struct Ctx<'a> {
-    levels: &'a LevelMatrix,
-    table: &'a LikelihoodTable,
+pub(super) struct Ctx<'a> {
+    pub(super) levels: &'a LevelMatrix,
+    pub(super) table: &'a LikelihoodTable,
     constraints: &'a [SumConstraint],
     alpha: f64,
     step: f64,
-    p: &'a super::RecoveryParams,
+    pub(super) p: &'a super::RecoveryParams,
 }
 
 impl Ctx<'_> {
@@ -181,78 +181,6 @@ impl Ctx<'_> {
 
     fn project(&self, x: &mut DMatrix<f64>) -> usize {
         project_box_and_sums(x, self.constraints, self.alpha)
-    }
-
-    /// The observed entries the fit leaves out: those least probable under `x`
-    /// (below the probability threshold), at most `max_corrupt_fraction` of
-    /// them. Corrupt readings are among them, and so are genuine loads the
-    /// low-rank shape does not hold; [`Ctx::judge_corrupt`] tells them apart.
-    fn implausible_entries(&self, x: &DMatrix<f64>, base: &Mask) -> Vec<bool> {
-        let lv = self.levels.as_slice();
-        let thresh = self.corrupt_log_threshold();
-        let mut cand: Vec<(f64, usize)> = Vec::new();
-        let mut n = 0usize;
-        for (idx, &xv) in x.as_slice().iter().enumerate() {
-            if base.active[idx] {
-                n += 1;
-                let l = self.table.eval(lv[idx], xv).0;
-                if l < thresh {
-                    cand.push((l, idx));
-                }
-            }
-        }
-        let cap = (self.p.max_corrupt_fraction * n as f64).floor() as usize;
-        if cand.len() > cap {
-            cand.select_nth_unstable_by(cap, |a, b| a.0.total_cmp(&b.0));
-            cand.truncate(cap);
-        }
-        let mut out = vec![false; lv.len()];
-        for (_, idx) in cand {
-            out[idx] = true;
-        }
-        out
-    }
-
-    /// Which of the left-out entries `excluded` are corrupt, judged on the
-    /// final `x`. A reading is judged corrupt only where corruption at the prior rate is
-    /// the likelier explanation of its meter's implausible readings. Corruption
-    /// at rate ε makes about ε × (the meter's exposure: per reading, the share
-    /// of other levels that would be implausible there) of them. A meter with
-    /// more than twice that many is a meter whose genuine load (appliance
-    /// events, absences) the population's low-rank shape does not hold: its
-    /// implausible readings are kept as loads, not "corrected".
-    fn judge_corrupt(&self, x: &DMatrix<f64>, base: &Mask, excluded: &[bool]) -> Vec<bool> {
-        let lv = self.levels.as_slice();
-        let m = x.nrows();
-        let thresh = self.corrupt_log_threshold();
-        let k = self.table.profile().levels();
-        let share = 1.0 / (k - 1).max(1) as f64;
-        let mut exposure = vec![0.0f64; m];
-        let mut implausible = vec![0usize; m];
-        for (idx, &xv) in x.as_slice().iter().enumerate() {
-            if !base.active[idx] {
-                continue;
-            }
-            let own = lv[idx];
-            exposure[idx % m] +=
-                share * (0..k as u8).filter(|w| *w != own && self.table.eval(*w, xv).0 < thresh).count() as f64;
-            if self.table.eval(own, xv).0 < thresh {
-                implausible[idx % m] += 1;
-            }
-        }
-        let eps = self.p.corrupt_prior;
-        excluded
-            .iter()
-            .enumerate()
-            .map(|(idx, &e)| e && implausible[idx % m] as f64 <= 2.0 * eps * exposure[idx % m])
-            .collect()
-    }
-
-    /// ln of the probability below which corruption is the likelier explanation.
-    fn corrupt_log_threshold(&self) -> f64 {
-        let e = self.p.corrupt_prior;
-        let k = self.table.profile().levels() as f64;
-        (e / (k * (1.0 - e))).ln()
     }
 
     /// The rank of `grid` (ranks above min(m, n) skipped) whose fit on a
@@ -553,14 +481,7 @@ pub fn recover(
 
     let corrupt = ctx.judge_corrupt(&fit.x, &full, &fit.excluded);
     let mut x = fit.x;
-    let mut flags: Vec<Flag> = observed.iter().map(|&o| if o { Flag::Derived } else { Flag::Estimated }).collect();
-    for ((f, &e), &c) in flags.iter_mut().zip(&fit.excluded).zip(&corrupt) {
-        match (e, c) {
-            (_, true) => *f = Flag::Corrected,
-            (true, false) => *f = Flag::Atypical,
-            _ => {}
-        }
-    }
+    let flags = super::corrupt::flags(&observed, &fit.excluded, &corrupt);
     let outage_cols = outage::fill_outages(&mut x, levels, layout);
     diagnostics.outage_intervals = outage_cols;
     diagnostics.infeasible_constraints = ctx.project(&mut x);
