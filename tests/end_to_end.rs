@@ -779,6 +779,8 @@ fn recover_command_on_files() {
         assert!((got - want).abs() <= 1.0 + 1.2, "{l}: {got}");
     }
 
+    aggregate_command_on_files(dir.path(), &out);
+
     // Clustering the recovered profiles: every meter gets a cluster and a confidence.
     let clusters = dir.path().join("clusters.csv");
     let run = std::process::Command::new(bin)
@@ -1104,6 +1106,70 @@ async fn recovery_job_over_stored_levels() {
         assert_eq!((s, b["field"].as_str()), (StatusCode::UNPROCESSABLE_ENTITY, Some(field)), "{path} {b}");
     }
     assert_eq!(t.count("SELECT COUNT(*) FROM analysis_jobs").await, 3, "rejected requests made no job");
+}
+
+/// The `aggregate` command on a recover output: two groups (one meter in
+/// both), a band around every group load, and a groups file naming a meter of
+/// no profile refused with its line and field, with no output written.
+fn aggregate_command_on_files(dir: &std::path::Path, out: &std::path::Path) {
+    let meters: Vec<String> = {
+        let text = std::fs::read_to_string(out).expect("out");
+        let mut m: Vec<String> = text.lines().skip(1).map(|l| l.split(',').next().expect("id").to_owned()).collect();
+        m.dedup();
+        m
+    };
+    let run = |groups: &str, agg: &std::path::Path| {
+        let file = dir.join("groups.csv");
+        std::fs::write(&file, groups).expect("groups");
+        std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
+            .args(["aggregate", "--profiles"])
+            .arg(out)
+            .arg("--groups")
+            .arg(&file)
+            .arg("--output")
+            .arg(agg)
+            .arg("--levels")
+            .arg(dir.join("levels.csv"))
+            .arg("--profile")
+            .arg(dir.join("profile.json"))
+            .output()
+            .expect("run aggregate")
+    };
+    let mut groups = String::from("meter_id,group\n");
+    for (i, m) in meters.iter().enumerate() {
+        groups += &format!("{m},{}\n", if i < 30 { "transformer north" } else { "transformer south" });
+    }
+    groups += &format!("{},portfolio\n", meters[0]);
+    let agg = dir.join("agg.csv");
+    let r = run(&groups, &agg);
+    assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
+    assert_eq!(last_json_line(&r.stdout)["groups"], 3);
+    let text = std::fs::read_to_string(&agg).expect("agg");
+    let mut lines = text.lines();
+    assert_eq!(lines.next(), Some("group,interval_start,kw,kw_low,kw_high,meters"));
+    let body: Vec<Vec<&str>> = lines.map(|l| l.split(',').collect()).collect();
+    assert_eq!(body.len(), 3 * 7 * 96);
+    for r in &body {
+        let (kw, lo, hi): (f64, f64, f64) =
+            (r[2].parse().expect("kw"), r[3].parse().expect("lo"), r[4].parse().expect("hi"));
+        assert!(0.0 <= lo && lo <= kw && kw <= hi && hi > lo, "{r:?}");
+        let n = match r[0] {
+            "portfolio" => 1,
+            _ => 30,
+        };
+        assert_eq!(r[5], n.to_string(), "{r:?}");
+    }
+    let bad = dir.join("agg-bad.csv");
+    for (text, line, field) in [
+        (format!("meter_id,group\n{},north\nQM-NOWHERE-0001,north\n", meters[0]), "line 3", "meter_id"),
+        (format!("meter_id,group\n{0},north\n{0},north\n", meters[0]), "line 3", "meter_id"),
+        (format!("meter_id,group\n{},\n", meters[0]), "line 2", "group"),
+    ] {
+        let r = run(&text, &bad);
+        let err = String::from_utf8_lossy(&r.stderr);
+        assert!(!r.status.success() && err.contains(line) && err.contains(field), "{text}: {err}");
+        assert!(!bad.exists(), "a refused groups file wrote output");
+    }
 }
 
 fn last_json_line(out: &[u8]) -> Value {

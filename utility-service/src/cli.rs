@@ -102,6 +102,25 @@ pub enum Command {
         #[arg(long, default_value_t = meterveil_shared::recovery::DEFAULT_ALPHA_KW)]
         alpha_kw: f64,
     },
+    /// Each group's load per interval with a 95% band, from a `recover` output
+    /// and the levels and profile it was fitted to.
+    Aggregate {
+        /// A `recover` output: meter_id,interval_start,kw,….
+        #[arg(long)]
+        profiles: PathBuf,
+        /// CSV with header meter_id,group (a meter may sit in several groups).
+        #[arg(long)]
+        groups: PathBuf,
+        /// Output CSV: group,interval_start,kw,kw_low,kw_high,meters.
+        #[arg(long)]
+        output: PathBuf,
+        /// The levels the profiles were recovered from (meter_id,interval_start,level).
+        #[arg(long)]
+        levels: PathBuf,
+        /// Their dither profile JSON.
+        #[arg(long)]
+        profile: PathBuf,
+    },
     /// Group customers by load shape, from quantized levels (fitted at the
     /// clustering rank first) or from a `recover` output as it is.
     Cluster {
@@ -373,6 +392,15 @@ fn run_file_mode(command: Command) -> anyhow::Result<serde_json::Value> {
             let rank = auto_or_number("rank", &rank)?.map_or_else(|| RecoveryParams::default().rank, RankChoice::Fixed);
             let params = RecoveryParams { rank, alpha_kw, ..RecoveryParams::default() };
             crate::offline::run_recover(&levels, &profile, &output, registers.as_deref(), params)
+        }
+        Command::Aggregate { profiles, groups, output, levels, profile } => {
+            crate::offline::run_aggregate(&crate::offline::AggregateFiles {
+                profiles: &profiles,
+                levels: &levels,
+                profile: &profile,
+                groups: &groups,
+                output: &output,
+            })
         }
         Command::Cluster { levels, profile, registers, alpha_kw, profiles, output, clusters } => {
             let clusters = auto_or_number("clusters", &clusters)?;

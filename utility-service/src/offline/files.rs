@@ -43,7 +43,7 @@ pub struct InputError {
 /// The rows of a CSV file with a header, each with its line number. `columns`
 /// names the columns `T` reads, each with what its value must be ("an integer
 /// epoch second"); a value that does not parse gets that as its reason.
-fn read_rows<T: DeserializeOwned>(path: &Path, columns: &[(&str, &str)]) -> anyhow::Result<Vec<(usize, T)>> {
+pub(super) fn read_rows<T: DeserializeOwned>(path: &Path, columns: &[(&str, &str)]) -> anyhow::Result<Vec<(usize, T)>> {
     let file = path.display().to_string();
     let mut r = csv::ReaderBuilder::new()
         .trim(csv::Trim::All)

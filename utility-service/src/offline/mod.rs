@@ -7,8 +7,13 @@
 //! - REG.csv: header `meter_id,day_start,wh`: a meter's energy over one UTC day.
 //! - OUT.csv: `meter_id,interval_start,kw,flag,kw_low,kw_high`, every meter and
 //!   interval of the window (the span from the earliest to the latest level).
+//! - GROUPS.csv (`aggregate`): `meter_id,group`; AGG.csv:
+//!   `group,interval_start,kw,kw_low,kw_high,meters`.
 
+mod aggregate;
 mod files;
+
+pub use aggregate::{run_aggregate, AggregateFiles};
 
 use std::path::Path;
 

@@ -1,0 +1,128 @@
+//! The `aggregate` file mode: each group's load per interval with a 95% band,
+//! from a `recover` output, the levels it was fitted to and their dither
+//! profile (`shared::aggregate`: each meter's spread around its profile, each
+//! interval's load given its level, summed over the group's meters).
+
+use std::collections::BTreeMap;
+use std::path::Path;
+
+use meterveil_shared::aggregate::{group_load, meter_spreads, moments};
+use meterveil_shared::FieldError;
+use serde::Deserialize;
+
+use super::files::{read_levels, read_profile_file, read_profiles, read_rows, write_atomically, InputError};
+
+/// At most this many groups in one file: the output has a row per group and interval.
+pub const MAX_GROUPS: usize = 10_000;
+
+/// The files of one `aggregate` run.
+pub struct AggregateFiles<'a> {
+    pub profiles: &'a Path,
+    pub levels: &'a Path,
+    pub profile: &'a Path,
+    pub groups: &'a Path,
+    pub output: &'a Path,
+}
+
+#[derive(Deserialize)]
+struct GroupRow {
+    meter_id: String,
+    group: String,
+}
+
+/// Reads GROUPS.csv (`meter_id,group`) into each group's rows of `meters`. A
+/// meter may sit in several groups (a transformer and a portfolio). Every
+/// problem names the file, the line and the field.
+pub fn read_groups(path: &Path, meters: &[String]) -> anyhow::Result<BTreeMap<String, Vec<usize>>> {
+    let file = path.display().to_string();
+    let rows: Vec<(usize, GroupRow)> = read_rows(path, &[("meter_id", "a meter id"), ("group", "a group name")])?;
+    let index: std::collections::HashMap<&str, usize> =
+        meters.iter().enumerate().map(|(i, m)| (m.as_str(), i)).collect();
+    let mut groups: BTreeMap<String, Vec<usize>> = BTreeMap::new();
+    for (line, r) in rows {
+        let bad = |field: &str, reason: String| InputError {
+            file: file.clone(),
+            line,
+            error: FieldError::new(field, reason),
+        };
+        let g = r.group.trim();
+        if g.is_empty() || g.chars().count() > 64 || g.chars().any(char::is_control) {
+            return Err(bad("group", format!("{g:?} is not a group name of 1 to 64 printable characters")).into());
+        }
+        let Some(&i) = index.get(r.meter_id.trim()) else {
+            return Err(bad("meter_id", format!("meter {:?} is not in the profiles file", r.meter_id)).into());
+        };
+        let members = groups.entry(g.to_owned()).or_default();
+        if members.contains(&i) {
+            return Err(bad("meter_id", format!("meter {} is named twice in group {g}", r.meter_id)).into());
+        }
+        members.push(i);
+        if groups.len() > MAX_GROUPS {
+            return Err(bad("group", format!("more than {MAX_GROUPS} groups in one file")).into());
+        }
+    }
+    if groups.is_empty() {
+        let error = FieldError::new("rows", "the file names no meter in any group");
+        return Err(InputError { file, line: 0, error }.into());
+    }
+    Ok(groups)
+}
+
+/// The whole `aggregate` command; returns the JSON summary line.
+pub fn run_aggregate(a: &AggregateFiles<'_>) -> anyhow::Result<serde_json::Value> {
+    let profile = read_profile_file(a.profile)?;
+    let rec = read_profiles(a.profiles)?;
+    let w = read_levels(a.levels, &profile)?;
+    let level_meters: Vec<String> = w.meters.iter().map(ToString::to_string).collect();
+    let whole = |field: &str, reason: String| InputError {
+        file: a.levels.display().to_string(),
+        line: 0,
+        error: FieldError::new(field, reason),
+    };
+    if level_meters != rec.meters {
+        return Err(whole("meter_id", "the levels' meters are not the profiles' meters".into()).into());
+    }
+    if (w.start, w.interval_s, w.levels.cols()) != (rec.start, rec.interval_s, rec.kw.ncols()) {
+        let reason = format!(
+            "the levels cover {} intervals of {} s from {}, the profiles {} of {} s from {}",
+            w.levels.cols(),
+            w.interval_s,
+            w.start,
+            rec.kw.ncols(),
+            rec.interval_s,
+            rec.start
+        );
+        return Err(whole("interval_start", reason).into());
+    }
+    let groups = read_groups(a.groups, &rec.meters)?;
+    let spreads = meter_spreads(&rec.kw, &w.levels, &profile);
+    let (mean, var) = moments(&rec.kw, &w.levels, &profile, &spreads);
+    let mut out = csv::Writer::from_writer(Vec::new());
+    out.write_record(["group", "interval_start", "kw", "kw_low", "kw_high", "meters"])?;
+    for (name, rows) in &groups {
+        for (j, (kw, lo, hi)) in group_load(&mean, &var, rows).into_iter().enumerate() {
+            let t = rec.start + j as i64 * i64::from(rec.interval_s);
+            let cells = [format!("{kw:.4}"), format!("{lo:.4}"), format!("{hi:.4}")];
+            out.write_record([
+                name.as_str(),
+                &t.to_string(),
+                &cells[0],
+                &cells[1],
+                &cells[2],
+                &rows.len().to_string(),
+            ])?;
+        }
+    }
+    write_atomically(a.output, &out.into_inner()?)?;
+    let mut sorted = spreads.clone();
+    sorted.sort_by(f64::total_cmp);
+    Ok(serde_json::json!({
+        "groups": groups.len(),
+        "meters": rec.meters.len(),
+        "intervals": rec.kw.ncols(),
+        "median_spread_kw": sorted.get(sorted.len() / 2),
+        "band": "95%, from each meter's spread around its profile and its levels; coverage measured at 91-97% \
+                 for groups of 10 and 50 at dither σ 0.3 kW and 78-87% at σ 1.0 kW (README)",
+        "output": a.output.display().to_string(),
+    }))
+}
