@@ -76,11 +76,82 @@ pub fn interval_moments(xhat: f64, tau: f64, sd: f64, bounds: &[f64], level: Opt
     (xhat + k * (mean_sum - xhat), tau * tau * sd * sd / v + k * k * var_sum.max(0.0))
 }
 
-/// Each meter's spread τ (kW): the value on a log grid from 0.01 to 10 kW (and
-/// 0) that makes its levels most probable around its recovered profile.
-pub fn meter_spreads(x: &DMatrix<f64>, levels: &LevelMatrix, profile: &DitherProfile) -> Vec<f64> {
+/// A meter's spread around its recovered profile (kW): `shared` is an offset
+/// common to every interval of a block of consecutive intervals (a heater left
+/// on, an afternoon away), `own` each interval's part of its own. Their squares
+/// sum to the meter's whole spread τ². `dispersion` (at least 1) scales the
+/// variance of every sum: how much more the meter's daily level sums vary than
+/// this model predicts (what it still leaves out: events that span hours,
+/// days unlike the profile).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Spread {
+    pub shared: f64,
+    pub own: f64,
+    pub dispersion: f64,
+}
+
+/// The length of a block sharing one offset, seconds (4 h: common practice
+/// for the span of a household's heating or an afternoon away, here chosen
+/// because it covered best of 1, 4, 8, 16 and 96 quarter-hours on the
+/// reference populations).
+pub const BLOCK_S: u32 = 4 * 3600;
+
+/// The blocks' offsets are integrated on this grid of standard scores.
+const NODES: usize = 25;
+
+fn nodes() -> [(f64, f64); NODES] {
+    let mut out = [(0.0, 0.0); NODES];
+    for (k, o) in out.iter_mut().enumerate() {
+        let z = -4.0 + 8.0 * k as f64 / (NODES - 1) as f64;
+        *o = (z, pdf(z));
+    }
+    out
+}
+
+/// Each node's posterior weight for one block's offset (normalised), and the
+/// log of the block's marginal probability of its levels.
+fn block_weights(
+    xhat: &[f64],
+    level: &dyn Fn(usize) -> Option<u8>,
+    cols: std::ops::Range<usize>,
+    s: Spread,
+    sd: f64,
+    bounds: &[f64],
+) -> ([f64; NODES], f64) {
+    let loglik = |d: f64| -> f64 {
+        cols.clone().filter_map(|j| level(j).map(|l| level_log_probability(xhat[j] + d, s.own, sd, bounds, l))).sum()
+    };
+    let mut w = [0.0; NODES];
+    if s.shared == 0.0 {
+        // No common offset: the node at z = 0 carries everything.
+        w[NODES / 2] = 1.0;
+        return (w, loglik(0.0));
+    }
+    let grid = nodes();
+    let mut logw = [0.0; NODES];
+    for (k, (z, prior)) in grid.iter().enumerate() {
+        logw[k] = prior.ln() + loglik(s.shared * z);
+    }
+    let top = logw.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+    let mut total = 0.0;
+    for k in 0..NODES {
+        w[k] = (logw[k] - top).exp();
+        total += w[k];
+    }
+    w.iter_mut().for_each(|v| *v /= total);
+    let norm: f64 = grid.iter().map(|g| g.1).sum();
+    (w, top + (total / norm).ln())
+}
+
+/// Each meter's spread: the whole τ on a log grid from 0.01 to 10 kW (and 0)
+/// that makes its levels most probable around its recovered profile, then the
+/// share of τ² common to each block of `block` intervals, again by maximum
+/// likelihood of its levels (the blocks' offsets integrated out).
+pub fn meter_spreads(x: &DMatrix<f64>, levels: &LevelMatrix, profile: &DitherProfile, interval_s: u32) -> Vec<Spread> {
     let sd = dither_sd(profile);
     let bounds = profile.boundaries_kw();
+    let block = (BLOCK_S / interval_s.max(1)).max(1) as usize;
+    let day = (86_400 / interval_s.max(1)).max(1) as usize;
     let grid: Vec<f64> =
         std::iter::once(0.0).chain((0..=60).map(|i| 0.01 * 1000f64.powf(f64::from(i) / 60.0))).collect();
     (0..x.nrows())
@@ -90,26 +161,140 @@ pub fn meter_spreads(x: &DMatrix<f64>, levels: &LevelMatrix, profile: &DitherPro
                     .filter_map(|j| levels.get(i, j).map(|l| level_log_probability(x[(i, j)], tau, sd, bounds, l)))
                     .sum()
             };
-            grid.iter().map(|&t| (score(t), t)).fold((f64::NEG_INFINITY, 0.0), |b, c| if c.0 > b.0 { c } else { b }).1
+            let tau =
+                grid.iter().map(|&t| (score(t), t)).fold((f64::NEG_INFINITY, 0.0), |b, c| if c.0 > b.0 { c } else { b }).1;
+            let row: Vec<f64> = x.row(i).iter().copied().collect();
+            let level = |j: usize| levels.get(i, j);
+            let split =
+                |share: f64| Spread { shared: tau * share.sqrt(), own: tau * (1.0 - share).sqrt(), dispersion: 1.0 };
+            let blocks_score = |share: f64| -> f64 {
+                (0..x.ncols())
+                    .step_by(block)
+                    .map(|c| block_weights(&row, &level, c..(c + block).min(x.ncols()), split(share), sd, bounds).1)
+                    .sum()
+            };
+            let shares = [0.0, 0.1, 0.2, 0.3, 0.45, 0.6, 0.75, 0.9];
+            let best = shares
+                .iter()
+                .map(|&f| (blocks_score(f), f))
+                .fold((f64::NEG_INFINITY, 0.0), |b, c| if c.0 > b.0 { c } else { b })
+                .1;
+            let s = split(best);
+            Spread { dispersion: dispersion(&row, &level, tau, sd, bounds, day), ..s }
         })
         .collect()
 }
 
-/// Every interval's mean and variance of the true load (m × n each).
+/// Mean and variance of the level a load `x` + a gaussian of `sd` lands on.
+fn level_moments(x: f64, sd: f64, bounds: &[f64]) -> (f64, f64) {
+    let (mut prev, mut e1, mut e2) = (0.0, 0.0, 0.0);
+    for (k, b) in bounds.iter().chain(std::iter::once(&f64::INFINITY)).enumerate() {
+        let c = if b.is_finite() { cdf((b - x) / sd.max(1e-9)) } else { 1.0 };
+        e1 += k as f64 * (c - prev);
+        e2 += (k * k) as f64 * (c - prev);
+        prev = c;
+    }
+    (e1, e2 - e1 * e1)
+}
+
+/// How much more a meter's daily sums of levels vary than independent
+/// intervals would (the mean of their squared standard scores, at least 1),
+/// each interval's level predicted from its recovered value, the whole spread
+/// `tau` and the dither. Measured on the reference populations, scaling the
+/// block model's variances by it brings meter-day bands to their coverage;
+/// the block model's own prediction of level sums leaves them short (82-88%).
+fn dispersion(xhat: &[f64], level: &dyn Fn(usize) -> Option<u8>, tau: f64, sd: f64, bounds: &[f64], day: usize) -> f64 {
+    let noise = (tau * tau + sd * sd).sqrt();
+    let scores: Vec<f64> = xhat
+        .chunks(day)
+        .enumerate()
+        .filter_map(|(d, chunk)| {
+            let (mut obs, mut mean, mut var) = (0.0, 0.0, 0.0);
+            for (k, x) in chunk.iter().enumerate() {
+                let Some(l) = level(d * day + k) else { continue };
+                let (m, v) = level_moments(*x, noise, bounds);
+                obs += f64::from(l);
+                mean += m;
+                var += v;
+            }
+            (var > 1e-9).then(|| (obs - mean).powi(2) / var)
+        })
+        .collect();
+    if scores.is_empty() {
+        return 1.0;
+    }
+    (scores.iter().sum::<f64>() / scores.len() as f64).max(1.0)
+}
+
+/// The mean and variance of one meter's load summed over each bucket of
+/// intervals (`bucket[j]`: the bucket of interval j, `None`: in none), given
+/// its levels: within a block the offset is integrated over its posterior.
+pub fn meter_sums(
+    xhat: &[f64],
+    level: &dyn Fn(usize) -> Option<u8>,
+    profile: &DitherProfile,
+    s: Spread,
+    interval_s: u32,
+    bucket: &[Option<usize>],
+    buckets: usize,
+) -> Vec<(f64, f64)> {
+    let sd = dither_sd(profile);
+    let bounds = profile.boundaries_kw();
+    let grid = nodes();
+    let block = (BLOCK_S / interval_s.max(1)).max(1) as usize;
+    let mut out = vec![(0.0, 0.0); buckets];
+    let mut per: Vec<(usize, [f64; NODES], [f64; NODES])> = Vec::new();
+    for c in (0..xhat.len()).step_by(block) {
+        let cols = c..(c + block).min(xhat.len());
+        let (w, _) = block_weights(xhat, level, cols.clone(), s, sd, bounds);
+        per.clear();
+        for j in cols {
+            let Some(b) = bucket[j] else { continue };
+            let slot = match per.iter().position(|p| p.0 == b) {
+                Some(p) => p,
+                None => {
+                    per.push((b, [0.0; NODES], [0.0; NODES]));
+                    per.len() - 1
+                }
+            };
+            for k in 0..NODES {
+                if w[k] < 1e-12 {
+                    continue;
+                }
+                let (m, v) = interval_moments(xhat[j] + s.shared * grid[k].0, s.own, sd, bounds, level(j));
+                per[slot].1[k] += m.max(0.0);
+                per[slot].2[k] += v;
+            }
+        }
+        for (b, m, v) in &per {
+            let mean: f64 = (0..NODES).map(|k| w[k] * m[k]).sum();
+            let second: f64 = (0..NODES).map(|k| w[k] * (v[k] + m[k] * m[k])).sum();
+            out[*b].0 += mean;
+            out[*b].1 += s.dispersion * (second - mean * mean).max(0.0);
+        }
+    }
+    out
+}
+
+/// Every interval's mean and variance of the true load (m × n each), from
+/// each interval's level alone and the meter's whole spread: across meters at
+/// one interval this covered better than the block model (which lets a
+/// block's other levels pull an interval, measured 88-94% for groups of 50 at
+/// σ 0.3 kW against 93-96%).
 pub fn moments(
     x: &DMatrix<f64>,
     levels: &LevelMatrix,
     profile: &DitherProfile,
-    spreads: &[f64],
+    spreads: &[Spread],
 ) -> (DMatrix<f64>, DMatrix<f64>) {
-    let sd = dither_sd(profile);
-    let bounds = profile.boundaries_kw();
     let (m, n) = x.shape();
     let mut mean = DMatrix::zeros(m, n);
     let mut var = DMatrix::zeros(m, n);
+    let (sd, bounds) = (dither_sd(profile), profile.boundaries_kw());
     for j in 0..n {
         for i in 0..m {
-            let (mu, v) = interval_moments(x[(i, j)], spreads[i], sd, bounds, levels.get(i, j));
+            let tau = spreads[i].shared.hypot(spreads[i].own);
+            let (mu, v) = interval_moments(x[(i, j)], tau, sd, bounds, levels.get(i, j));
             mean[(i, j)] = mu.max(0.0);
             var[(i, j)] = v;
         }

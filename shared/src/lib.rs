@@ -13,6 +13,7 @@ pub mod mechanism;
 pub mod profile;
 pub mod recovery;
 pub mod special;
+pub mod tariff;
 pub mod wire;
 
 /// IANA time zones, for register periods that follow a feeder's calendar.

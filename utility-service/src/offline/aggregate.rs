@@ -95,7 +95,7 @@ pub fn run_aggregate(a: &AggregateFiles<'_>) -> anyhow::Result<serde_json::Value
         return Err(whole("interval_start", reason).into());
     }
     let groups = read_groups(a.groups, &rec.meters)?;
-    let spreads = meter_spreads(&rec.kw, &w.levels, &profile);
+    let spreads = meter_spreads(&rec.kw, &w.levels, &profile, rec.interval_s);
     let (mean, var) = moments(&rec.kw, &w.levels, &profile, &spreads);
     let mut out = csv::Writer::from_writer(Vec::new());
     out.write_record(["group", "interval_start", "kw", "kw_low", "kw_high", "meters"])?;
@@ -114,7 +114,7 @@ pub fn run_aggregate(a: &AggregateFiles<'_>) -> anyhow::Result<serde_json::Value
         }
     }
     write_atomically(a.output, &out.into_inner()?)?;
-    let mut sorted = spreads.clone();
+    let mut sorted: Vec<f64> = spreads.iter().map(|s| s.shared.hypot(s.own)).collect();
     sorted.sort_by(f64::total_cmp);
     Ok(serde_json::json!({
         "groups": groups.len(),
