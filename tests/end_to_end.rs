@@ -1170,6 +1170,93 @@ fn aggregate_command_on_files(dir: &std::path::Path, out: &std::path::Path) {
         assert!(!r.status.success() && err.contains(line) && err.contains(field), "{text}: {err}");
         assert!(!bad.exists(), "a refused groups file wrote output");
     }
+    energies_on_files(dir, out, &meters, &groups);
+}
+
+/// The `aggregate` command's band and daily energies: a two-band calendar,
+/// daily energies reconciled exactly to the register reads, bands that hold
+/// their estimate, and a calendar with an overlap refused naming its line and
+/// field with nothing written.
+fn energies_on_files(dir: &std::path::Path, out: &std::path::Path, meters: &[String], groups: &str) {
+    let p = |f: &str| dir.join(f);
+    std::fs::write(p("groups.csv"), groups).expect("groups");
+    let tariff = r#"{
+  "name": "Chapel Row two-rate",
+  "time_zone": "UTC",
+  "billing_day": 1,
+  "bands": [
+    { "band": "day", "days": ["mon", "tue", "wed", "thu", "fri"], "from": "07:00", "to": "23:00" },
+    { "band": "night", "days": ["mon", "tue", "wed", "thu", "fri"], "from": "23:00", "to": "07:00" },
+    { "band": "night", "days": ["sat", "sun", "holiday"], "from": "00:00", "to": "24:00" }
+  ]
+}"#;
+    let run = |tariff: &str, suffix: &str| {
+        std::fs::write(p("tariff.json"), tariff).expect("tariff");
+        std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
+            .args(["aggregate", "--profiles"])
+            .arg(out)
+            .args(["--groups".as_ref(), p("groups.csv").as_os_str()])
+            .args(["--output".as_ref(), p(&format!("agg{suffix}.csv")).as_os_str()])
+            .args(["--levels".as_ref(), p("levels.csv").as_os_str()])
+            .args(["--profile".as_ref(), p("profile.json").as_os_str()])
+            .args(["--registers".as_ref(), p("reg.csv").as_os_str()])
+            .args(["--tariff".as_ref(), p("tariff.json").as_os_str()])
+            .args(["--band-energies".as_ref(), p(&format!("bands{suffix}.csv")).as_os_str()])
+            .args(["--daily".as_ref(), p(&format!("daily{suffix}.csv")).as_os_str()])
+            .output()
+            .expect("run aggregate")
+    };
+    let r = run(tariff, "-e");
+    assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
+    let rows = |f: &str| -> Vec<Vec<String>> {
+        let text = std::fs::read_to_string(p(f)).expect("energies");
+        text.lines().skip(1).map(|l| l.split(',').map(str::to_owned).collect()).collect()
+    };
+    let bands = rows("bands-e.csv");
+    let daily = rows("daily-e.csv");
+    assert!(std::fs::read_to_string(p("bands-e.csv"))
+        .expect("b")
+        .starts_with("meter_id,period_start,period_end,band,kwh,kwh_low,kwh_high,intervals,register_read\n"));
+    assert_eq!(daily.len(), meters.len() * 7, "a row per meter and day");
+    let num = |s: &str| -> f64 { s.parse().expect("number") };
+    let mut totals: std::collections::HashMap<&str, (f64, f64)> = Default::default();
+    for r in &bands {
+        assert!(["day", "night"].contains(&r[3].as_str()), "{r:?}");
+        assert!(num(&r[5]) <= num(&r[4]) + 1e-4 && num(&r[4]) <= num(&r[6]) + 1e-4, "{r:?}");
+        totals.entry(r[0].as_str()).or_default().0 += num(&r[4]);
+    }
+    for r in &daily {
+        assert!(num(&r[3]) <= num(&r[2]) + 1e-4 && num(&r[2]) <= num(&r[4]) + 1e-4, "{r:?}");
+        totals.entry(r[0].as_str()).or_default().1 += num(&r[2]);
+    }
+    for (m, (b, d)) in &totals {
+        assert!((b - d).abs() <= 1e-3 * d.max(1.0), "{m}: bands {b} kWh, days {d} kWh");
+    }
+    // A day with a register read carries the read exactly, with no band around it.
+    let regs = std::fs::read_to_string(p("reg.csv")).expect("reg");
+    let mut checked = 0;
+    for l in regs.lines().skip(1) {
+        let c: Vec<&str> = l.split(',').collect();
+        let day = chrono::DateTime::from_timestamp(c[1].parse().expect("day"), 0).expect("t").date_naive().to_string();
+        let row = daily.iter().find(|r| r[0] == c[0] && r[1] == day).expect("the read's day");
+        assert_eq!(row[6], "true", "{row:?}");
+        assert!((num(&row[2]) * 1000.0 - num(c[2])).abs() <= 0.5, "{l}: {row:?}");
+        assert!(num(&row[4]) - num(&row[3]) <= 1e-3, "{row:?}");
+        checked += 1;
+    }
+    assert_eq!(checked, 180);
+    // Overlap: the night rule starting at 22:00 meets the day rule; nothing is written.
+    let overlap = tariff.replace(r#""from": "23:00", "to": "07:00""#, r#""from": "22:00", "to": "07:00""#);
+    let r = run(&overlap, "-x");
+    let err = String::from_utf8_lossy(&r.stderr);
+    assert!(!r.status.success() && err.contains("line 7") && err.contains("bands[1].from"), "{err}");
+    let gap = tariff.replace(r#""from": "00:00", "to": "24:00""#, r#""from": "00:00", "to": "23:00""#);
+    let r = run(&gap, "-x");
+    let err = String::from_utf8_lossy(&r.stderr);
+    assert!(!r.status.success() && err.contains("no band covers sat from 23:00 to 24:00"), "{err}");
+    for f in ["agg-x.csv", "bands-x.csv", "daily-x.csv"] {
+        assert!(!p(f).exists(), "a refused calendar wrote {f}");
+    }
 }
 
 fn last_json_line(out: &[u8]) -> Value {

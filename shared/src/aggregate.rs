@@ -161,8 +161,11 @@ pub fn meter_spreads(x: &DMatrix<f64>, levels: &LevelMatrix, profile: &DitherPro
                     .filter_map(|j| levels.get(i, j).map(|l| level_log_probability(x[(i, j)], tau, sd, bounds, l)))
                     .sum()
             };
-            let tau =
-                grid.iter().map(|&t| (score(t), t)).fold((f64::NEG_INFINITY, 0.0), |b, c| if c.0 > b.0 { c } else { b }).1;
+            let tau = grid
+                .iter()
+                .map(|&t| (score(t), t))
+                .fold((f64::NEG_INFINITY, 0.0), |b, c| if c.0 > b.0 { c } else { b })
+                .1;
             let row: Vec<f64> = x.row(i).iter().copied().collect();
             let level = |j: usize| levels.get(i, j);
             let split =

@@ -88,6 +88,43 @@ fn clock(minute: usize) -> String {
     format!("{:02}:{:02}", minute / 60, minute % 60)
 }
 
+/// The holiday list: each a distinct "YYYY-MM-DD".
+fn parse_holidays(
+    raws: &[&RawValue],
+    line_of: &dyn Fn(&RawValue) -> usize,
+) -> Result<BTreeSet<NaiveDate>, CalendarError> {
+    let mut holidays = BTreeSet::new();
+    if raws.len() > MAX_HOLIDAYS {
+        return Err(CalendarError {
+            line: 1,
+            error: FieldError::new("holidays", format!("more than {MAX_HOLIDAYS} holidays")),
+        });
+    }
+    for (k, raw) in raws.iter().enumerate() {
+        let bad = |reason: String| CalendarError {
+            line: line_of(raw),
+            error: FieldError::new(format!("holidays[{k}]"), reason),
+        };
+        let date = serde_json::from_str::<String>(raw.get())
+            .ok()
+            .and_then(|s| NaiveDate::parse_from_str(&s, "%Y-%m-%d").ok())
+            .ok_or_else(|| bad(format!("{} is not a date \"YYYY-MM-DD\"", raw.get())))?;
+        if !holidays.insert(date) {
+            return Err(bad(format!("{date} is listed twice")));
+        }
+    }
+    Ok(holidays)
+}
+
+/// The first stretch of a day type that no rule covers, described.
+fn first_gap(owner: &[Option<usize>]) -> Option<String> {
+    DAY_TYPES.iter().enumerate().find_map(|(t, day)| {
+        let start = (0..MINUTES).find(|&m| owner[t * MINUTES + m].is_none())?;
+        let end = (start..MINUTES).find(|&m| owner[t * MINUTES + m].is_some()).unwrap_or(MINUTES);
+        Some(format!("no band covers {day} from {} to {}", clock(start), clock(end)))
+    })
+}
+
 impl TariffCalendar {
     /// Parses and checks a calendar file's text.
     pub fn parse(text: &str) -> Result<Self, CalendarError> {
@@ -95,10 +132,8 @@ impl TariffCalendar {
             let offset = (raw.get().as_ptr() as usize).saturating_sub(text.as_ptr() as usize).min(text.len());
             text[..offset].matches('\n').count() + 1
         };
-        let file: CalendarFile<'_> = serde_json::from_str(text).map_err(|e| CalendarError {
-            line: e.line(),
-            error: FieldError::new("calendar", e.to_string()),
-        })?;
+        let file: CalendarFile<'_> = serde_json::from_str(text)
+            .map_err(|e| CalendarError { line: e.line(), error: FieldError::new("calendar", e.to_string()) })?;
         let top = |field: &str, reason: String| CalendarError { line: 1, error: FieldError::new(field, reason) };
         let name = file.name.trim().to_owned();
         if name.is_empty() || name.chars().count() > 64 || name.chars().any(char::is_control) {
@@ -150,7 +185,8 @@ impl TariffCalendar {
             if rule.days.is_empty() {
                 return Err(bad("days", "names no day type".into()));
             }
-            let span: Vec<usize> = if from < to { (from..to).collect() } else { (from..MINUTES).chain(0..to).collect() };
+            let span: Vec<usize> =
+                if from < to { (from..to).collect() } else { (from..MINUTES).chain(0..to).collect() };
             for day in &rule.days {
                 let Some(t) = DAY_TYPES.iter().position(|d| d == day) else {
                     return Err(bad("days", format!("{day:?} is not one of {}", DAY_TYPES.join(", "))));
@@ -169,31 +205,10 @@ impl TariffCalendar {
                 }
             }
         }
-        for (t, day) in DAY_TYPES.iter().enumerate() {
-            if let Some(start) = (0..MINUTES).find(|&m| owner[t * MINUTES + m].is_none()) {
-                let end = (start..MINUTES).find(|&m| owner[t * MINUTES + m].is_some()).unwrap_or(MINUTES);
-                let line = line_of(file.bands[0]);
-                let reason = format!("no band covers {day} from {} to {}", clock(start), clock(end));
-                return Err(CalendarError { line, error: FieldError::new("bands", reason) });
-            }
+        if let Some(reason) = first_gap(&owner) {
+            return Err(CalendarError { line: line_of(file.bands[0]), error: FieldError::new("bands", reason) });
         }
-        let mut holidays = BTreeSet::new();
-        if file.holidays.len() > MAX_HOLIDAYS {
-            return Err(top("holidays", format!("more than {MAX_HOLIDAYS} holidays")));
-        }
-        for (k, raw) in file.holidays.iter().enumerate() {
-            let bad = |reason: String| CalendarError {
-                line: line_of(raw),
-                error: FieldError::new(format!("holidays[{k}]"), reason),
-            };
-            let date = serde_json::from_str::<String>(raw.get())
-                .ok()
-                .and_then(|s| NaiveDate::parse_from_str(&s, "%Y-%m-%d").ok())
-                .ok_or_else(|| bad(format!("{} is not a date \"YYYY-MM-DD\"", raw.get())))?;
-            if !holidays.insert(date) {
-                return Err(bad(format!("{date} is listed twice")));
-            }
-        }
+        let holidays = parse_holidays(&file.holidays, &line_of)?;
         Ok(Self { name, zone, billing_day: file.billing_day, bands, table, holidays })
     }
 

@@ -216,7 +216,9 @@ fn aggregates(
 fn covered(label: &str, f: &Figures, readme: [f64; 4]) {
     let c = f.coverage;
     let got = [c.groups[0], c.groups[1], c.days, c.bands];
-    for ((what, got), stated) in ["groups of 10", "groups of 50", "meter-days", "band energies"].iter().zip(got).zip(readme) {
+    for ((what, got), stated) in
+        ["groups of 10", "groups of 50", "meter-days", "band energies"].iter().zip(got).zip(readme)
+    {
         near(&format!("{label}: coverage of {what}"), got, stated, 0.03);
     }
 }

@@ -120,6 +120,18 @@ pub enum Command {
         /// Their dither profile JSON.
         #[arg(long)]
         profile: PathBuf,
+        /// A tariff calendar JSON (README, "Tariff calendars"), with --band-energies.
+        #[arg(long, requires = "band_energies")]
+        tariff: Option<PathBuf>,
+        /// Output CSV: meter_id,period_start,period_end,band,kwh,kwh_low,kwh_high,intervals,register_read.
+        #[arg(long, requires = "tariff")]
+        band_energies: Option<PathBuf>,
+        /// Output CSV: meter_id,day,kwh,kwh_low,kwh_high,intervals,register_read (local days of the tariff's zone, else UTC).
+        #[arg(long)]
+        daily: Option<PathBuf>,
+        /// Register reads (meter_id,day_start,wh) the energies are reconciled to.
+        #[arg(long)]
+        registers: Option<PathBuf>,
     },
     /// Group customers by load shape, from quantized levels (fitted at the
     /// clustering rank first) or from a `recover` output as it is.
@@ -393,13 +405,16 @@ fn run_file_mode(command: Command) -> anyhow::Result<serde_json::Value> {
             let params = RecoveryParams { rank, alpha_kw, ..RecoveryParams::default() };
             crate::offline::run_recover(&levels, &profile, &output, registers.as_deref(), params)
         }
-        Command::Aggregate { profiles, groups, output, levels, profile } => {
+        Command::Aggregate { profiles, groups, output, levels, profile, tariff, band_energies, daily, registers } => {
             crate::offline::run_aggregate(&crate::offline::AggregateFiles {
                 profiles: &profiles,
                 levels: &levels,
                 profile: &profile,
                 groups: &groups,
                 output: &output,
+                tariff: tariff.as_deref().zip(band_energies.as_deref()),
+                daily: daily.as_deref(),
+                registers: registers.as_deref(),
             })
         }
         Command::Cluster { levels, profile, registers, alpha_kw, profiles, output, clusters } => {
