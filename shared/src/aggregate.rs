@@ -88,6 +88,15 @@ pub struct Spread {
     pub shared: f64,
     pub own: f64,
     pub dispersion: f64,
+    /// The correlation between any two days' errors of one meter (the
+    /// meter's bias over the window), pooled over the feeder's meters: a sum
+    /// over D days has its variance scaled by 1 + (D - 1) · this.
+    pub day_correlation: f64,
+}
+
+impl Spread {
+    /// No spread at all: the recovered profile taken as it is.
+    pub const NONE: Spread = Spread { shared: 0.0, own: 0.0, dispersion: 1.0, day_correlation: 0.0 };
 }
 
 /// The length of a block sharing one offset, seconds (4 h: common practice
@@ -154,7 +163,7 @@ pub fn meter_spreads(x: &DMatrix<f64>, levels: &LevelMatrix, profile: &DitherPro
     let day = (86_400 / interval_s.max(1)).max(1) as usize;
     let grid: Vec<f64> =
         std::iter::once(0.0).chain((0..=60).map(|i| 0.01 * 1000f64.powf(f64::from(i) / 60.0))).collect();
-    (0..x.nrows())
+    let fitted: Vec<(Spread, f64)> = (0..x.nrows())
         .map(|i| {
             let score = |tau: f64| -> f64 {
                 (0..x.ncols())
@@ -169,7 +178,7 @@ pub fn meter_spreads(x: &DMatrix<f64>, levels: &LevelMatrix, profile: &DitherPro
             let row: Vec<f64> = x.row(i).iter().copied().collect();
             let level = |j: usize| levels.get(i, j);
             let split =
-                |share: f64| Spread { shared: tau * share.sqrt(), own: tau * (1.0 - share).sqrt(), dispersion: 1.0 };
+                |share: f64| Spread { shared: tau * share.sqrt(), own: tau * (1.0 - share).sqrt(), ..Spread::NONE };
             let blocks_score = |share: f64| -> f64 {
                 (0..x.ncols())
                     .step_by(block)
@@ -183,9 +192,15 @@ pub fn meter_spreads(x: &DMatrix<f64>, levels: &LevelMatrix, profile: &DitherPro
                 .fold((f64::NEG_INFINITY, 0.0), |b, c| if c.0 > b.0 { c } else { b })
                 .1;
             let s = split(best);
-            Spread { dispersion: dispersion(&row, &level, tau, sd, bounds, day), ..s }
+            let (phi, window) = dispersion(&row, &level, tau, sd, bounds, day);
+            (Spread { dispersion: phi, ..s }, window / phi)
         })
-        .collect()
+        .collect();
+    // Whole-window scores beyond what independent days give: 1 + (N - 1)·ρ.
+    let days = x.ncols().div_ceil(day).max(2) as f64;
+    let excess = fitted.iter().map(|f| f.1).sum::<f64>() / fitted.len().max(1) as f64;
+    let rho = ((excess - 1.0) / (days - 1.0)).clamp(0.0, 1.0);
+    fitted.into_iter().map(|(s, _)| Spread { day_correlation: rho, ..s }).collect()
 }
 
 /// Mean and variance of the level a load `x` + a gaussian of `sd` lands on.
@@ -202,13 +217,21 @@ fn level_moments(x: f64, sd: f64, bounds: &[f64]) -> (f64, f64) {
 
 /// How much more a meter's daily sums of levels vary than independent
 /// intervals would (the mean of their squared standard scores, at least 1),
+/// and the squared standard score of its whole window's sum,
 /// each interval's level predicted from its recovered value, the whole spread
 /// `tau` and the dither. Measured on the reference populations, scaling the
 /// block model's variances by it brings meter-day bands to their coverage;
 /// the block model's own prediction of level sums leaves them short (82-88%).
-fn dispersion(xhat: &[f64], level: &dyn Fn(usize) -> Option<u8>, tau: f64, sd: f64, bounds: &[f64], day: usize) -> f64 {
+fn dispersion(
+    xhat: &[f64],
+    level: &dyn Fn(usize) -> Option<u8>,
+    tau: f64,
+    sd: f64,
+    bounds: &[f64],
+    day: usize,
+) -> (f64, f64) {
     let noise = (tau * tau + sd * sd).sqrt();
-    let scores: Vec<f64> = xhat
+    let sums: Vec<(f64, f64)> = xhat
         .chunks(day)
         .enumerate()
         .filter_map(|(d, chunk)| {
@@ -220,13 +243,15 @@ fn dispersion(xhat: &[f64], level: &dyn Fn(usize) -> Option<u8>, tau: f64, sd: f
                 mean += m;
                 var += v;
             }
-            (var > 1e-9).then(|| (obs - mean).powi(2) / var)
+            (var > 1e-9).then_some((obs - mean, var))
         })
         .collect();
-    if scores.is_empty() {
-        return 1.0;
+    if sums.is_empty() {
+        return (1.0, 1.0);
     }
-    (scores.iter().sum::<f64>() / scores.len() as f64).max(1.0)
+    let phi = (sums.iter().map(|(r, v)| r * r / v).sum::<f64>() / sums.len() as f64).max(1.0);
+    let (r, v) = sums.iter().fold((0.0, 0.0), |a, b| (a.0 + b.0, a.1 + b.1));
+    (phi, r * r / v)
 }
 
 /// The mean and variance of one meter's load summed over each bucket of
@@ -245,7 +270,10 @@ pub fn meter_sums(
     let bounds = profile.boundaries_kw();
     let grid = nodes();
     let block = (BLOCK_S / interval_s.max(1)).max(1) as usize;
+    let day = (86_400 / interval_s.max(1)).max(1) as usize;
     let mut out = vec![(0.0, 0.0); buckets];
+    // The days each bucket touches, in order.
+    let mut days_of: Vec<Vec<usize>> = vec![Vec::new(); buckets];
     let mut per: Vec<(usize, [f64; NODES], [f64; NODES])> = Vec::new();
     for c in (0..xhat.len()).step_by(block) {
         let cols = c..(c + block).min(xhat.len());
@@ -274,7 +302,14 @@ pub fn meter_sums(
             let second: f64 = (0..NODES).map(|k| w[k] * (v[k] + m[k] * m[k])).sum();
             out[*b].0 += mean;
             out[*b].1 += s.dispersion * (second - mean * mean).max(0.0);
+            let seen = &mut days_of[*b];
+            if seen.last() != Some(&(c / day)) {
+                seen.push(c / day);
+            }
         }
+    }
+    for (o, seen) in out.iter_mut().zip(&days_of) {
+        o.1 *= 1.0 + s.day_correlation * seen.len().saturating_sub(1) as f64;
     }
     out
 }

@@ -6,6 +6,7 @@
 
 mod common;
 
+use common::aggregates::{aggregates, Coverage};
 use common::*;
 use meterveil_shared::recovery::linalg::truncate;
 use meterveil_shared::recovery::outage::DayLayout;
@@ -82,6 +83,49 @@ fn bdew_population_headline_accuracy() {
     assert!((e - 0.16).abs() <= 0.01, "nRMSE {e}, README states 0.16");
     assert!((base - 0.31).abs() <= 0.02, "baseline nRMSE {base}, README states 0.31");
     assert!((energy - 0.067).abs() <= 0.005, "median daily energy error {energy}, README states 6.7%");
+    let c = aggregates("BDEW 1400", 0.3, &truth, &rec.x, &levels, &p3);
+    coverage_near("BDEW σ 0.3", c, BDEW_COVERAGE_03);
+}
+
+/// Measured coverage of the 95% bands README states for BDEW (groups of 10,
+/// groups of 50, meter-days, band energies over the window), at σ 0.3 and 1.0 kW.
+const BDEW_COVERAGE_03: [f64; 4] = [0.729, 0.571, 0.636, 0.504];
+const BDEW_COVERAGE_10: [f64; 4] = [0.833, 0.733, 0.432, 0.310];
+
+/// Each coverage within 3 points of README's (seeded population and dither).
+fn coverage_near(label: &str, c: Coverage, readme: [f64; 4]) {
+    let got = [c.groups[0], c.groups[1], c.days, c.bands];
+    for ((what, got), stated) in
+        ["groups of 10", "groups of 50", "meter-days", "band energies"].iter().zip(got).zip(readme)
+    {
+        assert!((got - stated).abs() <= 0.03, "{label}: coverage of {what} {got:.3}, README states {stated}");
+    }
+}
+
+/// Aggregates at the stronger dither, σ 1.0 kW, on the same 1400-meter population.
+#[test]
+fn bdew_aggregates_at_one_kw() {
+    let (truth, p, levels) = setup_scaled(1400, 1.0, 20);
+    let rec =
+        recover(&levels, &p, &[], LAYOUT, &params(RankChoice::Auto(vec![2, 5, 10, 20, 40])), &mut |_, _| {}).unwrap();
+    let energy = energy_errors(&rec.x, &truth, &(0..truth.nrows()).collect::<Vec<_>>(), 96);
+    eprintln!(
+        "BDEW 1400 σ 1.0: nRMSE {:.3}, daily energy error median {:.1}%, rank {}",
+        nrmse(&rec.x, &truth),
+        100.0 * energy.daily_median,
+        rec.diagnostics.rank
+    );
+    let c = aggregates("BDEW 1400", 1.0, &truth, &rec.x, &levels, &p);
+    coverage_near("BDEW σ 1.0", c, BDEW_COVERAGE_10);
+}
+
+fn setup_scaled(m: usize, scale: f64, seed: u64) -> (DMatrix<f64>, DitherProfile, LevelMatrix) {
+    let (_, shapes) = bdew_shapes(DAYS);
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let (truth, _) = population(&shapes, m, ALPHA, &mut rng);
+    let p = gaussian_profile(scale, &[1.0, 2.0]);
+    let levels = quantize(&truth, &p, 0.05, &mut rng);
+    (truth, p, levels)
 }
 
 /// The rank the automatic choice settles on for this population (see the headline

@@ -2,6 +2,8 @@
 //! building test populations and scoring recoveries.
 #![allow(dead_code)]
 
+pub mod aggregates;
+
 use std::process::Command;
 
 use meterveil_shared::audit::InjectedEvent;

@@ -1,0 +1,108 @@
+//! Aggregates of a recovery against the truth: group loads, meter-days and
+//! band energies with their 95% bands (`shared::aggregate`), their errors and
+//! the measured coverage of the bands. Days of 96 quarter-hours from the
+//! window's start.
+
+use meterveil_shared::recovery::LevelMatrix;
+use meterveil_shared::DitherProfile;
+use nalgebra::DMatrix;
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+
+/// Coverage of the 95% bands (`shared::aggregate`), each the share of true
+/// sums inside their band.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct Coverage {
+    /// Group loads per interval, random disjoint groups of 10 and of 50 meters.
+    pub groups: [f64; 2],
+    /// Each meter's energy per day.
+    pub days: f64,
+    /// Each meter's energy per time-of-use band over the window (07:00-23:00
+    /// and the rest, by the window's clock).
+    pub bands: f64,
+}
+
+/// Group loads, meter-day and band energies with 95% bands: their errors and
+/// the measured coverage of their bands.
+pub fn aggregates(
+    name: &str,
+    scale: f64,
+    truth: &DMatrix<f64>,
+    x: &DMatrix<f64>,
+    levels: &LevelMatrix,
+    p: &DitherProfile,
+) -> Coverage {
+    use meterveil_shared::aggregate::{group_load, meter_spreads, meter_sums, moments, Z95};
+    use rand::seq::SliceRandom;
+    let spreads = meter_spreads(x, levels, p, 900);
+    eprintln!("{name} σ {scale}: day correlation {:.4}", spreads[0].day_correlation);
+    let (mean, var) = moments(x, levels, p, &spreads);
+    let mut order: Vec<usize> = (0..truth.nrows()).collect();
+    order.shuffle(&mut ChaCha8Rng::seed_from_u64(7));
+    let mut cov = Coverage::default();
+    let share = |inside: usize, total: usize| inside as f64 / total.max(1) as f64;
+    for (slot, size) in [10usize, 50].into_iter().enumerate() {
+        let (mut inside, mut total) = (0usize, 0usize);
+        let (mut err_post, mut err_xhat, mut norm) = (0.0, 0.0, 0.0);
+        for g in order.chunks_exact(size) {
+            for (j, (kw, lo, hi)) in group_load(&mean, &var, g).iter().enumerate() {
+                let t: f64 = g.iter().map(|&i| truth[(i, j)]).sum();
+                let xh: f64 = g.iter().map(|&i| x[(i, j)]).sum();
+                inside += usize::from(*lo <= t && t <= *hi);
+                total += 1;
+                err_post += (kw - t).powi(2);
+                err_xhat += (xh - t).powi(2);
+                norm += t * t;
+            }
+        }
+        cov.groups[slot] = share(inside, total);
+        eprintln!(
+            "{name} σ {scale}: groups of {size}: group-load nRMSE {:.1}% (recovered profile {:.1}%), 95% band coverage {:.1}%",
+            100.0 * (err_post / norm).sqrt(),
+            100.0 * (err_xhat / norm).sqrt(),
+            100.0 * cov.groups[slot]
+        );
+    }
+    // Sums of one meter: each day (buckets 0..DAYS) and each band (DAYS, DAYS + 1).
+    let n = truth.ncols();
+    let peak = |j: usize| (28..92).contains(&(j % 96));
+    let day_bucket: Vec<Option<usize>> = (0..n).map(|j| Some(j / 96)).collect();
+    let band_bucket: Vec<Option<usize>> = (0..n).map(|j| Some(usize::from(peak(j)))).collect();
+    let (mut days_in, mut bands_in, mut days_n, mut bands_n) = (0, 0, 0, 0);
+    let (mut day_err, mut band_err, mut month_err) = (Vec::new(), Vec::new(), Vec::new());
+    for i in 0..truth.nrows() {
+        let row: Vec<f64> = x.row(i).iter().copied().collect();
+        let level = |j: usize| levels.get(i, j);
+        let days = meter_sums(&row, &level, p, spreads[i], 900, &day_bucket, n / 96);
+        let bands = meter_sums(&row, &level, p, spreads[i], 900, &band_bucket, 2);
+        for (d, (e, v)) in days.iter().enumerate() {
+            let t: f64 = (d * 96..(d + 1) * 96).map(|j| truth[(i, j)]).sum();
+            days_in += usize::from((t - e).abs() <= Z95 * v.sqrt());
+            days_n += 1;
+            day_err.push((e - t).abs() / t.max(1e-9));
+        }
+        for (b, (e, v)) in bands.iter().enumerate() {
+            let t: f64 = (0..n).filter(|&j| usize::from(peak(j)) == b).map(|j| truth[(i, j)]).sum();
+            bands_in += usize::from((t - e).abs() <= Z95 * v.sqrt());
+            bands_n += 1;
+            band_err.push((e - t).abs() / t.max(1e-9));
+        }
+        let t: f64 = truth.row(i).sum();
+        month_err.push((bands[0].0 + bands[1].0 - t).abs() / t.max(1e-9));
+    }
+    cov.days = share(days_in, days_n);
+    cov.bands = share(bands_in, bands_n);
+    let med = |mut v: Vec<f64>| {
+        v.sort_by(f64::total_cmp);
+        (100.0 * v[v.len() / 2], 100.0 * v[v.len() * 9 / 10])
+    };
+    let (dm, dp) = med(day_err);
+    let (bm, bp) = med(band_err);
+    let (mm, mp) = med(month_err);
+    eprintln!(
+        "{name} σ {scale}: meter-days error median {dm:.1}% p90 {dp:.1}%, coverage {:.1}%; band energies error median {bm:.1}% p90 {bp:.1}%, coverage {:.1}%; meter 28-day energy median {mm:.1}% p90 {mp:.1}%",
+        100.0 * cov.days,
+        100.0 * cov.bands
+    );
+    cov
+}
