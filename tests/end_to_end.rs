@@ -931,6 +931,7 @@ async fn recovery_job_over_stored_levels() {
         }
     }
     assert_eq!((days.len(), settled), (12 * 4, 12 * 4));
+    group_loads_over_http(&t, &id, &rows).await;
     let local = get(format!("/v1/recoveries/{id}/intervals?format=local-csv&meter_id=QM-CHAPEL-ROW-0001"))
         .await
         .expect("local")
@@ -1257,6 +1258,71 @@ fn energies_on_files(dir: &std::path::Path, out: &std::path::Path, meters: &[Str
     for f in ["agg-x.csv", "bands-x.csv", "daily-x.csv"] {
         assert!(!p(f).exists(), "a refused calendar wrote {f}");
     }
+}
+
+/// A group defined over HTTP and its load from a finished recovery: the band
+/// holds the estimate, the sum of the members' means stays near the sum of
+/// their recovered profiles, and bad definitions or windows are refused with
+/// the field named and nothing stored.
+async fn group_loads_over_http(t: &TestService, id: &str, rows: &[Value]) {
+    let put = |name: &str, body: Value| {
+        t.http.put(format!("{}/v1/groups/{name}", t.url())).bearer_auth(TOKEN).json(&body).send()
+    };
+    let get = |path: String| t.http.get(format!("{}{path}", t.url())).bearer_auth(TOKEN).send();
+    let members = ["QM-CHAPEL-ROW-0001", "QM-CHAPEL-ROW-0002", "QM-CHAPEL-ROW-0003", "QM-CHAPEL-ROW-0004"];
+    let r = put("transformer-7", json!({"meters": members})).await.expect("put");
+    assert_eq!(r.status().as_u16(), 200, "{:?}", r.text().await);
+    let g: Value = get("/v1/groups/transformer-7".into()).await.expect("group").json().await.expect("json");
+    assert_eq!(g["meters"], json!(members));
+    // Refused: an unregistered meter, a meter twice, an empty list; the group keeps its members.
+    for (body, field) in [
+        (json!({"meters": ["QM-CHAPEL-ROW-0001", "QM-NOWHERE-0009"]}), "meters[1]"),
+        (json!({"meters": ["QM-CHAPEL-ROW-0001", "QM-CHAPEL-ROW-0001"]}), "meters[1]"),
+        (json!({"meters": []}), "meters"),
+    ] {
+        let r = put("transformer-7", body.clone()).await.expect("put");
+        let status = r.status().as_u16();
+        let b: Value = r.json().await.expect("json");
+        assert!(status >= 400 && b["field"] == field, "{body}: {status} {b}");
+    }
+    let g: Value = get("/v1/groups/transformer-7".into()).await.expect("group").json().await.expect("json");
+    assert_eq!(g["meters"], json!(members), "a refused definition changed nothing");
+    let load: Value =
+        get(format!("/v1/recoveries/{id}/groups/transformer-7")).await.expect("load").json().await.expect("json");
+    assert_eq!(load["meters"], 4);
+    let points = load["points"].as_array().expect("points");
+    assert_eq!(points.len(), 4 * 96);
+    let mut recovered: std::collections::HashMap<i64, f64> = Default::default();
+    for r in rows.iter().filter(|r| members.contains(&r["meter_id"].as_str().expect("m"))) {
+        *recovered.entry(r["interval_start"].as_i64().expect("t")).or_default() += r["kw"].as_f64().expect("kw");
+    }
+    let (mut sum_band, mut sum_rec) = (0.0, 0.0);
+    for p in points {
+        let (kw, lo, hi) =
+            (p["kw"].as_f64().expect("kw"), p["kw_low"].as_f64().expect("lo"), p["kw_high"].as_f64().expect("hi"));
+        assert!(lo <= kw && kw <= hi, "{p}");
+        sum_band += kw;
+        sum_rec += recovered[&p["interval_start"].as_i64().expect("t")];
+    }
+    assert!((sum_band - sum_rec).abs() <= 0.15 * sum_rec, "group energy {sum_band} against recovered {sum_rec}");
+    let csv = get(format!(
+        "/v1/recoveries/{id}/groups/transformer-7?format=csv&from={}&to={}",
+        points[96]["interval_start"], points[192]["interval_start"]
+    ))
+    .await
+    .expect("csv")
+    .text()
+    .await
+    .expect("text");
+    assert!(csv.starts_with("group,interval_start,kw,kw_low,kw_high,meters\n"), "{csv}");
+    assert_eq!(csv.lines().count(), 1 + 96);
+    for (query, field) in [("?from=5&to=4", "to"), ("?format=xml", "format")] {
+        let r = get(format!("/v1/recoveries/{id}/groups/transformer-7{query}")).await.expect("bad");
+        let b: Value = r.json().await.expect("json");
+        assert_eq!(b["field"], field, "{query}: {b}");
+    }
+    let r = get(format!("/v1/recoveries/{id}/groups/no-such-group")).await.expect("missing");
+    assert_eq!(r.status().as_u16(), 404);
 }
 
 fn last_json_line(out: &[u8]) -> Value {

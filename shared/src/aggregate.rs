@@ -152,6 +152,26 @@ fn block_weights(
     (w, top + (total / norm).ln())
 }
 
+/// Each meter's whole spread τ (kW): the value on a log grid from 0.01 to
+/// 10 kW (and 0) that makes its levels most probable around its recovered
+/// profile. All that group loads per interval need (`moments`).
+pub fn whole_spreads(x: &DMatrix<f64>, levels: &LevelMatrix, profile: &DitherProfile) -> Vec<f64> {
+    let sd = dither_sd(profile);
+    let bounds = profile.boundaries_kw();
+    let grid: Vec<f64> =
+        std::iter::once(0.0).chain((0..=60).map(|i| 0.01 * 1000f64.powf(f64::from(i) / 60.0))).collect();
+    (0..x.nrows())
+        .map(|i| {
+            let score = |tau: f64| -> f64 {
+                (0..x.ncols())
+                    .filter_map(|j| levels.get(i, j).map(|l| level_log_probability(x[(i, j)], tau, sd, bounds, l)))
+                    .sum()
+            };
+            grid.iter().map(|&t| (score(t), t)).fold((f64::NEG_INFINITY, 0.0), |b, c| if c.0 > b.0 { c } else { b }).1
+        })
+        .collect()
+}
+
 /// Each meter's spread: the whole τ on a log grid from 0.01 to 10 kW (and 0)
 /// that makes its levels most probable around its recovered profile, then the
 /// share of τ² common to each block of `block` intervals, again by maximum
@@ -161,20 +181,10 @@ pub fn meter_spreads(x: &DMatrix<f64>, levels: &LevelMatrix, profile: &DitherPro
     let bounds = profile.boundaries_kw();
     let block = (BLOCK_S / interval_s.max(1)).max(1) as usize;
     let day = (86_400 / interval_s.max(1)).max(1) as usize;
-    let grid: Vec<f64> =
-        std::iter::once(0.0).chain((0..=60).map(|i| 0.01 * 1000f64.powf(f64::from(i) / 60.0))).collect();
+    let taus = whole_spreads(x, levels, profile);
     let fitted: Vec<(Spread, f64)> = (0..x.nrows())
         .map(|i| {
-            let score = |tau: f64| -> f64 {
-                (0..x.ncols())
-                    .filter_map(|j| levels.get(i, j).map(|l| level_log_probability(x[(i, j)], tau, sd, bounds, l)))
-                    .sum()
-            };
-            let tau = grid
-                .iter()
-                .map(|&t| (score(t), t))
-                .fold((f64::NEG_INFINITY, 0.0), |b, c| if c.0 > b.0 { c } else { b })
-                .1;
+            let tau = taus[i];
             let row: Vec<f64> = x.row(i).iter().copied().collect();
             let level = |j: usize| levels.get(i, j);
             let split =
@@ -323,7 +333,7 @@ pub fn moments(
     x: &DMatrix<f64>,
     levels: &LevelMatrix,
     profile: &DitherProfile,
-    spreads: &[Spread],
+    taus: &[f64],
 ) -> (DMatrix<f64>, DMatrix<f64>) {
     let (m, n) = x.shape();
     let mut mean = DMatrix::zeros(m, n);
@@ -331,8 +341,7 @@ pub fn moments(
     let (sd, bounds) = (dither_sd(profile), profile.boundaries_kw());
     for j in 0..n {
         for i in 0..m {
-            let tau = spreads[i].shared.hypot(spreads[i].own);
-            let (mu, v) = interval_moments(x[(i, j)], tau, sd, bounds, levels.get(i, j));
+            let (mu, v) = interval_moments(x[(i, j)], taus[i], sd, bounds, levels.get(i, j));
             mean[(i, j)] = mu.max(0.0);
             var[(i, j)] = v;
         }

@@ -36,7 +36,8 @@ pub fn aggregates(
     use rand::seq::SliceRandom;
     let spreads = meter_spreads(x, levels, p, 900);
     eprintln!("{name} σ {scale}: day correlation {:.4}", spreads[0].day_correlation);
-    let (mean, var) = moments(x, levels, p, &spreads);
+    let taus: Vec<f64> = spreads.iter().map(|s| s.shared.hypot(s.own)).collect();
+    let (mean, var) = moments(x, levels, p, &taus);
     let mut order: Vec<usize> = (0..truth.nrows()).collect();
     order.shuffle(&mut ChaCha8Rng::seed_from_u64(7));
     let mut cov = Coverage::default();

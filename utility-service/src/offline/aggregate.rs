@@ -167,7 +167,8 @@ pub fn run_aggregate(a: &AggregateFiles<'_>) -> anyhow::Result<serde_json::Value
         let cells = energies(&day_label(calendar.as_ref()));
         write_energies(out, &rec.meters, &cells, &["day"], &|c| vec![c.label.0.to_string()])?;
     }
-    let (mean, var) = moments(&rec.kw, &w.levels, &profile, &spreads);
+    let taus: Vec<f64> = spreads.iter().map(|s| s.shared.hypot(s.own)).collect();
+    let (mean, var) = moments(&rec.kw, &w.levels, &profile, &taus);
     let mut out = csv::Writer::from_writer(Vec::new());
     out.write_record(["group", "interval_start", "kw", "kw_low", "kw_high", "meters"])?;
     for (name, rows) in &groups {

@@ -7,6 +7,7 @@ pub mod analysis_forms;
 pub mod dashboard;
 pub mod feeder_page;
 pub mod feeders;
+pub mod groups;
 pub mod health;
 pub mod ingest;
 pub mod local_time;
@@ -53,6 +54,7 @@ pub fn router(state: AppState) -> Router {
         .merge(ingest::router())
         .merge(feeders::router())
         .merge(recoveries::router())
+        .merge(groups::router())
         .merge(analyses::router())
         .merge(dashboard::router())
         .merge(actions::router())

@@ -41,6 +41,7 @@ pub enum StoreError {
 pub mod analyses;
 pub mod batches;
 pub mod gateways;
+pub mod groups;
 pub mod history;
 pub mod overview;
 pub mod queue;

@@ -1,0 +1,195 @@
+//! Groups of meters and their load: define a group, read it back, and a
+//! recovery's load of the group per interval with a 95% band
+//! (`shared::aggregate`: each member's spread around its recovered profile,
+//! each interval's load given its level, summed over the members).
+
+use std::collections::HashMap;
+
+use axum::body::Bytes;
+use axum::extract::{Path, Query, State};
+use axum::http::header;
+use axum::response::{IntoResponse, Response};
+use axum::routing::get;
+use axum::{Json, Router};
+use meterveil_shared::aggregate::{group_load, moments, whole_spreads};
+use meterveil_shared::{FeederId, MeterId};
+use nalgebra::DMatrix;
+use serde::Deserialize;
+use serde_json::{json, Value};
+
+use super::{now_s, parse_json, AppState, Operator};
+use crate::error::ApiError;
+use crate::store::groups::MAX_GROUP_METERS;
+
+pub fn router() -> Router<AppState> {
+    Router::new()
+        .route("/v1/groups/{name}", get(members).put(define))
+        .route("/v1/recoveries/{job_id}/groups/{name}", get(load))
+}
+
+/// A group name: 1 to 64 printable characters.
+fn check_name(name: &str) -> Result<(), ApiError> {
+    if name.trim().is_empty() || name.chars().count() > 64 || name.chars().any(char::is_control) {
+        return Err(ApiError::invalid("name", format!("{name:?} is not a group name of 1 to 64 printable characters")));
+    }
+    Ok(())
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct GroupBody {
+    meters: Vec<String>,
+}
+
+async fn define(
+    _: Operator,
+    State(s): State<AppState>,
+    Path(name): Path<String>,
+    body: Bytes,
+) -> Result<Json<Value>, ApiError> {
+    check_name(&name)?;
+    let body: GroupBody = parse_json(&body)?;
+    if body.meters.is_empty() || body.meters.len() > MAX_GROUP_METERS {
+        return Err(ApiError::invalid("meters", format!("must name 1 to {MAX_GROUP_METERS} meters")));
+    }
+    let ids = body
+        .meters
+        .iter()
+        .enumerate()
+        .map(|(i, m)| MeterId::parse(m).map_err(|e| ApiError::Invalid(e.within(&format!("meters[{i}]")))))
+        .collect::<Result<Vec<_>, _>>()?;
+    s.store.define_group(&name, &ids, now_s()).await?;
+    tracing::info!(group = %name, meters = ids.len(), "group defined");
+    Ok(Json(json!({"group": name, "meters": ids.len()})))
+}
+
+async fn members(_: Operator, State(s): State<AppState>, Path(name): Path<String>) -> Result<Json<Value>, ApiError> {
+    check_name(&name)?;
+    let meters = s.store.group_members(&name).await?;
+    if meters.is_empty() {
+        return Err(ApiError::NotFound(meterveil_shared::FieldError::new("name", format!("no group {name}"))));
+    }
+    Ok(Json(json!({"group": name, "meters": meters})))
+}
+
+#[derive(Deserialize)]
+struct LoadQuery {
+    format: Option<String>,
+    from: Option<i64>,
+    to: Option<i64>,
+}
+
+/// The group's members on the recovery's feeder, their load per interval in
+/// [from, to) (default: the whole window) with a 95% band.
+async fn load(
+    _: Operator,
+    State(s): State<AppState>,
+    Path((id, name)): Path<(String, String)>,
+    Query(q): Query<LoadQuery>,
+) -> Result<Response, ApiError> {
+    check_name(&name)?;
+    let format = q.format.clone().unwrap_or_else(|| "json".into());
+    if !["json", "csv"].contains(&format.as_str()) {
+        return Err(ApiError::invalid("format", format!("{format:?} is not json or csv")));
+    }
+    let job = super::recoveries::find(&s, &id).await?;
+    if job.state != "done" {
+        return Err(ApiError::invalid("job_id", format!("recovery {id} is {}, not done", job.state)));
+    }
+    let (from, to) = (q.from.unwrap_or(job.window_start), q.to.unwrap_or(job.window_end));
+    if from < job.window_start || to > job.window_end || from >= to {
+        let reason =
+            format!("[{from}, {to}) is not a non-empty part of the window [{}, {})", job.window_start, job.window_end);
+        return Err(ApiError::invalid(if from >= to { "to" } else { "from" }, reason));
+    }
+    let members = s.store.group_members(&name).await?;
+    if members.is_empty() {
+        return Err(ApiError::NotFound(meterveil_shared::FieldError::new("name", format!("no group {name}"))));
+    }
+    let (band, step, meters) = member_band(&s, &job, &name, &members).await?;
+    let cols = band.len();
+    let first = ((from - job.window_start) / step) as usize;
+    let last = (((to - job.window_start) + step - 1) / step) as usize;
+    let points: Vec<Value> = band
+        .iter()
+        .enumerate()
+        .take(last.min(cols))
+        .skip(first)
+        .map(|(j, (kw, lo, hi))| {
+            json!({"interval_start": job.window_start + j as i64 * step, "kw": kw, "kw_low": lo, "kw_high": hi})
+        })
+        .collect();
+    tracing::info!(job = %id, group = %name, meters = meters, intervals = points.len(), "group load");
+    if format == "csv" {
+        let mut out = String::from("group,interval_start,kw,kw_low,kw_high,meters\n");
+        for p in &points {
+            out.push_str(&format!(
+                "{name},{},{:.4},{:.4},{:.4},{}\n",
+                p["interval_start"],
+                p["kw"].as_f64().unwrap_or(0.0),
+                p["kw_low"].as_f64().unwrap_or(0.0),
+                p["kw_high"].as_f64().unwrap_or(0.0),
+                meters
+            ));
+        }
+        return Ok(([(header::CONTENT_TYPE, "text/csv; charset=utf-8")], out).into_response());
+    }
+    Ok(Json(json!({
+        "group": name,
+        "feeder_id": job.feeder_id,
+        "meters": meters,
+        "members_elsewhere": members.len() - meters,
+        "band": "95%, from each member's spread around its recovered profile and each interval's level; \
+                 coverage measured at 91-97% at dither σ 0.3 kW and 73-87% at σ 1.0 kW (README)",
+        "points": points,
+    }))
+    .into_response())
+}
+
+/// The load of `members` on a finished recovery's feeder over its whole
+/// window: the band per interval, the interval length and how many members
+/// are on the feeder.
+async fn member_band(
+    s: &AppState,
+    job: &crate::store::recoveries::JobRecord,
+    name: &str,
+    members: &[String],
+) -> Result<(Vec<(f64, f64, f64)>, i64, usize), ApiError> {
+    let id = &job.job_id;
+    let feeder = FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
+    let window = crate::jobs::recover::load_window(&s.store, &feeder, job.window_start, job.window_end)
+        .await
+        .map_err(ApiError::Internal)?;
+    let rows = s.store.job_rows(id, None).await?;
+    let step = i64::from(window.layout.interval_s);
+    let index: HashMap<&str, usize> = window.meters.iter().enumerate().map(|(i, m)| (m.as_str(), i)).collect();
+    let on_feeder: Vec<usize> = members.iter().filter_map(|m| index.get(m.as_str()).copied()).collect();
+    if on_feeder.is_empty() {
+        let reason = format!("no meter of group {name} is on feeder {}", job.feeder_id);
+        return Err(ApiError::invalid("name", reason));
+    }
+    let cols = window.levels.cols();
+    let mut x = DMatrix::zeros(on_feeder.len(), cols);
+    let mut levels = meterveil_shared::recovery::LevelMatrix::missing(on_feeder.len(), cols);
+    let slot: HashMap<usize, usize> = on_feeder.iter().enumerate().map(|(k, &i)| (i, k)).collect();
+    for r in &rows {
+        if let Some(&k) = index.get(r.meter_id.as_str()).and_then(|i| slot.get(i)) {
+            let j = ((r.interval_start - job.window_start) / step) as usize;
+            if j < cols {
+                x[(k, j)] = r.kw;
+            }
+        }
+    }
+    for (k, &i) in on_feeder.iter().enumerate() {
+        (0..cols).for_each(|j| levels.set(k, j, window.levels.get(i, j)));
+    }
+    let profile = window.profile.clone();
+    let band = tokio::task::spawn_blocking(move || {
+        let taus = whole_spreads(&x, &levels, &profile);
+        let (mean, var) = moments(&x, &levels, &profile, &taus);
+        group_load(&mean, &var, &(0..x.nrows()).collect::<Vec<_>>())
+    })
+    .await
+    .map_err(|e| ApiError::Internal(e.into()))?;
+    Ok((band, step, on_feeder.len()))
+}
