@@ -932,6 +932,7 @@ async fn recovery_job_over_stored_levels() {
     }
     assert_eq!((days.len(), settled), (12 * 4, 12 * 4));
     group_loads_over_http(&t, &id, &rows).await;
+    band_energies_over_http(&t, &id, &reads).await;
     let local = get(format!("/v1/recoveries/{id}/intervals?format=local-csv&meter_id=QM-CHAPEL-ROW-0001"))
         .await
         .expect("local")
@@ -1322,6 +1323,70 @@ async fn group_loads_over_http(t: &TestService, id: &str, rows: &[Value]) {
         assert_eq!(b["field"], field, "{query}: {b}");
     }
     let r = get(format!("/v1/recoveries/{id}/groups/no-such-group")).await.expect("missing");
+    assert_eq!(r.status().as_u16(), 404);
+}
+
+/// A feeder's tariff calendar stored as versions, and each meter's band
+/// energies from a finished recovery: with a register read on every day, each
+/// meter's bands sum exactly to its reads. A calendar with an overlap is
+/// refused naming its field and line, and no version is stored.
+async fn band_energies_over_http(t: &TestService, id: &str, reads: &[(String, i64, i64)]) {
+    let post = |body: String| {
+        t.http.post(format!("{}/v1/feeders/QM-CHAPEL-ROW/tariffs", t.url())).bearer_auth(TOKEN).body(body).send()
+    };
+    let get = |path: String| t.http.get(format!("{}{path}", t.url())).bearer_auth(TOKEN).send();
+    let calendar = r#"{
+  "name": "Chapel Row two-rate",
+  "time_zone": "Europe/London",
+  "billing_day": 1,
+  "bands": [
+    { "band": "peak", "days": ["mon", "tue", "wed", "thu", "fri"], "from": "16:00", "to": "19:00" },
+    { "band": "standard", "days": ["mon", "tue", "wed", "thu", "fri"], "from": "19:00", "to": "16:00" },
+    { "band": "standard", "days": ["sat", "sun", "holiday"], "from": "00:00", "to": "24:00" }
+  ]
+}"#;
+    let overlap = calendar.replace(r#""from": "19:00""#, r#""from": "18:00""#);
+    let r = post(overlap).await.expect("post");
+    assert_eq!(r.status().as_u16(), 422);
+    let b: Value = r.json().await.expect("json");
+    assert_eq!(b["field"], "bands[1].from", "{b}");
+    assert!(b["reason"].as_str().expect("reason").starts_with("line 7: overlaps bands[0] (peak)"), "{b}");
+    let listed: Vec<Value> =
+        get("/v1/feeders/QM-CHAPEL-ROW/tariffs".into()).await.expect("list").json().await.expect("json");
+    assert!(listed.is_empty(), "a refused calendar stored nothing: {listed:?}");
+    for expected in [1, 2] {
+        let r = post(calendar.to_owned()).await.expect("post");
+        assert_eq!(r.status().as_u16(), 201);
+        let b: Value = r.json().await.expect("json");
+        assert_eq!(b["version"], expected, "{b}");
+    }
+    let got: Value = get(format!("/v1/recoveries/{id}/band-energies?tariff_version=1"))
+        .await
+        .expect("bands")
+        .json()
+        .await
+        .expect("json");
+    assert_eq!(got["tariff_version"], 1);
+    let mut per_meter: std::collections::HashMap<String, f64> = Default::default();
+    for e in got["energies"].as_array().expect("energies") {
+        assert!(["peak", "standard"].contains(&e["band"].as_str().expect("band")), "{e}");
+        let (kwh, lo, hi) =
+            (e["kwh"].as_f64().expect("kwh"), e["kwh_low"].as_f64().expect("lo"), e["kwh_high"].as_f64().expect("hi"));
+        assert!(lo <= kwh + 1e-9 && kwh <= hi + 1e-9, "{e}");
+        assert_eq!(e["register_read"], true, "{e}");
+        *per_meter.entry(e["meter_id"].as_str().expect("m").to_owned()).or_default() += kwh;
+    }
+    let mut from_reads: std::collections::HashMap<String, f64> = Default::default();
+    for (m, _, wh) in reads {
+        *from_reads.entry(m.clone()).or_default() += *wh as f64 / 1000.0;
+    }
+    assert_eq!(per_meter.len(), 12);
+    for (m, kwh) in &per_meter {
+        assert!((kwh - from_reads[m]).abs() <= 1e-3, "{m}: bands {kwh} kWh, reads {} kWh", from_reads[m]);
+    }
+    let csv = get(format!("/v1/recoveries/{id}/band-energies?format=csv")).await.expect("csv").text().await.expect("t");
+    assert!(csv.starts_with("meter_id,period_start,period_end,band,kwh,kwh_low,kwh_high,intervals,register_read\n"));
+    let r = get(format!("/v1/recoveries/{id}/band-energies?tariff_version=9")).await.expect("missing");
     assert_eq!(r.status().as_u16(), 404);
 }
 

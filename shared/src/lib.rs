@@ -8,6 +8,7 @@ pub mod auth;
 pub mod calibrate;
 pub mod cluster;
 pub mod domain;
+pub mod energies;
 pub mod error;
 pub mod mechanism;
 pub mod profile;

@@ -12,10 +12,10 @@ use serde::Deserialize;
 
 use meterveil_shared::tariff::TariffCalendar;
 
-use super::energies::{band_label, day_label, meter_energies, EnergyCell};
 use super::files::{
     read_levels, read_profile_file, read_profiles, read_registers, read_rows, write_atomically, InputError,
 };
+use meterveil_shared::energies::{band_label, day_label, meter_energies, EnergyCell, Fitted};
 
 /// At most this many groups in one file: the output has a row per group and interval.
 pub const MAX_GROUPS: usize = 10_000;
@@ -153,7 +153,8 @@ pub fn run_aggregate(a: &AggregateFiles<'_>) -> anyhow::Result<serde_json::Value
     };
     let spreads = meter_spreads(&rec.kw, &w.levels, &profile, rec.interval_s);
     let energies = |label: &dyn Fn(i64) -> Option<(chrono::NaiveDate, usize)>| {
-        meter_energies(&rec.kw, &w, &profile, &spreads, &constraints, label)
+        let fitted = Fitted { x: &rec.kw, levels: &w.levels, start: w.start, interval_s: w.interval_s };
+        meter_energies(fitted, &profile, &spreads, &constraints, label)
     };
     // Every input is read and checked before the first output is written.
     if let (Some(cal), Some((_, out))) = (&calendar, a.tariff) {

@@ -11,7 +11,6 @@
 //!   `group,interval_start,kw,kw_low,kw_high,meters`.
 
 mod aggregate;
-mod energies;
 mod files;
 
 pub use aggregate::{run_aggregate, AggregateFiles};

@@ -26,7 +26,7 @@ fn feeder_path(raw: &str) -> Result<FeederId, ApiError> {
     FeederId::parse(raw).map_err(ApiError::Invalid)
 }
 
-async fn known_feeder(s: &AppState, raw: &str) -> Result<FeederId, ApiError> {
+pub(crate) async fn known_feeder(s: &AppState, raw: &str) -> Result<FeederId, ApiError> {
     let id = feeder_path(raw)?;
     if !s.store.feeder_exists(&id).await? {
         return Err(ApiError::NotFound(FieldError::new("feeder_id", format!("feeder {id} is not registered"))));

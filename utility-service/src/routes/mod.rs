@@ -15,6 +15,7 @@ pub mod meter_view;
 pub mod overview;
 pub mod publish;
 pub mod recoveries;
+pub mod tariffs;
 
 use std::sync::Arc;
 
@@ -55,6 +56,7 @@ pub fn router(state: AppState) -> Router {
         .merge(feeders::router())
         .merge(recoveries::router())
         .merge(groups::router())
+        .merge(tariffs::router())
         .merge(analyses::router())
         .merge(dashboard::router())
         .merge(actions::router())

@@ -46,6 +46,7 @@ pub mod history;
 pub mod overview;
 pub mod queue;
 pub mod sessions;
+pub mod tariffs;
 
 pub mod recoveries;
 

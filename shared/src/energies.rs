@@ -6,13 +6,22 @@
 use std::collections::BTreeMap;
 
 use chrono::NaiveDate;
-use meterveil_shared::aggregate::{meter_sums, Spread, Z95};
-use meterveil_shared::recovery::SumConstraint;
-use meterveil_shared::tariff::TariffCalendar;
-use meterveil_shared::DitherProfile;
 use nalgebra::DMatrix;
 
-use super::files::Window;
+use crate::aggregate::{meter_sums, Spread, Z95};
+use crate::recovery::{LevelMatrix, SumConstraint};
+use crate::tariff::TariffCalendar;
+use crate::DitherProfile;
+
+/// The levels a recovery was fitted to, where its window starts (UTC epoch
+/// seconds) and its interval length.
+#[derive(Clone, Copy)]
+pub struct Fitted<'a> {
+    pub x: &'a DMatrix<f64>,
+    pub levels: &'a LevelMatrix,
+    pub start: i64,
+    pub interval_s: u32,
+}
 
 /// One sum of one meter: its label (a day, or a billing period's first day
 /// and a band), energy in kWh with its 95% band, intervals and whether a
@@ -50,16 +59,16 @@ fn reconcile(cells: &mut [(f64, f64)], reads: &[(Vec<usize>, f64)]) {
 /// Every meter's sums over the cells `label_of` gives each interval (`None`:
 /// in none), reconciled to the register reads.
 pub fn meter_energies(
-    x: &DMatrix<f64>,
-    w: &Window,
+    f: Fitted<'_>,
     profile: &DitherProfile,
     spreads: &[Spread],
     constraints: &[SumConstraint],
     label_of: &dyn Fn(i64) -> Option<(NaiveDate, usize)>,
 ) -> Vec<EnergyCell> {
-    let n = x.ncols();
-    let hours = f64::from(w.interval_s) / 3600.0;
-    let labels: Vec<Option<(NaiveDate, usize)>> = (0..n).map(|j| label_of(w.interval_start(j))).collect();
+    let (x, n) = (f.x, f.x.ncols());
+    let hours = f64::from(f.interval_s) / 3600.0;
+    let labels: Vec<Option<(NaiveDate, usize)>> =
+        (0..n).map(|j| label_of(f.start + j as i64 * i64::from(f.interval_s))).collect();
     let mut out = Vec::new();
     for (i, &spread) in spreads.iter().enumerate().take(x.nrows()) {
         // A cell is (register read or none, label): a read's intervals never
@@ -78,8 +87,8 @@ pub fn meter_energies(
             })
             .collect();
         let row: Vec<f64> = x.row(i).iter().copied().collect();
-        let level = |j: usize| w.levels.get(i, j);
-        let mut cells = meter_sums(&row, &level, profile, spread, w.interval_s, &bucket, keys.len());
+        let level = |j: usize| f.levels.get(i, j);
+        let mut cells = meter_sums(&row, &level, profile, spread, f.interval_s, &bucket, keys.len());
         let read_cells: Vec<(Vec<usize>, f64)> = reads
             .iter()
             .enumerate()

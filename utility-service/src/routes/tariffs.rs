@@ -1,0 +1,161 @@
+//! Tariff calendars per feeder, versioned, and each meter's energy per
+//! billing period and tariff band from a finished recovery, with 95% bands
+//! (`shared::energies`), reconciled to the feeder's register reads.
+
+use std::collections::HashMap;
+
+use axum::body::Bytes;
+use axum::extract::{Path, Query, State};
+use axum::http::{header, StatusCode};
+use axum::response::{IntoResponse, Response};
+use axum::routing::get;
+use axum::{Json, Router};
+use meterveil_shared::aggregate::meter_spreads;
+use meterveil_shared::energies::{band_label, meter_energies, Fitted};
+use meterveil_shared::tariff::TariffCalendar;
+use meterveil_shared::{FeederId, FieldError};
+use nalgebra::DMatrix;
+use serde::Deserialize;
+use serde_json::{json, Value};
+
+use super::{now_s, AppState, Operator};
+use crate::error::ApiError;
+use crate::store::tariffs::TariffRecord;
+
+pub fn router() -> Router<AppState> {
+    Router::new()
+        .route("/v1/feeders/{feeder_id}/tariffs", get(list).post(add))
+        .route("/v1/recoveries/{job_id}/band-energies", get(band_energies))
+}
+
+/// A calendar body is at most this large.
+const MAX_BODY: usize = 1 << 20;
+
+async fn add(
+    _: Operator,
+    State(s): State<AppState>,
+    Path(feeder): Path<String>,
+    body: Bytes,
+) -> Result<(StatusCode, Json<Value>), ApiError> {
+    let feeder = super::feeders::known_feeder(&s, &feeder).await?;
+    if body.len() > MAX_BODY {
+        return Err(ApiError::invalid("body", "a calendar is at most 1 MB"));
+    }
+    let text = std::str::from_utf8(&body).map_err(|_| ApiError::invalid("body", "not UTF-8 text"))?;
+    let calendar = TariffCalendar::parse(text).map_err(|e| {
+        ApiError::Invalid(FieldError::new(e.error.field, format!("line {}: {}", e.line, e.error.reason)))
+    })?;
+    let version = s.store.add_tariff(&feeder, &calendar.name, text, now_s()).await?;
+    tracing::info!(feeder = %feeder, version, name = %calendar.name, "tariff calendar stored");
+    Ok((StatusCode::CREATED, Json(json!({"feeder_id": feeder.as_str(), "version": version, "name": calendar.name}))))
+}
+
+async fn list(
+    _: Operator,
+    State(s): State<AppState>,
+    Path(feeder): Path<String>,
+) -> Result<Json<Vec<TariffRecord>>, ApiError> {
+    let feeder = super::feeders::known_feeder(&s, &feeder).await?;
+    Ok(Json(s.store.tariffs(&feeder).await?))
+}
+
+#[derive(Deserialize)]
+struct BandQuery {
+    format: Option<String>,
+    tariff_version: Option<i64>,
+}
+
+/// Each meter's energy per billing period and band under one of the feeder's
+/// calendars (default: its newest), from a finished recovery.
+async fn band_energies(
+    _: Operator,
+    State(s): State<AppState>,
+    Path(id): Path<String>,
+    Query(q): Query<BandQuery>,
+) -> Result<Response, ApiError> {
+    let format = q.format.clone().unwrap_or_else(|| "json".into());
+    if !["json", "csv"].contains(&format.as_str()) {
+        return Err(ApiError::invalid("format", format!("{format:?} is not json or csv")));
+    }
+    let job = super::recoveries::find(&s, &id).await?;
+    if job.state != "done" {
+        return Err(ApiError::invalid("job_id", format!("recovery {id} is {}, not done", job.state)));
+    }
+    let feeder = FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
+    let stored = s.store.tariffs(&feeder).await?;
+    let chosen = match q.tariff_version {
+        Some(v) => stored.iter().find(|t| t.version == v),
+        None => stored.last(),
+    };
+    let Some(record) = chosen else {
+        let reason = format!(
+            "feeder {feeder} has no tariff calendar{}",
+            q.tariff_version.map(|v| format!(" version {v}")).unwrap_or_default()
+        );
+        return Err(ApiError::NotFound(FieldError::new("tariff_version", reason)));
+    };
+    let calendar = TariffCalendar::parse(&record.body)
+        .map_err(|e| ApiError::Internal(anyhow::anyhow!("stored calendar no longer parses: {e}")))?;
+    let window = crate::jobs::recover::load_window(&s.store, &feeder, job.window_start, job.window_end)
+        .await
+        .map_err(ApiError::Internal)?;
+    let rows = s.store.job_rows(&id, None).await?;
+    let index: HashMap<&str, usize> = window.meters.iter().enumerate().map(|(i, m)| (m.as_str(), i)).collect();
+    let step = i64::from(window.layout.interval_s);
+    let mut x = DMatrix::zeros(window.meters.len(), window.levels.cols());
+    for r in &rows {
+        let j = ((r.interval_start - job.window_start) / step) as usize;
+        if let (Some(&i), true) = (index.get(r.meter_id.as_str()), j < x.ncols()) {
+            x[(i, j)] = r.kw;
+        }
+    }
+    let start = job.window_start;
+    let cells = tokio::task::spawn_blocking(move || {
+        let spreads = meter_spreads(&x, &window.levels, &window.profile, window.layout.interval_s);
+        let fitted = Fitted { x: &x, levels: &window.levels, start, interval_s: window.layout.interval_s };
+        let cells = meter_energies(fitted, &window.profile, &spreads, &window.constraints, &band_label(&calendar));
+        (cells, window.meters, calendar)
+    })
+    .await
+    .map_err(|e| ApiError::Internal(e.into()))?;
+    let (cells, meters, calendar) = cells;
+    tracing::info!(job = %id, tariff_version = record.version, cells = cells.len(), "band energies");
+    let out: Vec<Value> = cells
+        .iter()
+        .map(|c| {
+            json!({
+                "meter_id": meters[c.meter], "period_start": c.label.0.to_string(),
+                "period_end": calendar.period_end(c.label.0).to_string(), "band": calendar.bands[c.label.1],
+                "kwh": c.kwh, "kwh_low": c.kwh_low, "kwh_high": c.kwh_high, "intervals": c.intervals,
+                "register_read": c.registered,
+            })
+        })
+        .collect();
+    if format == "csv" {
+        return Ok(
+            ([(header::CONTENT_TYPE, "text/csv; charset=utf-8")], csv_of(&cells, &meters, &calendar)).into_response()
+        );
+    }
+    Ok(Json(json!({"job_id": id, "tariff_version": record.version, "tariff": calendar.name, "energies": out}))
+        .into_response())
+}
+
+/// The band energies as CSV, one row per meter, period and band.
+fn csv_of(cells: &[meterveil_shared::energies::EnergyCell], meters: &[String], calendar: &TariffCalendar) -> String {
+    let mut text = String::from("meter_id,period_start,period_end,band,kwh,kwh_low,kwh_high,intervals,register_read\n");
+    for c in cells {
+        text.push_str(&format!(
+            "{},{},{},{},{:.4},{:.4},{:.4},{},{}\n",
+            meters[c.meter],
+            c.label.0,
+            calendar.period_end(c.label.0),
+            calendar.bands[c.label.1],
+            c.kwh,
+            c.kwh_low,
+            c.kwh_high,
+            c.intervals,
+            c.registered
+        ));
+    }
+    text
+}
