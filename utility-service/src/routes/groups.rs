@@ -13,7 +13,6 @@ use axum::routing::get;
 use axum::{Json, Router};
 use meterveil_shared::aggregate::{group_load, moments, whole_spreads};
 use meterveil_shared::{FeederId, MeterId};
-use nalgebra::DMatrix;
 use serde::Deserialize;
 use serde_json::{json, Value};
 
@@ -92,10 +91,7 @@ async fn load(
     if !["json", "csv"].contains(&format.as_str()) {
         return Err(ApiError::invalid("format", format!("{format:?} is not json or csv")));
     }
-    let job = super::recoveries::find(&s, &id).await?;
-    if job.state != "done" {
-        return Err(ApiError::invalid("job_id", format!("recovery {id} is {}, not done", job.state)));
-    }
+    let job = super::recoveries::find_done(&s, &id).await?;
     let (from, to) = (q.from.unwrap_or(job.window_start), q.to.unwrap_or(job.window_end));
     if from < job.window_start || to > job.window_end || from >= to {
         let reason =
@@ -169,17 +165,10 @@ async fn member_band(
         return Err(ApiError::invalid("name", reason));
     }
     let cols = window.levels.cols();
-    let mut x = DMatrix::zeros(on_feeder.len(), cols);
+    let all =
+        super::recoveries::recovered_matrix(&rows, &window.meters, job.window_start, window.layout.interval_s, cols);
+    let x = all.select_rows(on_feeder.iter());
     let mut levels = meterveil_shared::recovery::LevelMatrix::missing(on_feeder.len(), cols);
-    let slot: HashMap<usize, usize> = on_feeder.iter().enumerate().map(|(k, &i)| (i, k)).collect();
-    for r in &rows {
-        if let Some(&k) = index.get(r.meter_id.as_str()).and_then(|i| slot.get(i)) {
-            let j = ((r.interval_start - job.window_start) / step) as usize;
-            if j < cols {
-                x[(k, j)] = r.kw;
-            }
-        }
-    }
     for (k, &i) in on_feeder.iter().enumerate() {
         (0..cols).for_each(|j| levels.set(k, j, window.levels.get(i, j)));
     }

@@ -47,7 +47,7 @@ pub(crate) async fn queue_recovery(s: &AppState, spec: &RecoverSpec) -> Result<S
 }
 
 /// A recovery job whose results may be served: 409 until it is done.
-async fn find_done(s: &AppState, id: &str) -> Result<JobRecord, ApiError> {
+pub(crate) async fn find_done(s: &AppState, id: &str) -> Result<JobRecord, ApiError> {
     let job = find(s, id).await?;
     if job.state != "done" {
         return Err(ApiError::Conflict(FieldError::new(
@@ -149,4 +149,26 @@ async fn daily(
         }
         other => Err(ApiError::invalid("format", format!("{other:?} is not json or csv"))),
     }
+}
+
+/// A finished recovery's estimates as a matrix, rows in `meters`' order and
+/// a column per interval of its window (what the group and band routes fit
+/// their spreads to).
+pub(crate) fn recovered_matrix(
+    rows: &[crate::store::recoveries::RecoveredRow],
+    meters: &[String],
+    window_start: i64,
+    interval_s: u32,
+    cols: usize,
+) -> nalgebra::DMatrix<f64> {
+    let index: std::collections::HashMap<&str, usize> =
+        meters.iter().enumerate().map(|(i, m)| (m.as_str(), i)).collect();
+    let mut x = nalgebra::DMatrix::zeros(meters.len(), cols);
+    for r in rows {
+        let j = ((r.interval_start - window_start) / i64::from(interval_s)) as usize;
+        if let (Some(&i), true) = (index.get(r.meter_id.as_str()), j < cols) {
+            x[(i, j)] = r.kw;
+        }
+    }
+    x
 }

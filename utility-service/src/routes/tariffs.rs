@@ -2,8 +2,6 @@
 //! billing period and tariff band from a finished recovery, with 95% bands
 //! (`shared::energies`), reconciled to the feeder's register reads.
 
-use std::collections::HashMap;
-
 use axum::body::Bytes;
 use axum::extract::{Path, Query, State};
 use axum::http::{header, StatusCode};
@@ -14,7 +12,6 @@ use meterveil_shared::aggregate::meter_spreads;
 use meterveil_shared::energies::{band_label, meter_energies, Fitted};
 use meterveil_shared::tariff::TariffCalendar;
 use meterveil_shared::{FeederId, FieldError};
-use nalgebra::DMatrix;
 use serde::Deserialize;
 use serde_json::{json, Value};
 
@@ -77,10 +74,7 @@ async fn band_energies(
     if !["json", "csv"].contains(&format.as_str()) {
         return Err(ApiError::invalid("format", format!("{format:?} is not json or csv")));
     }
-    let job = super::recoveries::find(&s, &id).await?;
-    if job.state != "done" {
-        return Err(ApiError::invalid("job_id", format!("recovery {id} is {}, not done", job.state)));
-    }
+    let job = super::recoveries::find_done(&s, &id).await?;
     let feeder = FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
     let stored = s.store.tariffs(&feeder).await?;
     let chosen = match q.tariff_version {
@@ -100,15 +94,13 @@ async fn band_energies(
         .await
         .map_err(ApiError::Internal)?;
     let rows = s.store.job_rows(&id, None).await?;
-    let index: HashMap<&str, usize> = window.meters.iter().enumerate().map(|(i, m)| (m.as_str(), i)).collect();
-    let step = i64::from(window.layout.interval_s);
-    let mut x = DMatrix::zeros(window.meters.len(), window.levels.cols());
-    for r in &rows {
-        let j = ((r.interval_start - job.window_start) / step) as usize;
-        if let (Some(&i), true) = (index.get(r.meter_id.as_str()), j < x.ncols()) {
-            x[(i, j)] = r.kw;
-        }
-    }
+    let x = super::recoveries::recovered_matrix(
+        &rows,
+        &window.meters,
+        job.window_start,
+        window.layout.interval_s,
+        window.levels.cols(),
+    );
     let start = job.window_start;
     let cells = tokio::task::spawn_blocking(move || {
         let spreads = meter_spreads(&x, &window.levels, &window.profile, window.layout.interval_s);
