@@ -932,6 +932,15 @@ async fn recovery_job_over_stored_levels() {
     }
     assert_eq!((days.len(), settled), (12 * 4, 12 * 4));
     group_loads_over_http(&t, &id, &rows).await;
+    // A band-energy target needs the feeder's tariff calendar, and none is stored yet.
+    let (st, b) = t
+        .post_json(
+            "/v1/calibrations",
+            &json!({"recovery_job": id, "event_f1_max": 0.9, "daily_energy_error_max": 0.5, "band_energy_error_max": 0.2}),
+            true,
+        )
+        .await;
+    assert_eq!((st, b["field"].as_str()), (StatusCode::UNPROCESSABLE_ENTITY, Some("band_energy_error_max")), "{b}");
     band_energies_over_http(&t, &id, &reads).await;
     let local = get(format!("/v1/recoveries/{id}/intervals?format=local-csv&meter_id=QM-CHAPEL-ROW-0001"))
         .await
@@ -1063,19 +1072,25 @@ async fn recovery_job_over_stored_levels() {
     let html = get(format!("/v1/analyses/{aid}/report")).await.expect("report").text().await.expect("text");
     assert!(html.contains("<svg") && html.contains("QM-CHAPEL-ROW"), "{}", &html[..html.len().min(400)]);
 
-    // Calibration with loose targets, publishing its recommendation as version 2.
-    let (s, body) = t
-        .post_json(
-            "/v1/calibrations",
-            &json!({"recovery_job": id, "event_f1_max": 0.9, "daily_energy_error_max": 0.5, "publish": true}),
-            true,
-        )
-        .await;
+    // Calibration with loose targets on what the utility uses (daily, group and
+    // band energies on the feeder's latest tariff calendar), publishing its
+    // recommendation as version 2.
+    let body = json!({
+        "recovery_job": id, "event_f1_max": 0.9, "daily_energy_error_max": 0.5, "group_nrmse_max": 5.0,
+        "group_size": 4, "band_energy_error_max": 0.9, "publish": true
+    });
+    let (s, body) = t.post_json("/v1/calibrations", &body, true).await;
     assert_eq!(s, StatusCode::ACCEPTED, "{body}");
     let cal = wait(body["job_id"].as_str().expect("id").to_owned()).await;
     assert_eq!(cal["state"], "done", "{cal}");
     let c = &cal["result"];
     assert_eq!(c["meets_targets"], true, "{c}");
+    assert_eq!(c["tariff_version"], 2, "the latest calendar");
+    let chosen = &c["chosen"];
+    assert!(chosen["utility_group_nrmse"].as_f64().is_some_and(|v| v > 0.0 && v < 5.0), "{chosen}");
+    assert!(chosen["utility_band_energy_error"].as_f64().is_some_and(|v| (0.0..0.9).contains(&v)), "{chosen}");
+    let message = c["message"].as_str().unwrap_or("");
+    assert!(message.contains("group-load nRMSE (4 meters)") && message.contains("band-energy error"), "{message}");
     assert_eq!(c["published_version"], 2);
     let current: Value = t
         .http
@@ -1102,6 +1117,11 @@ async fn recovery_job_over_stored_levels() {
             "/v1/calibrations",
             json!({"recovery_job": id, "event_f1_max": 0.3, "daily_energy_error_max": 0.1, "captured": 5}),
             "captured",
+        ),
+        (
+            "/v1/calibrations",
+            json!({"recovery_job": id, "event_f1_max": 0.3, "daily_energy_error_max": 0.1, "group_nrmse_max": 0.1, "group_size": 500}),
+            "group_size",
         ),
     ] {
         let (s, b) = t.post_json(path, &body, true).await;
@@ -1502,6 +1522,18 @@ fn audit_and_calibrate_commands_on_files() {
         .expect("run calibrate");
     let err = String::from_utf8_lossy(&run.stderr);
     assert!(!run.status.success() && err.contains("event-f1-max"), "{err}");
+    // A band target without the calendar it is measured on is refused before any work.
+    let run = std::process::Command::new(bin)
+        .arg("calibrate")
+        .args(["--levels".as_ref(), p("levels.csv").as_os_str()])
+        .args(["--profile".as_ref(), p("profile.json").as_os_str()])
+        .args(["--output".as_ref(), p("r3.json").as_os_str()])
+        .args(["--max-band-error", "0.1"])
+        .output()
+        .expect("run calibrate");
+    let err = String::from_utf8_lossy(&run.stderr);
+    assert!(!run.status.success() && err.contains("--max-band-error") && err.contains("--tariff"), "{err}");
+    assert!(!p("r3.json").exists());
 }
 
 /// A `utility-service serve` child process on a free port; returns it and its URL.

@@ -61,7 +61,7 @@ struct RuleFile {
 }
 
 /// A checked tariff calendar.
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, PartialEq)]
 pub struct TariffCalendar {
     pub name: String,
     pub zone: Tz,

@@ -215,6 +215,18 @@ pub enum Command {
         /// Bound on the utility's median daily-energy error (fraction).
         #[arg(long, default_value_t = 0.1)]
         max_energy_error: f64,
+        /// Optional bound on the load nRMSE of groups of --group-size meters (fraction).
+        #[arg(long)]
+        max_group_nrmse: Option<f64>,
+        /// The meters per group of the group-load target.
+        #[arg(long, default_value_t = meterveil_shared::calibrate::DEFAULT_GROUP_SIZE)]
+        group_size: usize,
+        /// Optional bound on the median band-energy error (fraction); needs --tariff.
+        #[arg(long)]
+        max_band_error: Option<f64>,
+        /// The feeder's tariff calendar (README "Tariff calendars"): band energies are scored on it.
+        #[arg(long)]
+        tariff: Option<PathBuf>,
         /// Optional bound on the utility's interval nRMSE over the feeder.
         #[arg(long)]
         max_profile_nrmse: Option<f64>,
@@ -450,6 +462,10 @@ fn run_file_mode(command: Command) -> anyhow::Result<serde_json::Value> {
             max_event_f1,
             captured,
             max_energy_error,
+            max_group_nrmse,
+            group_size,
+            max_band_error,
+            tariff,
             max_profile_nrmse,
             alpha_kw,
             seed,
@@ -461,11 +477,13 @@ fn run_file_mode(command: Command) -> anyhow::Result<serde_json::Value> {
             html: html.as_deref(),
             registers: registers.as_deref(),
             targets: meterveil_shared::calibrate::Targets {
-                event_f1_max: max_event_f1,
-                captured,
-                daily_energy_error_max: max_energy_error,
+                group_nrmse_max: max_group_nrmse,
+                group_size,
+                band_energy_error_max: max_band_error,
                 profile_nrmse_max: max_profile_nrmse,
+                ..meterveil_shared::calibrate::Targets::new(max_event_f1, captured, max_energy_error)
             },
+            tariff: tariff.as_deref(),
             alpha_kw,
             seed,
         }),

@@ -254,6 +254,14 @@ pub struct CalibrateRequest {
     #[serde(default = "one")]
     pub captured: usize,
     pub daily_energy_error_max: f64,
+    /// Bound on the load nRMSE of groups of `group_size` meters.
+    #[serde(default)]
+    pub group_nrmse_max: Option<f64>,
+    #[serde(default)]
+    pub group_size: Option<usize>,
+    /// Bound on the median band-energy error (the feeder's latest tariff calendar).
+    #[serde(default)]
+    pub band_energy_error_max: Option<f64>,
     #[serde(default)]
     pub profile_nrmse_max: Option<f64>,
     #[serde(default)]
@@ -285,10 +293,11 @@ impl CalibrateRequest {
     /// checked by the route, which knows it.
     pub fn check(self) -> Result<CalibrateSpec, FieldError> {
         let targets = Targets {
-            event_f1_max: self.event_f1_max,
-            captured: self.captured,
-            daily_energy_error_max: self.daily_energy_error_max,
+            group_nrmse_max: self.group_nrmse_max,
+            group_size: self.group_size.unwrap_or(meterveil_shared::calibrate::DEFAULT_GROUP_SIZE),
+            band_energy_error_max: self.band_energy_error_max,
             profile_nrmse_max: self.profile_nrmse_max,
+            ..Targets::new(self.event_f1_max, self.captured, self.daily_energy_error_max)
         };
         meterveil_shared::calibrate::CalibrationConfig::new(targets.clone()).check(usize::MAX)?;
         let register_periods = self

@@ -308,6 +308,8 @@ pub fn calibration_html(title: &str, c: &Calibration) -> String {
                 tr {
                     th { "register reads" } th { "levels" } th { "scale kW" } th { "attacker F1" } th { "strategy" }
                     th { "utility daily energy error" }
+                    th { (format!("group load nRMSE, {} meters", c.targets.group_size)) }
+                    th { "band energy error" } th { "interval nRMSE" }
                 }
                 @for p in &c.curve {
                     tr {
@@ -317,6 +319,9 @@ pub fn calibration_html(title: &str, c: &Calibration) -> String {
                         td { (format!("{:.3}", p.attacker_event_f1)) }
                         td { (p.attacker_strategy) }
                         td { (format!("{:.1}%", 100.0 * p.utility_daily_energy_error)) }
+                        td { (format!("{:.1}%", 100.0 * p.utility_group_nrmse)) }
+                        td { (p.utility_band_energy_error.map_or("no calendar".into(), |e| format!("{:.1}%", 100.0 * e))) }
+                        td { (format!("{:.2}", p.utility_nrmse)) }
                     }
                 }
             }

@@ -11,7 +11,9 @@ use crate::app;
 use crate::config::{Secret, ServiceConfig};
 use crate::store::FeederSummary;
 
+mod calibrations;
 mod render;
+pub use calibrations::FeederCalibration;
 pub use render::render;
 
 #[derive(Debug, Clone)]
@@ -63,6 +65,8 @@ pub struct DemoSummary {
     pub recoveries: Vec<FeederRecovery>,
     pub clusters: Vec<TownCluster>,
     pub privacy: Option<PrivacyCheck>,
+    /// Every feeder's dither calibration against the demo's targets.
+    pub calibrations: Vec<FeederCalibration>,
     /// Per feeder, an audit of its first meter at the feeder's own register period.
     pub feeder_audits: Vec<FeederAudit>,
     pub service_url: String,
@@ -129,6 +133,7 @@ pub async fn run(opts: &DemoOptions) -> anyhow::Result<DemoSummary> {
         Some(r) => Some(privacy_check(&svc.url(), &token_for_jobs, r, &dir).await?),
         None => None,
     };
+    let calibrations = calibrations::calibrate_feeders(&svc.url(), &token_for_jobs, &recoveries, &dir).await?;
     let mut feeder_audits = Vec::new();
     for (r, f) in recoveries.iter().zip(&feeders) {
         let period =
@@ -145,6 +150,7 @@ pub async fn run(opts: &DemoOptions) -> anyhow::Result<DemoSummary> {
     let summary = DemoSummary {
         clusters,
         privacy,
+        calibrations,
         feeder_audits,
         recoveries,
         service_url: svc.url(),
@@ -281,13 +287,12 @@ async fn run_job(
     }
 }
 
-/// The demo's privacy audit of one feeder and its dither calibration.
+/// The demo's privacy audit of one feeder.
 #[derive(Debug, Clone)]
 pub struct PrivacyCheck {
     pub feeder_id: String,
     pub captured: String,
     pub audit: serde_json::Value,
-    pub calibration: serde_json::Value,
     pub reports: Vec<PathBuf>,
     /// The same audit as if the feeder sent each register period's reads.
     pub by_period: Vec<FeederAudit>,
@@ -352,35 +357,19 @@ async fn privacy_check(
             daily_energy_error: energy,
         });
     }
-    eprintln!("demo: calibrating the dither of {} ...", rec.feeder_id);
-    let body = serde_json::json!({
-        "recovery_job": rec.job_id, "event_f1_max": 0.3, "captured": 1, "daily_energy_error_max": 0.1,
-        "profile_nrmse_max": 0.6, "publish": true
-    });
-    let calibration = run_job(base, token, "/v1/calibrations", body, "/v1/analyses").await?;
-    let mut reports = Vec::new();
-    for (job, name) in [(&audit, "audit.html"), (&calibration, "calibration.html")] {
-        let id = job["job_id"].as_str().unwrap_or_default();
-        let html = http
-            .get(format!("{base}/v1/analyses/{id}/report"))
-            .bearer_auth(token)
-            .send()
-            .await?
-            .error_for_status()?
-            .text()
-            .await?;
-        let path = dir.join(name);
-        crate::offline::write_atomically(&path, html.as_bytes())?;
-        reports.push(path);
-    }
-    Ok(PrivacyCheck {
-        feeder_id: rec.feeder_id.clone(),
-        captured,
-        audit: audit["result"].clone(),
-        calibration: calibration["result"].clone(),
-        reports,
-        by_period,
-    })
+    let id = audit["job_id"].as_str().unwrap_or_default();
+    let html = http
+        .get(format!("{base}/v1/analyses/{id}/report"))
+        .bearer_auth(token)
+        .send()
+        .await?
+        .error_for_status()?
+        .text()
+        .await?;
+    let path = dir.join("audit.html");
+    crate::offline::write_atomically(&path, html.as_bytes())?;
+    let reports = vec![path];
+    Ok(PrivacyCheck { feeder_id: rec.feeder_id.clone(), captured, audit: audit["result"].clone(), reports, by_period })
 }
 
 /// Clusters the town's meters by load shape (the stability rule's count), as a

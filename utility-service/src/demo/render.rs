@@ -12,8 +12,8 @@ pub fn render(s: &DemoSummary) -> String {
     render_clusters(&mut o, s);
     if let Some(p) = &s.privacy {
         render_privacy(&mut o, p);
-        render_calibration(&mut o, p);
     }
+    super::calibrations::render_calibrations(&mut o, &s.calibrations);
     render_feeder_audits(&mut o, s);
     let _ = writeln!(o, "\n  database: {}", s.database.display());
     let _ = writeln!(
@@ -200,31 +200,5 @@ fn render_privacy(o: &mut String, p: &PrivacyCheck) {
             a.event_f1,
             100.0 * a.daily_energy_error
         );
-    }
-}
-
-/// The calibration of the audited feeder, and the reports written.
-fn render_calibration(o: &mut String, p: &PrivacyCheck) {
-    let c = &p.calibration;
-    let _ = writeln!(
-        o,
-        "\n  Dither calibration of {} (targets: event F1 ≤ 0.3 for one captured meter, daily energy error ≤ 10%,\n  interval nRMSE ≤ 0.6):",
-        p.feeder_id
-    );
-    let _ = writeln!(o, "  {}", c["message"].as_str().unwrap_or(""));
-    let r = &c["recommended"];
-    let _ = writeln!(
-        o,
-        "  recommended: {} σ {} kW, boundaries {} kW{}",
-        r["noise"].as_str().unwrap_or("?"),
-        r["scale_kw"],
-        r["boundaries_kw"],
-        match c["published_version"].as_i64() {
-            Some(v) => format!("; published as version {v}, gateways pick it up on their next pull"),
-            None => "; not published".into(),
-        }
-    );
-    for path in &p.reports {
-        let _ = writeln!(o, "  report: {}", path.display());
     }
 }

@@ -9,6 +9,7 @@ use meterveil_shared::audit::{bootstrap, default_curve_counts, direct, select_ro
 use meterveil_shared::calibrate::{calibrate, CalibrationConfig};
 use meterveil_shared::recovery::outage::DayLayout;
 use meterveil_shared::recovery::{LevelMatrix, RankChoice, SumConstraint};
+use meterveil_shared::tariff::TariffCalendar;
 use meterveil_shared::{DitherProfile, FeederId};
 use nalgebra::DMatrix;
 
@@ -153,11 +154,20 @@ async fn calibration_inner(s: &WorkContext, job_id: &str, req: &CalibrateSpec) -
     let r = load(s, &req.recovery_job).await?;
     let tz =
         s.store.feeder_time_zone(&r.feeder).await?.and_then(|z| z.parse().ok()).unwrap_or(meterveil_shared::Tz::UTC);
+    // The band-energy figure is measured on the feeder's latest tariff calendar.
+    let tariff = match s.store.tariffs(&r.feeder).await?.pop() {
+        Some(t) => Some((
+            t.version,
+            TariffCalendar::parse(&t.body).map_err(|e| anyhow::anyhow!("stored tariff version {}: {e}", t.version))?,
+        )),
+        None => None,
+    };
     let cfg = CalibrationConfig {
         seed: req.seed,
         utility_rank: RankChoice::Fixed(r.rank),
         register_periods: req.register_periods.clone(),
         tz,
+        tariff: tariff.as_ref().map(|t| t.1.clone()),
         ..CalibrationConfig::new(req.targets.clone())
     };
     cfg.check(r.meters.len()).map_err(|e| anyhow::anyhow!("{}: {}", e.field, e.reason))?;
@@ -170,6 +180,9 @@ async fn calibration_inner(s: &WorkContext, job_id: &str, req: &CalibrateSpec) -
     let mut result = serde_json::to_value(&c)?;
     result["feeder_id"] = r.feeder.as_str().into();
     result["recovery_job"] = req.recovery_job.clone().into();
+    if let Some((version, _)) = &tariff {
+        result["tariff_version"] = (*version).into();
+    }
     let publish = (req.publish && c.meets_targets).then_some((&r.feeder, &recommended));
     s.store.finish_calibration(job_id, &result, publish, now_s()).await?;
     Ok(())

@@ -255,6 +255,7 @@ pub struct CalibrateFiles<'a> {
     pub html: Option<&'a Path>,
     pub registers: Option<&'a Path>,
     pub targets: meterveil_shared::calibrate::Targets,
+    pub tariff: Option<&'a Path>,
     pub alpha_kw: f64,
     pub seed: u64,
 }
@@ -263,9 +264,14 @@ pub struct CalibrateFiles<'a> {
 /// writes the recommended profile (only when the targets are met) and the report.
 pub fn run_calibrate(a: &CalibrateFiles<'_>) -> anyhow::Result<serde_json::Value> {
     use meterveil_shared::calibrate::{calibrate, CalibrationConfig};
+    if a.targets.band_energy_error_max.is_some() && a.tariff.is_none() {
+        anyhow::bail!("--max-band-error: needs the feeder's tariff calendar (--tariff)");
+    }
+    let tariff = a.tariff.map(aggregate::read_calendar).transpose()?;
     let (profile, w, constraints, _) = read_feeder(a.levels, a.profile, a.registers)?;
     let rec = recover_window(&w, &profile, &constraints, a.alpha_kw)?;
     let cfg = CalibrationConfig {
+        tariff,
         alpha_kw: a.alpha_kw,
         seed: a.seed,
         utility_rank: meterveil_shared::recovery::RankChoice::Fixed(rec.diagnostics.rank),

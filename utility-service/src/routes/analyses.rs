@@ -120,6 +120,13 @@ pub(crate) async fn queue_calibration(s: &AppState, spec: CalibrateSpec) -> Resu
     meterveil_shared::calibrate::CalibrationConfig::new(spec.targets.clone())
         .check(population)
         .map_err(ApiError::Invalid)?;
+    let feeder = meterveil_shared::FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
+    if spec.targets.band_energy_error_max.is_some() && s.store.tariffs(&feeder).await?.is_empty() {
+        return Err(ApiError::Invalid(FieldError::new(
+            "band_energy_error_max",
+            format!("feeder {} has no tariff calendar; post one to /v1/feeders/{{feeder}}/tariffs", job.feeder_id),
+        )));
+    }
     let job_id = new_job_id("cal");
     s.store.create_analysis(&job_id, &JobSpec::Calibrate(spec), Some(&job.feeder_id), now_s()).await?;
     s.wake.notify_one();

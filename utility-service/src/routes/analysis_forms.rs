@@ -106,13 +106,20 @@ pub(crate) fn calibration_form(
                 label { "daily energy error ≤ " input type="text" name="daily_energy_error_max_percent" size="4" value=(energy) required; "%" }
                 " "
                 label { "captured meters " input type="text" name="captured" size="3" value="1"; }
+                br;
+                label { "group load nRMSE ≤ " input type="text" name="group_nrmse_max_percent" size="4"; "%" }
                 " "
+                label { "for groups of " input type="text" name="group_size" size="4" value="50"; " meters" }
+                " "
+                label { "band energy error ≤ " input type="text" name="band_energy_error_max_percent" size="4"; "% (needs a tariff calendar)" }
+                br;
                 label { input type="checkbox" name="publish" value="yes"; " publish the recommendation if it meets them" }
                 " "
                 button type="submit" { "Start the calibration" }
             }
             p { "The calibration searches the dither scale and level sets for the least dither that keeps the \
-                 strongest attacker's event F1 under the target, and reports the utility's error there." }
+                 strongest attacker's event F1 under the target, and reports the utility's errors there on what it \
+                 uses: daily energies, group loads and tariff-band energies." }
         }
         (problem_line(problem))
     }
@@ -147,7 +154,21 @@ struct CalibrationForm {
     #[serde(default)]
     captured: String,
     #[serde(default)]
+    group_nrmse_max_percent: String,
+    #[serde(default)]
+    group_size: String,
+    #[serde(default)]
+    band_energy_error_max_percent: String,
+    #[serde(default)]
     publish: Option<String>,
+}
+
+/// An optional percent field as a fraction: blank is no target.
+fn optional_percent(field: &str, v: &str) -> Result<Option<f64>, ApiError> {
+    match v.trim() {
+        "" => Ok(None),
+        t => Ok(Some(number(field, t).map_err(ApiError::Invalid)? / 100.0)),
+    }
 }
 
 /// A number from a form field, or the field's error.
@@ -252,6 +273,14 @@ async fn start_calibration(
             daily_energy_error_max: number("daily_energy_error_max_percent", &f.daily_energy_error_max_percent)
                 .map_err(ApiError::Invalid)?
                 / 100.0,
+            group_nrmse_max: optional_percent("group_nrmse_max_percent", &f.group_nrmse_max_percent)?,
+            group_size: match f.group_size.trim() {
+                "" => None,
+                g => Some(
+                    g.parse::<usize>().map_err(|_| ApiError::invalid("group_size", format!("{g:?} is not a count")))?,
+                ),
+            },
+            band_energy_error_max: optional_percent("band_energy_error_max_percent", &f.band_energy_error_max_percent)?,
             profile_nrmse_max: None,
             publish,
             seed: None,
@@ -281,8 +310,8 @@ async fn start_calibration(
 
 /// The request's `daily_energy_error_max` (a fraction) is the form's percent field.
 fn percent_field(mut e: FieldError) -> FieldError {
-    if e.field == "daily_energy_error_max" {
-        e.field = "daily_energy_error_max_percent".into();
+    if ["daily_energy_error_max", "group_nrmse_max", "band_energy_error_max"].contains(&e.field.as_str()) {
+        e.field = format!("{}_percent", e.field);
     }
     e
 }

@@ -68,12 +68,16 @@ fn refused(field: &str, reason: &str) -> Response {
 
 fn trade_off(p: &Publishable) -> Markup {
     let c = &p.calibration.chosen;
+    let t = &p.calibration.targets;
+    let bound = |b: Option<f64>| b.map(|b| format!(" (target ≤ {:.1}%)", 100.0 * b)).unwrap_or_default();
     html! {
         table {
             tr { th { "" } th { "recommended" } }
             tr { td { "profile" } td { (p.profile.describe()) } }
             tr { td { "strongest attacker's event F1, one captured meter" } td { (format!("{:.2} (target ≤ {:.2})", c.attacker_event_f1, p.calibration.targets.event_f1_max)) } }
             tr { td { "utility's median daily-energy error" } td { (format!("{:.1}% (target ≤ {:.1}%)", 100.0 * c.utility_daily_energy_error, 100.0 * p.calibration.targets.daily_energy_error_max)) } }
+            tr { td { (format!("utility's group-load nRMSE, groups of {} meters", t.group_size)) } td { (format!("{:.1}%{}", 100.0 * c.utility_group_nrmse, bound(t.group_nrmse_max))) } }
+            tr { td { "utility's median band-energy error" } td { (c.utility_band_energy_error.map_or("no tariff calendar".into(), |e| format!("{:.1}%{}", 100.0 * e, bound(t.band_energy_error_max)))) } }
             tr { td { "utility's interval nRMSE" } td { (format!("{:.2}", c.utility_nrmse)) } }
         }
         p { (p.calibration.message) }

@@ -1,6 +1,9 @@
 //! Per-feeder dither calibration: the noise scale (and a choice among level
-//! sets) that keeps the strongest attacker's event detection under a bound
-//! while the utility's daily energy stays accurate.
+//! sets and register periods) that keeps the strongest attacker's event
+//! detection under a bound while the aggregates the utility uses stay accurate:
+//! each meter's daily energy, its energy per tariff band and billing period,
+//! and the load of a group of meters per interval. A household's own interval
+//! profile, which the dither exists to hide, is only an optional target.
 //!
 //! Every candidate is scored by one Monte Carlo simulation with common random
 //! numbers: the events, the captured sets and the standardized dither draws are
@@ -11,22 +14,25 @@
 //! target, and Brent's method (argmin's `BrentRoot`) narrows the bracket.
 
 use std::cell::RefCell;
-use std::collections::BTreeMap;
 
 use argmin::core::{CostFunction, Executor};
 use argmin::solver::brent::BrentRoot;
 use nalgebra::DMatrix;
-use rand::SeedableRng;
 use serde::{Deserialize, Serialize};
 
-use crate::audit::{
-    attack, best_index, inject_events, levels_from_standard, median_daily_energy_error, nrmse, register_sums,
-    score_detector, select_rows, standard_event_mix, Attacker, EventCounts, EventKind, InjectedEvent, Strategy,
-};
+use crate::audit::{standard_event_mix, EventKind};
 use crate::error::FieldError;
 use crate::profile::{DitherProfile, DitherProfileSpec, RegisterPeriod};
 use crate::recovery::outage::DayLayout;
-use crate::recovery::{recover, RankChoice, RecoveryParams};
+use crate::recovery::RankChoice;
+use crate::tariff::TariffCalendar;
+
+mod choose;
+pub mod figures;
+mod simulation;
+
+use choose::choose;
+pub use simulation::Simulation;
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Targets {
@@ -36,10 +42,43 @@ pub struct Targets {
     pub captured: usize,
     /// Bound on the utility's median daily-energy error (fraction).
     pub daily_energy_error_max: f64,
-    /// Optional bound on the utility's interval nRMSE over the feeder (load
-    /// research and forecasting need the shape, not only the daily energy).
+    /// Bound on the nRMSE of a group's load per interval (fraction), for groups
+    /// of [`Targets::group_size`] meters: transformers, portfolios, classes.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub group_nrmse_max: Option<f64>,
+    /// The group size the group target speaks of. Default 50.
+    #[serde(default = "default_group_size")]
+    pub group_size: usize,
+    /// Bound on the median error of each meter's energy per tariff band and
+    /// billing period (fraction); needs the feeder's tariff calendar.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub band_energy_error_max: Option<f64>,
+    /// Optional bound on the utility's interval nRMSE over the feeder, per
+    /// meter and interval: what the dither hides, so rarely a fair target.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub profile_nrmse_max: Option<f64>,
+}
+
+fn default_group_size() -> usize {
+    DEFAULT_GROUP_SIZE
+}
+
+/// The group size of the group-load target unless the operator names one.
+pub const DEFAULT_GROUP_SIZE: usize = 50;
+
+impl Targets {
+    /// The daily-energy and event targets alone (no group, band or interval bound).
+    pub fn new(event_f1_max: f64, captured: usize, daily_energy_error_max: f64) -> Self {
+        Self {
+            event_f1_max,
+            captured,
+            daily_energy_error_max,
+            group_nrmse_max: None,
+            group_size: DEFAULT_GROUP_SIZE,
+            band_energy_error_max: None,
+            profile_nrmse_max: None,
+        }
+    }
 }
 
 /// The calibration's default seed (the audit's is [`crate::audit::DEFAULT_SEED`]).
@@ -70,6 +109,8 @@ pub struct CalibrationConfig {
     pub register_periods: Vec<RegisterPeriod>,
     /// The feeder's time zone (weekly and monthly periods).
     pub tz: crate::Tz,
+    /// The feeder's tariff calendar: the band-energy figure is measured on it.
+    pub tariff: Option<TariffCalendar>,
 }
 
 impl CalibrationConfig {
@@ -87,6 +128,7 @@ impl CalibrationConfig {
             events: standard_event_mix(),
             register_periods: Vec::new(),
             tz: crate::Tz::UTC,
+            tariff: None,
         }
     }
 
@@ -103,6 +145,18 @@ impl CalibrationConfig {
         }
         if t.profile_nrmse_max.is_some_and(|v| !(v > 0.0 && v <= 10.0)) {
             return Err(FieldError::new("profile_nrmse_max", "must be in (0, 10]"));
+        }
+        if t.group_nrmse_max.is_some_and(|v| !(v > 0.0 && v <= 10.0)) {
+            return Err(FieldError::new("group_nrmse_max", "must be in (0, 10]"));
+        }
+        if t.group_size == 0 || (t.group_nrmse_max.is_some() && t.group_size > population) {
+            return Err(FieldError::new(
+                "group_size",
+                format!("must be between 1 and the feeder's {population} meters, is {}", t.group_size),
+            ));
+        }
+        if t.band_energy_error_max.is_some_and(|v| !(v > 0.0 && v <= 1.0)) {
+            return Err(FieldError::new("band_energy_error_max", "must be a fraction in (0, 1]"));
         }
         if t.captured == 0 || t.captured.saturating_mul(self.sets.max(1)) > population {
             return Err(FieldError::new(
@@ -139,6 +193,13 @@ pub struct TradeoffPoint {
     pub attacker_strategy: String,
     pub utility_daily_energy_error: f64,
     pub utility_nrmse: f64,
+    /// nRMSE of the loads of disjoint groups of the targets' group size.
+    #[serde(default)]
+    pub utility_group_nrmse: f64,
+    /// Median error of each meter's energy per band and billing period, where
+    /// a tariff calendar was given.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub utility_band_energy_error: Option<f64>,
 }
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -203,128 +264,6 @@ fn narrow(gap: Gap<'_>, lo: f64, hi: f64) -> (u64, SearchStop) {
     }
 }
 
-/// The fixed random numbers of one calibration.
-pub struct Simulation {
-    truth: DMatrix<f64>,
-    z: DMatrix<f64>,
-    sets: Vec<Vec<usize>>,
-    events: Vec<Vec<InjectedEvent>>,
-    /// The event mix, which the event-aware attackers know.
-    mix: Vec<EventKind>,
-    layout: DayLayout,
-    alpha: f64,
-    rank: RankChoice,
-    template: DitherProfileSpec,
-    tz: crate::Tz,
-}
-
-impl Simulation {
-    /// Draws the events (into `sets` disjoint captured sets of `captured` meters,
-    /// spread evenly over the feeder) and the standardized dither, from `seed`.
-    pub fn new(
-        base: &DMatrix<f64>,
-        current: &DitherProfile,
-        layout: DayLayout,
-        cfg: &CalibrationConfig,
-        seed: u64,
-    ) -> Self {
-        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
-        let (m, n) = base.shape();
-        let k = cfg.targets.captured;
-        let stride = (m / (k * cfg.sets).max(1)).max(1);
-        let picks: Vec<usize> = (0..k * cfg.sets).map(|i| (i * stride) % m).collect();
-        let sets: Vec<Vec<usize>> = picks.chunks(k).map(|c| c.to_vec()).collect();
-        let mut truth = base.map(|v| v.clamp(0.0, cfg.alpha_kw));
-        let mut events = Vec::new();
-        for s in &sets {
-            let ev = inject_events(&mut truth, s, layout, &cfg.events, cfg.alpha_kw, &mut rng);
-            // Rows relative to the set.
-            events.push(
-                ev.into_iter()
-                    .map(|e| InjectedEvent { row: s.iter().position(|&i| i == e.row).unwrap_or(0), ..e })
-                    .collect(),
-            );
-        }
-        let noise = current.noise();
-        let z = DMatrix::from_fn(m, n, |_, _| crate::mechanism::standard_draw(noise, &mut rng));
-        Self {
-            truth,
-            z,
-            sets,
-            events,
-            mix: cfg.events.clone(),
-            layout,
-            alpha: cfg.alpha_kw,
-            rank: cfg.utility_rank.clone(),
-            template: current.to_spec(),
-            tz: cfg.tz,
-        }
-    }
-
-    pub fn profile(&self, boundaries: &[f64], scale: f64) -> Result<DitherProfile, FieldError> {
-        DitherProfile::try_from(DitherProfileSpec {
-            scale_kw: scale,
-            boundaries_kw: boundaries.to_vec(),
-            ..self.template.clone()
-        })
-    }
-
-    /// Scores one candidate with the current profile's register period.
-    pub fn evaluate(&self, boundaries: &[f64], scale: f64) -> Result<TradeoffPoint, FieldError> {
-        let period = self.profile(boundaries, scale)?.register_period();
-        self.evaluate_with(boundaries, scale, period)
-    }
-
-    /// Scores one candidate: the utility recovers the whole feeder, every
-    /// attacker strategy runs on each captured set, both with the register
-    /// sums of `period`.
-    pub fn evaluate_with(
-        &self,
-        boundaries: &[f64],
-        scale: f64,
-        period: RegisterPeriod,
-    ) -> Result<TradeoffPoint, FieldError> {
-        let p = self.profile(boundaries, scale)?.with_register_period(period);
-        let levels = levels_from_standard(&self.truth, &p, &self.z);
-        let m = self.truth.nrows();
-        let all: Vec<usize> = (0..m).collect();
-        let cons = register_sums(&self.truth, &all, self.layout, &p, self.tz);
-        let up = RecoveryParams { rank: self.rank.clone(), alpha_kw: self.alpha, ..Default::default() }.check()?;
-        let util = recover(&levels, &p, &cons, self.layout, &up, &mut |_, _| {})?;
-        // Pooled counts per strategy and threshold.
-        let mut pooled: BTreeMap<&'static str, Vec<EventCounts>> = BTreeMap::new();
-        for (set, ev) in self.sets.iter().zip(&self.events) {
-            let lc = select_rows(&levels, set, 0..levels.cols());
-            let xc = DMatrix::from_fn(set.len(), self.truth.ncols(), |r, j| self.truth[(set[r], j)]);
-            let own: Vec<usize> = (0..set.len()).collect();
-            let cc = register_sums(&xc, &own, self.layout, &p, self.tz);
-            let who = Attacker { mix: &self.mix, strategies: &Strategy::ALL, alpha: self.alpha };
-            for r in attack(&lc, &p, &cc, self.layout, &who)? {
-                let counts = score_detector(&r.x, &r.detector, ev, self.layout);
-                let slot = pooled.entry(r.strategy).or_insert_with(|| vec![EventCounts::default(); counts.len()]);
-                for (a, c) in slot.iter_mut().zip(&counts) {
-                    a.add(c);
-                }
-            }
-        }
-        let (strategy, f1) = pooled
-            .into_iter()
-            .map(|(s, c)| (s, c[best_index(&c)].f1()))
-            .max_by(|a, b| a.1.total_cmp(&b.1))
-            .unwrap_or(("none", 0.0));
-        Ok(TradeoffPoint {
-            register_period: period,
-            levels: p.levels(),
-            boundaries_kw: boundaries.to_vec(),
-            scale_kw: scale,
-            attacker_event_f1: f1,
-            attacker_strategy: strategy.to_owned(),
-            utility_daily_energy_error: median_daily_energy_error(&util.x, &self.truth, self.layout),
-            utility_nrmse: nrmse(&util.x, &self.truth),
-        })
-    }
-}
-
 /// Boundary sets at quantiles of the feeder's readings, rounded to 0.05 kW.
 pub fn quantile_boundaries(readings: &[f64], quantiles: &[f64]) -> Vec<f64> {
     let mut v: Vec<f64> = readings.iter().copied().filter(|x| x.is_finite()).collect();
@@ -371,6 +310,12 @@ pub fn calibrate(
     progress: &mut dyn FnMut(&str, f64),
 ) -> Result<Calibration, FieldError> {
     cfg.check(base.nrows())?;
+    if cfg.targets.band_energy_error_max.is_some() && cfg.tariff.is_none() {
+        return Err(FieldError::new(
+            "band_energy_error_max",
+            "needs the feeder's tariff calendar, and none is stored or given",
+        ));
+    }
     let sim = Simulation::new(base, current, layout, cfg, cfg.seed);
     let sets = level_sets(base, current, cfg);
     let (lo, hi) = cfg.scale_range_kw;
@@ -477,85 +422,6 @@ fn search_scale(
     Ok((pts, search))
 }
 
-/// The recommendation (the most accurate safe point), whether it meets the
-/// targets, and the message; or the closest trade-off and why none does.
-fn choose(
-    cfg: &CalibrationConfig,
-    current: &DitherProfile,
-    curve: &[TradeoffPoint],
-    best_per_set: &[TradeoffPoint],
-    aim: f64,
-) -> Result<(TradeoffPoint, bool, String), FieldError> {
-    let t = &cfg.targets;
-    let nrmse_max = t.profile_nrmse_max.unwrap_or(f64::INFINITY);
-    let accurate =
-        |p: &TradeoffPoint| p.utility_daily_energy_error <= t.daily_energy_error_max && p.utility_nrmse <= nrmse_max;
-    let feasible = best_per_set
-        .iter()
-        .filter(|p| accurate(p))
-        .min_by(|a, b| a.utility_daily_energy_error.total_cmp(&b.utility_daily_energy_error));
-    if let Some(p) = feasible {
-        let message = format!(
-            "{} levels at σ {:.3} kW, {} register reads: the strongest attacker holding {} meter(s) detects events with F1 {:.2} \
-             (target ≤ {:.2}, searched at {:.2}); the utility's median daily-energy error is {:.1}% (target ≤ {:.1}%) \
-             and its interval nRMSE {:.2}",
-            p.levels,
-            p.scale_kw,
-            p.register_period.as_str(),
-            t.captured,
-            p.attacker_event_f1,
-            t.event_f1_max,
-            aim,
-            100.0 * p.utility_daily_energy_error,
-            100.0 * t.daily_energy_error_max,
-            p.utility_nrmse
-        );
-        return Ok((p.clone(), true, message));
-    }
-    let worst = |p: &TradeoffPoint| {
-        (p.attacker_event_f1 / t.event_f1_max)
-            .max(p.utility_daily_energy_error / t.daily_energy_error_max)
-            .max(p.utility_nrmse / nrmse_max)
-    };
-    let p = curve
-        .iter()
-        .min_by(|a, b| worst(a).total_cmp(&worst(b)))
-        .cloned()
-        .ok_or_else(|| FieldError::new("level_sets", "no candidate could be evaluated"))?;
-    let why = if best_per_set.is_empty() {
-        format!("no scale up to {} kW brings the attacker's event F1 to {aim:.2}", cfg.scale_range_kw.1)
-    } else {
-        format!(
-            "every scale that brings the attacker's event F1 to {aim:.2} leaves the utility's daily-energy error above {:.1}%{}",
-            100.0 * t.daily_energy_error_max,
-            t.profile_nrmse_max.map(|v| format!(" or its interval nRMSE above {v:.2}")).unwrap_or_default()
-        )
-    };
-    let margin_note = if p.attacker_event_f1 <= t.event_f1_max && accurate(&p) {
-        format!(
-            " It meets the stated bounds, but not the search's margin (F1 ≤ {aim:.2}) against Monte Carlo \
-             scatter: a fresh simulation may exceed the F1 bound."
-        )
-    } else {
-        String::new()
-    };
-    let advice = if current.send_registers() {
-        "Relax a target."
-    } else {
-        "Relax a target, or send register reads (exact daily energy to the utility, and to an eavesdropper)."
-    };
-    let msg = format!(
-        "The targets cannot both be met: {why}. Closest trade-off: {} levels at σ {:.3} kW, attacker F1 {:.2}, \
-         utility daily-energy error {:.1}%, interval nRMSE {:.2}.{margin_note} {advice}",
-        p.levels,
-        p.scale_kw,
-        p.attacker_event_f1,
-        100.0 * p.utility_daily_energy_error,
-        p.utility_nrmse
-    );
-    Ok((p, false, msg))
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -570,7 +436,7 @@ mod tests {
             0.2 + 0.05 * (i % 7) as f64 + bump(7.5) + 1.5 * bump(19.0)
         });
         let current = crate::profile::test_profile("gaussian", 0.3, &[1.0, 2.0]);
-        let targets = Targets { event_f1_max: 0.9, captured: 1, daily_energy_error_max: 0.5, profile_nrmse_max: None };
+        let targets = Targets::new(0.9, 1, 0.5);
         let cfg = CalibrationConfig {
             grid: 2,
             sets: 2,
