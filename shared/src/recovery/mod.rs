@@ -14,9 +14,11 @@ pub mod restarts;
 pub mod solver;
 pub mod start;
 pub mod table;
+pub mod warm;
 
 pub use params::{RankChoice, RecoveryParams, ValidRecoveryParams, DEFAULT_ALPHA_KW};
-pub use solver::{recover, Diagnostics, Flag, ProgressFn, Recovery, Stop};
+pub use solver::{recover, recover_from, Diagnostics, Flag, ProgressFn, Recovery, Stop};
+pub use warm::WarmStart;
 
 /// Marks a missing entry in a [`LevelMatrix`].
 pub const MISSING: u8 = u8::MAX;

@@ -64,6 +64,11 @@ pub enum Stop {
 #[derive(Debug, Clone, Serialize)]
 pub struct Diagnostics {
     pub iterations: usize,
+    /// Iterations spent choosing the rank (automatic rank only): with
+    /// `iterations`, the fit's whole work in iterations.
+    pub search_iterations: usize,
+    /// The fit started from an earlier window's estimates ([`super::WarmStart`]).
+    pub warm_start: bool,
     pub stop: Stop,
     /// Momentum restarts of the final fit (an overshooting step is retaken
     /// without momentum).
@@ -193,6 +198,7 @@ impl Ctx<'_> {
         rng: &mut impl Rng,
         progress: ProgressFn<'_>,
         scores: &mut Vec<(usize, f64)>,
+        iterations: &mut usize,
     ) -> (usize, DMatrix<f64>) {
         let (p, levels) = (self.p, self.levels);
         let max_rank = levels.rows().min(levels.cols());
@@ -207,6 +213,7 @@ impl Ctx<'_> {
         for (gi, &r) in grid.iter().enumerate() {
             progress("choosing rank", gi as f64 / grid.len() as f64);
             let f = self.fit(&train, r, init, p.search_iterations, rng);
+            *iterations += f.iterations;
             let (mut s, mut c) = (0.0, 0usize);
             for (idx, &h) in held.iter().enumerate() {
                 if h {
@@ -425,16 +432,46 @@ pub fn recover(
     params: &ValidRecoveryParams,
     progress: ProgressFn<'_>,
 ) -> Result<Recovery, FieldError> {
+    recover_from(levels, profile, constraints, layout, params, None, progress)
+}
+
+/// [`recover`], started from `warm` when given: its estimates (the same
+/// meters × intervals as `levels`) and its rank replace the cold start and the
+/// rank search.
+pub fn recover_from(
+    levels: &LevelMatrix,
+    profile: &DitherProfile,
+    constraints: &[SumConstraint],
+    layout: outage::DayLayout,
+    params: &ValidRecoveryParams,
+    warm: Option<&super::WarmStart>,
+    progress: ProgressFn<'_>,
+) -> Result<Recovery, FieldError> {
     let t0 = Instant::now();
     let p = params.get();
     let (m, n) = (levels.rows(), levels.cols());
     check_inputs(levels, profile, constraints)?;
+    if let Some(w) = warm {
+        if w.x.shape() != (m, n) || w.rank == 0 {
+            return Err(FieldError::new(
+                "warm_start",
+                format!(
+                    "holds {}×{} estimates at rank {}, the window is {m}×{n} and needs a rank of at least 1",
+                    w.x.nrows(),
+                    w.x.ncols(),
+                    w.rank
+                ),
+            ));
+        }
+    }
     let alpha = p.alpha_kw;
     let table = LikelihoodTable::for_fit(profile, alpha)?;
     let observed: Vec<bool> = levels.as_slice().iter().map(|&v| v != MISSING).collect();
     let n_obs = observed.iter().filter(|b| **b).count();
     let mut diagnostics = Diagnostics {
         iterations: 0,
+        search_iterations: 0,
+        warm_start: warm.is_some(),
         stop: Stop::Empty,
         restarts: 0,
         log_likelihood_per_reading: 0.0,
@@ -465,10 +502,23 @@ pub fn recover(
     let full = Mask { active: observed.clone() };
     let max_rank = m.min(n);
 
-    let (rank, warm_x) = match &p.rank {
-        RankChoice::Fixed(r) => ((*r).min(max_rank), None),
-        RankChoice::Auto(grid) => {
-            let (r, x) = ctx.choose_rank(grid, &observed, &init, &mut rng, progress, &mut diagnostics.rank_scores);
+    let (rank, warm_x) = match (warm, &p.rank) {
+        (Some(w), _) => {
+            // Estimates outside [0, alpha] or not finite take the cold start's value.
+            let x = w.x.zip_map(&init, |v, c| if v.is_finite() { v.clamp(0.0, alpha) } else { c });
+            (w.rank.min(max_rank), Some(x))
+        }
+        (None, RankChoice::Fixed(r)) => ((*r).min(max_rank), None),
+        (None, RankChoice::Auto(grid)) => {
+            let (r, x) = ctx.choose_rank(
+                grid,
+                &observed,
+                &init,
+                &mut rng,
+                progress,
+                &mut diagnostics.rank_scores,
+                &mut diagnostics.search_iterations,
+            );
             (r, Some(x))
         }
     };
