@@ -942,6 +942,7 @@ async fn recovery_job_over_stored_levels() {
         .await;
     assert_eq!((st, b["field"].as_str()), (StatusCode::UNPROCESSABLE_ENTITY, Some("band_energy_error_max")), "{b}");
     band_energies_over_http(&t, &id, &reads).await;
+    rolling_recovery_over_http(&t, from).await;
     let local = get(format!("/v1/recoveries/{id}/intervals?format=local-csv&meter_id=QM-CHAPEL-ROW-0001"))
         .await
         .expect("local")
@@ -1285,6 +1286,94 @@ fn energies_on_files(dir: &std::path::Path, out: &std::path::Path, meters: &[Str
 /// holds the estimate, the sum of the members' means stays near the sum of
 /// their recovered profiles, and bad definitions or windows are refused with
 /// the field named and nothing stored.
+/// Starts a recovery and waits for it; the finished job.
+async fn recovery_done(t: &TestService, body: Value) -> Value {
+    let (s, b) = t.post_json("/v1/recoveries", &body, true).await;
+    assert_eq!(s, StatusCode::ACCEPTED, "{b}");
+    let id = b["job_id"].as_str().expect("id").to_owned();
+    for _ in 0..600 {
+        let job: Value = t
+            .http
+            .get(format!("{}/v1/recoveries/{id}", t.url()))
+            .bearer_auth(TOKEN)
+            .send()
+            .await
+            .expect("status")
+            .json()
+            .await
+            .expect("json");
+        if job["state"] == "done" || job["state"] == "failed" {
+            assert_eq!(job["state"], "done", "{job}");
+            return job;
+        }
+        tokio::time::sleep(std::time::Duration::from_millis(100)).await;
+    }
+    panic!("recovery {id} did not finish");
+}
+
+/// A rolling run: days 1-3 fitted from the fit of days 0-2 (`warm_from`), beside a
+/// cold fit of days 1-3. The warm run keeps the earlier rank, skips the rank
+/// search, does less work and lands near the cold fit; a warm start of another
+/// feeder, of a window that does not hold the start, or of no job is refused.
+async fn rolling_recovery_over_http(t: &TestService, from: i64) {
+    const DAY: i64 = 86_400;
+    let feeder = "QM-CHAPEL-ROW";
+    let prev = recovery_done(t, json!({"feeder_id": feeder, "from": from, "to": from + 3 * DAY})).await;
+    let prev_id = prev["job_id"].as_str().expect("id");
+    let window = json!({"feeder_id": feeder, "from": from + DAY, "to": from + 4 * DAY});
+    let cold = recovery_done(t, window.clone()).await;
+    let mut body = window.clone();
+    body["warm_from"] = prev_id.into();
+    let warm = recovery_done(t, body).await;
+    let (wd, cd) = (&warm["diagnostics"], &cold["diagnostics"]);
+    assert_eq!((wd["warm_start"].as_bool(), wd["warm_from"].as_str()), (Some(true), Some(prev_id)), "{wd}");
+    assert_eq!(wd["rank"], prev["diagnostics"]["rank"], "the earlier fit's rank");
+    assert_eq!(wd["search_iterations"], 0, "no rank search");
+    let work = |d: &Value| d["search_iterations"].as_u64().unwrap_or(0) + d["iterations"].as_u64().unwrap_or(0);
+    assert!(work(wd) < work(cd), "warm {} iterations, cold {}", work(wd), work(cd));
+    let rows = |job: &Value| {
+        let id = job["job_id"].as_str().expect("id").to_owned();
+        async move {
+            let r: Vec<Value> = t
+                .http
+                .get(format!("{}/v1/recoveries/{id}/intervals", t.url()))
+                .bearer_auth(TOKEN)
+                .send()
+                .await
+                .expect("rows")
+                .json()
+                .await
+                .expect("json");
+            r.iter().map(|v| v["kw"].as_f64().expect("kw")).collect::<Vec<f64>>()
+        }
+    };
+    let (w, c) = (rows(&warm).await, rows(&cold).await);
+    assert_eq!(w.len(), c.len());
+    let diff = w.iter().zip(&c).map(|(a, b)| (a - b).powi(2)).sum::<f64>().sqrt();
+    let norm = c.iter().map(|b| b * b).sum::<f64>().sqrt();
+    eprintln!(
+        "rolling over HTTP: warm {} iterations, cold {}; ‖warm − cold‖ / ‖cold‖ = {:.4}",
+        work(wd),
+        work(cd),
+        diff / norm
+    );
+    assert!(diff / norm <= 0.1, "warm and cold fits differ by {:.3}", diff / norm);
+
+    let cold_id = cold["job_id"].as_str().expect("id");
+    for (bad, why) in [
+        (json!({"feeder_id": "QM-MILLPOND", "from": from + DAY, "to": from + 4 * DAY, "warm_from": prev_id}), "feeder"),
+        (json!({"feeder_id": feeder, "from": from, "to": from + 4 * DAY, "warm_from": cold_id}), "window"),
+        (
+            json!({"feeder_id": feeder, "from": from + DAY, "to": from + 4 * DAY, "warm_from": "rec-none"}),
+            "no recovery",
+        ),
+    ] {
+        let (s, b) = t.post_json("/v1/recoveries", &bad, true).await;
+        assert_eq!((s, b["field"].as_str()), (StatusCode::UNPROCESSABLE_ENTITY, Some("warm_from")), "{b}");
+        assert!(b["reason"].as_str().unwrap_or("").contains(why), "{b}");
+    }
+}
+
 async fn group_loads_over_http(t: &TestService, id: &str, rows: &[Value]) {
     let put = |name: &str, body: Value| {
         t.http.put(format!("{}/v1/groups/{name}", t.url())).bearer_auth(TOKEN).json(&body).send()
@@ -3182,8 +3271,14 @@ async fn several_workers_share_one_queue_and_claim_each_job_once() {
         setup.create_feeder(&fid, f, "UTC", now).await.expect("feeder");
         for i in 0..15 {
             let id = format!("rec-{f}-{i:02}");
-            let spec =
-                RecoverSpec { feeder_id: fid.clone(), from: 0, to: 86_400, rank: RankSetting::AUTO, alpha_kw: 15.0 };
+            let spec = RecoverSpec {
+                feeder_id: fid.clone(),
+                from: 0,
+                to: 86_400,
+                rank: RankSetting::AUTO,
+                alpha_kw: 15.0,
+                warm_from: None,
+            };
             setup.create_job(&id, &spec, now - 100 + i).await.expect("job");
             want.insert(id, Some(f.to_owned()));
         }

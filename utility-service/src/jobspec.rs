@@ -104,6 +104,10 @@ pub struct RecoverRequest {
     /// Service limit, kW. Default [`DEFAULT_ALPHA_KW`].
     #[serde(default)]
     pub alpha_kw: Option<f64>,
+    /// A finished recovery of the same feeder whose window overlaps this one:
+    /// the fit starts from its estimates at its rank (a rolling run).
+    #[serde(default)]
+    pub warm_from: Option<String>,
 }
 
 /// A recovery of one feeder's window [from, to).
@@ -116,6 +120,9 @@ pub struct RecoverSpec {
     pub rank: RankSetting,
     #[serde(default = "default_alpha")]
     pub alpha_kw: f64,
+    /// The finished recovery the fit starts from, if any.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub warm_from: Option<String>,
 }
 
 impl RecoverRequest {
@@ -132,7 +139,10 @@ impl RecoverRequest {
         if !(alpha_kw.is_finite() && alpha_kw > 0.0 && alpha_kw <= 10_000.0) {
             return Err(FieldError::new("alpha_kw", "must be a positive number of kW up to 10000"));
         }
-        Ok(RecoverSpec { feeder_id, from: self.from, to: self.to, rank, alpha_kw })
+        if self.warm_from.as_ref().is_some_and(|w| w.is_empty() || w.len() > 64) {
+            return Err(FieldError::new("warm_from", "must name a recovery job"));
+        }
+        Ok(RecoverSpec { feeder_id, from: self.from, to: self.to, rank, alpha_kw, warm_from: self.warm_from })
     }
 }
 

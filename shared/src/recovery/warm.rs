@@ -42,6 +42,20 @@ impl WarmStart {
         Self { x, rank }
     }
 
+    /// A start from estimates with gaps (NaN): each column with no estimate at
+    /// all (a new day) takes the column `period` earlier where that has some;
+    /// the entries still missing take the cold start's value in
+    /// [`super::recover_from`].
+    pub fn from_partial(mut x: DMatrix<f64>, rank: usize, period: usize) -> Self {
+        for j in 0..x.ncols() {
+            if period > 0 && j >= period && x.column(j).iter().all(|v| !v.is_finite()) {
+                let c = x.column(j - period).clone_owned();
+                x.set_column(j, &c);
+            }
+        }
+        Self { x, rank }
+    }
+
     /// Adds rows for meters the earlier window did not hold (or replaces rows):
     /// `rows[k] = Some(i)` takes row i of this start, `None` the `fill` row
     /// (such as the new window's per-interval mean).
@@ -75,6 +89,14 @@ mod tests {
         // A period longer than the window falls back to the last kept column.
         let w = WarmStart::shifted(&prev, 3, 2, 40);
         assert_eq!(w.x[(0, 9)], 9.0);
+        // Gaps: a whole new column repeats the one a period back; single gaps stay for the cold start.
+        let mut part = DMatrix::from_element(2, 6, f64::NAN);
+        part[(0, 0)] = 1.0;
+        part[(1, 0)] = 2.0;
+        part[(0, 1)] = 3.0;
+        let w = WarmStart::from_partial(part, 2, 4);
+        assert_eq!((w.x[(0, 4)], w.x[(1, 4)], w.x[(0, 5)]), (1.0, 2.0, 3.0));
+        assert!(w.x[(1, 5)].is_nan() && w.x[(0, 2)].is_nan());
         // A new meter takes the fill row.
         let r = w.with_rows(&[Some(1), None], &[7.0; 10]);
         assert_eq!((r.x[(0, 0)], r.x[(1, 3)]), (102.0, 7.0));

@@ -4,7 +4,7 @@ use std::collections::HashMap;
 
 use anyhow::Context;
 use meterveil_shared::recovery::outage::DayLayout;
-use meterveil_shared::recovery::{band95, recover, LevelMatrix, RecoveryParams, SumConstraint};
+use meterveil_shared::recovery::{band95, recover_from, LevelMatrix, RecoveryParams, SumConstraint, WarmStart};
 use meterveil_shared::FeederId;
 
 use super::WorkContext;
@@ -87,10 +87,15 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoverSpec) -> anyhow::
     let params = RecoveryParams { rank: req.rank.choice(), alpha_kw: req.alpha_kw, ..Default::default() }
         .check()
         .map_err(|e| anyhow::anyhow!("{e}"))?;
+    let warm = match &req.warm_from {
+        Some(w) => Some(warm_start(store, w, &meters, req.from, step, cols).await?),
+        None => None,
+    };
 
     let (rec, n_constraints) = super::run_reporting(s, JobTable::Recovery, job_id, move |progress| {
         let _span = tracing::info_span!("recovery").entered();
-        recover(&levels, &profile, &constraints, layout, &params, &mut |stage, f| progress(stage, f))
+        let report = &mut |stage: &str, f: f64| progress(stage, f);
+        recover_from(&levels, &profile, &constraints, layout, &params, warm.as_ref(), report)
             .map(|r| (r, constraints.len()))
             .map_err(|e| anyhow::anyhow!("{e}"))
     })
@@ -114,6 +119,36 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoverSpec) -> anyhow::
     diag["register_days"] = n_constraints.into();
     diag["meters"] = meters.len().into();
     diag["intervals"] = cols.into();
+    if let Some(w) = &req.warm_from {
+        diag["warm_from"] = w.as_str().into();
+    }
     store.finish_job(job_id, version, &out, &diag, now_s()).await?;
     Ok(())
+}
+
+/// The start of a rolling run: the finished recovery `from_job`'s estimates
+/// moved onto this window's meters and intervals, at its rank; new days take
+/// the same weekday's estimates (or the solver's cold start), new meters the
+/// cold start.
+async fn warm_start(
+    store: &crate::store::Store,
+    from_job: &str,
+    meters: &[String],
+    from: i64,
+    step: i64,
+    cols: usize,
+) -> anyhow::Result<WarmStart> {
+    let job = store.job(from_job).await?.with_context(|| format!("warm start {from_job}: no such recovery"))?;
+    let rank = job.diagnostics.as_ref().and_then(|d| d["rank"].as_u64()).unwrap_or(0) as usize;
+    anyhow::ensure!(job.state == "done" && rank > 0, "warm start {from_job}: not a finished recovery");
+    let index: HashMap<&str, usize> = meters.iter().enumerate().map(|(i, m)| (m.as_str(), i)).collect();
+    let mut x = nalgebra::DMatrix::from_element(meters.len(), cols, f64::NAN);
+    for r in store.job_rows(from_job, None).await? {
+        let j = (r.interval_start - from).div_euclid(step);
+        if let (Some(&i), true) = (index.get(r.meter_id.as_str()), (0..cols as i64).contains(&j)) {
+            x[(i, j as usize)] = r.kw;
+        }
+    }
+    let week = (7 * 86_400 / step) as usize;
+    Ok(WarmStart::from_partial(x, rank, week))
 }

@@ -40,10 +40,33 @@ pub(crate) async fn queue_recovery(s: &AppState, spec: &RecoverSpec) -> Result<S
     for p in s.store.profiles(feeder).await? {
         meterveil_shared::recovery::table::check_table_size(&p.profile, spec.alpha_kw).map_err(ApiError::Invalid)?;
     }
+    if let Some(w) = &spec.warm_from {
+        check_warm_start(s, spec, w).await?;
+    }
     let job_id = crate::jobs::new_job_id("rec");
     s.store.create_job(&job_id, spec, now_s()).await?;
     s.wake.notify_one();
     Ok(job_id)
+}
+
+/// A warm start must be a finished recovery of the same feeder whose window
+/// starts no later than this one's and overlaps it.
+async fn check_warm_start(s: &AppState, spec: &RecoverSpec, w: &str) -> Result<(), ApiError> {
+    let bad = |reason: String| ApiError::invalid("warm_from", reason);
+    let job = s.store.job(w).await?.ok_or_else(|| bad(format!("no recovery job {w}")))?;
+    if job.state != "done" {
+        return Err(bad(format!("job {w} is {}, not done", job.state)));
+    }
+    if job.feeder_id != spec.feeder_id.as_str() {
+        return Err(bad(format!("job {w} recovered feeder {}, not {}", job.feeder_id, spec.feeder_id)));
+    }
+    if job.window_start > spec.from || job.window_end <= spec.from {
+        return Err(bad(format!(
+            "job {w}'s window [{}, {}) must hold this window's start {}",
+            job.window_start, job.window_end, spec.from
+        )));
+    }
+    Ok(())
 }
 
 /// A recovery job whose results may be served: 409 until it is done.
