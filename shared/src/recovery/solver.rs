@@ -197,8 +197,7 @@ impl Ctx<'_> {
         init: &DMatrix<f64>,
         rng: &mut impl Rng,
         progress: ProgressFn<'_>,
-        scores: &mut Vec<(usize, f64)>,
-        iterations: &mut usize,
+        diagnostics: &mut Diagnostics,
     ) -> (usize, DMatrix<f64>) {
         let (p, levels) = (self.p, self.levels);
         let max_rank = levels.rows().min(levels.cols());
@@ -213,7 +212,7 @@ impl Ctx<'_> {
         for (gi, &r) in grid.iter().enumerate() {
             progress("choosing rank", gi as f64 / grid.len() as f64);
             let f = self.fit(&train, r, init, p.search_iterations, rng);
-            *iterations += f.iterations;
+            diagnostics.search_iterations += f.iterations;
             let (mut s, mut c) = (0.0, 0usize);
             for (idx, &h) in held.iter().enumerate() {
                 if h {
@@ -223,7 +222,7 @@ impl Ctx<'_> {
                 }
             }
             let score = if c > 0 { s / c as f64 } else { -f.objective };
-            scores.push((r, score));
+            diagnostics.rank_scores.push((r, score));
             if best.as_ref().is_none_or(|b| score > b.0) {
                 best = Some((score, r, f.x));
             }
@@ -451,39 +450,12 @@ pub fn recover_from(
     let p = params.get();
     let (m, n) = (levels.rows(), levels.cols());
     check_inputs(levels, profile, constraints)?;
-    if let Some(w) = warm {
-        if w.x.shape() != (m, n) || w.rank == 0 {
-            return Err(FieldError::new(
-                "warm_start",
-                format!(
-                    "holds {}×{} estimates at rank {}, the window is {m}×{n} and needs a rank of at least 1",
-                    w.x.nrows(),
-                    w.x.ncols(),
-                    w.rank
-                ),
-            ));
-        }
-    }
+    check_warm(warm, m, n)?;
     let alpha = p.alpha_kw;
     let table = LikelihoodTable::for_fit(profile, alpha)?;
     let observed: Vec<bool> = levels.as_slice().iter().map(|&v| v != MISSING).collect();
     let n_obs = observed.iter().filter(|b| **b).count();
-    let mut diagnostics = Diagnostics {
-        iterations: 0,
-        search_iterations: 0,
-        warm_start: warm.is_some(),
-        stop: Stop::Empty,
-        restarts: 0,
-        log_likelihood_per_reading: 0.0,
-        rank: 0,
-        rank_scores: Vec::new(),
-        readings: n_obs,
-        corrected: 0,
-        atypical: 0,
-        outage_intervals: 0,
-        infeasible_constraints: 0,
-        wall_s: 0.0,
-    };
+    let mut diagnostics = Diagnostics::before_fit(n_obs, warm.is_some());
     if m == 0 || n == 0 || n_obs == 0 {
         let mut x = DMatrix::zeros(m, n);
         diagnostics.infeasible_constraints = project_box_and_sums(&mut x, constraints, alpha);
@@ -500,31 +472,8 @@ pub fn recover_from(
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(p.seed);
     let init = initial_estimate(levels, &table, alpha);
     let full = Mask { active: observed.clone() };
-    let max_rank = m.min(n);
-
-    let (rank, warm_x) = match (warm, &p.rank) {
-        (Some(w), _) => {
-            // Estimates outside [0, alpha] or not finite take the cold start's value.
-            let x = w.x.zip_map(&init, |v, c| if v.is_finite() { v.clamp(0.0, alpha) } else { c });
-            (w.rank.min(max_rank), Some(x))
-        }
-        (None, RankChoice::Fixed(r)) => ((*r).min(max_rank), None),
-        (None, RankChoice::Auto(grid)) => {
-            let (r, x) = ctx.choose_rank(
-                grid,
-                &observed,
-                &init,
-                &mut rng,
-                progress,
-                &mut diagnostics.rank_scores,
-                &mut diagnostics.search_iterations,
-            );
-            (r, Some(x))
-        }
-    };
+    let (rank, start) = ctx.start(warm, init, &observed, &mut rng, progress, &mut diagnostics);
     progress("fitting", 0.0);
-    // Only one starting matrix is kept alive during the final fit.
-    let start = warm_x.unwrap_or(init);
     let fit = ctx.fit(&full, rank, &start, p.max_iterations, &mut rng);
     drop(start);
     progress("fitting", 1.0);
@@ -546,6 +495,70 @@ pub fn recover_from(
     diagnostics.atypical = fit.excluded.iter().filter(|c| **c).count() - diagnostics.corrected;
     diagnostics.wall_s = t0.elapsed().as_secs_f64();
     Ok(Recovery { x, flags, std_kw, diagnostics })
+}
+
+/// A warm start must hold the window's meters × intervals at a rank of at least 1.
+fn check_warm(warm: Option<&super::WarmStart>, m: usize, n: usize) -> Result<(), FieldError> {
+    match warm {
+        Some(w) if w.x.shape() != (m, n) || w.rank == 0 => Err(FieldError::new(
+            "warm_start",
+            format!(
+                "holds {}×{} estimates at rank {}, the window is {m}×{n} and needs a rank of at least 1",
+                w.x.nrows(),
+                w.x.ncols(),
+                w.rank
+            ),
+        )),
+        _ => Ok(()),
+    }
+}
+
+impl Diagnostics {
+    fn before_fit(readings: usize, warm_start: bool) -> Self {
+        Self {
+            iterations: 0,
+            search_iterations: 0,
+            warm_start,
+            stop: Stop::Empty,
+            restarts: 0,
+            log_likelihood_per_reading: 0.0,
+            rank: 0,
+            rank_scores: Vec::new(),
+            readings,
+            corrected: 0,
+            atypical: 0,
+            outage_intervals: 0,
+            infeasible_constraints: 0,
+            wall_s: 0.0,
+        }
+    }
+}
+
+impl Ctx<'_> {
+    /// The final fit's rank and starting matrix: the warm start's (entries not
+    /// finite take the cold start's value), the fixed rank from the cold start,
+    /// or the rank search's winner with its fit. Only one starting matrix is
+    /// kept alive into the final fit.
+    fn start(
+        &self,
+        warm: Option<&super::WarmStart>,
+        init: DMatrix<f64>,
+        observed: &[bool],
+        rng: &mut impl Rng,
+        progress: ProgressFn<'_>,
+        diagnostics: &mut Diagnostics,
+    ) -> (usize, DMatrix<f64>) {
+        let max_rank = self.levels.rows().min(self.levels.cols());
+        let alpha = self.alpha;
+        match (warm, &self.p.rank) {
+            (Some(w), _) => {
+                let x = w.x.zip_map(&init, |v, c| if v.is_finite() { v.clamp(0.0, alpha) } else { c });
+                (w.rank.min(max_rank), x)
+            }
+            (None, RankChoice::Fixed(r)) => ((*r).min(max_rank), init),
+            (None, RankChoice::Auto(grid)) => self.choose_rank(grid, observed, &init, rng, progress, diagnostics),
+        }
+    }
 }
 
 /// First-order standard deviation of each estimate under the rank-r model.

@@ -55,18 +55,6 @@ impl WarmStart {
         }
         Self { x, rank }
     }
-
-    /// Adds rows for meters the earlier window did not hold (or replaces rows):
-    /// `rows[k] = Some(i)` takes row i of this start, `None` the `fill` row
-    /// (such as the new window's per-interval mean).
-    pub fn with_rows(&self, rows: &[Option<usize>], fill: &[f64]) -> Self {
-        let n = self.x.ncols();
-        let x = DMatrix::from_fn(rows.len(), n, |k, j| match rows[k] {
-            Some(i) => self.x[(i, j)],
-            None => fill.get(j).copied().unwrap_or(0.0),
-        });
-        Self { x, rank: self.rank }
-    }
 }
 
 #[cfg(test)]
@@ -97,8 +85,5 @@ mod tests {
         let w = WarmStart::from_partial(part, 2, 4);
         assert_eq!((w.x[(0, 4)], w.x[(1, 4)], w.x[(0, 5)]), (1.0, 2.0, 3.0));
         assert!(w.x[(1, 5)].is_nan() && w.x[(0, 2)].is_nan());
-        // A new meter takes the fill row.
-        let r = w.with_rows(&[Some(1), None], &[7.0; 10]);
-        assert_eq!((r.x[(0, 0)], r.x[(1, 3)]), (102.0, 7.0));
     }
 }
