@@ -1032,6 +1032,31 @@ async fn recovery_job_over_stored_levels() {
     assert_eq!(job["result"]["coherence"].as_array().map(Vec::len), Some(3), "{job}");
     let stored = t.count(&format!("SELECT COUNT(*) FROM cluster_assignments WHERE job_id = '{cid}'")).await;
     assert_eq!(stored, 12);
+    // "The meters of cluster k" as a group: its members now, by name.
+    let put = |body: Value| {
+        let req = t.http.put(format!("{}/v1/groups/cluster-one", t.url())).bearer_auth(TOKEN).json(&body);
+        async move {
+            let r = req.send().await.expect("put");
+            (r.status(), r.json::<Value>().await.expect("json"))
+        }
+    };
+    let (st, b) = put(json!({"clustering_job": cid, "cluster": 1})).await;
+    let want: Vec<&str> =
+        rows.iter().filter(|r| r["cluster"] == 1).map(|r| r["meter_id"].as_str().expect("m")).collect();
+    assert_eq!((st, b["meters"].as_u64()), (StatusCode::OK, Some(want.len() as u64)), "{b}");
+    let g: Value = get("/v1/groups/cluster-one".into()).await.expect("group").json().await.expect("json");
+    assert_eq!(g["meters"], json!(want), "{g}");
+    for (body, field) in [
+        (json!({"clustering_job": cid, "cluster": 7}), "cluster"),
+        (json!({"clustering_job": id, "cluster": 0}), "clustering_job"),
+        (json!({"clustering_job": cid}), "meters"),
+        (json!({"clustering_job": cid, "cluster": 0, "meters": ["QM-CHAPEL-ROW-0001"]}), "meters"),
+    ] {
+        let (st, b) = put(body).await;
+        assert_eq!((st, b["field"].as_str()), (StatusCode::UNPROCESSABLE_ENTITY, Some(field)), "{b}");
+    }
+    let g: Value = get("/v1/groups/cluster-one".into()).await.expect("group").json().await.expect("json");
+    assert_eq!(g["meters"], json!(want), "a refused definition changed nothing");
     for (body, field) in [
         (json!({"recovery_jobs": [id], "clusters": 1}), "clusters"),
         (json!({"recovery_jobs": ["rec-none"]}), "recovery_jobs"),

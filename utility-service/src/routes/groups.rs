@@ -34,10 +34,37 @@ fn check_name(name: &str) -> Result<(), ApiError> {
     Ok(())
 }
 
+/// A group by its meters, or as the members of one cluster of a finished
+/// clustering (its members at the time of the call: the group does not follow
+/// a later clustering).
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
 struct GroupBody {
-    meters: Vec<String>,
+    #[serde(default)]
+    meters: Option<Vec<String>>,
+    #[serde(default)]
+    clustering_job: Option<String>,
+    #[serde(default)]
+    cluster: Option<i64>,
+}
+
+/// The members of cluster `k` of the finished clustering `job`.
+async fn cluster_members(s: &AppState, job: &str, k: i64) -> Result<Vec<String>, ApiError> {
+    let bad = |field: &str, reason: String| ApiError::invalid(field, reason);
+    let a = s.store.analysis(job).await?.ok_or_else(|| bad("clustering_job", format!("no clustering {job}")))?;
+    if a.kind != "cluster" || a.state != "done" {
+        return Err(bad(
+            "clustering_job",
+            format!("{job} is a {} job that is {}, not a finished clustering", a.kind, a.state),
+        ));
+    }
+    let all = s.store.assignments(job).await?;
+    let members: Vec<String> = all.iter().filter(|m| m.cluster == k).map(|m| m.meter_id.clone()).collect();
+    if members.is_empty() {
+        let count = all.iter().map(|m| m.cluster).max().map_or(0, |c| c + 1);
+        return Err(bad("cluster", format!("clustering {job} has clusters 0 to {}, and {k} has no member", count - 1)));
+    }
+    Ok(members)
 }
 
 async fn define(
@@ -48,11 +75,20 @@ async fn define(
 ) -> Result<Json<Value>, ApiError> {
     check_name(&name)?;
     let body: GroupBody = parse_json(&body)?;
-    if body.meters.is_empty() || body.meters.len() > MAX_GROUP_METERS {
+    let meters = match (body.meters, body.clustering_job, body.cluster) {
+        (Some(m), None, None) => m,
+        (None, Some(job), Some(k)) => cluster_members(&s, &job, k).await?,
+        _ => {
+            return Err(ApiError::invalid(
+                "meters",
+                "give either meters, or clustering_job with cluster (the members of one cluster)",
+            ))
+        }
+    };
+    if meters.is_empty() || meters.len() > MAX_GROUP_METERS {
         return Err(ApiError::invalid("meters", format!("must name 1 to {MAX_GROUP_METERS} meters")));
     }
-    let ids = body
-        .meters
+    let ids = meters
         .iter()
         .enumerate()
         .map(|(i, m)| MeterId::parse(m).map_err(|e| ApiError::Invalid(e.within(&format!("meters[{i}]")))))
