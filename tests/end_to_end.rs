@@ -2233,6 +2233,16 @@ async fn jobs_page_filters_and_refuses_bad_input(t: &TestService, plain: &reqwes
     assert!(page.contains(" UTC)") && page.contains("1 of 12 meters match") && page.contains("<svg"), "{page}");
     let (s, page) = view("?span=month".into()).await;
     assert!(s == 400 && page.contains("Not shown: span"), "{page}");
+    // A group's load charted with its band; an unknown group is named.
+    let members = json!({"meters": ["QM-CHAPEL-ROW-0001", "QM-CHAPEL-ROW-0002", "QM-CHAPEL-ROW-0003"]});
+    let r = t.http.put(format!("{}/v1/groups/lane-end", t.url())).bearer_auth(TOKEN).json(&members).send().await;
+    assert_eq!(r.expect("put").status().as_u16(), 200);
+    let (s, page) = view("/groups?name=lane-end".into()).await;
+    assert_eq!(s, 200, "{page}");
+    assert!(page.contains("Group lane-end: 3 meters") && page.contains("<svg") && page.contains("95% band"), "{page}");
+    assert!(page.contains("3 of the group's 3 meters are on this feeder") && page.contains(" UTC)"), "{page}");
+    let (s, page) = view("/groups?name=nowhere".into()).await;
+    assert!(s == 400 && page.contains("Not shown: name") && page.contains("no group nowhere"), "{page}");
     for (q, field) in
         [("?kind=sweep", "kind"), ("?feeder=QM-NOWHERE", "feeder"), ("?state=lost", "state"), ("?page=0", "page")]
     {

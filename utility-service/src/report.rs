@@ -382,10 +382,12 @@ pub(crate) fn profile_chart(
             .draw_series(LineSeries::new(recovered.iter().map(|r| (h(r.0), r.1)), BLUE.stroke_width(2)))?
             .label("recovered kW")
             .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], BLUE.stroke_width(2)));
-        chart
-            .draw_series(levels.iter().map(|l| Circle::new((h(l.0), l.1), 2, RED.mix(0.6).filled())))?
-            .label("stored level (its lower boundary, kW)")
-            .legend(|(x, y)| Circle::new((x + 9, y), 3, RED.filled()));
+        if !levels.is_empty() {
+            chart
+                .draw_series(levels.iter().map(|l| Circle::new((h(l.0), l.1), 2, RED.mix(0.6).filled())))?
+                .label("stored level (its lower boundary, kW)")
+                .legend(|(x, y)| Circle::new((x + 9, y), 3, RED.filled()));
+        }
         // Headroom above the data keeps the legend, top right, off it.
         legend(&mut chart)
     })

@@ -76,6 +76,7 @@ pub fn router() -> Router<AppState> {
         .route("/v1/dashboard/links", post(mint_link))
         .route("/dashboard", get(overview))
         .route("/dashboard/recoveries/{job_id}", get(super::meter_view::meter_page))
+        .route("/dashboard/recoveries/{job_id}/groups", get(super::group_view::group_page))
         .route("/dashboard/clusterings/{job_id}", get(clusters_page))
         .route("/dashboard/analyses/{job_id}", get(analysis_page))
         .route("/dashboard/jobs", get(jobs_page))

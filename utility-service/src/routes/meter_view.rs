@@ -113,6 +113,7 @@ pub(crate) async fn meter_page(
         p { "Shown: " (local_and_utc(from, tz)) " to " (local_and_utc(to, tz)) "." }
         (nav)
         (PreEscaped(chart))
+        p { a href=(format!("/dashboard/recoveries/{id}/groups")) { "A group's load on this recovery" } }
         p {
             (format!(
                 "Intervals of the window: {} derived, {} estimated (no reading), {} corrected (reading judged corrupt), \

@@ -7,6 +7,7 @@ pub mod analysis_forms;
 pub mod dashboard;
 pub mod feeder_page;
 pub mod feeders;
+pub mod group_view;
 pub mod groups;
 pub mod health;
 pub mod ingest;
