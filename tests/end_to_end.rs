@@ -963,18 +963,7 @@ async fn recovery_job_over_stored_levels() {
         xml.replacen("<espi:value>", "<espi:valeur>", 1).replacen("</espi:value>", "</espi:valeur>", 1),
     )
     .expect("write");
-    let validate = |p: &std::path::Path| -> Value {
-        let python = std::env::var("METERVEIL_PYTHON").unwrap_or_else(|_| "python3".into());
-        let dir = concat!(env!("CARGO_MANIFEST_DIR"), "/../tests/reference");
-        let out = std::process::Command::new(python)
-            .arg(format!("{dir}/validate_espi.py"))
-            .arg(format!("{dir}/espi"))
-            .arg(p)
-            .output()
-            .expect("python");
-        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
-        serde_json::from_slice(&out.stdout).expect("json")
-    };
+    let validate = validate_espi;
     let v = validate(&good);
     eprintln!("ESPI export: xmlschema {}, schema version {}: {v}", v["xmlschema"], v["schema_version"]);
     assert_eq!(v["valid"], true, "{v}");
@@ -1311,6 +1300,21 @@ fn energies_on_files(dir: &std::path::Path, out: &std::path::Path, meters: &[Str
 /// holds the estimate, the sum of the members' means stays near the sum of
 /// their recovered profiles, and bad definitions or windows are refused with
 /// the field named and nothing stored.
+/// The published ESPI schema's verdict on an XML file (xmlschema, through
+/// `tests/reference/validate_espi.py`).
+fn validate_espi(p: &std::path::Path) -> Value {
+    let python = std::env::var("METERVEIL_PYTHON").unwrap_or_else(|_| "python3".into());
+    let dir = concat!(env!("CARGO_MANIFEST_DIR"), "/../tests/reference");
+    let out = std::process::Command::new(python)
+        .arg(format!("{dir}/validate_espi.py"))
+        .arg(format!("{dir}/espi"))
+        .arg(p)
+        .output()
+        .expect("python");
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    serde_json::from_slice(&out.stdout).expect("json")
+}
+
 /// Starts a recovery and waits for it; the finished job.
 async fn recovery_done(t: &TestService, body: Value) -> Value {
     let (s, b) = t.post_json("/v1/recoveries", &body, true).await;
@@ -1451,6 +1455,24 @@ async fn group_loads_over_http(t: &TestService, id: &str, rows: &[Value]) {
     .expect("text");
     assert!(csv.starts_with("group,interval_start,kw,kw_low,kw_high,meters\n"), "{csv}");
     assert_eq!(csv.lines().count(), 1 + 96);
+    // The group's load as ESPI, valid against the published schema, its
+    // readings summing to the group's energy in mWh (a 15-minute kW is 250,000 mWh).
+    let xml = get(format!("/v1/recoveries/{id}/groups/transformer-7?format=espi"))
+        .await
+        .expect("espi")
+        .text()
+        .await
+        .expect("text");
+    let file = tempfile::NamedTempFile::new().expect("tmp");
+    std::fs::write(file.path(), &xml).expect("write");
+    assert_eq!(validate_espi(file.path())["valid"], true);
+    assert_eq!(xml.matches("<espi:IntervalReading>").count(), 4 * 96);
+    let mwh: f64 = xml
+        .split("<espi:value>")
+        .skip(1)
+        .map(|v| v.split('<').next().expect("value").parse::<f64>().expect("number"))
+        .sum();
+    assert!((mwh - 250_000.0 * sum_band).abs() <= 0.001 * mwh, "ESPI {mwh} mWh, group {sum_band} kW-intervals");
     for (query, field) in [("?from=5&to=4", "to"), ("?format=xml", "format")] {
         let r = get(format!("/v1/recoveries/{id}/groups/transformer-7{query}")).await.expect("bad");
         let b: Value = r.json().await.expect("json");

@@ -124,8 +124,8 @@ async fn load(
 ) -> Result<Response, ApiError> {
     check_name(&name)?;
     let format = q.format.clone().unwrap_or_else(|| "json".into());
-    if !["json", "csv"].contains(&format.as_str()) {
-        return Err(ApiError::invalid("format", format!("{format:?} is not json or csv")));
+    if !["json", "csv", "espi"].contains(&format.as_str()) {
+        return Err(ApiError::invalid("format", format!("{format:?} is not json, csv or espi")));
     }
     let job = super::recoveries::find_done(&s, &id).await?;
     let (from, to) = (q.from.unwrap_or(job.window_start), q.to.unwrap_or(job.window_end));
@@ -152,6 +152,29 @@ async fn load(
         })
         .collect();
     tracing::info!(job = %id, group = %name, meters = meters, intervals = points.len(), "group load");
+    if format == "espi" {
+        // One IntervalBlock per UTC day of the group's summed load; quality 11
+        // (calculated): a sum of recovered estimates.
+        let rows: Vec<crate::records::RecoveredRow> = points
+            .iter()
+            .map(|p| crate::records::RecoveredRow {
+                meter_id: name.clone(),
+                interval_start: p["interval_start"].as_i64().unwrap_or(0),
+                kw: p["kw"].as_f64().unwrap_or(0.0),
+                flag: "derived",
+                kw_low: p["kw_low"].as_f64().unwrap_or(0.0),
+                kw_high: p["kw_high"].as_f64().unwrap_or(0.0),
+            })
+            .collect();
+        let xml = crate::settlement::espi_feed(
+            &rows,
+            &format!("urn:meterveil:recovery:{id}:group:{name}"),
+            &format!("/v1/recoveries/{id}/groups/{name}?format=espi"),
+            u32::try_from(step).unwrap_or(900),
+            now_s(),
+        );
+        return Ok(([(header::CONTENT_TYPE, "application/atom+xml; charset=utf-8")], xml).into_response());
+    }
     if format == "csv" {
         let mut out = String::from("group,interval_start,kw,kw_low,kw_high,meters\n");
         for p in &points {
