@@ -1388,6 +1388,37 @@ async fn rolling_recovery_over_http(t: &TestService, from: i64) {
     );
     assert!(diff / norm <= 0.1, "warm and cold fits differ by {:.3}", diff / norm);
 
+    // The comparison of the two runs over the days both hold (days 1 and 2):
+    // nothing new arrived for them and their daily reads pin each day, so
+    // every meter-day is unchanged.
+    let warm_id = warm["job_id"].as_str().expect("id");
+    let cmp: Value = t
+        .http
+        .get(format!("{}/v1/recoveries/{prev_id}/compare/{warm_id}", t.url()))
+        .bearer_auth(TOKEN)
+        .send()
+        .await
+        .expect("compare")
+        .json()
+        .await
+        .expect("json");
+    assert_eq!(cmp["meter_days"], 12 * 2, "{cmp}");
+    assert_eq!(cmp["reasons"], json!({"unchanged": 24}), "{cmp}");
+    let days = cmp["days"].as_array().expect("days");
+    assert!(days
+        .iter()
+        .all(|d| d["earlier_readings"] == d["later_readings"] && d["day_start"].as_i64() >= Some(from + DAY)));
+    let other = recovery_done(t, json!({"feeder_id": "QM-MILLPOND", "from": from, "to": from + DAY})).await;
+    let r = t
+        .http
+        .get(format!("{}/v1/recoveries/{prev_id}/compare/{}", t.url(), other["job_id"].as_str().expect("id")))
+        .bearer_auth(TOKEN)
+        .send()
+        .await
+        .expect("compare");
+    assert_eq!(r.status().as_u16(), 422);
+    assert_eq!(r.json::<Value>().await.expect("json")["field"], "later");
+
     let cold_id = cold["job_id"].as_str().expect("id");
     for (bad, why) in [
         (json!({"feeder_id": "QM-MILLPOND", "from": from + DAY, "to": from + 4 * DAY, "warm_from": prev_id}), "feeder"),

@@ -143,6 +143,69 @@ pub fn daily(rows: &[RecoveredRow], reads: &[Advance], interval_s: u32) -> Vec<D
         .collect()
 }
 
+/// How one meter-day's energy moved from an earlier run to a later one.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct DayChange {
+    pub meter_id: String,
+    pub day_start: i64,
+    pub day: String,
+    /// Each run's own energy for the day (its recovered sum, which equals a
+    /// daily register advance where the run had one).
+    pub earlier_wh: f64,
+    pub later_wh: f64,
+    pub change_wh: f64,
+    /// Intervals with a reading in each run.
+    pub earlier_readings: usize,
+    pub later_readings: usize,
+    /// Why it moved: `new readings`, `fewer readings`, `register read` (the
+    /// later run met a daily read the earlier did not), `profile version`,
+    /// `refit` (none of these: the population's shape was fitted anew), or
+    /// `unchanged` (within half a watt-hour).
+    pub reasons: Vec<&'static str>,
+}
+
+/// The meter-days both runs hold, each with its change and the reasons.
+/// `profile_changed`: the runs recovered different profile versions.
+pub fn compare_days(earlier: &[DailyEnergy], later: &[DailyEnergy], profile_changed: bool) -> Vec<DayChange> {
+    let before: HashMap<(&str, i64), &DailyEnergy> =
+        earlier.iter().map(|d| ((d.meter_id.as_str(), d.day_start), d)).collect();
+    later
+        .iter()
+        .filter_map(|b| {
+            let a = before.get(&(b.meter_id.as_str(), b.day_start))?;
+            let (ra, rb) = (a.intervals - a.estimated, b.intervals - b.estimated);
+            let change = b.recovered_wh - a.recovered_wh;
+            let mut reasons = Vec::new();
+            if rb > ra {
+                reasons.push("new readings");
+            } else if rb < ra {
+                reasons.push("fewer readings");
+            }
+            let meets = |d: &DailyEnergy| b.register_wh.is_some_and(|w| (d.recovered_wh - w as f64).abs() <= 1.0);
+            if meets(b) && !meets(a) {
+                reasons.push("register read");
+            }
+            if profile_changed {
+                reasons.push("profile version");
+            }
+            if reasons.is_empty() {
+                reasons.push(if change.abs() <= 0.5 { "unchanged" } else { "refit" });
+            }
+            Some(DayChange {
+                meter_id: b.meter_id.clone(),
+                day_start: b.day_start,
+                day: b.day.clone(),
+                earlier_wh: a.recovered_wh,
+                later_wh: b.recovered_wh,
+                change_wh: change,
+                earlier_readings: ra,
+                later_readings: rb,
+                reasons,
+            })
+        })
+        .collect()
+}
+
 pub fn daily_csv(days: &[DailyEnergy]) -> String {
     let mut out = String::from(
         "meter_id,day_start,day,energy_wh,uncertainty_wh,source,quality,recovered_wh,register_wh,intervals,derived,estimated,corrected,atypical\n",
@@ -276,6 +339,44 @@ pub fn espi_feed(rows: &[RecoveredRow], feed_id: &str, base_href: &str, interval
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn a_comparison_names_why_each_day_moved() {
+        let day = |meter: &str, start: i64, wh: f64, estimated: usize, reg: Option<i64>| DailyEnergy {
+            meter_id: meter.into(),
+            day_start: start,
+            day: utc_date(start),
+            energy_wh: reg.map_or(wh, |w| w as f64),
+            uncertainty_wh: 0.0,
+            source: "recovered",
+            quality: 11,
+            recovered_wh: wh,
+            register_wh: reg,
+            intervals: 96,
+            derived: 96 - estimated,
+            estimated,
+            corrected: 0,
+            atypical: 0,
+        };
+        let earlier = vec![
+            day("A", 0, 5000.0, 10, None),
+            day("A", 86_400, 5000.0, 0, Some(6000)),
+            day("A", 172_800, 5000.0, 0, None),
+            day("A", 259_200, 5000.0, 0, None),
+        ];
+        let later = vec![
+            day("A", 0, 5400.0, 0, None),            // late readings arrived
+            day("A", 86_400, 6000.0, 0, Some(6000)), // the read was met this time
+            day("A", 172_800, 5000.2, 0, None),      // nothing new, within 0.5 Wh
+            day("A", 259_200, 5100.0, 0, None),      // nothing new, refitted
+            day("A", 345_600, 5100.0, 0, None),      // the earlier run did not hold it
+        ];
+        let c = compare_days(&earlier, &later, false);
+        let reasons: Vec<&[&str]> = c.iter().map(|d| d.reasons.as_slice()).collect();
+        assert_eq!(reasons, vec![&["new readings"][..], &["register read"], &["unchanged"], &["refit"]]);
+        assert_eq!((c[0].earlier_readings, c[0].later_readings, c[0].change_wh), (86, 96, 400.0));
+        assert!(compare_days(&earlier, &later, true).iter().all(|d| d.reasons.contains(&"profile version")));
+    }
 
     fn rows(meter: &str, from: i64, to: i64, kw: f64) -> Vec<RecoveredRow> {
         (from..to)

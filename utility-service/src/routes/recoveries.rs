@@ -21,6 +21,7 @@ pub fn router() -> Router<AppState> {
         .route("/v1/recoveries/{job_id}", get(status))
         .route("/v1/recoveries/{job_id}/intervals", get(intervals))
         .route("/v1/recoveries/{job_id}/daily", get(daily))
+        .route("/v1/recoveries/{job_id}/compare/{later}", get(compare))
 }
 
 async fn start(_: Operator, State(s): State<AppState>, body: Bytes) -> Result<(StatusCode, Json<Value>), ApiError> {
@@ -172,6 +173,56 @@ async fn daily(
         }
         other => Err(ApiError::invalid("format", format!("{other:?} is not json or csv"))),
     }
+}
+
+/// A finished recovery's daily energies (rows of all meters) against the
+/// feeder's register advances now.
+async fn daily_of(s: &AppState, job: &JobRecord) -> Result<Vec<crate::settlement::DailyEnergy>, ApiError> {
+    let rows = s.store.job_rows(&job.job_id, None).await?;
+    let feeder = FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
+    let reads = s.store.feeder_registers_between(&feeder, job.window_start, job.window_end + 1).await?;
+    Ok(crate::settlement::daily(&rows, &reads, job_interval(&rows, job)))
+}
+
+/// How each meter-day both recoveries of one feeder hold moved from the
+/// earlier (`job_id`) to the later, and why; with a summary.
+async fn compare(
+    _: Operator,
+    State(s): State<AppState>,
+    Path((id, later)): Path<(String, String)>,
+) -> Result<Json<Value>, ApiError> {
+    let (a, b) = (find_done(&s, &id).await?, find_done(&s, &later).await?);
+    if a.feeder_id != b.feeder_id {
+        let reason = format!("{later} recovered feeder {}, {id} feeder {}", b.feeder_id, a.feeder_id);
+        return Err(ApiError::invalid("later", reason));
+    }
+    let changes = crate::settlement::compare_days(
+        &daily_of(&s, &a).await?,
+        &daily_of(&s, &b).await?,
+        a.profile_version != b.profile_version,
+    );
+    let mut reasons: std::collections::BTreeMap<&str, usize> = Default::default();
+    for c in &changes {
+        for r in &c.reasons {
+            *reasons.entry(r).or_default() += 1;
+        }
+    }
+    let mut quiet: Vec<f64> = changes
+        .iter()
+        .filter(|c| c.reasons.iter().all(|r| ["refit", "unchanged"].contains(r)))
+        .map(|c| (c.change_wh / c.earlier_wh.max(1.0)).abs())
+        .collect();
+    quiet.sort_by(f64::total_cmp);
+    tracing::info!(earlier = %id, later = %later, meter_days = changes.len(), "run comparison");
+    Ok(Json(json!({
+        "feeder_id": a.feeder_id,
+        "earlier": {"job_id": id, "window_start": a.window_start, "window_end": a.window_end, "profile_version": a.profile_version},
+        "later": {"job_id": later, "window_start": b.window_start, "window_end": b.window_end, "profile_version": b.profile_version},
+        "meter_days": changes.len(),
+        "reasons": reasons,
+        "median_move_without_new_data": quiet.get(quiet.len() / 2),
+        "days": changes,
+    })))
 }
 
 /// A finished recovery's estimates as a matrix, rows in `meters`' order and
