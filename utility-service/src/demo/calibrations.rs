@@ -72,17 +72,8 @@ pub async fn calibrate_feeders(
             "group_nrmse_max": t.group, "group_size": t.group_size, "publish": true
         });
         let job = run_job(base, token, "/v1/calibrations", body, "/v1/analyses").await?;
-        let id = job["job_id"].as_str().unwrap_or_default();
-        let html = http
-            .get(format!("{base}/v1/analyses/{id}/report"))
-            .bearer_auth(token)
-            .send()
-            .await?
-            .error_for_status()?
-            .text()
-            .await?;
-        let report = dir.join(format!("calibration-{}.html", rec.feeder_id.to_lowercase()));
-        crate::offline::write_atomically(&report, html.as_bytes())?;
+        let path = dir.join(format!("calibration-{}.html", rec.feeder_id.to_lowercase()));
+        let report = super::save_report(base, token, &job, &path).await?;
         out.push(FeederCalibration { feeder_id: rec.feeder_id.clone(), result: job["result"].clone(), report });
     }
     Ok(out)

@@ -334,7 +334,6 @@ async fn privacy_check(
     rec: &FeederRecovery,
     dir: &std::path::Path,
 ) -> anyhow::Result<PrivacyCheck> {
-    let http = reqwest::Client::new();
     anyhow::ensure!(!rec.first_meter.is_empty(), "the recovery of {} holds no meter", rec.feeder_id);
     let captured = rec.first_meter.clone();
     eprintln!("demo: auditing what an eavesdropper holding {captured} could learn ...");
@@ -357,8 +356,19 @@ async fn privacy_check(
             daily_energy_error: energy,
         });
     }
-    let id = audit["job_id"].as_str().unwrap_or_default();
-    let html = http
+    let reports = vec![save_report(base, token, &audit, &dir.join("audit.html")).await?];
+    Ok(PrivacyCheck { feeder_id: rec.feeder_id.clone(), captured, audit: audit["result"].clone(), reports, by_period })
+}
+
+/// Writes a finished audit's or calibration's HTML report to `path`; returns it.
+async fn save_report(
+    base: &str,
+    token: &str,
+    job: &serde_json::Value,
+    path: &std::path::Path,
+) -> anyhow::Result<PathBuf> {
+    let id = job["job_id"].as_str().unwrap_or_default();
+    let html = reqwest::Client::new()
         .get(format!("{base}/v1/analyses/{id}/report"))
         .bearer_auth(token)
         .send()
@@ -366,10 +376,8 @@ async fn privacy_check(
         .error_for_status()?
         .text()
         .await?;
-    let path = dir.join("audit.html");
-    crate::offline::write_atomically(&path, html.as_bytes())?;
-    let reports = vec![path];
-    Ok(PrivacyCheck { feeder_id: rec.feeder_id.clone(), captured, audit: audit["result"].clone(), reports, by_period })
+    crate::offline::write_atomically(path, html.as_bytes())?;
+    Ok(path.to_path_buf())
 }
 
 /// Clusters the town's meters by load shape (the stability rule's count), as a
