@@ -26,8 +26,13 @@ use serde_json::{json, Value};
 
 const TOKEN: &str = "test-operator-token-0123456789";
 
+#[path = "end_to_end/settlement_runs.rs"]
+mod settlement_runs;
+
 struct TestService {
     svc: RunningService,
+    /// The database's URL, for more processes on it.
+    db: String,
     _dir: tempfile::TempDir,
     http: reqwest::Client,
     /// The key of gateway gw-1 once `small_feeder` provisioned it, and its next sequence number.
@@ -110,10 +115,11 @@ async fn signed_upload(
 
 async fn spawn_service_with(tweak: impl FnOnce(&mut ServiceConfig)) -> TestService {
     let dir = tempfile::tempdir().expect("tempdir");
-    let mut config = ServiceConfig::local(test_database(dir.path()).await, Secret::new(TOKEN));
+    let db = test_database(dir.path()).await;
+    let mut config = ServiceConfig::local(db.clone(), Secret::new(TOKEN));
     tweak(&mut config);
     let svc = app::start(config).await.expect("service starts");
-    TestService { svc, _dir: dir, http: reqwest::Client::new(), gw_key: Default::default(), seq: AtomicU64::new(0) }
+    TestService { svc, db, _dir: dir, http: reqwest::Client::new(), gw_key: Default::default(), seq: AtomicU64::new(0) }
 }
 
 async fn spawn_service() -> TestService {
@@ -2720,6 +2726,7 @@ async fn copies_racing_through_two_services_on_one_database_are_stored_once() {
     };
     let t = TestService {
         svc: app::start(config()).await.expect("first service"),
+        db: url.clone(),
         _dir: dir,
         http: reqwest::Client::new(),
         gw_key: Default::default(),
@@ -3374,6 +3381,7 @@ async fn several_workers_share_one_queue_and_claim_each_job_once() {
                 rank: RankSetting::AUTO,
                 alpha_kw: 15.0,
                 warm_from: None,
+                settles: None,
             };
             setup.create_job(&id, &spec, now - 100 + i).await.expect("job");
             want.insert(id, Some(f.to_owned()));

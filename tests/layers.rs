@@ -13,7 +13,21 @@ const LAYERS: &[(&str, &[&str])] = &[
     ("routes", &["routes", "error"]),
     ("work", &["jobs", "committer"]),
     ("store", &["store"]),
-    ("rules", &["ingest", "settlement", "report", "records", "jobspec", "config", "metrics", "clock"]),
+    (
+        "rules",
+        &[
+            "ingest",
+            "settlement",
+            "schedule",
+            "reconcile",
+            "report",
+            "records",
+            "jobspec",
+            "config",
+            "metrics",
+            "clock",
+        ],
+    ),
 ];
 
 /// Crates the rules layer may not use: it is pure, with no IO of its own.

@@ -77,7 +77,13 @@ pub async fn start_with_store(
         buckets: Default::default(),
         committer,
     };
-    let worker = state.config.run_worker.then(|| tokio::spawn(crate::jobs::worker::run(state.work.clone())));
+    // The worker and, beside it, the settlement scheduler.
+    let worker = state.config.run_worker.then(|| {
+        let (w, s) = (state.work.clone(), state.work.clone());
+        tokio::spawn(async move {
+            tokio::join!(crate::jobs::worker::run(w), crate::jobs::schedule::run(s));
+        })
+    });
     // A request that takes longer than this is answered 408 and dropped; a batch's
     // commit is one transaction, so nothing half-written remains.
     let app = routes::router(state)

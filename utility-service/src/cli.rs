@@ -48,7 +48,8 @@ pub enum Command {
         #[arg(long, default_value_t = 30)]
         job_lease_s: i64,
     },
-    /// Run a job worker only (no HTTP) against the database; start several to share the work.
+    /// Run a job worker (and the settlement scheduler) only, no HTTP, against
+    /// the database; start several to share the work.
     Work {
         #[arg(long, env = "DATABASE_URL", default_value = "sqlite:meterveil.sqlite")]
         database_url: String,
@@ -393,7 +394,8 @@ async fn work(database_url: String, job_lease_s: i64, feeders: Vec<String>) -> a
         None => println!("worker {} started for every feeder", state.store.worker_id()),
     }
     tokio::select! {
-        _ = crate::jobs::worker::run(state) => {}
+        _ = crate::jobs::worker::run(state.clone()) => {}
+        _ = crate::jobs::schedule::run(state) => {}
         _ = tokio::signal::ctrl_c() => tracing::info!("Ctrl-C: the running job's lease will expire and another worker retries it"),
     }
     Ok(())

@@ -49,6 +49,9 @@ pub struct ServiceConfig {
     /// A worker sharded by feeder claims only these feeders' jobs (None: all jobs,
     /// including town-wide analyses).
     pub job_feeders: Option<Vec<String>>,
+    /// How often (seconds) a process with a worker looks for settlement runs
+    /// that have fallen due.
+    pub schedule_every_s: u64,
     /// Master key the gateways' keys are derived from (never stored in the database).
     pub gateway_master_key: Secret,
     /// How far (seconds) a signed upload's timestamp may be from the service's clock.
@@ -80,6 +83,7 @@ impl ServiceConfig {
             job_lease_s: 30,
             job_max_attempts: 3,
             job_feeders: None,
+            schedule_every_s: 60,
             gateway_master_key: Secret::new(random_key()),
             signature_window_s: 300,
             gateway_batches_per_s: 20.0,

@@ -123,6 +123,18 @@ pub struct RecoverSpec {
     /// The finished recovery the fit starts from, if any.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub warm_from: Option<String>,
+    /// The settlement run this recovery computes: it starts from the newest
+    /// finished recovery of the feeder that holds its window's start, and its
+    /// day's figures are frozen into the run when it finishes.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub settles: Option<SettledDay>,
+}
+
+/// The settlement run a recovery computes, and its day.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SettledDay {
+    pub run_id: String,
+    pub day_start: i64,
 }
 
 impl RecoverRequest {
@@ -142,7 +154,15 @@ impl RecoverRequest {
         if self.warm_from.as_ref().is_some_and(|w| w.is_empty() || w.len() > 64) {
             return Err(FieldError::new("warm_from", "must name a recovery job"));
         }
-        Ok(RecoverSpec { feeder_id, from: self.from, to: self.to, rank, alpha_kw, warm_from: self.warm_from })
+        Ok(RecoverSpec {
+            feeder_id,
+            from: self.from,
+            to: self.to,
+            rank,
+            alpha_kw,
+            warm_from: self.warm_from,
+            settles: None,
+        })
     }
 }
 

@@ -12,14 +12,14 @@ use std::fmt::Write as _;
 
 use chrono::{DateTime, SecondsFormat, TimeZone, Utc};
 use chrono_tz::Tz;
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 
 use meterveil_shared::recovery::{LevelMatrix, SumConstraint};
 
 use crate::records::RecoveredRow;
 
-/// One meter-day of settlement.
-#[derive(Debug, Clone, Serialize, PartialEq)]
+/// One meter-day of settlement (also as frozen into a settlement run).
+#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
 pub struct DailyEnergy {
     pub meter_id: String,
     /// UTC epoch second of the day's start (a UTC midnight).
@@ -34,7 +34,7 @@ pub struct DailyEnergy {
     /// intervals' bands combined as independent (an understatement: interval
     /// errors of one meter-day are correlated).
     pub uncertainty_wh: f64,
-    pub source: &'static str,
+    pub source: String,
     /// ESPI QualityOfReading of `energy_wh`: 0 (valid, a register advance) or
     /// 11 (derived, from the recovery); the code values are from memory of the
     /// NAESB REQ.21 QualityOfReading list, as in `espi_quality`.
@@ -128,7 +128,7 @@ pub fn daily(rows: &[RecoveredRow], reads: &[Advance], interval_s: u32) -> Vec<D
                 day_start: day,
                 energy_wh: reg.map_or(recovered, |w| w as f64),
                 uncertainty_wh: if reg.is_some() { 0.0 } else { var.sqrt() },
-                source: if reg.is_some() { "register" } else { "recovered" },
+                source: if reg.is_some() { "register" } else { "recovered" }.into(),
                 quality: if reg.is_some() { 0 } else { 11 },
                 recovered_wh: recovered,
                 register_wh: reg,
@@ -204,6 +204,24 @@ pub fn compare_days(earlier: &[DailyEnergy], later: &[DailyEnergy], profile_chan
             })
         })
         .collect()
+}
+
+/// A comparison's counts per reason, and the median relative move of the
+/// meter-days that gained nothing (reasons `refit` or `unchanged` only).
+pub fn comparison_summary(changes: &[DayChange]) -> (std::collections::BTreeMap<&'static str, usize>, Option<f64>) {
+    let mut reasons: std::collections::BTreeMap<&str, usize> = Default::default();
+    for c in changes {
+        for r in &c.reasons {
+            *reasons.entry(r).or_default() += 1;
+        }
+    }
+    let mut quiet: Vec<f64> = changes
+        .iter()
+        .filter(|c| c.reasons.iter().all(|r| ["refit", "unchanged"].contains(r)))
+        .map(|c| (c.change_wh / c.earlier_wh.max(1.0)).abs())
+        .collect();
+    quiet.sort_by(f64::total_cmp);
+    (reasons, quiet.get(quiet.len() / 2).copied())
 }
 
 pub fn daily_csv(days: &[DailyEnergy]) -> String {
@@ -282,7 +300,8 @@ fn xml_escape(s: &str) -> String {
 
 /// An Atom feed holding one ESPI ReadingType (energy, mWh, forward, delta data)
 /// and one IntervalBlock per meter and UTC day, values in milliwatt-hours.
-pub fn espi_feed(rows: &[RecoveredRow], feed_id: &str, base_href: &str, interval_s: u32, now: i64) -> String {
+pub fn espi_feed(rows: &[RecoveredRow], feed: (&str, &str), base_href: &str, interval_s: u32, now: i64) -> String {
+    let (feed_id, title) = feed;
     let updated =
         DateTime::<Utc>::from_timestamp(now, 0).unwrap_or_default().to_rfc3339_opts(SecondsFormat::Secs, true);
     let mwh_per_kw = f64::from(interval_s) / 3.6 * 1000.0;
@@ -291,13 +310,14 @@ pub fn espi_feed(rows: &[RecoveredRow], feed_id: &str, base_href: &str, interval
     let _ = write!(
         x,
         "<?xml version=\"1.0\" encoding=\"UTF-8\"?>\n<feed xmlns=\"http://www.w3.org/2005/Atom\" xmlns:espi=\"http://naesb.org/espi\">\n\
-         <id>{id}</id>\n<title>Recovered interval energy</title>\n<updated>{updated}</updated>\n<link rel=\"self\" href=\"{href}\"/>\n\
+         <id>{id}</id>\n<title>{title}</title>\n<updated>{updated}</updated>\n<link rel=\"self\" href=\"{href}\"/>\n\
          <entry>\n<id>{id}/reading-type</id>\n<title>Energy delivered, mWh per interval</title>\n<published>{updated}</published>\n\
          <updated>{updated}</updated>\n<link rel=\"self\" href=\"{href}#reading-type\"/>\n<link rel=\"up\" href=\"{href}\"/>\n\
          <content><espi:ReadingType><espi:accumulationBehaviour>4</espi:accumulationBehaviour><espi:commodity>1</espi:commodity>\
          <espi:defaultQuality>11</espi:defaultQuality><espi:flowDirection>1</espi:flowDirection><espi:intervalLength>{interval_s}</espi:intervalLength>\
          <espi:kind>12</espi:kind><espi:powerOfTenMultiplier>-3</espi:powerOfTenMultiplier><espi:uom>72</espi:uom></espi:ReadingType></content>\n</entry>\n",
         id = xml_escape(feed_id),
+        title = xml_escape(title),
     );
     let mut i = 0;
     while i < rows.len() {
@@ -348,7 +368,7 @@ mod tests {
             day: utc_date(start),
             energy_wh: reg.map_or(wh, |w| w as f64),
             uncertainty_wh: 0.0,
-            source: "recovered",
+            source: "recovered".into(),
             quality: 11,
             recovered_wh: wh,
             register_wh: reg,
@@ -437,9 +457,12 @@ mod tests {
         let reads = vec![adv(day, day + 86_400, 12_345), adv(day, day + 2 * 86_400, 24_000)];
         let d = daily(&r, &reads, 900);
         assert_eq!(d.len(), 2);
-        assert_eq!((d[0].energy_wh, d[0].source, d[0].uncertainty_wh, d[0].quality), (12_345.0, "register", 0.0, 0));
+        assert_eq!(
+            (d[0].energy_wh, d[0].source.as_str(), d[0].uncertainty_wh, d[0].quality),
+            (12_345.0, "register", 0.0, 0)
+        );
         assert!((d[0].recovered_wh - 12_000.0).abs() < 1e-9);
-        assert_eq!((d[1].source, d[1].energy_wh, d[1].quality), ("recovered", 12_000.0, 11));
+        assert_eq!((d[1].source.as_str(), d[1].energy_wh, d[1].quality), ("recovered", 12_000.0, 11));
         assert!(d[1].uncertainty_wh > 0.0);
         assert_eq!(d[0].derived, 96);
     }

@@ -3,6 +3,8 @@
 pub mod audit;
 pub mod cluster;
 pub mod recover;
+pub mod schedule;
+pub mod settle;
 pub mod worker;
 
 use std::sync::{Arc, Mutex};
@@ -23,11 +25,14 @@ pub struct WorkContext {
     pub config: Arc<ServiceConfig>,
     /// Wakes this process's job worker when a job is queued.
     pub wake: Arc<tokio::sync::Notify>,
+    /// What job leases and the settlement schedule go by (the system clock
+    /// but in tests that drive simulated days).
+    pub clock: crate::clock::Clock,
 }
 
 impl WorkContext {
     pub fn new(store: Store, config: ServiceConfig) -> Self {
-        Self { store, config: Arc::new(config), wake: Default::default() }
+        Self { store, config: Arc::new(config), wake: Default::default(), clock: Default::default() }
     }
 }
 

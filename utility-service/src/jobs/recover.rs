@@ -87,8 +87,23 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoverSpec) -> anyhow::
     let params = RecoveryParams { rank: req.rank.choice(), alpha_kw: req.alpha_kw, ..Default::default() }
         .check()
         .map_err(|e| anyhow::anyhow!("{e}"))?;
-    let warm = match &req.warm_from {
+    // A settlement run starts from the day's previous run (so that a day that
+    // gained nothing stays where it was), else the latest earlier day's, else
+    // the newest finished fit that holds its start.
+    let warm_from = match (&req.warm_from, &req.settles) {
+        (Some(w), _) => Some(w.clone()),
+        (None, Some(run)) => match store.previous_run_job(&req.feeder_id, run.day_start, req.from).await? {
+            Some(j) => Some(j),
+            None => store.latest_recovery_holding(&req.feeder_id, req.from).await?,
+        },
+        (None, None) => None,
+    };
+    let warm = match &warm_from {
         Some(w) => Some(warm_start(store, w, &meters, req.from, step, cols).await?),
+        None => None,
+    };
+    let day_inputs = match &req.settles {
+        Some(run) => Some(super::settle::inputs(store, req, run, &meters, &levels, version, step).await?),
         None => None,
     };
 
@@ -119,10 +134,17 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoverSpec) -> anyhow::
     diag["register_days"] = n_constraints.into();
     diag["meters"] = meters.len().into();
     diag["intervals"] = cols.into();
-    if let Some(w) = &req.warm_from {
+    if let Some(w) = &warm_from {
         diag["warm_from"] = w.as_str().into();
     }
-    store.finish_job(job_id, version, &out, &diag, now_s()).await?;
+    let frozen = match (&req.settles, day_inputs) {
+        (Some(run), Some(day)) => {
+            Some((run.run_id.as_str(), super::settle::freeze(store, req, run, day, &mut out, step, &mut diag).await?))
+        }
+        _ => None,
+    };
+    let run = frozen.as_ref().map(|(id, days)| (*id, days.as_str()));
+    store.finish_job(job_id, version, &out, &diag, run, now_s()).await?;
     Ok(())
 }
 

@@ -9,20 +9,30 @@ use crate::clock::now_s;
 use crate::jobspec::JobSpec;
 use crate::store::queue::Claimed;
 
+/// Ends the lease renewal when the job's run ends, however it ends (also when
+/// the worker's task is aborted: a dead worker's lease must run out).
+struct Heartbeat(tokio::task::JoinHandle<()>);
+
+impl Drop for Heartbeat {
+    fn drop(&mut self) {
+        self.0.abort();
+    }
+}
+
 /// Runs one claimed job to its end (done or failed), renewing its lease meanwhile.
 async fn execute(s: &WorkContext, c: Claimed) {
     let lease = s.config.job_lease_s.max(3);
-    let (store, table, id) = (s.store.clone(), c.table, c.job_id.clone());
-    let heartbeat = tokio::spawn(async move {
+    let (store, table, id, clock) = (s.store.clone(), c.table, c.job_id.clone(), s.clock.clone());
+    let _heartbeat = Heartbeat(tokio::spawn(async move {
         loop {
             tokio::time::sleep(Duration::from_secs((lease / 3).max(1) as u64)).await;
-            match store.renew_lease(table, &id, now_s() + lease).await {
+            match store.renew_lease(table, &id, clock.now() + lease).await {
                 Ok(true) => {}
                 Ok(false) => break,
                 Err(e) => tracing::warn!(job = %id, error = %e, "lease renewal failed"),
             }
         }
-    });
+    }));
     let id = c.job_id.clone();
     match c.spec {
         Ok(spec) => {
@@ -39,7 +49,6 @@ async fn execute(s: &WorkContext, c: Claimed) {
             let _ = s.store.fail(c.table, &id, &reason, now_s()).await;
         }
     }
-    heartbeat.abort();
 }
 
 /// Claims and runs jobs until the task is aborted.
@@ -48,7 +57,7 @@ pub async fn run(s: WorkContext) {
         match s
             .store
             .claim_next(
-                now_s(),
+                s.clock.now(),
                 s.config.job_lease_s.max(3),
                 s.config.job_max_attempts,
                 s.config.job_feeders.as_deref(),

@@ -168,7 +168,7 @@ async fn load(
             .collect();
         let xml = crate::settlement::espi_feed(
             &rows,
-            &format!("urn:meterveil:recovery:{id}:group:{name}"),
+            (&format!("urn:meterveil:recovery:{id}:group:{name}"), &format!("Load of group {name}")),
             &format!("/v1/recoveries/{id}/groups/{name}?format=espi"),
             u32::try_from(step).unwrap_or(900),
             now_s(),

@@ -16,6 +16,7 @@ pub mod meter_view;
 pub mod overview;
 pub mod publish;
 pub mod recoveries;
+pub mod settlement_runs;
 pub mod tariffs;
 
 use std::sync::Arc;
@@ -58,6 +59,7 @@ pub fn router(state: AppState) -> Router {
         .merge(recoveries::router())
         .merge(groups::router())
         .merge(tariffs::router())
+        .merge(settlement_runs::router())
         .merge(analyses::router())
         .merge(dashboard::router())
         .merge(actions::router())

@@ -115,7 +115,7 @@ async fn intervals(
         "espi" => {
             let xml = crate::settlement::espi_feed(
                 &rows,
-                &format!("urn:meterveil:recovery:{id}"),
+                (&format!("urn:meterveil:recovery:{id}"), "Recovered interval energy"),
                 &format!("/v1/recoveries/{id}/intervals?format=espi"),
                 interval_s,
                 now_s(),
@@ -201,18 +201,7 @@ async fn compare(
         &daily_of(&s, &b).await?,
         a.profile_version != b.profile_version,
     );
-    let mut reasons: std::collections::BTreeMap<&str, usize> = Default::default();
-    for c in &changes {
-        for r in &c.reasons {
-            *reasons.entry(r).or_default() += 1;
-        }
-    }
-    let mut quiet: Vec<f64> = changes
-        .iter()
-        .filter(|c| c.reasons.iter().all(|r| ["refit", "unchanged"].contains(r)))
-        .map(|c| (c.change_wh / c.earlier_wh.max(1.0)).abs())
-        .collect();
-    quiet.sort_by(f64::total_cmp);
+    let (reasons, quiet) = crate::settlement::comparison_summary(&changes);
     tracing::info!(earlier = %id, later = %later, meter_days = changes.len(), "run comparison");
     Ok(Json(json!({
         "feeder_id": a.feeder_id,
@@ -220,7 +209,7 @@ async fn compare(
         "later": {"job_id": later, "window_start": b.window_start, "window_end": b.window_end, "profile_version": b.profile_version},
         "meter_days": changes.len(),
         "reasons": reasons,
-        "median_move_without_new_data": quiet.get(quiet.len() / 2),
+        "median_move_without_new_data": quiet,
         "days": changes,
     })))
 }

@@ -49,6 +49,7 @@ pub mod sessions;
 pub mod tariffs;
 
 pub mod recoveries;
+pub mod runs;
 
 /// Rows per multi-row INSERT; 1000 rows of 5 values stays far below SQLite's
 /// 32766 and PostgreSQL's 65535 bounds on statement parameters.

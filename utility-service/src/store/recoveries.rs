@@ -57,13 +57,16 @@ impl Store {
         Ok(())
     }
 
-    /// Stores all results and marks the job done in one transaction.
+    /// Stores all results and marks the job done in one transaction; with
+    /// `run` (a settlement run's id and its day's figures as JSON), freezes
+    /// those figures into the run in the same transaction.
     pub async fn finish_job(
         &self,
         id: &str,
         profile_version: u32,
         rows: &[RecoveredRow],
         diagnostics: &serde_json::Value,
+        run: Option<(&str, &str)>,
         now: i64,
     ) -> Result<(), StoreError> {
         let _w = self.write_lock().await;
@@ -110,6 +113,14 @@ impl Store {
                     .bind(r.kw_high);
             }
             q.execute(&mut *tx).await?;
+        }
+        if let Some((run_id, days)) = run {
+            sqlx::query("UPDATE settlement_runs SET days = $1 WHERE run_id = $2 AND job_id = $3 AND days IS NULL")
+                .bind(days)
+                .bind(run_id)
+                .bind(id)
+                .execute(&mut *tx)
+                .await?;
         }
         tx.commit().await?;
         Ok(())
