@@ -218,6 +218,11 @@ async fn check_runs(t: &TestService, feeders: &[&str], d1: i64, restart: i64) {
             assert_eq!(r["state"], "done", "{r}");
             let job = get_json(t, &format!("/v1/recoveries/{}", r["job_id"].as_str().expect("job"))).await;
             let first = r["day"] == date(d1) && r["kind"] == "initial";
+            let kept = format!(
+                "SELECT COUNT(*) FROM recovered_intervals WHERE job_id = '{}'",
+                r["job_id"].as_str().expect("job")
+            );
+            assert_eq!(t.count(&kept).await, 12 * 96, "a run keeps its own day's estimates only");
             assert_eq!(job["diagnostics"]["warm_start"].as_bool(), Some(!first), "{f} {r}: {}", job["diagnostics"]);
             if r["created_at"].as_i64() == Some(restart) {
                 assert!(r["due_at"].as_i64() < Some(restart), "caught up: {r}");

@@ -87,20 +87,29 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoverSpec) -> anyhow::
     let params = RecoveryParams { rank: req.rank.choice(), alpha_kw: req.alpha_kw, ..Default::default() }
         .check()
         .map_err(|e| anyhow::anyhow!("{e}"))?;
-    // A settlement run starts from the day's previous run (so that a day that
-    // gained nothing stays where it was), else the latest earlier day's, else
-    // the newest finished fit that holds its start.
-    let warm_from = match (&req.warm_from, &req.settles) {
-        (Some(w), _) => Some(w.clone()),
-        (None, Some(run)) => match store.previous_run_job(&req.feeder_id, run.day_start, req.from).await? {
-            Some(j) => Some(j),
-            None => store.latest_recovery_holding(&req.feeder_id, req.from).await?,
-        },
-        (None, None) => None,
-    };
-    let warm = match &warm_from {
-        Some(w) => Some(warm_start(store, w, &meters, req.from, step, cols).await?),
-        None => None,
+    // A settlement run starts from the latest run of each day its window
+    // holds (each run keeps only its own day's estimates).
+    let (warm_from, warm) = match (&req.warm_from, &req.settles) {
+        (Some(w), _) => {
+            let days = [(w.clone(), None)];
+            (vec![w.clone()], Some(warm_start(store, &days, &meters, req.from, step, cols).await?))
+        }
+        (None, Some(_)) => {
+            let days: Vec<(String, Option<i64>)> = store
+                .latest_runs_between(&req.feeder_id, req.from, req.to)
+                .await?
+                .into_iter()
+                .map(|(day, job)| (job, Some(day)))
+                .collect();
+            let jobs = days.iter().map(|d| d.0.clone()).collect();
+            let warm = if days.is_empty() {
+                None
+            } else {
+                Some(warm_start(store, &days, &meters, req.from, step, cols).await?)
+            };
+            (jobs, warm)
+        }
+        (None, None) => (Vec::new(), None),
     };
     let day_inputs = match &req.settles {
         Some(run) => Some(super::settle::inputs(store, req, run, &meters, &levels, version, step).await?),
@@ -134,8 +143,10 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoverSpec) -> anyhow::
     diag["register_days"] = n_constraints.into();
     diag["meters"] = meters.len().into();
     diag["intervals"] = cols.into();
-    if let Some(w) = &warm_from {
-        diag["warm_from"] = w.as_str().into();
+    match warm_from.as_slice() {
+        [] => {}
+        [w] => diag["warm_from"] = w.as_str().into(),
+        many => diag["warm_from"] = many.into(),
     }
     let frozen = match (&req.settles, day_inputs) {
         (Some(run), Some(day)) => {
@@ -144,31 +155,39 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoverSpec) -> anyhow::
         _ => None,
     };
     let run = frozen.as_ref().map(|(id, days)| (*id, days.as_str()));
+    if let Some(run) = &req.settles {
+        // A settlement run keeps its own day's estimates only.
+        out.retain(|r| (run.day_start..run.day_start + 86_400).contains(&r.interval_start));
+    }
     store.finish_job(job_id, version, &out, &diag, run, now_s()).await?;
     Ok(())
 }
 
-/// The start of a rolling run: the finished recovery `from_job`'s estimates
-/// moved onto this window's meters and intervals, at its rank; new days take
-/// the same weekday's estimates (or the solver's cold start), new meters the
-/// cold start.
+/// The start of a rolling run: finished recoveries' estimates (each whole,
+/// or only its day from the given start) moved onto this window's meters and
+/// intervals, at the rank of the last; new days take the same weekday's
+/// estimates (or the solver's cold start), new meters the cold start.
 async fn warm_start(
     store: &crate::store::Store,
-    from_job: &str,
+    sources: &[(String, Option<i64>)],
     meters: &[String],
     from: i64,
     step: i64,
     cols: usize,
 ) -> anyhow::Result<WarmStart> {
-    let job = store.job(from_job).await?.with_context(|| format!("warm start {from_job}: no such recovery"))?;
-    let rank = job.diagnostics.as_ref().and_then(|d| d["rank"].as_u64()).unwrap_or(0) as usize;
-    anyhow::ensure!(job.state == "done" && rank > 0, "warm start {from_job}: not a finished recovery");
     let index: HashMap<&str, usize> = meters.iter().enumerate().map(|(i, m)| (m.as_str(), i)).collect();
     let mut x = nalgebra::DMatrix::from_element(meters.len(), cols, f64::NAN);
-    for r in store.job_rows(from_job, None).await? {
-        let j = (r.interval_start - from).div_euclid(step);
-        if let (Some(&i), true) = (index.get(r.meter_id.as_str()), (0..cols as i64).contains(&j)) {
-            x[(i, j as usize)] = r.kw;
+    let mut rank = 0;
+    for (from_job, day) in sources {
+        let job = store.job(from_job).await?.with_context(|| format!("warm start {from_job}: no such recovery"))?;
+        rank = job.diagnostics.as_ref().and_then(|d| d["rank"].as_u64()).unwrap_or(0) as usize;
+        anyhow::ensure!(job.state == "done" && rank > 0, "warm start {from_job}: not a finished recovery");
+        for r in store.job_rows(from_job, None).await? {
+            let j = (r.interval_start - from).div_euclid(step);
+            let in_day = day.is_none_or(|d| (d..d + 86_400).contains(&r.interval_start));
+            if let (Some(&i), true, true) = (index.get(r.meter_id.as_str()), (0..cols as i64).contains(&j), in_day) {
+                x[(i, j as usize)] = r.kw;
+            }
         }
     }
     let week = (7 * 86_400 / step) as usize;

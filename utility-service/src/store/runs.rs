@@ -189,25 +189,25 @@ impl Store {
         .await?)
     }
 
-    /// Where a settlement run of the day `day_start` over a window from
-    /// `from` starts: the newest finished run of that day, else of the latest
-    /// day before it, whose window holds `from`.
-    pub async fn previous_run_job(
+    /// The newest finished run of each day in [from, to), oldest day first,
+    /// as (day start, job): where a rolling settlement run starts from.
+    pub async fn latest_runs_between(
         &self,
         feeder: &FeederId,
-        day_start: i64,
         from: i64,
-    ) -> Result<Option<String>, StoreError> {
-        Ok(sqlx::query_scalar(
-            "SELECT j.job_id FROM settlement_runs r JOIN recovery_jobs j ON j.job_id = r.job_id
-             WHERE r.feeder_id = $1 AND r.day_start <= $2 AND j.state = 'done' AND r.days IS NOT NULL
-             AND j.window_start <= $3 AND j.window_end > $3
-             ORDER BY r.day_start DESC, r.version DESC LIMIT 1",
+        to: i64,
+    ) -> Result<Vec<(i64, String)>, StoreError> {
+        Ok(sqlx::query_as(
+            "SELECT r.day_start, r.job_id FROM settlement_runs r
+             WHERE r.feeder_id = $1 AND r.day_start >= $2 AND r.day_start < $3 AND r.days IS NOT NULL
+             AND r.version = (SELECT MAX(q.version) FROM settlement_runs q
+                              WHERE q.feeder_id = r.feeder_id AND q.day_start = r.day_start AND q.days IS NOT NULL)
+             ORDER BY r.day_start",
         )
         .bind(feeder.as_str())
-        .bind(day_start)
         .bind(from)
-        .fetch_optional(&self.pool)
+        .bind(to)
+        .fetch_all(&self.pool)
         .await?)
     }
 
@@ -224,19 +224,6 @@ impl Store {
         )
         .bind(feeder.as_str())
         .bind(day_start)
-        .fetch_optional(&self.pool)
-        .await?)
-    }
-
-    /// The newest finished recovery of a feeder whose window holds `t`: where
-    /// a rolling run starts from when no earlier run does.
-    pub async fn latest_recovery_holding(&self, feeder: &FeederId, t: i64) -> Result<Option<String>, StoreError> {
-        Ok(sqlx::query_scalar(
-            "SELECT job_id FROM recovery_jobs WHERE feeder_id = $1 AND state = 'done'
-             AND window_start <= $2 AND window_end > $2 ORDER BY finished_at DESC, job_id LIMIT 1",
-        )
-        .bind(feeder.as_str())
-        .bind(t)
         .fetch_optional(&self.pool)
         .await?)
     }
