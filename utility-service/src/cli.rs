@@ -59,6 +59,10 @@ pub enum Command {
         /// feeder. Without it the worker takes every job, town-wide analyses included.
         #[arg(long = "feeder", value_name = "FEEDER_ID")]
         feeders: Vec<String>,
+        /// Run jobs only; leave making the scheduled settlement runs to other
+        /// processes (each process with a worker makes them otherwise).
+        #[arg(long)]
+        no_schedule: bool,
     },
     /// Print a fresh one-time dashboard sign-in link (valid two minutes) for
     /// any `serve` process on this database.
@@ -330,7 +334,9 @@ async fn shutdown_signal() {
 
 pub async fn execute(cli: Cli) -> anyhow::Result<()> {
     match cli.command {
-        Command::Work { database_url, job_lease_s, feeders } => work(database_url, job_lease_s, feeders).await,
+        Command::Work { database_url, job_lease_s, feeders, no_schedule } => {
+            work(database_url, job_lease_s, feeders, no_schedule).await
+        }
         Command::Jobs { database_url, action } => jobs_command(&database_url, action).await,
         Command::DashboardLink { database_url, url, next, who } => {
             let store = crate::store::Store::open(&database_url).await?;
@@ -380,7 +386,7 @@ pub async fn execute(cli: Cli) -> anyhow::Result<()> {
 }
 
 /// `utility-service work`: a job worker without HTTP.
-async fn work(database_url: String, job_lease_s: i64, feeders: Vec<String>) -> anyhow::Result<()> {
+async fn work(database_url: String, job_lease_s: i64, feeders: Vec<String>, no_schedule: bool) -> anyhow::Result<()> {
     for (i, f) in feeders.iter().enumerate() {
         meterveil_shared::FeederId::parse(f).map_err(|e| anyhow::anyhow!("--feeder #{}: {e}", i + 1))?;
     }
@@ -395,7 +401,7 @@ async fn work(database_url: String, job_lease_s: i64, feeders: Vec<String>) -> a
     }
     tokio::select! {
         _ = crate::jobs::worker::run(state.clone()) => {}
-        _ = crate::jobs::schedule::run(state) => {}
+        _ = async { if no_schedule { std::future::pending().await } else { crate::jobs::schedule::run(state).await } } => {}
         _ = tokio::signal::ctrl_c() => tracing::info!("Ctrl-C: the running job's lease will expire and another worker retries it"),
     }
     Ok(())
