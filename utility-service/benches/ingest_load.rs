@@ -19,30 +19,15 @@ use meterveil_shared::auth::{
 };
 use serde_json::{json, Value};
 
+mod common;
+
+use common::{cpu_s, peak_rss_mib};
+
 const TOKEN: &str = "load-test-operator-token-0123";
 const LIMIT: Duration = Duration::from_secs(600);
 
 fn now_s() -> i64 {
     std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).map(|d| d.as_secs() as i64).unwrap_or(0)
-}
-
-fn peak_rss_mib(pid: u32) -> f64 {
-    std::fs::read_to_string(format!("/proc/{pid}/status"))
-        .ok()
-        .and_then(|s| {
-            s.lines().find(|l| l.starts_with("VmHWM:")).and_then(|l| l.split_whitespace().nth(1)?.parse::<f64>().ok())
-        })
-        .map_or(f64::NAN, |kb| kb / 1024.0)
-}
-
-/// CPU seconds (user + system) a process has used, from /proc/PID/stat.
-fn cpu_s(pid: &str) -> f64 {
-    let Ok(stat) = std::fs::read_to_string(format!("/proc/{pid}/stat")) else { return f64::NAN };
-    // Fields after the parenthesised command name; utime and stime are the 14th and 15th.
-    let rest = stat.rsplit_once(')').map_or("", |(_, r)| r);
-    let f: Vec<&str> = rest.split_whitespace().collect();
-    let ticks = |i: usize| f.get(i).and_then(|v| v.parse::<f64>().ok()).unwrap_or(f64::NAN);
-    (ticks(11) + ticks(12)) / 100.0
 }
 
 #[tokio::main(flavor = "multi_thread")]

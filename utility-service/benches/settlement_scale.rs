@@ -30,17 +30,12 @@ use nalgebra::DMatrix;
 use rand::{Rng, SeedableRng};
 use serde_json::json;
 
+mod common;
+
+use common::{cpu_s, peak_rss_mib};
+
 const DAY: i64 = 86_400;
 const PER_DAY: usize = 96;
-
-/// CPU seconds (user + system) a process has used.
-fn cpu_s(pid: u32) -> f64 {
-    let Ok(stat) = std::fs::read_to_string(format!("/proc/{pid}/stat")) else { return f64::NAN };
-    let rest = stat.rsplit_once(')').map_or("", |(_, r)| r);
-    let f: Vec<&str> = rest.split_whitespace().collect();
-    let ticks = |i: usize| f.get(i).and_then(|v| v.parse::<f64>().ok()).unwrap_or(f64::NAN);
-    (ticks(11) + ticks(12)) / 100.0
-}
 
 /// CPU seconds the whole machine has been busy (all but idle and iowait).
 fn machine_busy_s() -> f64 {
@@ -49,15 +44,6 @@ fn machine_busy_s() -> f64 {
         stat.lines().next().unwrap_or("").split_whitespace().skip(1).filter_map(|x| x.parse().ok()).collect();
     let total: f64 = v.iter().sum();
     (total - v.get(3).unwrap_or(&0.0) - v.get(4).unwrap_or(&0.0)) / 100.0
-}
-
-fn peak_rss_mib(pid: u32) -> f64 {
-    std::fs::read_to_string(format!("/proc/{pid}/status"))
-        .ok()
-        .and_then(|s| {
-            s.lines().find(|l| l.starts_with("VmHWM:")).and_then(|l| l.split_whitespace().nth(1)?.parse::<f64>().ok())
-        })
-        .map_or(f64::NAN, |kb| kb / 1024.0)
 }
 
 /// One feeder's levels as COPY text: six daily shapes mixed per meter, a
@@ -182,7 +168,8 @@ async fn main() -> anyhow::Result<()> {
     let mut per_day = Vec::new();
     for k in 0..settled as i64 {
         ctx.clock.set(first + (k + 1) * DAY + 7 * 3600);
-        let (cpu0, busy0, t0) = (pids.iter().map(|p| cpu_s(*p)).sum::<f64>(), machine_busy_s(), Instant::now());
+        let (cpu0, busy0, t0) =
+            (pids.iter().map(|p| cpu_s(&p.to_string())).sum::<f64>(), machine_busy_s(), Instant::now());
         let made = schedule::tick(&ctx, ctx.clock.now()).await?;
         loop {
             let open: i64 =
@@ -199,7 +186,7 @@ async fn main() -> anyhow::Result<()> {
             .await?;
         anyhow::ensure!(failed == 0, "{failed} runs failed");
         let wall = t0.elapsed().as_secs_f64();
-        let cpu = pids.iter().map(|p| cpu_s(*p)).sum::<f64>() - cpu0;
+        let cpu = pids.iter().map(|p| cpu_s(&p.to_string())).sum::<f64>() - cpu0;
         let busy = machine_busy_s() - busy0;
         let kinds: Vec<&str> = made.iter().map(|m| m.kind.as_str()).collect();
         println!(

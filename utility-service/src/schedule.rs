@@ -224,8 +224,10 @@ mod tests {
         let s = schedule();
         let tz: Tz = "Europe/London".parse().expect("zone");
         let d = parse_day("d", "2026-03-28").expect("day");
-        // The day ends at 00:00 UTC on the 29th (00:00 GMT); the clocks go
-        // forward at 01:00 GMT that night, so 06:00 local is 05:00 UTC.
+        // The day ends at 00:00 UTC on the 29th (00:00 GMT); UK clocks go
+        // forward at 01:00 GMT on the last Sunday of March (the Summer Time
+        // Order, from memory; chrono-tz's copy of the IANA tz database agrees,
+        // or this fails), so 06:00 local is 05:00 UTC.
         assert_eq!(s.deadline(tz, d), d + DAY + 5 * 3600);
         let before = parse_day("d", "2026-03-27").expect("day");
         assert_eq!(s.deadline(tz, before), before + DAY + 6 * 3600);

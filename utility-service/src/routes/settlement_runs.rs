@@ -8,7 +8,7 @@ use axum::http::{header, StatusCode};
 use axum::response::{IntoResponse, Response};
 use axum::routing::get;
 use axum::{Json, Router};
-use meterveil_shared::{FeederId, FieldError};
+use meterveil_shared::FieldError;
 use serde::Deserialize;
 use serde_json::{json, Value};
 
@@ -45,17 +45,13 @@ async fn put_schedule(
     Ok(Json(json!({"feeder_id": feeder.as_str(), "schedule": schedule})))
 }
 
-async fn stored_schedule(s: &AppState, feeder: &FeederId) -> Result<Option<Schedule>, ApiError> {
-    Ok(s.store.schedules().await?.into_iter().find(|(f, _)| f == feeder).map(|(_, sc)| sc))
-}
-
 async fn get_schedule(
     _: Operator,
     State(s): State<AppState>,
     Path(feeder): Path<String>,
 ) -> Result<Json<Value>, ApiError> {
     let feeder = super::feeders::known_feeder(&s, &feeder).await?;
-    let schedule = stored_schedule(&s, &feeder).await?.ok_or_else(|| {
+    let schedule = s.store.schedule(&feeder).await?.ok_or_else(|| {
         ApiError::NotFound(FieldError::new("feeder_id", format!("feeder {feeder} has no settlement schedule")))
     })?;
     Ok(Json(json!({"feeder_id": feeder.as_str(), "schedule": schedule})))
@@ -87,7 +83,7 @@ async fn start(
     if s.store.readings_per_day(&feeder, day, day + DAY).await?.is_empty() {
         return Err(ApiError::invalid("day", format!("feeder {feeder} has no readings stored for {}", req.day)));
     }
-    let window = stored_schedule(&s, &feeder).await?.map_or(28, |sc| sc.window_days);
+    let window = s.store.schedule(&feeder).await?.map_or(28, |sc| sc.window_days);
     let made = make_run(&s, &feeder, window, day, &req.kind, "operator", now, now).await?.ok_or_else(|| {
         ApiError::Conflict(FieldError::new("kind", format!("{} already has a run of kind {}", req.day, req.kind)))
     })?;
@@ -197,12 +193,8 @@ async fn compare(
 ) -> Result<Json<Value>, ApiError> {
     let (a, da) = finished_run(&s, &feeder, &day, &kind).await?;
     let (b, db) = finished_run(&s, &feeder, &day, &later).await?;
-    let version = |job: &str| {
-        let s = s.clone();
-        let job = job.to_owned();
-        async move { Ok::<_, ApiError>(s.store.job(&job).await?.and_then(|j| j.profile_version)) }
-    };
-    let changed = version(&a.job_id).await? != version(&b.job_id).await?;
+    let (ja, jb) = (s.store.job(&a.job_id).await?, s.store.job(&b.job_id).await?);
+    let changed = ja.and_then(|j| j.profile_version) != jb.and_then(|j| j.profile_version);
     let changes = crate::settlement::compare_days(&da, &db, changed);
     let (reasons, quiet) = crate::settlement::comparison_summary(&changes);
     tracing::info!(feeder = %a.feeder_id, day = %day_name(a.day_start), earlier = %kind, later = %later, "run comparison");

@@ -80,6 +80,16 @@ impl Store {
         Ok(())
     }
 
+    /// A feeder's schedule, if it has one.
+    pub async fn schedule(&self, feeder: &FeederId) -> Result<Option<Schedule>, StoreError> {
+        let body: Option<String> = sqlx::query_scalar("SELECT body FROM settlement_schedules WHERE feeder_id = $1")
+            .bind(feeder.as_str())
+            .fetch_optional(&self.pool)
+            .await?;
+        body.map(|b| serde_json::from_str(&b).map_err(|e| anyhow::anyhow!("stored schedule of {feeder}: {e}").into()))
+            .transpose()
+    }
+
     /// Every feeder's schedule (feeders without one are left out).
     pub async fn schedules(&self) -> Result<Vec<(FeederId, Schedule)>, StoreError> {
         let rows: Vec<(String, String)> =
