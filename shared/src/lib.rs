@@ -5,6 +5,7 @@
 pub mod aggregate;
 pub mod audit;
 pub mod auth;
+pub mod bootstrap;
 pub mod calibrate;
 pub mod cluster;
 pub mod domain;

@@ -6,7 +6,7 @@
 
 mod common;
 
-use common::aggregates::{aggregates, Coverage};
+use common::aggregates::{aggregates, draws_of, Coverage};
 use common::*;
 use meterveil_shared::recovery::linalg::truncate;
 use meterveil_shared::recovery::outage::DayLayout;
@@ -83,7 +83,9 @@ fn bdew_population_headline_accuracy() {
     assert!((e - 0.16).abs() <= 0.01, "nRMSE {e}, README states 0.16");
     assert!((base - 0.31).abs() <= 0.02, "baseline nRMSE {base}, README states 0.31");
     assert!((energy - 0.067).abs() <= 0.005, "median daily energy error {energy}, README states 6.7%");
-    let c = aggregates("BDEW 1400", 0.3, &truth, &rec.x, &levels, &p3);
+    let prm = params(RankChoice::Auto(vec![2, 5, 10, 20, 40]));
+    let draws = draws_of(&rec, &levels, &p3, &[], LAYOUT, &prm);
+    let c = aggregates("BDEW 1400", 0.3, &truth, &rec.x, &levels, &p3, &draws);
     coverage_near("BDEW σ 0.3", c, BDEW_COVERAGE_03);
 }
 
@@ -115,7 +117,9 @@ fn bdew_aggregates_at_one_kw() {
         100.0 * energy.daily_median,
         rec.diagnostics.rank
     );
-    let c = aggregates("BDEW 1400", 1.0, &truth, &rec.x, &levels, &p);
+    let prm = params(RankChoice::Auto(vec![2, 5, 10, 20, 40]));
+    let draws = draws_of(&rec, &levels, &p, &[], LAYOUT, &prm);
+    let c = aggregates("BDEW 1400", 1.0, &truth, &rec.x, &levels, &p, &draws);
     coverage_near("BDEW σ 1.0", c, BDEW_COVERAGE_10);
 }
 

@@ -20,7 +20,7 @@
 
 mod common;
 
-use common::aggregates::{aggregates, Coverage};
+use common::aggregates::{aggregates, draws_of, Coverage};
 use common::*;
 use meterveil_shared::recovery::linalg::truncate;
 use meterveil_shared::recovery::outage::DayLayout;
@@ -73,7 +73,8 @@ fn run_with(
     let params = RecoveryParams { alpha_kw: ALPHA, ..Default::default() }.check().unwrap();
     let rec = recover(&levels, &p, &[], LAYOUT, &params, &mut |_, _| {}).unwrap();
     let base = baseline(&levels, &p, rec.diagnostics.rank);
-    let coverage = aggregates(name, scale, truth, &rec.x, &levels, &p);
+    let draws = draws_of(&rec, &levels, &p, &[], LAYOUT, &params);
+    let coverage = aggregates(name, scale, truth, &rec.x, &levels, &p, &draws);
     // No reading of these populations is corrupt: a `corrected` flag on one
     // tells an analyst that a genuine load was a faulty meter.
     let false_corrected = rec.diagnostics.corrected as f64 / rec.diagnostics.readings.max(1) as f64;
