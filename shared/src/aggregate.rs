@@ -92,11 +92,15 @@ pub struct Spread {
     /// meter's bias over the window), pooled over the feeder's meters: a sum
     /// over D days has its variance scaled by 1 + (D - 1) · this.
     pub day_correlation: f64,
+    /// The variance (kW²) of an offset common to all of one day's intervals
+    /// (a day busier or quieter than the profile), measured by how much more
+    /// the meter's daily level sums vary than the interval model predicts.
+    pub day_offset: f64,
 }
 
 impl Spread {
     /// No spread at all: the recovered profile taken as it is.
-    pub const NONE: Spread = Spread { shared: 0.0, own: 0.0, dispersion: 1.0, day_correlation: 0.0 };
+    pub const NONE: Spread = Spread { shared: 0.0, own: 0.0, dispersion: 1.0, day_correlation: 0.0, day_offset: 0.0 };
 }
 
 /// The length of a block sharing one offset, seconds (4 h: common practice
@@ -202,8 +206,8 @@ pub fn meter_spreads(x: &DMatrix<f64>, levels: &LevelMatrix, profile: &DitherPro
                 .fold((f64::NEG_INFINITY, 0.0), |b, c| if c.0 > b.0 { c } else { b })
                 .1;
             let s = split(best);
-            let (phi, window) = dispersion(&row, &level, tau, sd, bounds, day);
-            (Spread { dispersion: phi, ..s }, window / phi)
+            let (phi, window, day_offset) = dispersion(&row, &level, tau, sd, bounds, day);
+            (Spread { dispersion: phi, day_offset, ..s }, window / phi)
         })
         .collect();
     // Whole-window scores beyond what independent days give: 1 + (N - 1)·ρ.
@@ -213,25 +217,34 @@ pub fn meter_spreads(x: &DMatrix<f64>, levels: &LevelMatrix, profile: &DitherPro
     fitted.into_iter().map(|(s, _)| Spread { day_correlation: rho, ..s }).collect()
 }
 
-/// Mean and variance of the level a load `x` + a gaussian of `sd` lands on.
-fn level_moments(x: f64, sd: f64, bounds: &[f64]) -> (f64, f64) {
+/// Mean and variance of the level a load `x` + a gaussian of `sd` lands on,
+/// and the mean's slope in `x` (per kW).
+fn level_moments(x: f64, sd: f64, bounds: &[f64]) -> (f64, f64, f64) {
+    let sd = sd.max(1e-9);
     let (mut prev, mut e1, mut e2) = (0.0, 0.0, 0.0);
     for (k, b) in bounds.iter().chain(std::iter::once(&f64::INFINITY)).enumerate() {
-        let c = if b.is_finite() { cdf((b - x) / sd.max(1e-9)) } else { 1.0 };
+        let c = if b.is_finite() { cdf((b - x) / sd) } else { 1.0 };
         e1 += k as f64 * (c - prev);
         e2 += (k * k) as f64 * (c - prev);
         prev = c;
     }
-    (e1, e2 - e1 * e1)
+    let slope: f64 = bounds.iter().map(|b| pdf((b - x) / sd) / sd).sum();
+    (e1, e2 - e1 * e1, slope)
 }
 
 /// How much more a meter's daily sums of levels vary than independent
-/// intervals would (the mean of their squared standard scores, at least 1),
-/// and the squared standard score of its whole window's sum,
-/// each interval's level predicted from its recovered value, the whole spread
-/// `tau` and the dither. Measured on the reference populations, scaling the
-/// block model's variances by it brings meter-day bands to their coverage;
-/// the block model's own prediction of level sums leaves them short (82-88%).
+/// intervals would, each interval's level predicted from its recovered value,
+/// the whole spread `tau` and the dither. Returns the dispersion (the mean of
+/// the days' squared standard scores once the day offset is allowed for, at
+/// least 1), the squared standard score of the whole window's sum, and the
+/// variance (kW²) of a day offset, by moments: a day's offset d moves its
+/// level sum by d times the sum of its intervals' slopes, so the excess of
+/// the squared residuals over their predicted variance, over the squared
+/// slope sums, estimates d's variance. Measured on the reference populations,
+/// scaling the block model's variances by the dispersion brings meter-day
+/// bands of households to their coverage; the day offset is what smooth loads
+/// need (their spread is often 0 under strong dither, and no scaling widens
+/// a band of zero width).
 fn dispersion(
     xhat: &[f64],
     level: &dyn Fn(usize) -> Option<u8>,
@@ -239,29 +252,34 @@ fn dispersion(
     sd: f64,
     bounds: &[f64],
     day: usize,
-) -> (f64, f64) {
+) -> (f64, f64, f64) {
     let noise = (tau * tau + sd * sd).sqrt();
-    let sums: Vec<(f64, f64)> = xhat
+    // Per day: observed minus predicted level sum, its variance, its slope sum.
+    let sums: Vec<(f64, f64, f64)> = xhat
         .chunks(day)
         .enumerate()
         .filter_map(|(d, chunk)| {
-            let (mut obs, mut mean, mut var) = (0.0, 0.0, 0.0);
+            let (mut obs, mut mean, mut var, mut slope) = (0.0, 0.0, 0.0, 0.0);
             for (k, x) in chunk.iter().enumerate() {
                 let Some(l) = level(d * day + k) else { continue };
-                let (m, v) = level_moments(*x, noise, bounds);
+                let (m, v, g) = level_moments(*x, noise, bounds);
                 obs += f64::from(l);
                 mean += m;
                 var += v;
+                slope += g;
             }
-            (var > 1e-9).then_some((obs - mean, var))
+            (var > 1e-9).then_some((obs - mean, var, slope))
         })
         .collect();
     if sums.is_empty() {
-        return (1.0, 1.0);
+        return (1.0, 1.0, 0.0);
     }
-    let phi = (sums.iter().map(|(r, v)| r * r / v).sum::<f64>() / sums.len() as f64).max(1.0);
-    let (r, v) = sums.iter().fold((0.0, 0.0), |a, b| (a.0 + b.0, a.1 + b.1));
-    (phi, r * r / v)
+    let excess: f64 = sums.iter().map(|(r, v, _)| r * r - v).sum();
+    let slopes: f64 = sums.iter().map(|(_, _, g)| g * g).sum();
+    let day_offset = if slopes > 1e-9 { (excess / slopes).max(0.0) } else { 0.0 };
+    let phi = (sums.iter().map(|(r, v, g)| r * r / (v + g * g * day_offset)).sum::<f64>() / sums.len() as f64).max(1.0);
+    let (r, v) = sums.iter().fold((0.0, 0.0), |a, b| (a.0 + b.0, a.1 + b.1 + b.2 * b.2 * day_offset));
+    (phi, r * r / v, day_offset)
 }
 
 /// The mean and variance of one meter's load summed over each bucket of
@@ -282,9 +300,9 @@ pub fn meter_sums(
     let block = (BLOCK_S / interval_s.max(1)).max(1) as usize;
     let day = (86_400 / interval_s.max(1)).max(1) as usize;
     let mut out = vec![(0.0, 0.0); buckets];
-    // The days each bucket touches, in order.
-    let mut days_of: Vec<Vec<usize>> = vec![Vec::new(); buckets];
-    let mut per: Vec<(usize, [f64; NODES], [f64; NODES])> = Vec::new();
+    // The days each bucket touches, in order, with its count of intervals in each.
+    let mut days_of: Vec<Vec<(usize, f64)>> = vec![Vec::new(); buckets];
+    let mut per: Vec<(usize, [f64; NODES], [f64; NODES], f64)> = Vec::new();
     for c in (0..xhat.len()).step_by(block) {
         let cols = c..(c + block).min(xhat.len());
         let (w, _) = block_weights(xhat, level, cols.clone(), s, sd, bounds);
@@ -294,10 +312,11 @@ pub fn meter_sums(
             let slot = match per.iter().position(|p| p.0 == b) {
                 Some(p) => p,
                 None => {
-                    per.push((b, [0.0; NODES], [0.0; NODES]));
+                    per.push((b, [0.0; NODES], [0.0; NODES], 0.0));
                     per.len() - 1
                 }
             };
+            per[slot].3 += 1.0;
             for k in 0..NODES {
                 if w[k] < 1e-12 {
                     continue;
@@ -307,18 +326,21 @@ pub fn meter_sums(
                 per[slot].2[k] += v;
             }
         }
-        for (b, m, v) in &per {
+        for (b, m, v, count) in &per {
             let mean: f64 = (0..NODES).map(|k| w[k] * m[k]).sum();
             let second: f64 = (0..NODES).map(|k| w[k] * (v[k] + m[k] * m[k])).sum();
             out[*b].0 += mean;
             out[*b].1 += s.dispersion * (second - mean * mean).max(0.0);
             let seen = &mut days_of[*b];
-            if seen.last() != Some(&(c / day)) {
-                seen.push(c / day);
+            match seen.last_mut() {
+                Some(last) if last.0 == c / day => last.1 += count,
+                _ => seen.push((c / day, *count)),
             }
         }
     }
     for (o, seen) in out.iter_mut().zip(&days_of) {
+        // Each day's offset moves all of the bucket's intervals that day.
+        o.1 += s.day_offset * seen.iter().map(|(_, n)| n * n).sum::<f64>();
         o.1 *= 1.0 + s.day_correlation * seen.len().saturating_sub(1) as f64;
     }
     out
