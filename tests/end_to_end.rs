@@ -937,7 +937,7 @@ async fn recovery_job_over_stored_levels() {
         }
     }
     assert_eq!((days.len(), settled), (12 * 4, 12 * 4));
-    group_loads_over_http(&t, &id, &rows).await;
+    group_loads_over_http(&t, &id, &rows, (from, to)).await;
     // A band-energy target needs the feeder's tariff calendar, and none is stored yet.
     let (st, b) = t
         .post_json(
@@ -1448,7 +1448,7 @@ async fn rolling_recovery_over_http(t: &TestService, from: i64) {
     }
 }
 
-async fn group_loads_over_http(t: &TestService, id: &str, rows: &[Value]) {
+async fn group_loads_over_http(t: &TestService, id: &str, rows: &[Value], (from, to): (i64, i64)) {
     let put = |name: &str, body: Value| {
         t.http.put(format!("{}/v1/groups/{name}", t.url())).bearer_auth(TOKEN).json(&body).send()
     };
@@ -1525,6 +1525,35 @@ async fn group_loads_over_http(t: &TestService, id: &str, rows: &[Value]) {
     }
     let r = get(format!("/v1/recoveries/{id}/groups/no-such-group")).await.expect("missing");
     assert_eq!(r.status().as_u16(), 404);
+    // The bands carry the fit's own error from the recovery's bootstrap (8
+    // refits by default): the same window recovered without it (the same
+    // estimates: same levels, same seed) has narrower bands, never wider.
+    assert_eq!(load["bootstrap_draws"], 8, "{}", load["bootstrap_draws"]);
+    let plain =
+        recovery_done(t, json!({"feeder_id": "QM-CHAPEL-ROW", "from": from, "to": to, "rank": 5, "band_draws": 0}))
+            .await;
+    let plain_id = plain["job_id"].as_str().expect("id");
+    let narrow: Value =
+        get(format!("/v1/recoveries/{plain_id}/groups/transformer-7")).await.expect("load").json().await.expect("json");
+    assert_eq!(narrow["bootstrap_draws"], 0);
+    let width = |p: &Value| p["kw_high"].as_f64().expect("hi") - p["kw_low"].as_f64().expect("lo");
+    let (mut wider, mut total) = (0, 0.0);
+    for (a, b) in points.iter().zip(narrow["points"].as_array().expect("points")) {
+        assert!((a["kw"].as_f64().expect("kw") - b["kw"].as_f64().expect("kw")).abs() < 1e-6, "{a} {b}");
+        assert!(width(a) >= width(b) - 1e-9, "{a} narrower than without the bootstrap {b}");
+        wider += usize::from(width(a) > width(b) + 1e-6);
+        total += width(a) / width(b).max(1e-9);
+    }
+    assert!(wider > points.len() / 2, "the bootstrap widened {wider} of {} bands", points.len());
+    eprintln!("group bands with the bootstrap: {:.2}x as wide on average", total / points.len() as f64);
+    let (st, b) = t
+        .post_json(
+            "/v1/recoveries",
+            &json!({"feeder_id": "QM-CHAPEL-ROW", "from": from, "to": to, "band_draws": 33}),
+            true,
+        )
+        .await;
+    assert_eq!((st, b["field"].as_str()), (StatusCode::UNPROCESSABLE_ENTITY, Some("band_draws")), "{b}");
 }
 
 /// A feeder's tariff calendar stored as versions, and each meter's band
@@ -1589,6 +1618,25 @@ async fn band_energies_over_http(t: &TestService, id: &str, reads: &[(String, i6
     assert!(csv.starts_with("meter_id,period_start,period_end,band,kwh,kwh_low,kwh_high,intervals,register_read\n"));
     let r = get(format!("/v1/recoveries/{id}/band-energies?tariff_version=9")).await.expect("missing");
     assert_eq!(r.status().as_u16(), 404);
+    assert_eq!(got["bootstrap_draws"], 8);
+    // Each meter's energy per UTC day: every day has a read, so each is its read.
+    let days: Value = get(format!("/v1/recoveries/{id}/day-energies")).await.expect("days").json().await.expect("json");
+    assert_eq!((&days["days"], &days["bootstrap_draws"]), (&json!("UTC"), &json!(8)), "{}", days["days"]);
+    let by_day: std::collections::HashMap<(String, i64), f64> =
+        reads.iter().map(|(m, start, wh)| ((m.clone(), *start), *wh as f64 / 1000.0)).collect();
+    let energies = days["energies"].as_array().expect("energies");
+    assert_eq!(energies.len(), 12 * 4);
+    for e in energies {
+        let day = chrono::NaiveDate::parse_from_str(e["day"].as_str().expect("day"), "%Y-%m-%d").expect("date");
+        let start = day.and_hms_opt(0, 0, 0).expect("midnight").and_utc().timestamp();
+        let read = by_day[&(e["meter_id"].as_str().expect("m").to_owned(), start)];
+        assert!((e["kwh"].as_f64().expect("kwh") - read).abs() <= 1e-3, "{e}: read {read} kWh");
+        assert_eq!(e["register_read"], true, "{e}");
+    }
+    let csv = get(format!("/v1/recoveries/{id}/day-energies?format=csv&days=local")).await.expect("csv").text().await;
+    assert!(csv.expect("text").starts_with("meter_id,day,kwh,kwh_low,kwh_high,intervals,register_read\n"));
+    let r = get(format!("/v1/recoveries/{id}/day-energies?days=solar")).await.expect("bad");
+    assert_eq!(r.json::<Value>().await.expect("json")["field"], "days");
 }
 
 fn last_json_line(out: &[u8]) -> Value {
@@ -3382,6 +3430,7 @@ async fn several_workers_share_one_queue_and_claim_each_job_once() {
                 alpha_kw: 15.0,
                 warm_from: None,
                 settles: None,
+                band_draws: 0,
             };
             setup.create_job(&id, &spec, now - 100 + i).await.expect("job");
             want.insert(id, Some(f.to_owned()));

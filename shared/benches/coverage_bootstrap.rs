@@ -52,7 +52,7 @@ fn points(
     let mut out: [Vec<(f64, f64, f64)>; 4] = Default::default();
     for (slot, size) in [10usize, 50].into_iter().enumerate() {
         for g in order.chunks_exact(size) {
-            for (j, (kw, lo, hi)) in group_load(&mean, &var, g).iter().enumerate() {
+            for (j, (kw, lo, hi)) in group_load(&mean, &var, g, &[]).iter().enumerate() {
                 let t: f64 = g.iter().map(|&i| truth[(i, j)]).sum();
                 out[slot].push((*kw, (hi - lo) / (2.0 * Z95), t));
             }

@@ -9,6 +9,7 @@ use chrono::NaiveDate;
 use nalgebra::DMatrix;
 
 use crate::aggregate::{meter_sums, Spread, Z95};
+use crate::bootstrap::FitDraws;
 use crate::recovery::{LevelMatrix, SumConstraint};
 use crate::tariff::TariffCalendar;
 use crate::DitherProfile;
@@ -21,6 +22,9 @@ pub struct Fitted<'a> {
     pub levels: &'a LevelMatrix,
     pub start: i64,
     pub interval_s: u32,
+    /// The bootstrap of the fit (`shared::bootstrap`): the variance the
+    /// fit's own error adds to each sum. Empty: the profile taken as known.
+    pub draws: &'a FitDraws,
 }
 
 /// One sum of one meter: its label (a day, or a billing period's first day
@@ -89,6 +93,9 @@ pub fn meter_energies(
         let row: Vec<f64> = x.row(i).iter().copied().collect();
         let level = |j: usize| f.levels.get(i, j);
         let mut cells = meter_sums(&row, &level, profile, spread, f.interval_s, &bucket, keys.len());
+        for (c, v) in cells.iter_mut().zip(f.draws.bucket_variances(i, &bucket, keys.len())) {
+            c.1 += v;
+        }
         let read_cells: Vec<(Vec<usize>, f64)> = reads
             .iter()
             .enumerate()
@@ -125,12 +132,12 @@ pub fn band_label(calendar: &TariffCalendar) -> impl Fn(i64) -> Option<(NaiveDat
     |t| Some((calendar.period_at(t), calendar.band_at(t)))
 }
 
-/// Each interval's local day (in the calendar's zone, else UTC).
-pub fn day_label(calendar: Option<&TariffCalendar>) -> impl Fn(i64) -> Option<(NaiveDate, usize)> + '_ {
+/// Each interval's day in `zone` (else UTC).
+pub fn day_label(zone: Option<chrono_tz::Tz>) -> impl Fn(i64) -> Option<(NaiveDate, usize)> {
     move |t| {
         let utc = chrono::DateTime::from_timestamp(t, 0)?;
-        let day = match calendar {
-            Some(c) => utc.with_timezone(&c.zone).date_naive(),
+        let day = match zone {
+            Some(z) => utc.with_timezone(&z).date_naive(),
             None => utc.date_naive(),
         };
         Some((day, 0))

@@ -108,6 +108,10 @@ pub struct RecoverRequest {
     /// the fit starts from its estimates at its rank (a rolling run).
     #[serde(default)]
     pub warm_from: Option<String>,
+    /// Refits of the bootstrap that gives the bands of group loads and
+    /// energies the fit's own error (0 to 32; default 8, 0: none).
+    #[serde(default)]
+    pub band_draws: Option<u32>,
 }
 
 /// A recovery of one feeder's window [from, to).
@@ -128,6 +132,9 @@ pub struct RecoverSpec {
     /// day's figures are frozen into the run when it finishes.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub settles: Option<SettledDay>,
+    /// Refits of the bands' bootstrap (`shared::bootstrap`).
+    #[serde(default)]
+    pub band_draws: u32,
 }
 
 /// The settlement run a recovery computes, and its day.
@@ -154,6 +161,10 @@ impl RecoverRequest {
         if self.warm_from.as_ref().is_some_and(|w| w.is_empty() || w.len() > 64) {
             return Err(FieldError::new("warm_from", "must name a recovery job"));
         }
+        let band_draws = self.band_draws.unwrap_or(meterveil_shared::bootstrap::DEFAULT_DRAWS as u32);
+        if band_draws as usize > meterveil_shared::bootstrap::MAX_DRAWS {
+            return Err(FieldError::new("band_draws", format!("at most {}", meterveil_shared::bootstrap::MAX_DRAWS)));
+        }
         Ok(RecoverSpec {
             feeder_id,
             from: self.from,
@@ -162,6 +173,7 @@ impl RecoverRequest {
             alpha_kw,
             warm_from: self.warm_from,
             settles: None,
+            band_draws,
         })
     }
 }

@@ -77,7 +77,7 @@ pub fn aggregates(
         let (mut err_post, mut err_xhat, mut norm) = (0.0, 0.0, 0.0);
         for g in order.chunks_exact(size) {
             let fit = draws.group_variances(g, truth.ncols());
-            for (j, (kw, lo, hi)) in group_load(&mean, &var, g).iter().enumerate() {
+            for (j, (kw, lo, hi)) in group_load(&mean, &var, g, &[]).iter().enumerate() {
                 let t: f64 = g.iter().map(|&i| truth[(i, j)]).sum();
                 let xh: f64 = g.iter().map(|&i| x[(i, j)]).sum();
                 let sd = (hi - kw) / Z95;

@@ -3,6 +3,9 @@
 use std::collections::HashMap;
 
 use anyhow::Context;
+use meterveil_shared::aggregate::meter_spreads;
+use meterveil_shared::bootstrap::{fit_draws, Fit, StoredBands};
+use meterveil_shared::mechanism::secure_rng;
 use meterveil_shared::recovery::outage::DayLayout;
 use meterveil_shared::recovery::{band95, recover_from, LevelMatrix, RecoveryParams, SumConstraint, WarmStart};
 use meterveil_shared::FeederId;
@@ -116,12 +119,32 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoverSpec) -> anyhow::
         None => None,
     };
 
-    let (rec, n_constraints) = super::run_reporting(s, JobTable::Recovery, job_id, move |progress| {
+    let (draws, names) = (req.band_draws as usize, meters.clone());
+    let (rec, n_constraints, bands) = super::run_reporting(s, JobTable::Recovery, job_id, move |progress| {
         let _span = tracing::info_span!("recovery").entered();
         let report = &mut |stage: &str, f: f64| progress(stage, f);
-        recover_from(&levels, &profile, &constraints, layout, &params, warm.as_ref(), report)
-            .map(|r| (r, constraints.len()))
-            .map_err(|e| anyhow::anyhow!("{e}"))
+        let rec = recover_from(&levels, &profile, &constraints, layout, &params, warm.as_ref(), report)
+            .map_err(|e| anyhow::anyhow!("{e}"))?;
+        let bands = if draws > 0 {
+            progress("bands' bootstrap", 0.99);
+            let spreads = meter_spreads(&rec.x, &levels, &profile, layout.interval_s);
+            let fit = Fit {
+                x: &rec.x,
+                rank: rec.diagnostics.rank,
+                levels: &levels,
+                profile: &profile,
+                constraints: &constraints,
+                layout,
+                spreads: &spreads,
+                params: &params,
+            };
+            // Like the dither, the draws come from the operating system's generator.
+            let fd = fit_draws(&fit, draws, &mut secure_rng()).map_err(|e| anyhow::anyhow!("bands' bootstrap: {e}"))?;
+            Some(serde_json::to_string(&StoredBands::new(names, &spreads, &fd))?)
+        } else {
+            None
+        };
+        Ok((rec, constraints.len(), bands))
     })
     .await?;
     let mut out = Vec::with_capacity(meters.len() * cols);
@@ -143,6 +166,7 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoverSpec) -> anyhow::
     diag["register_days"] = n_constraints.into();
     diag["meters"] = meters.len().into();
     diag["intervals"] = cols.into();
+    diag["band_draws"] = req.band_draws.into();
     match warm_from.as_slice() {
         [] => {}
         [w] => diag["warm_from"] = w.as_str().into(),
@@ -158,6 +182,9 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoverSpec) -> anyhow::
     if let Some(run) = &req.settles {
         // A settlement run keeps its own day's estimates only.
         out.retain(|r| (run.day_start..run.day_start + 86_400).contains(&r.interval_start));
+    }
+    if let Some(body) = &bands {
+        store.put_bands(job_id, body).await?;
     }
     store.finish_job(job_id, version, &out, &diag, run, now_s()).await?;
     Ok(())

@@ -108,6 +108,9 @@ pub async fn make_run(
         alpha_kw: meterveil_shared::recovery::DEFAULT_ALPHA_KW,
         warm_from: None,
         settles: Some(SettledDay { run_id: run_id.clone(), day_start }),
+        // A run's figures are its meter-days, frozen from its estimates; the
+        // bands' bootstrap is for recoveries that serve group loads.
+        band_draws: 0,
     };
     let run = NewRun { run_id: &run_id, job_id: &job_id, kind, day_start, started_by, due_at, spec: &spec };
     let Some(version) = s.store.create_run(feeder, &run, now).await? else { return Ok(None) };

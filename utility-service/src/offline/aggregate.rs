@@ -7,6 +7,7 @@ use std::collections::BTreeMap;
 use std::path::Path;
 
 use meterveil_shared::aggregate::{group_load, meter_spreads, moments};
+use meterveil_shared::bootstrap::FitDraws;
 use meterveil_shared::FieldError;
 use serde::Deserialize;
 
@@ -152,8 +153,9 @@ pub fn run_aggregate(a: &AggregateFiles<'_>) -> anyhow::Result<serde_json::Value
         None => Vec::new(),
     };
     let spreads = meter_spreads(&rec.kw, &w.levels, &profile, rec.interval_s);
+    let draws = FitDraws::default();
     let energies = |label: &dyn Fn(i64) -> Option<(chrono::NaiveDate, usize)>| {
-        let fitted = Fitted { x: &rec.kw, levels: &w.levels, start: w.start, interval_s: w.interval_s };
+        let fitted = Fitted { x: &rec.kw, levels: &w.levels, start: w.start, interval_s: w.interval_s, draws: &draws };
         meter_energies(fitted, &profile, &spreads, &constraints, label)
     };
     // Every input is read and checked before the first output is written.
@@ -165,7 +167,7 @@ pub fn run_aggregate(a: &AggregateFiles<'_>) -> anyhow::Result<serde_json::Value
         write_energies(out, &rec.meters, &cells, &["period_start", "period_end", "band"], &label)?;
     }
     if let Some(out) = a.daily {
-        let cells = energies(&day_label(calendar.as_ref()));
+        let cells = energies(&day_label(calendar.as_ref().map(|c| c.zone)));
         write_energies(out, &rec.meters, &cells, &["day"], &|c| vec![c.label.0.to_string()])?;
     }
     let taus: Vec<f64> = spreads.iter().map(|s| s.shared.hypot(s.own)).collect();
@@ -173,7 +175,8 @@ pub fn run_aggregate(a: &AggregateFiles<'_>) -> anyhow::Result<serde_json::Value
     let mut out = csv::Writer::from_writer(Vec::new());
     out.write_record(["group", "interval_start", "kw", "kw_low", "kw_high", "meters"])?;
     for (name, rows) in &groups {
-        for (j, (kw, lo, hi)) in group_load(&mean, &var, rows).into_iter().enumerate() {
+        let fit = draws.group_variances(rows, rec.kw.ncols());
+        for (j, (kw, lo, hi)) in group_load(&mean, &var, rows, &fit).into_iter().enumerate() {
             let t = rec.start + j as i64 * i64::from(rec.interval_s);
             let cells = [format!("{kw:.4}"), format!("{lo:.4}"), format!("{hi:.4}")];
             out.write_record([

@@ -119,7 +119,15 @@ async fn recovery_request(s: &AppState, f: &RecoveryForm) -> Result<RecoverReque
             r.parse::<u64>().map_err(|_| FieldError::new("rank", format!("{r:?} is neither a number nor auto")))?,
         )),
     };
-    Ok(RecoverRequest { feeder_id: feeder.to_string(), from, to, rank, alpha_kw: None, warm_from: None })
+    Ok(RecoverRequest {
+        feeder_id: feeder.to_string(),
+        from,
+        to,
+        rank,
+        alpha_kw: None,
+        warm_from: None,
+        band_draws: None,
+    })
 }
 
 async fn start_recovery(

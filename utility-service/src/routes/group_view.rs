@@ -55,7 +55,7 @@ pub(crate) async fn group_page(
     if members.is_empty() {
         return refuse(format!("no group {name}"));
     }
-    let (band, step, meters) = match super::groups::member_band(&s, &job, &name, &members).await {
+    let (band, step, meters, _) = match super::groups::member_band(&s, &job, &name, &members).await {
         Ok(b) => b,
         Err(ApiError::Invalid(e)) => return refuse(e.reason),
         Err(e) => return Err(e),

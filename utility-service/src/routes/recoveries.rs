@@ -235,3 +235,24 @@ pub(crate) fn recovered_matrix(
     }
     x
 }
+
+/// A finished recovery's band model (`shared::bootstrap`): each meter's
+/// spread and the bootstrap's draws, when the job stored them for exactly
+/// these meters and `cols` intervals. `None` for a job that ran without the
+/// bootstrap (its bands then take the profile as known and say so).
+pub(crate) async fn band_model(
+    s: &AppState,
+    id: &str,
+    meters: &[String],
+    cols: usize,
+) -> Result<Option<(Vec<meterveil_shared::aggregate::Spread>, meterveil_shared::bootstrap::FitDraws)>, ApiError> {
+    let Some(body) = s.store.bands(id).await? else { return Ok(None) };
+    let stored: meterveil_shared::bootstrap::StoredBands = serde_json::from_str(&body)
+        .map_err(|e| ApiError::Internal(anyhow::anyhow!("stored bands of {id} no longer parse: {e}")))?;
+    if stored.meters != meters {
+        tracing::info!(job = %id, "the feeder's meters changed since the recovery: bands without its bootstrap");
+        return Ok(None);
+    }
+    let parts = stored.parts(cols).map_err(|e| ApiError::Internal(anyhow::anyhow!("stored bands of {id}: {e}")))?;
+    Ok(Some(parts))
+}

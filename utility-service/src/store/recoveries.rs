@@ -264,3 +264,29 @@ pub(super) fn job_from_row(r: &sqlx::any::AnyRow) -> Result<JobRecord, StoreErro
         error: r.try_get("error")?,
     })
 }
+
+impl Store {
+    /// Stores a recovery's band model (`shared::bootstrap::StoredBands` as
+    /// JSON); a second write for the same job replaces the first (a retried
+    /// attempt).
+    pub async fn put_bands(&self, job_id: &str, body: &str) -> Result<(), StoreError> {
+        let _w = self.write_lock().await;
+        let mut tx = self.pool.begin().await?;
+        sqlx::query("DELETE FROM recovery_bands WHERE job_id = $1").bind(job_id).execute(&mut *tx).await?;
+        sqlx::query("INSERT INTO recovery_bands (job_id, body) VALUES ($1, $2)")
+            .bind(job_id)
+            .bind(body)
+            .execute(&mut *tx)
+            .await?;
+        tx.commit().await?;
+        Ok(())
+    }
+
+    /// A recovery's band model, if it stored one.
+    pub async fn bands(&self, job_id: &str) -> Result<Option<String>, StoreError> {
+        Ok(sqlx::query_scalar("SELECT body FROM recovery_bands WHERE job_id = $1")
+            .bind(job_id)
+            .fetch_optional(&self.pool)
+            .await?)
+    }
+}
