@@ -1251,6 +1251,10 @@ fn energies_on_files(dir: &std::path::Path, out: &std::path::Path, meters: &[Str
     };
     let r = run(tariff, "-e");
     assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
+    // The bands' bootstrap ran (8 refits by default) at the profiles' rank.
+    let summary = last_json_line(&r.stdout);
+    assert_eq!(summary["bootstrap_draws"], 8, "{summary}");
+    assert!(summary["rank"].as_u64().is_some_and(|r| (1..=40).contains(&r)), "{summary}");
     let rows = |f: &str| -> Vec<Vec<String>> {
         let text = std::fs::read_to_string(p(f)).expect("energies");
         text.lines().skip(1).map(|l| l.split(',').map(str::to_owned).collect()).collect()
@@ -1300,6 +1304,19 @@ fn energies_on_files(dir: &std::path::Path, out: &std::path::Path, meters: &[Str
     for f in ["agg-x.csv", "bands-x.csv", "daily-x.csv"] {
         assert!(!p(f).exists(), "a refused calendar wrote {f}");
     }
+    let r = std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
+        .args(["aggregate", "--profiles"])
+        .arg(out)
+        .args(["--groups".as_ref(), p("groups.csv").as_os_str()])
+        .args(["--output".as_ref(), p("agg-y.csv").as_os_str()])
+        .args(["--levels".as_ref(), p("levels.csv").as_os_str()])
+        .args(["--profile".as_ref(), p("profile.json").as_os_str()])
+        .args(["--band-draws", "33"])
+        .output()
+        .expect("run aggregate");
+    let err = String::from_utf8_lossy(&r.stderr);
+    assert!(!r.status.success() && err.contains("--band-draws: at most 32"), "{err}");
+    assert!(!p("agg-y.csv").exists(), "a refused bootstrap wrote its output");
 }
 
 /// A group defined over HTTP and its load from a finished recovery: the band

@@ -137,6 +137,13 @@ pub enum Command {
         /// Register reads (meter_id,day_start,wh) the energies are reconciled to.
         #[arg(long)]
         registers: Option<PathBuf>,
+        /// Refits of the bands' bootstrap (0 to 32; 0: the profiles taken as known).
+        #[arg(long, default_value_t = 8)]
+        band_draws: usize,
+        /// The rank the profiles were recovered at (`recover` prints it), or
+        /// "auto": the fewest singular values holding 99.9% of the profiles' square.
+        #[arg(long, default_value = "auto")]
+        rank: String,
     },
     /// Group customers by load shape, from quantized levels (fitted at the
     /// clustering rank first) or from a `recover` output as it is.
@@ -425,7 +432,20 @@ fn run_file_mode(command: Command) -> anyhow::Result<serde_json::Value> {
             let params = RecoveryParams { rank, alpha_kw, ..RecoveryParams::default() };
             crate::offline::run_recover(&levels, &profile, &output, registers.as_deref(), params)
         }
-        Command::Aggregate { profiles, groups, output, levels, profile, tariff, band_energies, daily, registers } => {
+        Command::Aggregate {
+            profiles,
+            groups,
+            output,
+            levels,
+            profile,
+            tariff,
+            band_energies,
+            daily,
+            registers,
+            band_draws,
+            rank,
+        } => {
+            let rank = auto_or_number("rank", &rank)?;
             crate::offline::run_aggregate(&crate::offline::AggregateFiles {
                 profiles: &profiles,
                 levels: &levels,
@@ -435,6 +455,7 @@ fn run_file_mode(command: Command) -> anyhow::Result<serde_json::Value> {
                 tariff: tariff.as_deref().zip(band_energies.as_deref()),
                 daily: daily.as_deref(),
                 registers: registers.as_deref(),
+                bootstrap: (band_draws, rank),
             })
         }
         Command::Cluster { levels, profile, registers, alpha_kw, profiles, output, clusters } => {

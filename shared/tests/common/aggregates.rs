@@ -132,6 +132,48 @@ pub fn aggregates(
     }
     cov.days = share(days_in, days_n);
     cov.bands = share(bands_in, bands_n);
+    if std::env::var("MV_VARIANTS").is_ok() {
+        use meterveil_shared::aggregate::Spread;
+        // Per cell: truth, estimate, V, φV, V+off, ρ factor, fit.
+        let mut cells: [Vec<[f64; 7]>; 2] = Default::default();
+        for i in 0..truth.nrows() {
+            let row: Vec<f64> = x.row(i).iter().copied().collect();
+            let level = |j: usize| levels.get(i, j);
+            let s = spreads[i];
+            let plain = Spread { dispersion: 1.0, day_offset: 0.0, day_correlation: 0.0, ..s };
+            let phi = Spread { day_offset: 0.0, day_correlation: 0.0, ..s };
+            let off = Spread { dispersion: 1.0, day_correlation: 0.0, ..s };
+            for (k, (bucket, count, span)) in
+                [(&day_bucket, n / 96, 1.0), (&band_bucket, 2, (n / 96) as f64)].into_iter().enumerate()
+            {
+                let v0 = meter_sums(&row, &level, p, plain, 900, bucket, count);
+                let v1 = meter_sums(&row, &level, p, phi, 900, bucket, count);
+                let v2 = meter_sums(&row, &level, p, off, 900, bucket, count);
+                let fit = draws.bucket_variances(i, bucket, count);
+                for c in 0..count {
+                    let t: f64 = (0..n).filter(|&j| bucket[j] == Some(c)).map(|j| truth[(i, j)]).sum();
+                    let rho = 1.0 + s.day_correlation * (span - 1.0);
+                    cells[k].push([t, v0[c].0, v0[c].1, v1[c].1, v2[c].1, rho, fit[c]]);
+                }
+            }
+        }
+        let combos: [(&str, fn(&[f64; 7]) -> f64); 7] = [
+            ("current", |c| c[3].max(c[4]) * c[5] + c[6]),
+            ("max(A, A0+fit)", |c| (c[3].max(c[4]) * c[5]).max(c[3].max(c[4]) + c[6])),
+            ("max(A, phiV+fit)", |c| (c[3].max(c[4]) * c[5]).max(c[3] + c[6])),
+            ("max(A, V+fit)", |c| (c[3].max(c[4]) * c[5]).max(c[2] + c[6])),
+            ("max(A, fit)", |c| (c[3].max(c[4]) * c[5]).max(c[6])),
+            ("max(phiV rho, Voff+fit)", |c| (c[3] * c[5]).max(c[4] + c[6])),
+            ("max(phiV rho, Voff, V+fit)", |c| (c[3] * c[5]).max(c[4]).max(c[2] + c[6])),
+        ];
+        for (label, f) in combos {
+            let cov = |k: usize| {
+                let inside = cells[k].iter().filter(|c| (c[0] - c[1]).abs() <= Z95 * f(c).sqrt()).count();
+                100.0 * inside as f64 / cells[k].len().max(1) as f64
+            };
+            eprintln!("VARIANT {name} σ {scale} {label}: meter-days {:.1}% bands {:.1}%", cov(0), cov(1));
+        }
+    }
     let med = |mut v: Vec<f64>| {
         v.sort_by(f64::total_cmp);
         (100.0 * v[v.len() / 2], 100.0 * v[v.len() * 9 / 10])
