@@ -8,7 +8,7 @@ use std::collections::BTreeMap;
 use chrono::NaiveDate;
 use nalgebra::DMatrix;
 
-use crate::aggregate::{meter_sums, Spread, Z95};
+use crate::aggregate::{meter_sums_with_fit, Spread, Z95};
 use crate::bootstrap::FitDraws;
 use crate::recovery::{LevelMatrix, SumConstraint};
 use crate::tariff::TariffCalendar;
@@ -92,10 +92,8 @@ pub fn meter_energies(
             .collect();
         let row: Vec<f64> = x.row(i).iter().copied().collect();
         let level = |j: usize| f.levels.get(i, j);
-        let mut cells = meter_sums(&row, &level, profile, spread, f.interval_s, &bucket, keys.len());
-        for (c, v) in cells.iter_mut().zip(f.draws.bucket_variances(i, &bucket, keys.len())) {
-            c.1 += v;
-        }
+        let fit = f.draws.bucket_variances(i, &bucket, keys.len());
+        let mut cells = meter_sums_with_fit(&row, &level, profile, spread, f.interval_s, &bucket, &fit);
         let read_cells: Vec<(Vec<usize>, f64)> = reads
             .iter()
             .enumerate()

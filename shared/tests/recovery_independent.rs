@@ -113,18 +113,19 @@ fn run_with(
         .collect()
 }
 
-/// The measured coverage of the 95% bands, each within 3 points of what README
-/// states: group loads (groups of 10 and of 50 meters), meter-days and band
-/// energies over the window. Where README states a setting reaches the 90-98%
-/// the issue asks for, this keeps it there; where it states a shortfall, this
-/// keeps the statement true.
+/// The measured coverage of the 95% bands (with the fit's bootstrap), each
+/// within 1.5 points of what README states: group loads (groups of 10 and of
+/// 50 meters), meter-days and band energies over the window. Populations,
+/// dither and bootstrap are seeded, so what moves these is a change of method;
+/// where README states a setting inside the 90-98% aimed at, this keeps it
+/// near there, and where it states a miss, this keeps the statement true.
 fn covered(label: &str, f: &Figures, readme: [f64; 4]) {
     let c = f.coverage;
     let got = [c.groups[0], c.groups[1], c.days, c.bands];
     for ((what, got), stated) in
         ["groups of 10", "groups of 50", "meter-days", "band energies"].iter().zip(got).zip(readme)
     {
-        near(&format!("{label}: coverage of {what}"), got, stated, 0.03);
+        near(&format!("{label}: coverage of {what}"), got, stated, 0.015);
     }
 }
 
@@ -156,9 +157,9 @@ fn crest_feeder_recovery() {
     let f10 = run("CREST 300", &pop.x, 1.0, &[("all", all.clone())]);
     let low = run_with("CREST 300", &pop.x, 0.3, &[0.3, 0.8], &[("all", all)]);
     check("CREST σ 0.3", &f3[0], [0.778, 0.850, 0.471, 0.965, 0.248]);
-    covered("CREST σ 0.3", &f3[0], [0.968, 0.945, 0.963, 0.960]);
-    covered("CREST σ 1.0", &f10[0], [0.855, 0.781, 0.886, 0.832]);
-    covered("CREST σ 0.3, boundaries 0.3 and 0.8 kW", &low[0], [0.707, 0.469, 0.711, 0.633]);
+    covered("CREST σ 0.3", &f3[0], [0.984, 0.988, 0.994, 0.992]);
+    covered("CREST σ 1.0", &f10[0], [0.901, 0.930, 0.977, 0.975]);
+    covered("CREST σ 0.3, boundaries 0.3 and 0.8 kW", &low[0], [0.722, 0.528, 0.780, 0.645]);
     check("CREST σ 1.0", &f10[0], [0.760, 0.854, 0.364, 0.609, 0.101]);
     check("CREST σ 0.3, boundaries 0.3 and 0.8 kW", &low[0], [0.781, 0.831, 0.319, 0.452, 0.176]);
 }
@@ -172,8 +173,8 @@ fn mixed_feeder_recovery() {
     let f3 = run("mixed 500", &pop.x, 0.3, &[("all", all.clone()), ("households", homes.clone())]);
     let f10 = run("mixed 500", &pop.x, 1.0, &[("all", all), ("households", homes)]);
     check("mixed σ 0.3", &f3[0], [0.468, 0.589, 0.288, 0.918, 0.103]);
-    covered("mixed σ 0.3", &f3[0], [0.949, 0.911, 0.899, 0.893]);
-    covered("mixed σ 1.0", &f10[0], [0.845, 0.788, 0.680, 0.533]);
+    covered("mixed σ 0.3", &f3[0], [0.966, 0.966, 0.973, 0.964]);
+    covered("mixed σ 1.0", &f10[0], [0.902, 0.929, 0.942, 0.942]);
     check("mixed σ 0.3, households", &f3[1], [0.785, 0.858, 0.541, 1.037, 0.304]);
     check("mixed σ 1.0", &f10[0], [0.459, 0.725, 0.250, 0.552, 0.053]);
     check("mixed σ 1.0, households", &f10[1], [0.757, 0.918, 0.365, 0.621, 0.099]);
@@ -188,8 +189,8 @@ fn uci_blocks_inside_a_crest_feeder() {
     let f3 = run("CREST 200 + UCI", &pop.x, 0.3, &[("all", all.clone()), ("UCI blocks", measured.clone())]);
     let f10 = run("CREST 200 + UCI", &pop.x, 1.0, &[("all", all), ("UCI blocks", measured)]);
     check("UCI feeder σ 0.3", &f3[0], [0.670, 0.741, 0.431, 0.959, 0.161]);
-    covered("UCI feeder σ 0.3", &f3[0], [0.952, 0.927, 0.965, 0.966]);
-    covered("UCI feeder σ 1.0", &f10[0], [0.865, 0.796, 0.929, 0.825]);
+    covered("UCI feeder σ 0.3", &f3[0], [0.971, 0.971, 0.993, 0.994]);
+    covered("UCI feeder σ 1.0", &f10[0], [0.905, 0.932, 0.976, 0.970]);
     check("UCI blocks σ 0.3", &f3[1], [0.521, 0.587, 0.167, 0.277, 0.046]);
     check("UCI feeder σ 1.0", &f10[0], [0.671, 0.808, 0.331, 0.612, 0.088]);
     check("UCI blocks σ 1.0", &f10[1], [0.550, 0.716, 0.187, 0.410, 0.037]);

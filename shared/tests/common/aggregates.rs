@@ -62,7 +62,7 @@ pub fn aggregates(
     p: &DitherProfile,
     draws: &FitDraws,
 ) -> Coverage {
-    use meterveil_shared::aggregate::{group_load, meter_spreads, meter_sums, moments, Z95};
+    use meterveil_shared::aggregate::{group_load, meter_spreads, meter_sums, meter_sums_with_fit, moments, Z95};
     use rand::seq::SliceRandom;
     let spreads = meter_spreads(x, levels, p, 900);
     eprintln!("{name} σ {scale}: day correlation {:.4}", spreads[0].day_correlation);
@@ -77,12 +77,13 @@ pub fn aggregates(
         let (mut err_post, mut err_xhat, mut norm) = (0.0, 0.0, 0.0);
         for g in order.chunks_exact(size) {
             let fit = draws.group_variances(g, truth.ncols());
-            for (j, (kw, lo, hi)) in group_load(&mean, &var, g, &[]).iter().enumerate() {
+            let without = group_load(&mean, &var, g, &[]);
+            for (j, (kw, lo, hi)) in group_load(&mean, &var, g, &fit).iter().enumerate() {
                 let t: f64 = g.iter().map(|&i| truth[(i, j)]).sum();
                 let xh: f64 = g.iter().map(|&i| x[(i, j)]).sum();
-                let sd = (hi - kw) / Z95;
-                plain += usize::from(*lo <= t && t <= *hi);
-                inside += usize::from((t - kw).abs() <= Z95 * (sd * sd + fit[j]).sqrt());
+                // The band's lower end is floored at 0: coverage is of the band as served.
+                plain += usize::from(without[j].1 <= t && t <= without[j].2);
+                inside += usize::from(*lo <= t && t <= *hi);
                 total += 1;
                 err_post += (kw - t).powi(2);
                 err_xhat += (xh - t).powi(2);
@@ -109,21 +110,23 @@ pub fn aggregates(
     for i in 0..truth.nrows() {
         let row: Vec<f64> = x.row(i).iter().copied().collect();
         let level = |j: usize| levels.get(i, j);
-        let days = meter_sums(&row, &level, p, spreads[i], 900, &day_bucket, n / 96);
-        let bands = meter_sums(&row, &level, p, spreads[i], 900, &band_bucket, 2);
+        let days_plain_sums = meter_sums(&row, &level, p, spreads[i], 900, &day_bucket, n / 96);
+        let bands_plain_sums = meter_sums(&row, &level, p, spreads[i], 900, &band_bucket, 2);
         let fit_days = draws.bucket_variances(i, &day_bucket, n / 96);
         let fit_bands = draws.bucket_variances(i, &band_bucket, 2);
+        let days = meter_sums_with_fit(&row, &level, p, spreads[i], 900, &day_bucket, &fit_days);
+        let bands = meter_sums_with_fit(&row, &level, p, spreads[i], 900, &band_bucket, &fit_bands);
         for (d, (e, v)) in days.iter().enumerate() {
             let t: f64 = (d * 96..(d + 1) * 96).map(|j| truth[(i, j)]).sum();
-            days_plain += usize::from((t - e).abs() <= Z95 * v.sqrt());
-            days_in += usize::from((t - e).abs() <= Z95 * (v + fit_days[d]).sqrt());
+            days_plain += usize::from((t - e).abs() <= Z95 * days_plain_sums[d].1.sqrt());
+            days_in += usize::from((t - e).abs() <= Z95 * v.sqrt());
             days_n += 1;
             day_err.push((e - t).abs() / t.max(1e-9));
         }
         for (b, (e, v)) in bands.iter().enumerate() {
             let t: f64 = (0..n).filter(|&j| usize::from(peak(j)) == b).map(|j| truth[(i, j)]).sum();
-            bands_plain += usize::from((t - e).abs() <= Z95 * v.sqrt());
-            bands_in += usize::from((t - e).abs() <= Z95 * (v + fit_bands[b]).sqrt());
+            bands_plain += usize::from((t - e).abs() <= Z95 * bands_plain_sums[b].1.sqrt());
+            bands_in += usize::from((t - e).abs() <= Z95 * v.sqrt());
             bands_n += 1;
             band_err.push((e - t).abs() / t.max(1e-9));
         }
@@ -132,48 +135,6 @@ pub fn aggregates(
     }
     cov.days = share(days_in, days_n);
     cov.bands = share(bands_in, bands_n);
-    if std::env::var("MV_VARIANTS").is_ok() {
-        use meterveil_shared::aggregate::Spread;
-        // Per cell: truth, estimate, V, φV, V+off, ρ factor, fit.
-        let mut cells: [Vec<[f64; 7]>; 2] = Default::default();
-        for i in 0..truth.nrows() {
-            let row: Vec<f64> = x.row(i).iter().copied().collect();
-            let level = |j: usize| levels.get(i, j);
-            let s = spreads[i];
-            let plain = Spread { dispersion: 1.0, day_offset: 0.0, day_correlation: 0.0, ..s };
-            let phi = Spread { day_offset: 0.0, day_correlation: 0.0, ..s };
-            let off = Spread { dispersion: 1.0, day_correlation: 0.0, ..s };
-            for (k, (bucket, count, span)) in
-                [(&day_bucket, n / 96, 1.0), (&band_bucket, 2, (n / 96) as f64)].into_iter().enumerate()
-            {
-                let v0 = meter_sums(&row, &level, p, plain, 900, bucket, count);
-                let v1 = meter_sums(&row, &level, p, phi, 900, bucket, count);
-                let v2 = meter_sums(&row, &level, p, off, 900, bucket, count);
-                let fit = draws.bucket_variances(i, bucket, count);
-                for c in 0..count {
-                    let t: f64 = (0..n).filter(|&j| bucket[j] == Some(c)).map(|j| truth[(i, j)]).sum();
-                    let rho = 1.0 + s.day_correlation * (span - 1.0);
-                    cells[k].push([t, v0[c].0, v0[c].1, v1[c].1, v2[c].1, rho, fit[c]]);
-                }
-            }
-        }
-        let combos: [(&str, fn(&[f64; 7]) -> f64); 7] = [
-            ("current", |c| c[3].max(c[4]) * c[5] + c[6]),
-            ("max(A, A0+fit)", |c| (c[3].max(c[4]) * c[5]).max(c[3].max(c[4]) + c[6])),
-            ("max(A, phiV+fit)", |c| (c[3].max(c[4]) * c[5]).max(c[3] + c[6])),
-            ("max(A, V+fit)", |c| (c[3].max(c[4]) * c[5]).max(c[2] + c[6])),
-            ("max(A, fit)", |c| (c[3].max(c[4]) * c[5]).max(c[6])),
-            ("max(phiV rho, Voff+fit)", |c| (c[3] * c[5]).max(c[4] + c[6])),
-            ("max(phiV rho, Voff, V+fit)", |c| (c[3] * c[5]).max(c[4]).max(c[2] + c[6])),
-        ];
-        for (label, f) in combos {
-            let cov = |k: usize| {
-                let inside = cells[k].iter().filter(|c| (c[0] - c[1]).abs() <= Z95 * f(c).sqrt()).count();
-                100.0 * inside as f64 / cells[k].len().max(1) as f64
-            };
-            eprintln!("VARIANT {name} σ {scale} {label}: meter-days {:.1}% bands {:.1}%", cov(0), cov(1));
-        }
-    }
     let med = |mut v: Vec<f64>| {
         v.sort_by(f64::total_cmp);
         (100.0 * v[v.len() / 2], 100.0 * v[v.len() * 9 / 10])
