@@ -13,6 +13,7 @@
 
 use libm::erfc;
 use nalgebra::DMatrix;
+use rayon::prelude::*;
 
 use crate::recovery::LevelMatrix;
 use crate::{DitherProfile, NoiseFamily};
@@ -165,6 +166,7 @@ pub fn whole_spreads(x: &DMatrix<f64>, levels: &LevelMatrix, profile: &DitherPro
     let grid: Vec<f64> =
         std::iter::once(0.0).chain((0..=60).map(|i| 0.01 * 1000f64.powf(f64::from(i) / 60.0))).collect();
     (0..x.nrows())
+        .into_par_iter()
         .map(|i| {
             let score = |tau: f64| -> f64 {
                 (0..x.ncols())
@@ -186,7 +188,9 @@ pub fn meter_spreads(x: &DMatrix<f64>, levels: &LevelMatrix, profile: &DitherPro
     let block = (BLOCK_S / interval_s.max(1)).max(1) as usize;
     let day = (86_400 / interval_s.max(1)).max(1) as usize;
     let taus = whole_spreads(x, levels, profile);
+    // Meters are independent: split across the cores.
     let fitted: Vec<(Spread, f64)> = (0..x.nrows())
+        .into_par_iter()
         .map(|i| {
             let tau = taus[i];
             let row: Vec<f64> = x.row(i).iter().copied().collect();

@@ -422,6 +422,37 @@ fn auto_or_number(flag: &str, v: &str) -> anyhow::Result<Option<usize>> {
     }
 }
 
+/// The `aggregate` file mode.
+fn run_aggregate_command(command: Command) -> anyhow::Result<serde_json::Value> {
+    let Command::Aggregate {
+        profiles,
+        groups,
+        output,
+        levels,
+        profile,
+        tariff,
+        band_energies,
+        daily,
+        registers,
+        band_draws,
+        rank,
+    } = command
+    else {
+        anyhow::bail!("not the aggregate command");
+    };
+    crate::offline::run_aggregate(&crate::offline::AggregateFiles {
+        profiles: &profiles,
+        levels: &levels,
+        profile: &profile,
+        groups: &groups,
+        output: &output,
+        tariff: tariff.as_deref().zip(band_energies.as_deref()),
+        daily: daily.as_deref(),
+        registers: registers.as_deref(),
+        bootstrap: (band_draws, auto_or_number("rank", &rank)?),
+    })
+}
+
 /// The file modes (recover, cluster, audit, calibrate), on the blocking pool;
 /// returns the summary printed as the last line.
 fn run_file_mode(command: Command) -> anyhow::Result<serde_json::Value> {
@@ -432,32 +463,7 @@ fn run_file_mode(command: Command) -> anyhow::Result<serde_json::Value> {
             let params = RecoveryParams { rank, alpha_kw, ..RecoveryParams::default() };
             crate::offline::run_recover(&levels, &profile, &output, registers.as_deref(), params)
         }
-        Command::Aggregate {
-            profiles,
-            groups,
-            output,
-            levels,
-            profile,
-            tariff,
-            band_energies,
-            daily,
-            registers,
-            band_draws,
-            rank,
-        } => {
-            let rank = auto_or_number("rank", &rank)?;
-            crate::offline::run_aggregate(&crate::offline::AggregateFiles {
-                profiles: &profiles,
-                levels: &levels,
-                profile: &profile,
-                groups: &groups,
-                output: &output,
-                tariff: tariff.as_deref().zip(band_energies.as_deref()),
-                daily: daily.as_deref(),
-                registers: registers.as_deref(),
-                bootstrap: (band_draws, rank),
-            })
-        }
+        c @ Command::Aggregate { .. } => run_aggregate_command(c),
         Command::Cluster { levels, profile, registers, alpha_kw, profiles, output, clusters } => {
             let clusters = auto_or_number("clusters", &clusters)?;
             let input = match (&levels, &profile, &profiles) {

@@ -7,8 +7,10 @@ use meterveil_shared::aggregate::meter_spreads;
 use meterveil_shared::bootstrap::{fit_draws, Fit, StoredBands};
 use meterveil_shared::mechanism::secure_rng;
 use meterveil_shared::recovery::outage::DayLayout;
-use meterveil_shared::recovery::{band95, recover_from, LevelMatrix, RecoveryParams, SumConstraint, WarmStart};
-use meterveil_shared::FeederId;
+use meterveil_shared::recovery::{
+    band95, recover_from, LevelMatrix, Recovery, RecoveryParams, SumConstraint, ValidRecoveryParams, WarmStart,
+};
+use meterveil_shared::{DitherProfile, FeederId};
 
 use super::WorkContext;
 use crate::clock::now_s;
@@ -125,43 +127,12 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoverSpec) -> anyhow::
         let report = &mut |stage: &str, f: f64| progress(stage, f);
         let rec = recover_from(&levels, &profile, &constraints, layout, &params, warm.as_ref(), report)
             .map_err(|e| anyhow::anyhow!("{e}"))?;
-        let bands = if draws > 0 {
-            progress("bands' bootstrap", 0.99);
-            let spreads = meter_spreads(&rec.x, &levels, &profile, layout.interval_s);
-            let fit = Fit {
-                x: &rec.x,
-                rank: rec.diagnostics.rank,
-                levels: &levels,
-                profile: &profile,
-                constraints: &constraints,
-                layout,
-                spreads: &spreads,
-                params: &params,
-            };
-            // Like the dither, the draws come from the operating system's generator.
-            let fd = fit_draws(&fit, draws, &mut secure_rng()).map_err(|e| anyhow::anyhow!("bands' bootstrap: {e}"))?;
-            Some(serde_json::to_string(&StoredBands::new(names, &spreads, &fd))?)
-        } else {
-            None
-        };
+        progress("bands' bootstrap", 0.99);
+        let bands = band_model(&rec, (&levels, &profile, &constraints, layout), &params, names, draws)?;
         Ok((rec, constraints.len(), bands))
     })
     .await?;
-    let mut out = Vec::with_capacity(meters.len() * cols);
-    for (i, m) in meters.iter().enumerate() {
-        for j in 0..cols {
-            let (x, sd) = (rec.x[(i, j)], rec.std_kw[(i, j)]);
-            let (lo, hi) = band95(x, sd, req.alpha_kw);
-            out.push(RecoveredRow {
-                meter_id: m.clone(),
-                interval_start: req.from + j as i64 * step,
-                kw: x,
-                flag: rec.flag(i, j).as_str(),
-                kw_low: lo,
-                kw_high: hi,
-            });
-        }
-    }
+    let mut out = rows_of(&rec, &meters, req, step);
     let mut diag = serde_json::to_value(&rec.diagnostics)?;
     diag["register_days"] = n_constraints.into();
     diag["meters"] = meters.len().into();
@@ -188,6 +159,47 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoverSpec) -> anyhow::
     }
     store.finish_job(job_id, version, &out, &diag, run, now_s()).await?;
     Ok(())
+}
+
+/// The job's rows: every meter's estimate, flag and first-order band per interval.
+fn rows_of(rec: &Recovery, meters: &[String], req: &RecoverSpec, step: i64) -> Vec<RecoveredRow> {
+    let cols = rec.x.ncols();
+    let mut out = Vec::with_capacity(meters.len() * cols);
+    for (i, m) in meters.iter().enumerate() {
+        for j in 0..cols {
+            let (x, sd) = (rec.x[(i, j)], rec.std_kw[(i, j)]);
+            let (lo, hi) = band95(x, sd, req.alpha_kw);
+            out.push(RecoveredRow {
+                meter_id: m.clone(),
+                interval_start: req.from + j as i64 * step,
+                kw: x,
+                flag: rec.flag(i, j).as_str(),
+                kw_low: lo,
+                kw_high: hi,
+            });
+        }
+    }
+    out
+}
+
+/// A recovery's band model as stored (`shared::bootstrap::StoredBands`, JSON):
+/// each meter's spread and `draws` refits of the bands' bootstrap; none for 0.
+fn band_model(
+    rec: &Recovery,
+    (levels, profile, constraints, layout): (&LevelMatrix, &DitherProfile, &[SumConstraint], DayLayout),
+    params: &ValidRecoveryParams,
+    meters: Vec<String>,
+    draws: usize,
+) -> anyhow::Result<Option<String>> {
+    if draws == 0 {
+        return Ok(None);
+    }
+    let spreads = meter_spreads(&rec.x, levels, profile, layout.interval_s);
+    let (x, rank) = (&rec.x, rec.diagnostics.rank);
+    let fit = Fit { x, rank, levels, profile, constraints, layout, spreads: &spreads, params };
+    // Like the dither, the draws come from the operating system's generator.
+    let fd = fit_draws(&fit, draws, &mut secure_rng()).map_err(|e| anyhow::anyhow!("bands' bootstrap: {e}"))?;
+    Ok(Some(serde_json::to_string(&StoredBands::new(meters, &spreads, &fd))?))
 }
 
 /// The start of a rolling run: finished recoveries' estimates (each whole,

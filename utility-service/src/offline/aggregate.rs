@@ -6,13 +6,13 @@
 use std::collections::BTreeMap;
 use std::path::Path;
 
-use meterveil_shared::aggregate::{group_load, meter_spreads, moments};
+use meterveil_shared::aggregate::{group_load, meter_spreads, moments, Spread};
 use meterveil_shared::bootstrap::{fit_draws, Fit, FitDraws};
 use meterveil_shared::mechanism::secure_rng;
 use meterveil_shared::recovery::linalg::truncate;
 use meterveil_shared::recovery::outage::DayLayout;
-use meterveil_shared::recovery::RecoveryParams;
-use meterveil_shared::FieldError;
+use meterveil_shared::recovery::{RecoveryParams, SumConstraint};
+use meterveil_shared::{DitherProfile, FieldError};
 use serde::Deserialize;
 
 use meterveil_shared::tariff::TariffCalendar;
@@ -40,6 +40,28 @@ pub struct AggregateFiles<'a> {
     pub registers: Option<&'a Path>,
     /// The bands' bootstrap: its draws, and the profiles' rank (`None`: estimated).
     pub bootstrap: (usize, Option<usize>),
+}
+
+/// The bands' bootstrap of the profiles (`(draws, rank)`; no rank: estimated),
+/// and the rank it ran at.
+fn bootstrap(
+    (draws, rank): (usize, Option<usize>),
+    x: &nalgebra::DMatrix<f64>,
+    w: &super::files::Window,
+    profile: &DitherProfile,
+    constraints: &[SumConstraint],
+    spreads: &[Spread],
+) -> anyhow::Result<(FitDraws, usize)> {
+    let rank = rank.unwrap_or_else(|| profile_rank(x));
+    if draws == 0 {
+        return Ok((FitDraws::default(), rank));
+    }
+    let params = RecoveryParams::default().check().map_err(|e| anyhow::anyhow!("{e}"))?;
+    let layout = DayLayout { window_start: w.start, interval_s: w.interval_s };
+    let fit = Fit { x, rank, levels: &w.levels, profile, constraints, layout, spreads, params: &params };
+    let out = fit_draws(&fit, draws, &mut secure_rng())
+        .map_err(|e| anyhow::anyhow!("--{}: {}", e.field.replace('_', "-"), e.reason))?;
+    Ok((out, rank))
 }
 
 /// The fewest singular values holding 99.9% of the profiles' square (of the
@@ -170,31 +192,9 @@ pub fn run_aggregate(a: &AggregateFiles<'_>) -> anyhow::Result<serde_json::Value
     }
     let groups = read_groups(a.groups, &rec.meters)?;
     let calendar = a.tariff.map(|(t, _)| read_calendar(t)).transpose()?;
-    let constraints = match a.registers {
-        Some(p) => read_registers(p, &w)?.0,
-        None => Vec::new(),
-    };
+    let constraints = a.registers.map(|p| read_registers(p, &w)).transpose()?.map(|r| r.0).unwrap_or_default();
     let spreads = meter_spreads(&rec.kw, &w.levels, &profile, rec.interval_s);
-    let (draws_asked, rank) = a.bootstrap;
-    let rank = rank.unwrap_or_else(|| profile_rank(&rec.kw));
-    let draws = if draws_asked == 0 {
-        FitDraws::default()
-    } else {
-        let params = RecoveryParams::default().check().map_err(|e| anyhow::anyhow!("{e}"))?;
-        let layout = DayLayout { window_start: w.start, interval_s: w.interval_s };
-        let fit = Fit {
-            x: &rec.kw,
-            rank,
-            levels: &w.levels,
-            profile: &profile,
-            constraints: &constraints,
-            layout,
-            spreads: &spreads,
-            params: &params,
-        };
-        fit_draws(&fit, draws_asked, &mut secure_rng())
-            .map_err(|e| anyhow::anyhow!("--{}: {}", e.field.replace('_', "-"), e.reason))?
-    };
+    let (draws, rank) = bootstrap(a.bootstrap, &rec.kw, &w, &profile, &constraints, &spreads)?;
     let energies = |label: &dyn Fn(i64) -> Option<(chrono::NaiveDate, usize)>| {
         let fitted = Fitted { x: &rec.kw, levels: &w.levels, start: w.start, interval_s: w.interval_s, draws: &draws };
         meter_energies(fitted, &profile, &spreads, &constraints, label)

@@ -193,12 +193,10 @@ async fn load(
         "group": name,
         "feeder_id": job.feeder_id,
         "meters": meters,
-        "members_elsewhere": members.len() - meters,
-        "bootstrap_draws": draws,
-        "band": "95%, from each member's spread around its recovered profile, each interval's level and the \
-                 recovery's bootstrap of its own fit (bootstrap_draws); coverage measured on populations we did \
-                 not design at 90-99% on household and mixed feeders, 76-92% on smooth standard-profile feeders \
-                 (README, \"Group loads and their bands\")",
+        "members_elsewhere": members.len() - meters, "bootstrap_draws": draws,
+        "band": "95%, from each member's spread, each interval's level and the recovery's bootstrap of its fit; \
+                 coverage measured at 90-99% on household and mixed feeders we did not design, 76-92% on smooth \
+                 standard-profile feeders (README, \"Group loads and their bands\")",
         "points": points,
     }))
     .into_response())
