@@ -1304,19 +1304,23 @@ fn energies_on_files(dir: &std::path::Path, out: &std::path::Path, meters: &[Str
     for f in ["agg-x.csv", "bands-x.csv", "daily-x.csv"] {
         assert!(!p(f).exists(), "a refused calendar wrote {f}");
     }
-    let r = std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
-        .args(["aggregate", "--profiles"])
-        .arg(out)
-        .args(["--groups".as_ref(), p("groups.csv").as_os_str()])
-        .args(["--output".as_ref(), p("agg-y.csv").as_os_str()])
-        .args(["--levels".as_ref(), p("levels.csv").as_os_str()])
-        .args(["--profile".as_ref(), p("profile.json").as_os_str()])
-        .args(["--band-draws", "33"])
-        .output()
-        .expect("run aggregate");
-    let err = String::from_utf8_lossy(&r.stderr);
-    assert!(!r.status.success() && err.contains("--band-draws: at most 32"), "{err}");
-    assert!(!p("agg-y.csv").exists(), "a refused bootstrap wrote its output");
+    for (flag, value, why) in
+        [("--band-draws", "33", "--band-draws: at most 32"), ("--rank", "0", "--rank: must be at least 1")]
+    {
+        let r = std::process::Command::new(env!("CARGO_BIN_EXE_utility-service"))
+            .args(["aggregate", "--profiles"])
+            .arg(out)
+            .args(["--groups".as_ref(), p("groups.csv").as_os_str()])
+            .args(["--output".as_ref(), p("agg-y.csv").as_os_str()])
+            .args(["--levels".as_ref(), p("levels.csv").as_os_str()])
+            .args(["--profile".as_ref(), p("profile.json").as_os_str()])
+            .args([flag, value])
+            .output()
+            .expect("run aggregate");
+        let err = String::from_utf8_lossy(&r.stderr);
+        assert!(!r.status.success() && err.contains(why), "{flag} {value}: {err}");
+        assert!(!p("agg-y.csv").exists(), "a refused bootstrap wrote its output");
+    }
 }
 
 /// A group defined over HTTP and its load from a finished recovery: the band

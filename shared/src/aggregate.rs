@@ -307,12 +307,34 @@ pub fn meter_sums(
     bucket: &[Option<usize>],
     buckets: usize,
 ) -> Vec<(f64, f64)> {
+    sums_before_days(xhat, level, profile, s, interval_s, bucket, buckets)
+        .into_iter()
+        .map(|(mean, var, days)| (mean, var * day_factor(s, days)))
+        .collect()
+}
+
+/// The day correlation's scaling of a sum over `days` days.
+fn day_factor(s: Spread, days: usize) -> f64 {
+    1.0 + s.day_correlation * days.saturating_sub(1) as f64
+}
+
+/// [`meter_sums`] before the day correlation: each bucket's mean, variance
+/// and the number of days it touches.
+fn sums_before_days(
+    xhat: &[f64],
+    level: &dyn Fn(usize) -> Option<u8>,
+    profile: &DitherProfile,
+    s: Spread,
+    interval_s: u32,
+    bucket: &[Option<usize>],
+    buckets: usize,
+) -> Vec<(f64, f64, usize)> {
     let sd = dither_sd(profile);
     let bounds = profile.boundaries_kw();
     let grid = nodes();
     let block = (BLOCK_S / interval_s.max(1)).max(1) as usize;
     let day = (86_400 / interval_s.max(1)).max(1) as usize;
-    let mut out = vec![(0.0, 0.0); buckets];
+    let mut out = vec![(0.0, 0.0, 0); buckets];
     // The days each bucket touches, in order, with its count of intervals in each.
     let mut days_of: Vec<Vec<(usize, f64)>> = vec![Vec::new(); buckets];
     let mut per: Vec<(usize, [f64; NODES], [f64; NODES], f64)> = Vec::new();
@@ -360,7 +382,7 @@ pub fn meter_sums(
         // twice (CREST meter-days covered 99.5% at σ 0.3 kW).
         let offsets = s.day_offset * seen.iter().map(|(_, n)| n * n).sum::<f64>();
         o.1 = (s.dispersion * o.1).max(o.1 + offsets);
-        o.1 *= 1.0 + s.day_correlation * seen.len().saturating_sub(1) as f64;
+        o.2 = seen.len();
     }
     out
 }
@@ -381,12 +403,11 @@ pub fn meter_sums_with_fit(
     bucket: &[Option<usize>],
     fit: &[f64],
 ) -> Vec<(f64, f64)> {
-    let with = meter_sums(xhat, level, profile, s, interval_s, bucket, fit.len());
-    if fit.iter().all(|v| *v == 0.0) {
-        return with;
-    }
-    let without = meter_sums(xhat, level, profile, Spread { day_correlation: 0.0, ..s }, interval_s, bucket, fit.len());
-    with.iter().zip(&without).zip(fit).map(|((a, b), f)| (a.0, a.1.max(b.1 + f))).collect()
+    sums_before_days(xhat, level, profile, s, interval_s, bucket, fit.len())
+        .into_iter()
+        .zip(fit)
+        .map(|((mean, var, days), f)| (mean, (var * day_factor(s, days)).max(var + f)))
+        .collect()
 }
 
 /// Every interval's mean and variance of the true load (m × n each), from

@@ -97,7 +97,7 @@ pub fn fit_draws(fit: &Fit<'_>, draws: usize, rng: &mut impl Rng) -> Result<FitD
     if fit.spreads.len() != m || fit.levels.rows() != m || fit.levels.cols() != n {
         return Err(FieldError::new("spreads", "must hold one spread per meter of the fit"));
     }
-    let params = RecoveryParams { rank: RankChoice::Fixed(fit.rank.max(1)), ..fit.params.get().clone() }.check()?;
+    let params = RecoveryParams { rank: RankChoice::Fixed(fit.rank), ..fit.params.get().clone() }.check()?;
     let (sd, bounds) = (dither_sd(fit.profile), fit.profile.boundaries_kw());
     let taus: Vec<f64> = fit.spreads.iter().map(|s| s.shared.hypot(s.own)).collect();
     let block = (BLOCK_S / fit.layout.interval_s.max(1)).max(1) as usize;

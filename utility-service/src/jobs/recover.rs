@@ -127,7 +127,9 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoverSpec) -> anyhow::
         let report = &mut |stage: &str, f: f64| progress(stage, f);
         let rec = recover_from(&levels, &profile, &constraints, layout, &params, warm.as_ref(), report)
             .map_err(|e| anyhow::anyhow!("{e}"))?;
-        progress("bands' bootstrap", 0.99);
+        if draws > 0 {
+            progress("bands' bootstrap", 0.99);
+        }
         let bands = band_model(&rec, (&levels, &profile, &constraints, layout), &params, names, draws)?;
         Ok((rec, constraints.len(), bands))
     })

@@ -73,10 +73,7 @@ async fn band_energies(
     Path(id): Path<String>,
     Query(q): Query<BandQuery>,
 ) -> Result<Response, ApiError> {
-    let format = q.format.clone().unwrap_or_else(|| "json".into());
-    if !["json", "csv"].contains(&format.as_str()) {
-        return Err(ApiError::invalid("format", format!("{format:?} is not json or csv")));
-    }
+    let csv = wants_csv(q.format.as_deref())?;
     let job = super::recoveries::find_done(&s, &id).await?;
     let feeder = FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
     let stored = s.store.tariffs(&feeder).await?;
@@ -106,7 +103,7 @@ async fn band_energies(
             })
         })
         .collect();
-    if format == "csv" {
+    if csv {
         return Ok(
             ([(header::CONTENT_TYPE, "text/csv; charset=utf-8")], csv_of(&cells, &meters, &calendar)).into_response()
         );
@@ -116,6 +113,15 @@ async fn band_energies(
         "bootstrap_draws": draws_used, "energies": out,
     }))
     .into_response())
+}
+
+/// `format`: json (the default) or csv; true for csv.
+fn wants_csv(format: Option<&str>) -> Result<bool, ApiError> {
+    match format.unwrap_or("json") {
+        "json" => Ok(false),
+        "csv" => Ok(true),
+        other => Err(ApiError::invalid("format", format!("{other:?} is not json or csv"))),
+    }
 }
 
 /// What a recovery's energies are summed by.
@@ -182,10 +188,7 @@ async fn day_energies(
     Path(id): Path<String>,
     Query(q): Query<DayQuery>,
 ) -> Result<Response, ApiError> {
-    let format = q.format.clone().unwrap_or_else(|| "json".into());
-    if !["json", "csv"].contains(&format.as_str()) {
-        return Err(ApiError::invalid("format", format!("{format:?} is not json or csv")));
-    }
+    let csv = wants_csv(q.format.as_deref())?;
     let job = super::recoveries::find_done(&s, &id).await?;
     let zone = match q.days.as_deref().unwrap_or("utc") {
         "utc" => chrono_tz::UTC,
@@ -198,7 +201,7 @@ async fn day_energies(
     };
     let (cells, meters, draws_used) = cells_of(&s, &job, Cells::Days(zone)).await?;
     tracing::info!(job = %id, cells = cells.len(), "day energies");
-    if format == "csv" {
+    if csv {
         let mut text = String::from("meter_id,day,kwh,kwh_low,kwh_high,intervals,register_read\n");
         for c in &cells {
             text.push_str(&format!(
