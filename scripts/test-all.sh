@@ -42,5 +42,6 @@ cargo clippy -p meterveil-service --all-targets -- -D warnings
 wait "$populations"
 # Every test, the end-to-end ones on SQLite...
 cargo test --workspace --all-features
-# ...then the end-to-end tests (store, jobs, crash and SIGKILL tests) again on PostgreSQL.
-METERVEIL_TEST_BACKEND=postgres cargo test -p meterveil-service --test end_to_end
+# ...then the end-to-end tests (store, jobs, crash and SIGKILL tests) again on
+# PostgreSQL, with the same features so that the build above is reused.
+METERVEIL_TEST_BACKEND=postgres cargo test -p meterveil-service --all-features --test end_to_end
