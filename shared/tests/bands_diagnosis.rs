@@ -158,15 +158,15 @@ fn upper_shares(f: &Fitted) -> (f64, f64, f64) {
     let spreads = meter_spreads(&f.rec.x, &f.levels, &f.p, 900);
     let mut rng = ChaCha8Rng::seed_from_u64(3);
     let (mut read, mut model, mut drawn, mut n) = (0usize, 0.0, 0usize, 0usize);
-    for i in 0..f.rec.x.nrows() {
+    for (i, sp) in spreads.iter().enumerate() {
         let mut offset = 0.0;
         for j in 0..f.rec.x.ncols() {
             if j % 16 == 0 {
                 let z: f64 = StandardNormal.sample(&mut rng);
-                offset = spreads[i].shared * z;
+                offset = sp.shared * z;
             }
             let z: f64 = StandardNormal.sample(&mut rng);
-            let load = f.rec.x[(i, j)] + offset + spreads[i].own * z;
+            let load = f.rec.x[(i, j)] + offset + sp.own * z;
             if let Some(l) = f.levels.get(i, j) {
                 read += usize::from(l > 0);
                 model += 1.0 - level_probability(&f.p, 0, f.rec.x[(i, j)]);
