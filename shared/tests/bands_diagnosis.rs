@@ -1,7 +1,8 @@
 //! Why the 95% bands miss where they miss: the measurements behind README's
 //! "Group loads and their bands" on the two populations whose coverage lies
-//! outside 90-98%. Too slow for CI (five more fits of 300-1400 meters), so
-//! ignored; run by hand, each asserting the figures README states:
+//! outside 90-98%. Too slow for CI (four more fits of 300-1400 meters and
+//! three bootstraps), so ignored; run by hand, each asserting the figures
+//! README states:
 //!
 //! `cargo test --release -p meterveil-shared --test bands_diagnosis -- --ignored --nocapture`
 //!
