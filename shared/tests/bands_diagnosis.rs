@@ -6,6 +6,8 @@
 //!
 //! `cargo test --release -p meterveil-shared --test bands_diagnosis -- --ignored --nocapture`
 //!
+//! Sources, versions pinned in tests/reference/requirements.txt (and printed
+//! by `recovery_bdew.rs` and `recovery_independent.rs`):
 //! - BDEW (standard load profiles from demandlib, as in `recovery_bdew.rs`):
 //!   readings at the top level are censored, and the fit is biased low there.
 //! - CREST households (richardsonpy, as in `recovery_independent.rs`): the
