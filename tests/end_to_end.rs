@@ -933,6 +933,7 @@ async fn recovery_job_over_stored_levels() {
         if let Some(adv) = advances.get(&key) {
             assert_eq!(d["energy_wh"].as_f64(), Some(*adv as f64), "{d}");
             assert_eq!(d["source"], "register");
+            assert_eq!((d["low_wh"].as_f64(), d["high_wh"].as_f64()), (Some(*adv as f64), Some(*adv as f64)), "{d}");
             settled += 1;
         }
     }

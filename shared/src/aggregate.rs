@@ -340,6 +340,9 @@ fn sums_before_days(
     let mut per: Vec<(usize, [f64; NODES], [f64; NODES], f64)> = Vec::new();
     for c in (0..xhat.len()).step_by(block) {
         let cols = c..(c + block).min(xhat.len());
+        if cols.clone().all(|j| bucket[j].is_none()) {
+            continue;
+        }
         let (w, _) = block_weights(xhat, level, cols.clone(), s, sd, bounds);
         per.clear();
         for j in cols {

@@ -128,7 +128,7 @@ mod tests {
         assert_eq!(out.iter().map(|r| r.kw).collect::<Vec<_>>(), vec![1.5, 2.5, 2.0]);
         assert_eq!(moves, vec![0.0]);
 
-        let d = crate::settlement::daily(&[row("a", 0, 1.0)], &[], 86_400);
+        let d = crate::settlement::daily(&[row("a", 0, 1.0)], &[], 86_400, &Default::default());
         let json = frozen_json(&d, &HashMap::from([("a".to_owned(), base.clone())])).expect("json");
         assert_eq!(frozen_inputs(&json).expect("parse"), HashMap::from([("a".to_owned(), base)]));
         let back: Vec<DailyEnergy> = serde_json::from_str(&json).expect("figures");

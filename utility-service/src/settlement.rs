@@ -14,6 +14,8 @@ use chrono::{DateTime, SecondsFormat, TimeZone, Utc};
 use chrono_tz::Tz;
 use serde::{Deserialize, Serialize};
 
+use meterveil_shared::aggregate::Z95;
+use meterveil_shared::energies::EnergyCell;
 use meterveil_shared::recovery::{LevelMatrix, SumConstraint};
 
 use crate::records::RecoveredRow;
@@ -27,13 +29,26 @@ pub struct DailyEnergy {
     /// ISO 8601 date of that UTC day.
     pub day: String,
     /// Settled energy: the day's register advance where one exists (daily
-    /// reads), otherwise the sum of the recovered intervals (which, under
-    /// weekly or monthly reads, sum to the period's advance).
+    /// reads), otherwise the levels' estimate of the day's energy
+    /// (`shared::energies::meter_energies`, which under weekly or monthly
+    /// reads sums to the period's advance). That estimate is not the sum of
+    /// the recovered intervals (`recovered_wh`): on the reference populations
+    /// it was the closer of the two (README "Group loads and their bands").
+    /// Without it (a recovery whose meters changed since) the recovered sum.
     pub energy_wh: f64,
-    /// One standard deviation of `energy_wh`: 0 for a register advance, else the
-    /// intervals' bands combined as independent (an understatement: interval
-    /// errors of one meter-day are correlated).
-    pub uncertainty_wh: f64,
+    /// The 95% band of `energy_wh` from its levels and the recovery's
+    /// bootstrap: the register advance itself for a register day; `None`
+    /// where the levels' estimate could not be had.
+    #[serde(default)]
+    pub low_wh: Option<f64>,
+    #[serde(default)]
+    pub high_wh: Option<f64>,
+    /// The band's upper half-width over 1.96, as a standard deviation: 0 for
+    /// a register advance. (Runs frozen before the bands were trusted hold
+    /// the intervals' first-order bands combined as independent here, an
+    /// understatement, and no `low_wh` or `high_wh`.)
+    #[serde(default)]
+    pub uncertainty_wh: Option<f64>,
     pub source: String,
     /// ESPI QualityOfReading of `energy_wh`: 0 (valid, a register advance) or
     /// 11 (derived, from the recovery); the code values are from memory of the
@@ -101,9 +116,29 @@ pub fn daily_advances(reads: &[Advance]) -> HashMap<(String, i64), i64> {
         .collect()
 }
 
-/// Daily energies of every meter over the whole UTC days the rows cover.
+/// Each meter-day's energy from its levels and its 95% band (Wh: estimate,
+/// low, high), from the levels and the recovery's bootstrap, by (meter, UTC
+/// day start).
+pub type DayEstimates = HashMap<(String, i64), (f64, f64, f64)>;
+
+/// [`DayEstimates`] from a recovery's energies per UTC day
+/// (`shared::energies::meter_energies` with `day_label(None)`), whose
+/// `meter` indexes `meters`.
+pub fn day_estimates(cells: &[EnergyCell], meters: &[String]) -> DayEstimates {
+    cells
+        .iter()
+        .filter_map(|c| {
+            let start = c.label.0.and_hms_opt(0, 0, 0)?.and_utc().timestamp();
+            let wh = (c.kwh * 1000.0, c.kwh_low * 1000.0, c.kwh_high * 1000.0);
+            Some(((meters.get(c.meter)?.clone(), start), wh))
+        })
+        .collect()
+}
+
+/// Daily energies of every meter over the whole UTC days the rows cover, each
+/// recovered day at its levels' estimate from `estimates` where it has one.
 /// `rows` are ordered by meter and time.
-pub fn daily(rows: &[RecoveredRow], reads: &[Advance], interval_s: u32) -> Vec<DailyEnergy> {
+pub fn daily(rows: &[RecoveredRow], reads: &[Advance], interval_s: u32, estimates: &DayEstimates) -> Vec<DailyEnergy> {
     let per_day = (86_400 / interval_s.max(1)) as usize;
     let wh_per_kw = f64::from(interval_s) / 3.6;
     let advances = daily_advances(reads);
@@ -120,14 +155,20 @@ pub fn daily(rows: &[RecoveredRow], reads: &[Advance], interval_s: u32) -> Vec<D
         .filter(|(_, v)| v.len() == per_day)
         .map(|((meter, day), v)| {
             let recovered: f64 = v.iter().map(|r| r.kw * wh_per_kw).sum();
-            let var: f64 = v.iter().map(|r| ((r.kw_high - r.kw_low) / (2.0 * 1.96) * wh_per_kw).powi(2)).sum();
             let count = |f: &str| v.iter().filter(|r| r.flag == f).count();
             let reg = advances.get(&(meter.clone(), day)).copied();
+            let (energy, band) = match (reg, estimates.get(&(meter.clone(), day))) {
+                (Some(w), _) => (w as f64, Some((w as f64, w as f64))),
+                (None, Some(&(e, lo, hi))) => (e, Some((lo, hi))),
+                (None, None) => (recovered, None),
+            };
             DailyEnergy {
                 day: utc_date(day),
                 day_start: day,
-                energy_wh: reg.map_or(recovered, |w| w as f64),
-                uncertainty_wh: if reg.is_some() { 0.0 } else { var.sqrt() },
+                energy_wh: energy,
+                low_wh: band.map(|b| b.0),
+                high_wh: band.map(|b| b.1),
+                uncertainty_wh: band.map(|b| (b.1 - energy) / Z95),
                 source: if reg.is_some() { "register" } else { "recovered" }.into(),
                 quality: if reg.is_some() { 0 } else { 11 },
                 recovered_wh: recovered,
@@ -226,17 +267,20 @@ pub fn comparison_summary(changes: &[DayChange]) -> (std::collections::BTreeMap<
 
 pub fn daily_csv(days: &[DailyEnergy]) -> String {
     let mut out = String::from(
-        "meter_id,day_start,day,energy_wh,uncertainty_wh,source,quality,recovered_wh,register_wh,intervals,derived,estimated,corrected,atypical\n",
+        "meter_id,day_start,day,energy_wh,low_wh,high_wh,uncertainty_wh,source,quality,recovered_wh,register_wh,intervals,derived,estimated,corrected,atypical\n",
     );
+    let opt = |v: Option<f64>| v.map(|w| format!("{w:.1}")).unwrap_or_default();
     for d in days {
         let _ = writeln!(
             out,
-            "{},{},{},{:.1},{:.1},{},{},{:.1},{},{},{},{},{},{}",
+            "{},{},{},{:.1},{},{},{},{},{},{:.1},{},{},{},{},{},{}",
             d.meter_id,
             d.day_start,
             d.day,
             d.energy_wh,
-            d.uncertainty_wh,
+            opt(d.low_wh),
+            opt(d.high_wh),
+            opt(d.uncertainty_wh),
             d.source,
             d.quality,
             d.recovered_wh,
@@ -367,7 +411,9 @@ mod tests {
             day_start: start,
             day: utc_date(start),
             energy_wh: reg.map_or(wh, |w| w as f64),
-            uncertainty_wh: 0.0,
+            low_wh: None,
+            high_wh: None,
+            uncertainty_wh: None,
             source: "recovered".into(),
             quality: 11,
             recovered_wh: wh,
@@ -455,15 +501,27 @@ mod tests {
         let adv = |s: i64, e: i64, wh| Advance { meter_id: "M-1".into(), period_start: s, read_at: e, wh };
         // A daily advance, and a two-day one that settles no single day.
         let reads = vec![adv(day, day + 86_400, 12_345), adv(day, day + 2 * 86_400, 24_000)];
-        let d = daily(&r, &reads, 900);
+        // The levels' estimates of both days, off the recovered sum (12 000 Wh).
+        let estimates: DayEstimates = [
+            (("M-1".into(), day), (12_100.0, 11_000.0, 13_000.0)),
+            (("M-1".into(), day + 86_400), (11_900.0, 11_500.0, 12_300.0)),
+        ]
+        .into();
+        let d = daily(&r, &reads, 900, &estimates);
         assert_eq!(d.len(), 2);
         assert_eq!(
             (d[0].energy_wh, d[0].source.as_str(), d[0].uncertainty_wh, d[0].quality),
-            (12_345.0, "register", 0.0, 0)
+            (12_345.0, "register", Some(0.0), 0)
         );
+        assert_eq!((d[0].low_wh, d[0].high_wh), (Some(12_345.0), Some(12_345.0)));
         assert!((d[0].recovered_wh - 12_000.0).abs() < 1e-9);
-        assert_eq!((d[1].source.as_str(), d[1].energy_wh, d[1].quality), ("recovered", 12_000.0, 11));
-        assert!(d[1].uncertainty_wh > 0.0);
+        assert_eq!((d[1].source.as_str(), d[1].energy_wh, d[1].quality), ("recovered", 11_900.0, 11));
+        assert_eq!((d[1].low_wh, d[1].high_wh, d[1].recovered_wh), (Some(11_500.0), Some(12_300.0), 12_000.0));
+        assert!((d[1].uncertainty_wh.unwrap_or(0.0) - 400.0 / Z95).abs() < 1e-9);
+        // Without the levels' estimate a recovered day settles at the recovered sum, with no band.
+        let plain = &daily(&r, &reads, 900, &DayEstimates::new())[1];
+        assert_eq!((plain.energy_wh, plain.uncertainty_wh), (12_000.0, None));
         assert_eq!(d[0].derived, 96);
+        // Without the recovery's bands a recovered day states none.
     }
 }

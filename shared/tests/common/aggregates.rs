@@ -106,6 +106,9 @@ pub fn aggregates(
     let band_bucket: Vec<Option<usize>> = (0..n).map(|j| Some(usize::from(peak(j)))).collect();
     let (mut days_in, mut bands_in, mut days_n, mut bands_n) = (0, 0, 0, 0);
     let (mut days_plain, mut bands_plain) = (0, 0);
+    // The sums of the recovered intervals per meter-day: what settlement
+    // reported before it took the levels' estimate (`e` below).
+    let mut summed_err = Vec::new();
     let (mut day_err, mut band_err, mut month_err) = (Vec::new(), Vec::new(), Vec::new());
     for i in 0..truth.nrows() {
         let row: Vec<f64> = x.row(i).iter().copied().collect();
@@ -120,6 +123,8 @@ pub fn aggregates(
             let t: f64 = (d * 96..(d + 1) * 96).map(|j| truth[(i, j)]).sum();
             days_plain += usize::from((t - e).abs() <= Z95 * days_plain_sums[d].1.sqrt());
             days_in += usize::from((t - e).abs() <= Z95 * v.sqrt());
+            let summed: f64 = (d * 96..(d + 1) * 96).map(|j| x[(i, j)]).sum();
+            summed_err.push((summed - t).abs() / t.max(1e-9));
             days_n += 1;
             day_err.push((e - t).abs() / t.max(1e-9));
         }
@@ -148,6 +153,13 @@ pub fn aggregates(
         100.0 * share(days_plain, days_n),
         100.0 * cov.bands,
         100.0 * share(bands_plain, bands_n)
+    );
+    let (sm, sp) = med(summed_err);
+    eprintln!("{name} σ {scale}: meter-days as sums of the recovered intervals: error median {sm:.1}% p90 {sp:.1}%");
+    // Settlement takes the levels' estimate of a meter-day for this.
+    assert!(
+        dm < sm,
+        "{name} σ {scale}: the levels' estimate of meter-days ({dm:.1}%) no closer than the recovered sums ({sm:.1}%)"
     );
     cov
 }

@@ -3,8 +3,9 @@
 use std::collections::HashMap;
 
 use anyhow::Context;
-use meterveil_shared::aggregate::meter_spreads;
-use meterveil_shared::bootstrap::{fit_draws, Fit, StoredBands};
+use meterveil_shared::aggregate::{meter_spreads, Spread};
+use meterveil_shared::bootstrap::{fit_draws, Fit, FitDraws, StoredBands};
+use meterveil_shared::energies::{day_label, meter_energies, Fitted};
 use meterveil_shared::mechanism::secure_rng;
 use meterveil_shared::recovery::outage::DayLayout;
 use meterveil_shared::recovery::{
@@ -122,18 +123,21 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoverSpec) -> anyhow::
     };
 
     let (draws, names) = (req.band_draws as usize, meters.clone());
-    let (rec, n_constraints, bands) = super::run_reporting(s, JobTable::Recovery, job_id, move |progress| {
-        let _span = tracing::info_span!("recovery").entered();
-        let report = &mut |stage: &str, f: f64| progress(stage, f);
-        let rec = recover_from(&levels, &profile, &constraints, layout, &params, warm.as_ref(), report)
-            .map_err(|e| anyhow::anyhow!("{e}"))?;
-        if draws > 0 {
-            progress("bands' bootstrap", 0.99);
-        }
-        let bands = band_model(&rec, (&levels, &profile, &constraints, layout), &params, names, draws)?;
-        Ok((rec, constraints.len(), bands))
-    })
-    .await?;
+    let settled = req.settles.as_ref().map(|r| (r.day_start, req.from));
+    let (rec, n_constraints, bands, day_estimates) =
+        super::run_reporting(s, JobTable::Recovery, job_id, move |progress| {
+            let _span = tracing::info_span!("recovery").entered();
+            let report = &mut |stage: &str, f: f64| progress(stage, f);
+            let rec = recover_from(&levels, &profile, &constraints, layout, &params, warm.as_ref(), report)
+                .map_err(|e| anyhow::anyhow!("{e}"))?;
+            if draws > 0 {
+                progress("bands' bootstrap", 0.99);
+            }
+            let fitted = (&levels, &profile, constraints.as_slice(), layout);
+            let (bands, day_estimates) = bands_and_day(&rec, fitted, &params, draws, names, settled)?;
+            Ok((rec, constraints.len(), bands, day_estimates))
+        })
+        .await?;
     let mut out = rows_of(&rec, &meters, req, step);
     let mut diag = serde_json::to_value(&rec.diagnostics)?;
     diag["register_days"] = n_constraints.into();
@@ -147,7 +151,9 @@ async fn run_inner(s: &WorkContext, job_id: &str, req: &RecoverSpec) -> anyhow::
     }
     let frozen = match (&req.settles, day_inputs) {
         (Some(run), Some(day)) => {
-            Some((run.run_id.as_str(), super::settle::freeze(store, req, run, day, &mut out, step, &mut diag).await?))
+            let estimates = day_estimates.unwrap_or_default();
+            let frozen = super::settle::freeze(store, req, run, day, (&mut out, &estimates), step, &mut diag).await?;
+            Some((run.run_id.as_str(), frozen))
         }
         _ => None,
     };
@@ -184,24 +190,59 @@ fn rows_of(rec: &Recovery, meters: &[String], req: &RecoverSpec, step: i64) -> V
     out
 }
 
-/// A recovery's band model as stored (`shared::bootstrap::StoredBands`, JSON):
-/// each meter's spread and `draws` refits of the bands' bootstrap; none for 0.
+/// A recovery's band model: each meter's spread and `draws` refits of the
+/// bands' bootstrap (none for 0).
 fn band_model(
     rec: &Recovery,
     (levels, profile, constraints, layout): (&LevelMatrix, &DitherProfile, &[SumConstraint], DayLayout),
     params: &ValidRecoveryParams,
-    meters: Vec<String>,
     draws: usize,
-) -> anyhow::Result<Option<String>> {
-    if draws == 0 {
-        return Ok(None);
-    }
+) -> anyhow::Result<(Vec<Spread>, FitDraws)> {
     let spreads = meter_spreads(&rec.x, levels, profile, layout.interval_s);
+    if draws == 0 {
+        return Ok((spreads, FitDraws::default()));
+    }
     let (x, rank) = (&rec.x, rec.diagnostics.rank);
     let fit = Fit { x, rank, levels, profile, constraints, layout, spreads: &spreads, params };
     // Like the dither, the draws come from the operating system's generator.
     let fd = fit_draws(&fit, draws, &mut secure_rng()).map_err(|e| anyhow::anyhow!("bands' bootstrap: {e}"))?;
-    Ok(Some(serde_json::to_string(&StoredBands::new(meters, &spreads, &fd))?))
+    Ok((spreads, fd))
+}
+
+/// After the fit: its band model as stored (`shared::bootstrap::StoredBands`,
+/// JSON; none for 0 draws) and, for a settlement run (`settled`: its day and
+/// the window's start), each meter's estimate of the settled day.
+fn bands_and_day(
+    rec: &Recovery,
+    fitted: (&LevelMatrix, &DitherProfile, &[SumConstraint], DayLayout),
+    params: &ValidRecoveryParams,
+    draws: usize,
+    meters: Vec<String>,
+    settled: Option<(i64, i64)>,
+) -> anyhow::Result<(Option<String>, Option<crate::settlement::DayEstimates>)> {
+    let (spreads, fd) = band_model(rec, fitted, params, draws)?;
+    let day = settled.map(|(day, from)| settled_day(rec, fitted, (&spreads, &fd), &meters, day, from));
+    let bands = (draws > 0).then(|| serde_json::to_string(&StoredBands::new(meters, &spreads, &fd))).transpose()?;
+    Ok((bands, day))
+}
+
+/// Each meter's energy of the settled UTC day `day` from its levels, with its
+/// 95% band from the band model (`shared::energies`), the register reads of
+/// the window applied.
+fn settled_day(
+    rec: &Recovery,
+    (levels, profile, constraints, layout): (&LevelMatrix, &DitherProfile, &[SumConstraint], DayLayout),
+    (spreads, draws): (&[Spread], &FitDraws),
+    meters: &[String],
+    day: i64,
+    from: i64,
+) -> crate::settlement::DayEstimates {
+    let fitted = Fitted { x: &rec.x, levels, start: from, interval_s: layout.interval_s, draws };
+    // Every day of the window: a weekly read's other days share its total.
+    let cells = meter_energies(fitted, profile, spreads, constraints, &day_label(None));
+    let mut out = crate::settlement::day_estimates(&cells, meters);
+    out.retain(|k, _| k.1 == day);
+    out
 }
 
 /// The start of a rolling run: finished recoveries' estimates (each whole,

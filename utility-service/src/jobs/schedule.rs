@@ -108,9 +108,10 @@ pub async fn make_run(
         alpha_kw: meterveil_shared::recovery::DEFAULT_ALPHA_KW,
         warm_from: None,
         settles: Some(SettledDay { run_id: run_id.clone(), day_start }),
-        // A run's figures are its meter-days, frozen from its estimates; the
-        // bands' bootstrap is for recoveries that serve group loads.
-        band_draws: 0,
+        // A run's figures are its meter-days, frozen from its estimates with
+        // their bands; without the bootstrap those covered 83-84% of BDEW's
+        // meter-days, with it 89-90% (README "Group loads and their bands").
+        band_draws: meterveil_shared::bootstrap::DEFAULT_DRAWS as u32,
     };
     let run = NewRun { run_id: &run_id, job_id: &job_id, kind, day_start, started_by, due_at, spec: &spec };
     let Some(version) = s.store.create_run(feeder, &run, now).await? else { return Ok(None) };

@@ -163,7 +163,9 @@ async fn daily(
     if let Some(m) = &q.meter_id {
         reads.retain(|r| &r.meter_id == m);
     }
-    let days = crate::settlement::daily(&rows, &reads, job_interval(&rows, &job));
+    let (cells, meters, _) = super::tariffs::cells_of(&s, &job, super::tariffs::Cells::Days(chrono_tz::UTC)).await?;
+    let estimates = crate::settlement::day_estimates(&cells, &meters);
+    let days = crate::settlement::daily(&rows, &reads, job_interval(&rows, &job), &estimates);
     tracing::info!(job = %id, days = days.len(), meter = ?q.meter_id, "per-meter daily energy export");
     match q.format.as_deref().unwrap_or("json") {
         "json" => Ok(Json(days).into_response()),
@@ -176,12 +178,13 @@ async fn daily(
 }
 
 /// A finished recovery's daily energies (rows of all meters) against the
-/// feeder's register advances now.
+/// feeder's register advances now, at their recovered sums (a comparison
+/// follows how the recovered profile moved).
 async fn daily_of(s: &AppState, job: &JobRecord) -> Result<Vec<crate::settlement::DailyEnergy>, ApiError> {
     let rows = s.store.job_rows(&job.job_id, None).await?;
     let feeder = FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
     let reads = s.store.feeder_registers_between(&feeder, job.window_start, job.window_end + 1).await?;
-    Ok(crate::settlement::daily(&rows, &reads, job_interval(&rows, job)))
+    Ok(crate::settlement::daily(&rows, &reads, job_interval(&rows, job), &Default::default()))
 }
 
 /// How each meter-day both recoveries of one feeder hold moved from the

@@ -125,7 +125,7 @@ fn wants_csv(format: Option<&str>) -> Result<bool, ApiError> {
 }
 
 /// What a recovery's energies are summed by.
-enum Cells {
+pub(crate) enum Cells {
     Bands(TariffCalendar),
     /// Days in this zone (UTC: the settlement day).
     Days(chrono_tz::Tz),
@@ -136,7 +136,7 @@ enum Cells {
 /// spreads fitted here and no bootstrap), reconciled to the register reads.
 /// Gives back the cells, the meters in the cells' order and the bootstrap's
 /// draws used.
-async fn cells_of(
+pub(crate) async fn cells_of(
     s: &AppState,
     job: &crate::store::recoveries::JobRecord,
     by: Cells,
