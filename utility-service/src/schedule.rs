@@ -202,6 +202,24 @@ fn local_at(tz: Tz, date: NaiveDate, at: NaiveTime) -> i64 {
     }
 }
 
+/// Where a run's window starts so that it holds one profile version: the
+/// first UTC midnight after the last reading (before the settled day) of any
+/// version other than the settled day's, or `from` if none. `levels` are a
+/// feeder's (meter, interval start, level, profile version) over the window
+/// [from, day_start + 1 day). A settled day whose own readings mix versions
+/// keeps `from`: its fit then fails and says so.
+pub fn one_version_start(levels: &[(String, i64, u8, u32)], from: i64, day_start: i64) -> i64 {
+    let mut of_day = levels.iter().filter(|r| r.1 >= day_start).map(|r| r.3);
+    let Some(v) = of_day.next() else { return from };
+    if of_day.any(|w| w != v) {
+        return from;
+    }
+    match levels.iter().filter(|r| r.3 != v && r.1 < day_start).map(|r| r.1).max() {
+        Some(t) => (t - t.rem_euclid(DAY) + DAY).clamp(from, day_start),
+        None => from,
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -285,5 +303,22 @@ mod tests {
         let d = parse_day("d", &s.first_day).expect("day");
         assert_eq!(s.days_to_consider(d + 3 * DAY + 5), d / DAY..d / DAY + 3);
         assert!(s.days_to_consider(d + 5).is_empty());
+    }
+
+    #[test]
+    fn a_window_starts_after_the_last_reading_of_another_profile_version() {
+        let r = |t: i64, v: u32| ("M-1".to_owned(), t, 0u8, v);
+        let (from, day) = (10 * DAY, 14 * DAY);
+        // Version 2 from day 12, 06:00: the window starts on day 13.
+        let levels = vec![r(from, 1), r(12 * DAY + 5 * 3600, 1), r(12 * DAY + 6 * 3600, 2), r(day + 900, 2)];
+        assert_eq!(one_version_start(&levels, from, day), 13 * DAY);
+        // One version throughout, or a settled day that mixes two: unchanged.
+        assert_eq!(one_version_start(&levels[2..], from, day), from);
+        let mixed = vec![r(from, 1), r(day, 1), r(day + 900, 2)];
+        assert_eq!(one_version_start(&mixed, from, day), from);
+        // A change during the day before: the window is the settled day alone.
+        let late = vec![r(from, 1), r(day - 900, 1), r(day, 2)];
+        assert_eq!(one_version_start(&late, from, day), day);
+        assert_eq!(one_version_start(&[], from, day), from);
     }
 }

@@ -83,7 +83,8 @@ async fn tick_feeder(s: &WorkContext, feeder: &FeederId, schedule: &Schedule, no
 }
 
 /// Makes one run and queues its recovery over the `window_days` ending with
-/// the day (from the feeder's first reading at the earliest); `None` when the
+/// the day (from the feeder's first reading at the earliest, and from the
+/// first whole day of the settled day's profile version); `None` when the
 /// day already has a run of this kind.
 #[allow(clippy::too_many_arguments)]
 pub async fn make_run(
@@ -98,6 +99,9 @@ pub async fn make_run(
 ) -> anyhow::Result<Option<Made>> {
     let first = s.store.feeder_span(feeder).await?.map_or(day_start, |(f, _)| f - f.rem_euclid(DAY));
     let from = (day_start - (i64::from(window_days) - 1) * DAY).max(first).min(day_start);
+    // A fit holds one profile version: after a new one, the window starts with it.
+    let levels = s.store.feeder_levels_between(feeder, from, day_start + DAY).await?;
+    let from = crate::schedule::one_version_start(&levels, from, day_start);
     let run_id = super::new_job_id("run");
     let job_id = super::new_job_id("rec");
     let spec = RecoverSpec {
