@@ -109,6 +109,8 @@ pub fn aggregates(
     // The sums of the recovered intervals per meter-day: what settlement
     // reported before it took the levels' estimate (`e` below).
     let mut summed_err = Vec::new();
+    // Meter-days whose band is under 1% of their estimate either way, and of those the truth inside.
+    let (mut narrow, mut narrow_in) = (0usize, 0usize);
     let (mut day_err, mut band_err, mut month_err) = (Vec::new(), Vec::new(), Vec::new());
     for i in 0..truth.nrows() {
         let row: Vec<f64> = x.row(i).iter().copied().collect();
@@ -125,6 +127,10 @@ pub fn aggregates(
             days_in += usize::from((t - e).abs() <= Z95 * v.sqrt());
             let summed: f64 = (d * 96..(d + 1) * 96).map(|j| x[(i, j)]).sum();
             summed_err.push((summed - t).abs() / t.max(1e-9));
+            if Z95 * v.sqrt() < 0.01 * e {
+                narrow += 1;
+                narrow_in += usize::from((t - e).abs() <= Z95 * v.sqrt());
+            }
             days_n += 1;
             day_err.push((e - t).abs() / t.max(1e-9));
         }
@@ -155,7 +161,10 @@ pub fn aggregates(
         100.0 * share(bands_plain, bands_n)
     );
     let (sm, sp) = med(summed_err);
-    eprintln!("{name} σ {scale}: meter-days as sums of the recovered intervals: error median {sm:.1}% p90 {sp:.1}%");
+    eprintln!(
+        "{name} σ {scale}: meter-days as sums of the recovered intervals: error median {sm:.1}% p90 {sp:.1}%; bands under ±1% of the estimate: {:.2}% of meter-days, {narrow_in} of {narrow} covered",
+        100.0 * share(narrow, days_n)
+    );
     // Settlement takes the levels' estimate of a meter-day for this.
     assert!(
         dm < sm,
