@@ -220,6 +220,9 @@ fn bands_and_day(
     meters: Vec<String>,
     settled: Option<(i64, i64)>,
 ) -> anyhow::Result<(Option<String>, Option<crate::settlement::DayEstimates>)> {
+    if draws == 0 && settled.is_none() {
+        return Ok((None, None));
+    }
     let (spreads, fd) = band_model(rec, fitted, params, draws)?;
     let day = settled.map(|(day, from)| settled_day(rec, fitted, (&spreads, &fd), &meters, day, from));
     let bands = (draws > 0).then(|| serde_json::to_string(&StoredBands::new(meters, &spreads, &fd))).transpose()?;

@@ -156,6 +156,8 @@ async fn daily(
     Path(id): Path<String>,
     Query(q): Query<IntervalQuery>,
 ) -> Result<Response, ApiError> {
+    // The format is checked before the day estimates are made.
+    let csv = super::tariffs::wants_csv(q.format.as_deref())?;
     let job = find_done(&s, &id).await?;
     let rows = s.store.job_rows(&id, q.meter_id.as_deref()).await?;
     let feeder = FeederId::parse(&job.feeder_id).map_err(ApiError::Invalid)?;
@@ -167,14 +169,12 @@ async fn daily(
     let estimates = crate::settlement::day_estimates(&cells, &meters);
     let days = crate::settlement::daily(&rows, &reads, job_interval(&rows, &job), &estimates);
     tracing::info!(job = %id, days = days.len(), meter = ?q.meter_id, "per-meter daily energy export");
-    match q.format.as_deref().unwrap_or("json") {
-        "json" => Ok(Json(days).into_response()),
-        "csv" => {
-            Ok(([(header::CONTENT_TYPE, "text/csv; charset=utf-8")], crate::settlement::daily_csv(&days))
-                .into_response())
-        }
-        other => Err(ApiError::invalid("format", format!("{other:?} is not json or csv"))),
+    if csv {
+        return Ok(
+            ([(header::CONTENT_TYPE, "text/csv; charset=utf-8")], crate::settlement::daily_csv(&days)).into_response()
+        );
     }
+    Ok(Json(days).into_response())
 }
 
 /// A finished recovery's daily energies (rows of all meters) against the

@@ -116,7 +116,7 @@ async fn band_energies(
 }
 
 /// `format`: json (the default) or csv; true for csv.
-fn wants_csv(format: Option<&str>) -> Result<bool, ApiError> {
+pub(crate) fn wants_csv(format: Option<&str>) -> Result<bool, ApiError> {
     match format.unwrap_or("json") {
         "json" => Ok(false),
         "csv" => Ok(true),
